@@ -1,0 +1,169 @@
+"""The plugin contract: what a plugin module declares, and the kernel signatures it provides.
+
+Kernels (all ``@njit(cache=True)``, float64 arrays preallocated by the runtime, no allocation):
+
+plant
+    ``derivs(t, p, x, u, d, dx)`` writes dx/dt; ``outputs(t, p, x, u, d, y)`` writes the measured
+    signals in the order of ``DECLARATION.outputs``. ``d`` holds the load now:
+    ``d[0]`` constant power [W], ``d[1]`` conductance [S], ``d[2]`` constant current [A].
+controller
+    ``init(p, xc, y, r)`` sets the controller states from the first measurement and reference
+    (bumpless start); ``step(t, p, xc, y, r, u) -> int`` writes the actuation ``u`` and returns 0,
+    or a fault code that the protect stage turns into a trip.
+reference
+    ``init(p, xr, y)`` and ``step(t, dt, p, xr, y, w)``: writes the raw voltage reference into
+    ``w[0]``; the runtime's shaping filter then yields the reference and its derivatives.
+
+``y`` handed to a controller or reference kernel holds exactly the signals the plugin declares in
+``reads``, in that order; ``r`` holds ``[v_ref, v_ref', v_ref'', v_ref''', v_ref'''']``.
+
+``p`` is built in Python before the run by ``DECLARATION.build(values, ctx)`` (default: the
+declared scalar parameters in order). Design work that is not per tick (gains from pole
+placement, tables) belongs there.
+"""
+from __future__ import annotations
+
+import difflib
+from dataclasses import dataclass, field
+from typing import Any, Callable, Mapping, Sequence
+
+import numpy as np
+
+KINDS = ("plant", "controller", "reference")
+
+#: the reference vector r handed to every controller
+REFERENCE_SIGNALS = (
+    ("v_ref", "V"), ("v_ref_d1", "V/s"), ("v_ref_d2", "V/s^2"), ("v_ref_d3", "V/s^3"),
+    ("v_ref_d4", "V/s^4"),
+)
+
+#: the load vector d handed to every plant
+LOAD_SIGNALS = (("P_load", "W"), ("G_load", "S"), ("I_load", "A"))
+
+
+@dataclass(frozen=True)
+class Param:
+    """A scalar parameter: name, SI unit, default, closed bounds and a description."""
+
+    name: str
+    unit: str
+    default: float
+    bounds: tuple[float, float]
+    description: str
+    #: open lower bound (value must be strictly greater than bounds[0])
+    lower_open: bool = False
+
+    def check(self, value: float) -> str | None:
+        """Return a description of what is wrong with ``value``, or None if it is allowed."""
+        lo, hi = self.bounds
+        low_ok = value > lo if self.lower_open else value >= lo
+        if not (low_ok and value <= hi):
+            br = "(" if self.lower_open else "["
+            return f"outside {br}{lo:g}, {hi:g}] {self.unit}"
+        return None
+
+
+@dataclass(frozen=True)
+class TableParam:
+    """A table parameter: rows of numbers, one unit per column, e.g. OCV against SOC."""
+
+    name: str
+    columns: tuple[tuple[str, str], ...]
+    default: tuple[tuple[float, ...], ...]
+    description: str
+    #: the first column must be strictly increasing (breakpoints of an interpolation table)
+    increasing_first: bool = True
+    #: allow equal consecutive breakpoints (a step in a piecewise-linear profile)
+    allow_equal_first: bool = False
+    min_rows: int = 2
+
+
+@dataclass(frozen=True)
+class Signal:
+    """A named signal with its SI unit."""
+
+    name: str
+    unit: str
+    description: str = ""
+
+
+@dataclass
+class BuildContext:
+    """What a plugin's build hook may use: control period, other plugins' values."""
+
+    Ts: float
+    plant: Mapping[str, Any] = field(default_factory=dict)
+    plant_name: str = ""
+    plant_outputs: tuple[str, ...] = ()
+
+
+@dataclass
+class Declaration:
+    """Everything the runtime and the user need to know about a plugin."""
+
+    kind: str
+    name: str
+    summary: str
+    params: Sequence[Param | TableParam]
+    states: Sequence[Signal]
+    reads: Sequence[str] = ()
+    outputs: Sequence[Signal] = ()
+    inputs: Sequence[Signal] = ()
+    source: str = ""
+    #: build(values, ctx) -> float64 array p; default packs the scalar params in order
+    build: Callable[[Mapping[str, Any], BuildContext], np.ndarray] | None = None
+    #: plant only: equilibrium(values, v_out, d) -> x0 at the given output voltage and load
+    equilibrium: Callable[[Mapping[str, Any], float, np.ndarray], np.ndarray] | None = None
+    #: number of states the kernel keeps (may depend on values, e.g. RC pairs)
+    n_states: Callable[[Mapping[str, Any]], int] | None = None
+
+    def __post_init__(self):
+        if self.kind not in KINDS:
+            raise ValueError(f"plugin {self.name!r}: kind {self.kind!r} is not one of {KINDS}")
+
+    def param(self, name: str) -> Param | TableParam:
+        for p in self.params:
+            if p.name == name:
+                return p
+        close = difflib.get_close_matches(name, [p.name for p in self.params], n=3)
+        hint = f"; did you mean {', '.join(close)}?" if close else ""
+        raise KeyError(f"{self.kind} {self.name!r} has no parameter {name!r}{hint}")
+
+    def defaults(self) -> dict[str, Any]:
+        return {p.name: p.default for p in self.params}
+
+    def pack(self, values: Mapping[str, Any], ctx: BuildContext) -> np.ndarray:
+        """Return the float64 parameter array ``p`` for the kernels."""
+        if self.build is not None:
+            p = np.ascontiguousarray(self.build(values, ctx), dtype=np.float64)
+        else:
+            p = np.array([float(values[q.name]) for q in self.params if isinstance(q, Param)],
+                         dtype=np.float64)
+        if p.ndim != 1 or p.size == 0:
+            p = np.zeros(1) if p.size == 0 else p.ravel()
+        return p
+
+    def state_count(self, values: Mapping[str, Any]) -> int:
+        return self.n_states(values) if self.n_states is not None else len(self.states)
+
+    def describe(self) -> dict:
+        """Plain-data description (for ``hilrig plugins --json``)."""
+        params = []
+        for q in self.params:
+            if isinstance(q, Param):
+                params.append(dict(name=q.name, unit=q.unit, default=q.default,
+                                   min=q.bounds[0], max=q.bounds[1], description=q.description))
+            else:
+                params.append(dict(name=q.name, unit=" | ".join(f"{c} [{u}]" for c, u in q.columns),
+                                   default=[list(r) for r in q.default], min=None, max=None,
+                                   description=q.description))
+        return dict(kind=self.kind, name=self.name, summary=self.summary, params=params,
+                    states=[dict(name=s.name, unit=s.unit) for s in self.states],
+                    reads=list(self.reads),
+                    outputs=[dict(name=s.name, unit=s.unit) for s in self.outputs],
+                    source=self.source)
+
+
+def table_array(rows) -> np.ndarray:
+    """Rows of a table parameter as a 2-D float64 array."""
+    return np.asarray([list(r) for r in rows], dtype=np.float64)

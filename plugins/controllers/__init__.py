@@ -1,0 +1,1 @@
+"""Output-voltage controllers."""

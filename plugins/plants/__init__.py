@@ -1,0 +1,1 @@
+"""Averaged plant models of a battery emulator's output stage."""

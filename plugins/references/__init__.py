@@ -1,0 +1,1 @@
+"""Reference generators: profiles and battery models that produce the raw voltage reference."""

@@ -1,0 +1,1 @@
+"""hilrig runtime: the compiled loop, scenario loading, recording, metrics and the CLI."""

@@ -1,0 +1,137 @@
+"""Run folders: ``recording.h5`` written chunk by chunk, ``summary.json`` and ``scenario.toml``.
+
+Contract (other tools rely on it):
+
+- ``recording.h5``: dataset ``time`` [s] and group ``signals/`` with one 1-D float64 dataset per
+  signal, each with a ``unit`` attribute (and a ``description``); file attributes
+  ``scenario_text`` (the exact scenario file), ``versions`` (JSON), ``seed``, ``Ts`` [s],
+  ``hilrig_format`` (this contract's version) and, once the run ends, ``events`` (JSON) and
+  ``complete`` (true).
+- ``summary.json``: metrics and timing of the run.
+- ``scenario.toml``: the exact scenario text.
+
+Every chunk is written and flushed before the loop goes on, so a killed run leaves a file
+readable up to its last flushed chunk. Compression: none (default) or gzip level 1 with shuffle,
+which any HDF5 reader can open.
+"""
+from __future__ import annotations
+
+import json
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Any
+
+import h5py
+import numpy as np
+
+from .errors import RecordingError
+
+FORMAT_VERSION = 1
+RECORDING = "recording.h5"
+SUMMARY = "summary.json"
+SCENARIO = "scenario.toml"
+
+
+@dataclass(frozen=True)
+class SignalSpec:
+    name: str
+    unit: str
+    description: str = ""
+
+
+class RunWriter:
+    """Append-only writer of one run's recording, flushed per chunk."""
+
+    def __init__(self, folder: Path, signals: list[SignalSpec], attrs: dict[str, Any],
+                 chunk_rows: int, compression: str = "none"):
+        self.folder = Path(folder)
+        self.signals = signals
+        self.path = self.folder / RECORDING
+        self.n = 0
+        kw: dict[str, Any] = dict(maxshape=(None,), dtype="f8", chunks=(max(1, min(chunk_rows, 1 << 16)),))
+        if compression == "gzip":
+            kw.update(compression="gzip", compression_opts=1, shuffle=True)
+        self.f = h5py.File(self.path, "w")
+        for k, v in attrs.items():
+            self.f.attrs[k] = v
+        self.f.attrs["hilrig_format"] = FORMAT_VERSION
+        self.f.attrs["complete"] = False
+        self.time = self.f.create_dataset("time", shape=(0,), **kw)
+        self.time.attrs["unit"] = "s"
+        g = self.f.create_group("signals")
+        self.ds = []
+        for s in signals:
+            d = g.create_dataset(s.name, shape=(0,), **kw)
+            d.attrs["unit"] = s.unit
+            d.attrs["description"] = s.description
+            self.ds.append(d)
+        self.f.flush()
+
+    def append(self, time: np.ndarray, rows: np.ndarray) -> None:
+        """Write one chunk (rows: n x len(signals)) and flush it to disk."""
+        n = time.shape[0]
+        if n == 0:
+            return
+        end = self.n + n
+        self.time.resize((end,))
+        self.time[self.n:end] = time
+        for j, d in enumerate(self.ds):
+            d.resize((end,))
+            d[self.n:end] = rows[:n, j]
+        self.n = end
+        self.f.flush()
+
+    def close(self, attrs: dict[str, Any] | None = None) -> None:
+        for k, v in (attrs or {}).items():
+            self.f.attrs[k] = v
+        self.f.attrs["complete"] = True
+        self.f.flush()
+        self.f.close()
+
+
+@dataclass
+class Run:
+    """A run folder read back: time, signals (name -> array), units, attributes, summary."""
+
+    folder: Path
+    time: np.ndarray
+    signals: dict[str, np.ndarray]
+    units: dict[str, str]
+    attrs: dict[str, Any]
+    summary: dict[str, Any]
+
+    @property
+    def scenario_text(self) -> str:
+        return self.attrs.get("scenario_text", "")
+
+
+def open_run(path: str | Path) -> Run:
+    """Read a run folder (or a ``recording.h5`` path) fully into memory."""
+    path = Path(path)
+    folder = path.parent if path.suffix == ".h5" else path
+    h5 = path if path.suffix == ".h5" else path / RECORDING
+    if not h5.exists():
+        raise RecordingError(f"no recording at {h5}: give a run folder written by 'hilrig run' or 'hilrig demo'")
+    try:
+        with h5py.File(h5, "r") as f:
+            time = f["time"][()]
+            signals = {k: d[()] for k, d in f["signals"].items()}
+            units = {k: str(d.attrs.get("unit", "")) for k, d in f["signals"].items()}
+            attrs = {k: (v.item() if isinstance(v, np.generic) else v) for k, v in f.attrs.items()}
+    except (OSError, KeyError) as exc:
+        raise RecordingError(f"{h5} is not a readable hilrig recording: {exc}") from None
+    summary = {}
+    sp = folder / SUMMARY
+    if sp.exists():
+        summary = json.loads(sp.read_text())
+    return Run(folder=folder, time=time, signals=signals, units=units, attrs=attrs, summary=summary)
+
+
+def export_csv(run: Run, dest: Path) -> Path:
+    """Write time and every signal as CSV (header ``name [unit]``); return the path."""
+    names = list(run.signals)
+    header = ",".join(["time [s]"] + [f"{n} [{run.units.get(n, '')}]" for n in names])
+    data = np.column_stack([run.time] + [run.signals[n] for n in names]) if names else run.time[:, None]
+    # repr-exact floats: 17 significant digits round-trip float64
+    np.savetxt(dest, data, delimiter=",", header=header, comments="", fmt="%.17g")
+    return dest

@@ -1,0 +1,119 @@
+"""Plugin discovery: built-ins and third-party plugins through entry points, or a file path.
+
+Entry-point groups: ``hilrig.plants``, ``hilrig.controllers``, ``hilrig.references``; each entry
+names a module holding ``DECLARATION`` and the kernels of its kind (see
+:mod:`hilrig.plugins.base`). A scenario may also name a ``.py`` file instead of a plugin name.
+"""
+from __future__ import annotations
+
+import difflib
+import hashlib
+import importlib
+import importlib.util
+import os
+import sys
+from dataclasses import dataclass
+from importlib.metadata import entry_points
+from types import ModuleType
+
+from hilrig.plugins.base import KINDS, Declaration
+
+from .errors import PluginError
+
+KERNELS = {"plant": ("derivs", "outputs"), "controller": ("init", "step"),
+           "reference": ("init", "step")}
+
+
+@dataclass(frozen=True)
+class Plugin:
+    """A loaded plugin: its module, declaration, and how generated code imports it."""
+
+    kind: str
+    name: str
+    module: ModuleType
+    declaration: Declaration
+    #: ("module", dotted name) or ("file", absolute path)
+    origin: tuple[str, str]
+
+    @property
+    def source_file(self) -> str:
+        return os.path.abspath(self.module.__file__)
+
+
+def _group(kind: str) -> str:
+    return f"hilrig.{kind}s"
+
+
+def available(kind: str) -> dict[str, str]:
+    """Names of installed plugins of a kind -> module path."""
+    return {ep.name: ep.value for ep in entry_points(group=_group(kind))}
+
+
+def load(kind: str, ref: str) -> Plugin:
+    """Load a plugin by entry-point name or by a path to a ``.py`` file."""
+    if kind not in KINDS:
+        raise PluginError(f"unknown plugin kind {kind!r}; expected one of {', '.join(KINDS)}")
+    if ref.endswith(".py") or os.sep in ref or "/" in ref:
+        path = os.path.abspath(os.path.expanduser(ref))
+        if not os.path.isfile(path):
+            raise PluginError(f"{kind} plugin file {ref!r} does not exist (looked at {path})")
+        module = load_file(path)
+        origin = ("file", path)
+    else:
+        names = available(kind)
+        if ref not in names:
+            close = difflib.get_close_matches(ref, list(names), n=3)
+            hint = f"; did you mean {', '.join(close)}?" if close else ""
+            raise PluginError(f"no {kind} plugin named {ref!r}{hint} (installed: "
+                              f"{', '.join(sorted(names)) or 'none'}; or give a path to a .py file)")
+        try:
+            module = importlib.import_module(names[ref])
+        except Exception as exc:  # a broken third-party plugin must not look like a hilrig bug
+            raise PluginError(f"{kind} plugin {ref!r} ({names[ref]}) failed to import: {exc}") from exc
+        origin = ("module", module.__name__)
+    decl = check(kind, module)
+    return Plugin(kind=kind, name=decl.name, module=module, declaration=decl, origin=origin)
+
+
+def load_file(path: str) -> ModuleType:
+    """Import a plugin file under a stable module name derived from its path."""
+    mod_name = "hilrig_user_" + hashlib.sha1(path.encode()).hexdigest()[:12]
+    if mod_name in sys.modules:
+        return sys.modules[mod_name]
+    spec = importlib.util.spec_from_file_location(mod_name, path)
+    if spec is None or spec.loader is None:
+        raise PluginError(f"cannot import plugin file {path}")
+    module = importlib.util.module_from_spec(spec)
+    sys.modules[mod_name] = module
+    try:
+        spec.loader.exec_module(module)
+    except Exception as exc:
+        del sys.modules[mod_name]
+        raise PluginError(f"plugin file {path} failed to import: {type(exc).__name__}: {exc}") from exc
+    return module
+
+
+def check(kind: str, module: ModuleType) -> Declaration:
+    """Check that a module follows the contract of its kind; return its declaration."""
+    decl = getattr(module, "DECLARATION", None)
+    where = getattr(module, "__file__", module.__name__)
+    if not isinstance(decl, Declaration):
+        raise PluginError(f"{where}: no DECLARATION (a hilrig.plugins.base.Declaration)")
+    if decl.kind != kind:
+        raise PluginError(f"{where}: declares a {decl.kind} plugin, but a {kind} is needed here")
+    for k in KERNELS[kind]:
+        fn = getattr(module, k, None)
+        if fn is None or not hasattr(fn, "py_func"):
+            raise PluginError(f"{where}: kernel {k!r} missing or not compiled with numba's @njit")
+    if kind == "plant" and decl.equilibrium is None:
+        raise PluginError(f"{where}: a plant declares equilibrium(values, v_out, d)")
+    return decl
+
+
+def all_plugins() -> list[Plugin]:
+    """Every installed plugin of every kind (for ``hilrig plugins``)."""
+    out = []
+    for kind in KINDS:
+        for name in sorted(available(kind)):
+            out.append(load(kind, name))
+    return out

@@ -1,0 +1,285 @@
+"""Running a scenario in SIL: build parameter arrays, compile (or load) the loop, run it chunk
+by chunk, record every tick and summarise. Python runs only between chunks.
+"""
+from __future__ import annotations
+
+import datetime as _dt
+import json
+import platform
+import sys
+import time
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Any, Callable
+
+import numpy as np
+
+from hilrig.plugins.base import LOAD_SIGNALS, REFERENCE_SIGNALS, BuildContext
+from hilrig.safety.interlocks import (L_CAUSE, L_TICK, L_TIME, L_TRIPPED, L_VALUE,
+                                      InterlockTable, new_latch)
+
+from . import loop as loopgen
+from . import shaping
+from .errors import ScenarioError
+from .metrics import TrackingMetrics
+from .recording import SCENARIO, SUMMARY, RunWriter, SignalSpec
+from .scenario import PluginChoice, Scenario
+
+
+@dataclass
+class RunResult:
+    folder: Path
+    summary: dict[str, Any]
+
+
+@dataclass
+class Prepared:
+    """Everything the compiled loop needs, allocated once."""
+
+    sc: Scenario
+    args: dict[str, Any]
+    signals: list[SignalSpec]
+    table: InterlockTable
+    y_names: list[str]
+    u_names: list[str]
+    v0: float
+
+
+def versions() -> dict[str, str]:
+    import h5py
+    import numba
+    from importlib.metadata import version
+    try:
+        hv = version("hilrig")
+    except Exception:
+        hv = "0+unknown"
+    return {"hilrig": hv, "numba": numba.__version__, "numpy": np.__version__,
+            "h5py": h5py.__version__, "python": platform.python_version()}
+
+
+def _resolve_reads(choice: PluginChoice, outputs: list[str]) -> np.ndarray:
+    decl = choice.plugin.declaration
+    fallbacks = getattr(choice.plugin.module, "READ_FALLBACKS", {})
+    idx = []
+    for name in decl.reads:
+        if name in outputs:
+            idx.append(outputs.index(name))
+        elif name in fallbacks and fallbacks[name] in outputs:
+            idx.append(outputs.index(fallbacks[name]))
+        else:
+            raise ScenarioError(
+                f"{decl.kind} {decl.name!r} reads {name!r}, which plant outputs do not include "
+                f"(plant signals: {', '.join(outputs)}); choose a plant that measures it")
+    return np.array(idx, dtype=np.int64)
+
+
+def _initial_v_out(sc: Scenario, pp, pr, iyr, n_xr, outputs) -> float:
+    """Fixed point of v = reference(t=0, plant at equilibrium v): the run starts settled."""
+    plant = sc.plant.plugin
+    ref = sc.reference.plugin.module
+    d0 = sc.load_v[:, 0].copy()
+    y = np.zeros(len(outputs))
+    u = np.zeros(len(plant.declaration.inputs) or 1)
+    w = np.zeros(1)
+    v = 400.0 if sc.v_out0 is None else sc.v_out0
+    if sc.v_out0 is not None:
+        return v
+    for _ in range(60):
+        x = plant.declaration.equilibrium(sc.plant.values, v, d0)
+        plant.module.outputs(0.0, pp, x, u, d0, y)
+        xr = np.zeros(max(n_xr, 1))
+        ref.init(pr, xr, y[iyr])
+        ref.step(0.0, sc.Ts, pr, xr, y[iyr], w)
+        if not np.isfinite(w[0]) or w[0] <= 0.0:
+            raise ScenarioError(f"{Path(sc.path).name or 'scenario'}: the reference at t = 0 is "
+                                f"{w[0]:g} V; set [initial] v_out or fix the reference")
+        if abs(w[0] - v) < 1e-9:
+            break
+        v = float(w[0])
+    return float(w[0])
+
+
+def prepare(sc: Scenario) -> Prepared:
+    plant, ctrl, ref = sc.plant, sc.controller, sc.reference
+    pdecl = plant.plugin.declaration
+    outputs = [s.name for s in pdecl.outputs]
+    ctx = BuildContext(Ts=sc.Ts, plant=dict(plant.values), plant_name=pdecl.name,
+                       plant_outputs=tuple(outputs))
+    pp = pdecl.pack(plant.values, ctx)
+    pc = ctrl.plugin.declaration.pack(ctrl.values, ctx)
+    pr = ref.plugin.declaration.pack(ref.values, ctx)
+    iyc = _resolve_reads(ctrl, outputs)
+    iyr = _resolve_reads(ref, outputs)
+    n_xc = max(ctrl.plugin.declaration.state_count(ctrl.values), 1)
+    n_xr = max(ref.plugin.declaration.state_count(ref.values), 1)
+    nu = max(len(pdecl.inputs), 1)
+    u_names = [s.name for s in pdecl.inputs] or ["u"]
+    v0 = _initial_v_out(sc, pp, pr, iyr, n_xr, outputs)
+    x0 = np.ascontiguousarray(pdecl.equilibrium(plant.values, v0, sc.load_v[:, 0].copy()), dtype=np.float64)
+    nx = x0.shape[0]
+    if nx != len(pdecl.states):
+        raise ScenarioError(f"plant {pdecl.name!r}: equilibrium gave {nx} states, declared {len(pdecl.states)}")
+    ad, g1, g2, cr, dr = shaping.design(sc.shaping["order"], sc.shaping["pole"], sc.Ts)
+    table = InterlockTable.build(sc.interlocks, outputs + u_names)
+    ny = len(outputs)
+    out_units = {s.name: (s.unit, s.description) for s in pdecl.outputs}
+    signals = [SignalSpec(n, out_units[n][0], out_units[n][1]) for n in outputs]
+    signals += [SignalSpec(s.name, s.unit, s.description) for s in pdecl.inputs] or [SignalSpec("u", "V")]
+    signals += [SignalSpec(n, u, "shaped reference" if n == "v_ref" else "derivative of the shaped reference")
+                for n, u in REFERENCE_SIGNALS]
+    signals.append(SignalSpec("v_ref_raw", "V", "reference before shaping"))
+    signals += [SignalSpec(n, u, "load profile") for n, u in LOAD_SIGNALS]
+    signals.append(SignalSpec("interlock_word", "-", "bit j: interlock j beyond its limit; bit 48 non-finite; bit 49 controller fault; bit 50 latched"))
+    signals.append(SignalSpec("ctrl_code", "-", "controller return code (0 ok)"))
+    if "v_out" not in outputs:
+        raise ScenarioError(f"plant {pdecl.name!r} has no v_out output; the runtime needs it")
+    args = dict(
+        ts=sc.Ts, nsub=sc.substeps, v_collapse=sc.v_collapse, i_vout=outputs.index("v_out"),
+        pp=pp, x=x0, load_t=sc.load_t, load_v=sc.load_v, lcur=np.zeros(1, dtype=np.int64),
+        pc=pc, xc=np.zeros(n_xc), iyc=iyc, yc=np.zeros(max(len(iyc), 1)), u=np.zeros(nu),
+        safe_u=np.full(nu, sc.safe_u),
+        pr=pr, xr=np.zeros(n_xr), iyr=iyr, yr=np.zeros(max(len(iyr), 1)), w=np.zeros(1),
+        ad=ad, g1=g1, g2=g2, cr=cr, dr=dr, slew=sc.shaping["slew_rate"],
+        z=np.zeros(ad.shape[0]), s=np.zeros(1), zt=np.zeros(ad.shape[0]), r=np.zeros(5),
+        lim_sig=table.sig, lim_above=table.above, lim_thr=table.thr, lim_deb=table.deb,
+        lim_cnt=np.zeros(len(table.rows), dtype=np.int64), latch=new_latch(),
+        pv=np.zeros(ny + nu), y=np.zeros(ny), d=np.zeros(3),
+        k1=np.zeros(nx), k2=np.zeros(nx), k3=np.zeros(nx), k4=np.zeros(nx), xs=np.zeros(nx),
+        ev=np.zeros(2),
+    )
+    return Prepared(sc=sc, args=args, signals=signals, table=table, y_names=outputs,
+                    u_names=u_names, v0=v0)
+
+
+def compile_loop(sc: Scenario, notice: Callable[[str], None] | None = None):
+    """Return (run_chunk, seconds spent compiling or loading, whether it was compiled anew)."""
+    path, _ = loopgen.generate(sc.plant.plugin, sc.controller.plugin, sc.reference.plugin)
+    cached = loopgen.compiled_is_cached(path)
+    if not cached and notice:
+        notice(f"Compiling the loop for {sc.plant.plugin.name} + {sc.controller.plugin.name} + "
+               f"{sc.reference.plugin.name} (first run of this combination; cached afterwards) ...")
+    t = time.perf_counter()
+    module = loopgen.load_module(path)
+    return module.run_chunk, time.perf_counter() - t, not cached
+
+
+def _call(fn, k0, n, rec, a):
+    return fn(k0, n, a["ts"], a["nsub"], a["v_collapse"], a["i_vout"],
+              a["pp"], a["x"], a["load_t"], a["load_v"], a["lcur"],
+              a["pc"], a["xc"], a["iyc"], a["yc"], a["u"], a["safe_u"],
+              a["pr"], a["xr"], a["iyr"], a["yr"], a["w"],
+              a["ad"], a["g1"], a["g2"], a["cr"], a["dr"], a["slew"], a["z"], a["s"], a["zt"], a["r"],
+              a["lim_sig"], a["lim_above"], a["lim_thr"], a["lim_deb"], a["lim_cnt"], a["latch"], a["pv"],
+              a["y"], a["d"], a["k1"], a["k2"], a["k3"], a["k4"], a["xs"], rec, a["ev"])
+
+
+def default_folder(sc: Scenario, base: Path = Path("runs")) -> Path:
+    stamp = _dt.datetime.now().strftime("%Y%m%d-%H%M%S")
+    stem = Path(sc.path).stem if sc.path else "scenario"
+    folder = base / f"{stamp}-{stem}"
+    i = 1
+    while folder.exists():
+        i += 1
+        folder = base / f"{stamp}-{stem}-{i}"
+    return folder
+
+
+def run_scenario(sc: Scenario, folder: Path | None = None, *, overwrite: bool = False,
+                 progress: Callable[[int, int], None] | None = None,
+                 notice: Callable[[str], None] | None = None) -> RunResult:
+    """Run a validated scenario in SIL and write its run folder; return the summary."""
+    folder = Path(folder) if folder is not None else default_folder(sc)
+    if (folder / "recording.h5").exists() and not overwrite:
+        raise FileExistsError(f"{folder} already holds a recording; choose another --out "
+                              f"folder (nothing was overwritten)")
+    prep = prepare(sc)
+    fn, t_compile, compiled = compile_loop(sc, notice)
+    a = prep.args
+    n_total = sc.n_ticks
+    chunk = max(1, min(n_total, int(round(sc.recording["chunk"] / sc.Ts))))
+    ncols = len(prep.signals)
+    rec = np.zeros((chunk, ncols))
+    # first call with zero ticks: compiles (or loads from the cache) outside the timed loop
+    t = time.perf_counter()
+    _call(fn, 0, 0, rec, a)
+    t_compile += time.perf_counter() - t
+
+    folder.mkdir(parents=True, exist_ok=True)
+    (folder / SCENARIO).write_text(sc.text)
+    vers = versions()
+    writer = RunWriter(folder, prep.signals, {
+        "scenario_text": sc.text, "versions": json.dumps(vers), "seed": sc.seed, "Ts": sc.Ts,
+        "title": sc.title, "demo_data": sc.demo_data,
+        "plant": sc.plant.plugin.name, "controller": sc.controller.plugin.name,
+        "reference": sc.reference.plugin.name,
+    }, chunk_rows=chunk, compression=sc.recording["compression"])
+    names = [s.name for s in prep.signals]
+    i_vout, i_vref, i_u = names.index("v_out"), names.index("v_ref"), names.index(prep.u_names[0])
+    i_vdc = names.index("v_dc") if "v_dc" in names else None
+    metrics = TrackingMetrics(sc.Ts)
+    t_loop = 0.0
+    t_write = 0.0
+    done = 0
+    wall0 = time.perf_counter()
+    try:
+        while done < n_total:
+            n = min(chunk, n_total - done)
+            t0 = time.perf_counter()
+            ran = _call(fn, done, n, rec, a)
+            t1 = time.perf_counter()
+            tt = np.arange(done, done + ran, dtype=np.int64) * sc.Ts
+            writer.append(tt, rec)
+            rows = rec[:ran]
+            metrics.update(tt, rows[:, i_vout], rows[:, i_vref], rows[:, i_u],
+                           rows[:, i_vdc] if i_vdc is not None else None)
+            t2 = time.perf_counter()
+            t_loop += t1 - t0
+            t_write += t2 - t1
+            done += ran
+            if progress:
+                progress(done, n_total)
+            if ran < n:
+                break
+    except BaseException:
+        # keep what was flushed; mark the file as not complete and re-raise (e.g. Ctrl-C)
+        writer.close({"events": json.dumps([{"event": "interrupted", "tick": done}])})
+        raise
+    wall = time.perf_counter() - wall0
+    ev = int(a["ev"][0])
+    events = []
+    if ev:
+        kk = int(a["ev"][1])
+        events.append({"event": loopgen.EVENT_TEXT[ev], "tick": kk, "time_s": kk * sc.Ts,
+                       "v_out_V": float(rec[ran - 1, i_vout])})
+    latch = a["latch"]
+    trip = None
+    if latch[L_TRIPPED]:
+        trip = {"cause": prep.table.cause_text(int(latch[L_CAUSE]), len(prep.y_names)),
+                "tick": int(latch[L_TICK]), "time_s": float(latch[L_TIME]),
+                "value": float(latch[L_VALUE])}
+        events.insert(0, {"event": "trip", **trip})
+    summary = {
+        "title": sc.title, "demo_data": sc.demo_data, "mode": sc.mode, "seed": sc.seed,
+        "plant": sc.plant.plugin.name, "controller": sc.controller.plugin.name,
+        "reference": sc.reference.plugin.name,
+        "Ts_s": sc.Ts, "substeps": sc.substeps,
+        "ticks_planned": n_total, "ticks_run": done, "simulated_s": done * sc.Ts,
+        "completed": done == n_total and not ev,
+        "end_event": loopgen.EVENT_TEXT[ev] if ev else None,
+        "events": events, "trip": trip,
+        "v_out_start_V": prep.v0,
+        "metrics": metrics.result(),
+        "timing": {
+            "compile_or_load_s": t_compile, "compiled_now": compiled,
+            "loop_s": t_loop, "write_s": t_write, "wall_s": wall,
+            "loop_ns_per_tick": t_loop / max(done, 1) * 1e9,
+            "ticks_per_s": done / t_loop if t_loop > 0 else None,
+            "realtime_factor": (done * sc.Ts) / wall if wall > 0 else None,
+        },
+        "versions": vers,
+        "recording": "recording.h5",
+    }
+    # wall-clock figures stay out of the recording so that it is bit-identical run to run
+    writer.close({"events": json.dumps(events)})
+    (folder / SUMMARY).write_text(json.dumps(summary, indent=2) + "\n")
+    return RunResult(folder=folder, summary=summary)

@@ -1,0 +1,375 @@
+"""Scenario files (TOML): what to run, validated into SI values with one clear message per error.
+
+A scenario names the plant, controller and reference plugins with their parameters, the load
+profile, the shaping filter, interlocks, timing, mode and seed. See docs/scenarios.md.
+
+Every value may be a number (SI) or a quantity string such as ``"200 uH"``. A mistake raises
+:class:`~hilrig.runtime.errors.ScenarioError` whose message names the file, the key, the value with
+its unit, what was expected and, for unknown names, the closest known ones.
+"""
+from __future__ import annotations
+
+import difflib
+import math
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+
+try:
+    import tomllib
+except ModuleNotFoundError:  # Python 3.10
+    import tomli as tomllib
+
+from hilrig.plugins.base import Param, TableParam
+from hilrig.safety.interlocks import Interlock
+
+from . import registry
+from .errors import PluginError, ScenarioError, UnitError
+from .units import parse_quantity
+
+MODES = ("sil",)
+PLANNED_MODES = ("paced", "lockstep", "free-running")
+
+TOP_KEYS = {"title", "description", "demo_data", "mode", "seed", "timing", "plant", "controller",
+            "reference", "shaping", "load", "limits", "interlocks", "initial", "recording"}
+TIMING = {"Ts": ("s", 50e-6, (1e-7, 1.0)), "substeps": ("-", 4, (1, 1000)),
+          "duration": ("s", 1.0, (1e-6, 1e6))}
+SHAPING = {"order": ("-", 5, (4, 12)), "pole": ("rad/s", 7500.0, (1.0, 1e7)),
+           "slew_rate": ("V/s", 2e5, (1e-3, 1e9))}
+LIMITS = {"v_collapse": ("V", 25.0, (0.0, 1e5)), "safe_u": ("V", 0.0, (-1e5, 1e5))}
+RECORDING = {"chunk": ("s", 0.25, (1e-4, 3600.0))}
+RECORDING_CHOICES = {"compression": ("none", "gzip")}
+LOAD_COLUMNS = {"P": "W", "R": "ohm", "I": "A"}
+INTERLOCK_KEYS = {"signal", "above", "below", "debounce"}
+MAX_TICKS = 2_000_000_000
+
+
+@dataclass
+class PluginChoice:
+    plugin: registry.Plugin
+    values: dict[str, Any]
+
+
+@dataclass
+class Scenario:
+    """A validated scenario: SI values only."""
+
+    path: str
+    text: str
+    title: str
+    description: str
+    demo_data: bool
+    mode: str
+    seed: int
+    Ts: float
+    substeps: int
+    duration: float
+    plant: PluginChoice
+    controller: PluginChoice
+    reference: PluginChoice
+    shaping: dict[str, float]
+    load_t: np.ndarray
+    load_v: np.ndarray  # (3, m): P [W], G [S], I [A]
+    v_collapse: float
+    safe_u: float
+    interlocks: list[Interlock]
+    v_out0: float | None
+    recording: dict[str, Any] = field(default_factory=dict)
+
+    @property
+    def n_ticks(self) -> int:
+        return int(round(self.duration / self.Ts))
+
+
+class _Ctx:
+    """Carries the file name for messages."""
+
+    def __init__(self, name: str, base: Path = Path(".")):
+        self.name = name
+        self.base = base
+
+    def fail(self, key: str, msg: str) -> ScenarioError:
+        return ScenarioError(f"{self.name}: {key}{msg}")
+
+    def unknown(self, key: str, name: str, known) -> ScenarioError:
+        known = sorted(known)
+        close = difflib.get_close_matches(name, known, n=3)
+        hint = f"; did you mean {', '.join(repr(c) for c in close)}?" if close else ""
+        where = f"{key}.{name}" if key else name
+        return ScenarioError(f"{self.name}: unknown key {where!r}{hint} (allowed: {', '.join(known)})")
+
+
+def load_scenario(path: str | Path, overrides: dict[str, Any] | None = None) -> Scenario:
+    """Read and validate a scenario file."""
+    path = Path(path)
+    try:
+        text = path.read_text(encoding="utf-8")
+    except FileNotFoundError:
+        raise ScenarioError(f"scenario file {str(path)!r} does not exist") from None
+    except (OSError, UnicodeDecodeError) as exc:
+        raise ScenarioError(f"{path}: cannot read: {exc}") from None
+    return parse_scenario(text, name=path.name, path=str(path), overrides=overrides)
+
+
+def parse_scenario(text: str, name: str = "scenario.toml", path: str = "",
+                   overrides: dict[str, Any] | None = None) -> Scenario:
+    """Validate scenario text; ``overrides`` replaces top-level sections' keys (dotted names)."""
+    cx = _Ctx(name, Path(path).parent if path else Path("."))
+    try:
+        raw = tomllib.loads(text)
+    except tomllib.TOMLDecodeError as exc:
+        raise ScenarioError(f"{name}: not valid TOML: {exc}") from None
+    for dotted, value in (overrides or {}).items():
+        _set_dotted(raw, dotted, value)
+    for k in raw:
+        if k not in TOP_KEYS:
+            raise cx.unknown("", k, TOP_KEYS)
+
+    title = _str(cx, raw, "title", "")
+    description = _str(cx, raw, "description", "")
+    demo = raw.get("demo_data", False)
+    if not isinstance(demo, bool):
+        raise cx.fail("demo_data", f" = {demo!r} is not true or false")
+    mode = _str(cx, raw, "mode", "sil")
+    if mode not in MODES:
+        if mode in PLANNED_MODES:
+            raise cx.fail("mode", f" = {mode!r} is not available yet; this version runs 'sil' only")
+        close = difflib.get_close_matches(mode, MODES + PLANNED_MODES, n=2)
+        hint = f"; did you mean {', '.join(repr(c) for c in close)}?" if close else ""
+        raise cx.fail("mode", f" = {mode!r} is not a mode{hint} (modes: {', '.join(MODES)})")
+    seed = raw.get("seed", 0)
+    if isinstance(seed, bool) or not isinstance(seed, int) or not (0 <= seed < 2**63):
+        raise cx.fail("seed", f" = {seed!r} is not a whole number in [0, 2^63)")
+
+    timing = _section(cx, raw, "timing", TIMING)
+    Ts, substeps, duration = timing["Ts"], int(timing["substeps"]), timing["duration"]
+    if duration / Ts > MAX_TICKS:
+        raise cx.fail("timing.duration", f" = {duration:g} s is {duration / Ts:.3g} ticks at Ts = "
+                      f"{Ts:g} s; at most {MAX_TICKS:g} ticks: shorten the run or lengthen Ts")
+    if abs(duration / Ts - round(duration / Ts)) > 1e-6 * max(1.0, duration / Ts):
+        raise cx.fail("timing.duration", f" = {duration:g} s is not a whole number of control "
+                      f"periods Ts = {Ts:g} s")
+
+    plant = _plugin(cx, raw, "plant", "two_stage_lc")
+    controller = _plugin(cx, raw, "controller", "cascaded_pi")
+    reference = _plugin(cx, raw, "reference", "profile")
+    shaping = _section(cx, raw, "shaping", SHAPING)
+    shaping["order"] = int(shaping["order"])
+    if shaping["pole"] * Ts > 1.0:
+        raise cx.fail("shaping.pole", f" = {shaping['pole']:g} rad/s is too fast for Ts = {Ts:g} s "
+                      f"(pole * Ts = {shaping['pole'] * Ts:.2f} > 1); use at most {1.0 / Ts:g} rad/s")
+    load_t, load_v = _load(cx, raw)
+    limits = _section(cx, raw, "limits", LIMITS)
+    interlocks = _interlocks(cx, raw, plant, controller)
+    v_out0 = _initial(cx, raw)
+    recording = _section(cx, raw, "recording", RECORDING, choices=RECORDING_CHOICES)
+    recording.setdefault("compression", "none")
+    return Scenario(path=path, text=text, title=title, description=description, demo_data=demo,
+                    mode=mode, seed=seed, Ts=Ts, substeps=substeps, duration=duration,
+                    plant=plant, controller=controller, reference=reference, shaping=shaping,
+                    load_t=load_t, load_v=load_v, v_collapse=limits["v_collapse"],
+                    safe_u=limits["safe_u"], interlocks=interlocks, v_out0=v_out0,
+                    recording=recording)
+
+
+def _set_dotted(raw: dict, dotted: str, value: Any) -> None:
+    parts = dotted.split(".")
+    node = raw
+    for p in parts[:-1]:
+        node = node.setdefault(p, {})
+    node[parts[-1]] = value
+
+
+def _str(cx, raw, key, default):
+    v = raw.get(key, default)
+    if not isinstance(v, str):
+        raise cx.fail(key, f" = {v!r} is not a string")
+    return v
+
+
+def _table(cx, raw, key) -> dict:
+    v = raw.get(key, {})
+    if not isinstance(v, dict):
+        raise cx.fail(key, f" is a {type(v).__name__}; expected a table [{key}]")
+    return v
+
+
+def _quantity(cx, key, value, unit, bounds, integer=False, lower_open=False):
+    try:
+        q = parse_quantity(value, unit, where=key)
+    except UnitError as exc:
+        raise ScenarioError(f"{cx.name}: {exc}") from None
+    lo, hi = bounds
+    unit_txt = "" if unit == "-" else f" {unit}"
+    if integer and q != int(q):
+        raise cx.fail(key, f" = {value!r} is not a whole number")
+    low_ok = q > lo if lower_open else q >= lo
+    if not (low_ok and q <= hi):
+        br = "(" if lower_open else "["
+        raise cx.fail(key, f" = {q:g}{unit_txt} is outside {br}{lo:g}, {hi:g}]{unit_txt}")
+    return q
+
+
+def _section(cx, raw, key, spec, choices=None) -> dict:
+    tab = _table(cx, raw, key)
+    choices = choices or {}
+    out = {}
+    for k in tab:
+        if k not in spec and k not in choices:
+            raise cx.unknown(key, k, list(spec) + list(choices))
+    for k, (unit, default, bounds) in spec.items():
+        integer = unit == "-" and isinstance(default, int)
+        out[k] = _quantity(cx, f"{key}.{k}", tab.get(k, default), unit, bounds, integer=integer)
+    for k, allowed in choices.items():
+        if k in tab:
+            if tab[k] not in allowed:
+                raise cx.fail(f"{key}.{k}", f" = {tab[k]!r} is not one of {', '.join(map(repr, allowed))}")
+            out[k] = tab[k]
+    return out
+
+
+def _plugin(cx, raw, key, default_name) -> PluginChoice:
+    tab = dict(_table(cx, raw, key))
+    ref = tab.pop("plugin", default_name)
+    if not isinstance(ref, str):
+        raise cx.fail(f"{key}.plugin", f" = {ref!r} is not a plugin name or a path")
+    if (ref.endswith(".py") or "/" in ref) and not Path(ref).is_absolute():
+        ref = str(cx.base / ref)
+    try:
+        plugin = registry.load(key, ref)
+    except PluginError as exc:
+        raise ScenarioError(f"{cx.name}: {key}.plugin: {exc}") from None
+    decl = plugin.declaration
+    known = [p.name for p in decl.params]
+    values = decl.defaults()
+    for k, v in tab.items():
+        if k not in known:
+            raise cx.unknown(key, k, known + ["plugin"])
+        q = decl.param(k)
+        where = f"{key}.{k}"
+        if isinstance(q, Param):
+            values[k] = _quantity(cx, where, v, q.unit, q.bounds, lower_open=q.lower_open)
+        else:
+            values[k] = _table_param(cx, where, v, q)
+    return PluginChoice(plugin=plugin, values=values)
+
+
+def _table_param(cx, where, rows, q: TableParam):
+    if not isinstance(rows, list) or not all(isinstance(r, list) for r in rows):
+        raise cx.fail(where, f" = {rows!r} is not a list of rows [{', '.join(c for c, _ in q.columns)}]")
+    if len(rows) < q.min_rows:
+        raise cx.fail(where, f" has {len(rows)} rows; at least {q.min_rows} needed")
+    out = []
+    for i, row in enumerate(rows):
+        if len(row) != len(q.columns):
+            cols = ", ".join(f"{c} [{u}]" for c, u in q.columns)
+            raise cx.fail(f"{where}[{i}]", f" = {row!r} has {len(row)} values; expected {len(q.columns)}: {cols}")
+        vals = []
+        for (col, unit), v in zip(q.columns, row):
+            try:
+                vals.append(parse_quantity(v, unit, where=f"{where}[{i}].{col}"))
+            except UnitError as exc:
+                raise ScenarioError(f"{cx.name}: {exc}") from None
+        out.append(tuple(vals))
+    if q.increasing_first:
+        for i in range(1, len(out)):
+            prev, cur = out[i - 1][0], out[i][0]
+            bad = cur < prev if q.allow_equal_first else cur <= prev
+            if bad:
+                need = "non-decreasing" if q.allow_equal_first else "strictly increasing"
+                raise cx.fail(f"{where}[{i}]", f": {q.columns[0][0]} = {cur:g} after {prev:g}; "
+                              f"the {q.columns[0][0]} column must be {need}")
+    return tuple(out)
+
+
+def _load(cx, raw):
+    tab = _table(cx, raw, "load")
+    for k in tab:
+        if k not in ("interpolation", "points"):
+            raise cx.unknown("load", k, ["interpolation", "points"])
+    interp = tab.get("interpolation", "step")
+    if interp not in ("step", "linear"):
+        raise cx.fail("load.interpolation", f" = {interp!r} is not 'step' or 'linear'")
+    points = tab.get("points", [{"t": 0.0, "P": 0.0}])
+    if not isinstance(points, list) or not points or not all(isinstance(p, dict) for p in points):
+        raise cx.fail("load.points", " must be a non-empty array of tables [[load.points]] "
+                      "with t [s] and any of P [W], R [ohm], I [A]")
+    times, rows = [], []
+    cur = {"P": 0.0, "G": 0.0, "I": 0.0}
+    for i, pt in enumerate(points):
+        where = f"load.points[{i}]"
+        for k in pt:
+            if k != "t" and k not in LOAD_COLUMNS:
+                raise cx.unknown(where, k, ["t"] + list(LOAD_COLUMNS))
+        if "t" not in pt:
+            raise cx.fail(where, " has no time t [s]")
+        t = _quantity(cx, f"{where}.t", pt["t"], "s", (0.0, 1e9))
+        if times and t <= times[-1]:
+            raise cx.fail(f"{where}.t", f" = {t:g} s is not after the previous point ({times[-1]:g} s)")
+        if "P" in pt:
+            cur["P"] = _quantity(cx, f"{where}.P", pt["P"], "W", (-1e8, 1e8))
+        if "I" in pt:
+            cur["I"] = _quantity(cx, f"{where}.I", pt["I"], "A", (-1e6, 1e6))
+        if "R" in pt:
+            if isinstance(pt["R"], str) and pt["R"].strip().lower() in ("inf", "open", "none"):
+                cur["G"] = 0.0
+            else:
+                r = _quantity(cx, f"{where}.R", pt["R"], "ohm", (0.0, 1e12), lower_open=True)
+                cur["G"] = 1.0 / r
+        times.append(t)
+        rows.append((cur["P"], cur["G"], cur["I"]))
+    if interp == "step":
+        # a step at t_j: hold the previous row up to t_j, then the new one (equal breakpoints)
+        tt, vv = [times[0]], [rows[0]]
+        for t, row in zip(times[1:], rows[1:]):
+            tt += [t, t]
+            vv += [vv[-1], row]
+    else:
+        tt, vv = times, rows
+    return np.array(tt, dtype=np.float64), np.ascontiguousarray(np.array(vv, dtype=np.float64).T)
+
+
+def _interlocks(cx, raw, plant: PluginChoice, controller: PluginChoice) -> list[Interlock]:
+    items = raw.get("interlocks", [])
+    if not isinstance(items, list) or not all(isinstance(x, dict) for x in items):
+        raise cx.fail("interlocks", " must be an array of tables [[interlocks]]")
+    signals = {s.name: s.unit for s in plant.plugin.declaration.outputs}
+    signals.update({s.name: s.unit for s in controller.plugin.declaration.outputs})
+    out = []
+    for i, it in enumerate(items):
+        where = f"interlocks[{i}]"
+        for k in it:
+            if k not in INTERLOCK_KEYS:
+                raise cx.unknown(where, k, INTERLOCK_KEYS)
+        sig = it.get("signal")
+        if sig not in signals:
+            close = difflib.get_close_matches(str(sig), list(signals), n=3)
+            hint = f"; did you mean {', '.join(repr(c) for c in close)}?" if close else ""
+            raise cx.fail(f"{where}.signal", f" = {sig!r} is not a signal of this plant or "
+                          f"controller{hint} (signals: {', '.join(signals)})")
+        if ("above" in it) == ("below" in it):
+            raise cx.fail(where, " needs exactly one of 'above' or 'below'")
+        side = "above" if "above" in it else "below"
+        unit = signals[sig]
+        thr = _quantity(cx, f"{where}.{side}", it[side], unit, (-1e9, 1e9))
+        deb = it.get("debounce", 1)
+        if isinstance(deb, bool) or not isinstance(deb, int) or not 1 <= deb <= 1_000_000:
+            raise cx.fail(f"{where}.debounce", f" = {deb!r} is not a whole number of ticks in [1, 1000000]")
+        out.append(Interlock(signal=sig, threshold=thr, above=side == "above", debounce=deb, unit=unit))
+    return out
+
+
+def _initial(cx, raw):
+    tab = _table(cx, raw, "initial")
+    for k in tab:
+        if k != "v_out":
+            raise cx.unknown("initial", k, ["v_out"])
+    v = tab.get("v_out", "auto")
+    if v == "auto":
+        return None
+    q = _quantity(cx, "initial.v_out", v, "V", (0.0, 1e5))
+    if not math.isfinite(q):
+        raise cx.fail("initial.v_out", " is not finite")
+    return q

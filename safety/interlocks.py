@@ -1,0 +1,154 @@
+"""Interlocks evaluated every tick inside the compiled loop (the protect stage), and the latch.
+
+An interlock is data: the signal it watches (a plant output or a controller output), the side
+that trips (above or below a threshold in SI units) and a debounce count (the condition must
+hold on that many consecutive ticks). Every comparison is written so that NaN trips:
+``not (value <= threshold)`` rather than ``value > threshold``.
+
+Plausibility checks that always run: a non-finite measurement or controller output, and a
+non-zero fault code returned by the controller.
+
+Trip semantics: on the tick where a (debounced) condition first holds, the safe output is forced
+on that same tick and the trip latches with its first cause, tick, time and the offending value.
+Later causes are not latched over the first. Only an explicit reset clears the latch.
+
+These are monitoring functions of a test tool, not safety-rated functions (IEC 61508,
+ISO 13849-1); hardware protection must stay in place.
+"""
+from __future__ import annotations
+
+import difflib
+from dataclasses import dataclass
+
+import numpy as np
+from numba import njit
+
+from .errors import InterlockConfigError
+
+#: latch array layout
+L_TRIPPED, L_CAUSE, L_TICK, L_TIME, L_VALUE = range(5)
+LATCH_SIZE = 5
+#: cause codes: 1 + row for a limit row; these offsets for plausibility causes
+CAUSE_NONFINITE = 1000   # + index into [y..., u...]
+CAUSE_CONTROLLER = 2000  # + the controller's fault code
+#: bits of the interlock word
+BIT_NONFINITE = 48
+BIT_CONTROLLER = 49
+BIT_LATCHED = 50
+MAX_ROWS = 40
+
+
+@dataclass(frozen=True)
+class Interlock:
+    """One limit: ``signal`` trips when above (or below) ``threshold`` for ``debounce`` ticks."""
+
+    signal: str
+    threshold: float
+    above: bool
+    debounce: int = 1
+    unit: str = ""
+
+    def describe(self) -> str:
+        side = ">" if self.above else "<"
+        deb = f" for {self.debounce} ticks" if self.debounce > 1 else ""
+        return f"{self.signal} {side} {self.threshold:g} {self.unit}{deb}".replace("  ", " ")
+
+
+@dataclass
+class InterlockTable:
+    """Interlocks resolved against the protect vector [plant outputs..., controller outputs...]."""
+
+    rows: list[Interlock]
+    names: list[str]
+    sig: np.ndarray
+    above: np.ndarray
+    thr: np.ndarray
+    deb: np.ndarray
+
+    @classmethod
+    def build(cls, rows: list[Interlock], names: list[str]) -> "InterlockTable":
+        if len(rows) > MAX_ROWS:
+            raise InterlockConfigError(f"{len(rows)} interlocks; at most {MAX_ROWS} are supported")
+        sig = []
+        for r in rows:
+            if r.signal not in names:
+                close = difflib.get_close_matches(r.signal, names, n=3)
+                hint = f"; did you mean {', '.join(close)}?" if close else f"; signals: {', '.join(names)}"
+                raise InterlockConfigError(f"interlock on unknown signal {r.signal!r}{hint}")
+            if r.debounce < 1:
+                raise InterlockConfigError(f"interlock on {r.signal}: debounce {r.debounce} < 1 tick")
+            sig.append(names.index(r.signal))
+        return cls(rows=list(rows), names=list(names),
+                   sig=np.array(sig, dtype=np.int64),
+                   above=np.array([1 if r.above else 0 for r in rows], dtype=np.int64),
+                   thr=np.array([r.threshold for r in rows], dtype=np.float64),
+                   deb=np.array([r.debounce for r in rows], dtype=np.int64))
+
+    def cause_text(self, cause: int, n_y: int) -> str:
+        """Human-readable latched cause."""
+        if cause <= 0:
+            return "none"
+        if cause < CAUSE_NONFINITE:
+            return "interlock " + self.rows[cause - 1].describe()
+        if cause < CAUSE_CONTROLLER:
+            j = cause - CAUSE_NONFINITE
+            return f"non-finite value of {self.names[j] if j < len(self.names) else j}"
+        return f"controller fault code {cause - CAUSE_CONTROLLER}"
+
+
+def new_latch() -> np.ndarray:
+    return np.zeros(LATCH_SIZE)
+
+
+@njit(cache=True)
+def _trip(latch, cause, tick, t, value):
+    if latch[L_TRIPPED] == 0.0:
+        latch[L_TRIPPED] = 1.0
+        latch[L_CAUSE] = cause
+        latch[L_TICK] = tick
+        latch[L_TIME] = t
+        latch[L_VALUE] = value
+
+
+@njit(cache=True)
+def protect(tick, t, y, u, code, sig, above, thr, deb, cnt, latch, pv, safe_u):
+    """Evaluate every interlock on [y, u]; latch the first cause; force the safe output.
+
+    Returns the interlock word: bit j set while row j's condition holds (before debounce),
+    BIT_NONFINITE, BIT_CONTROLLER for the plausibility checks, BIT_LATCHED while tripped.
+    """
+    ny = y.shape[0]
+    nu = u.shape[0]
+    for j in range(ny):
+        pv[j] = y[j]
+    for j in range(nu):
+        pv[ny + j] = u[j]
+    word = 0
+    # plausibility first: a non-finite value makes every limit on it meaningless
+    for j in range(ny + nu):
+        v = pv[j]
+        if not (v - v == 0.0):  # NaN or +-Inf
+            word |= 1 << BIT_NONFINITE
+            _trip(latch, CAUSE_NONFINITE + j, tick, t, v)
+            break
+    if code != 0:
+        word |= 1 << BIT_CONTROLLER
+        _trip(latch, CAUSE_CONTROLLER + code, tick, t, float(code))
+    for k in range(sig.shape[0]):
+        v = pv[sig[k]]
+        if above[k] == 1:
+            beyond = not (v <= thr[k])
+        else:
+            beyond = not (v >= thr[k])
+        if beyond:
+            word |= 1 << k
+            cnt[k] += 1
+            if cnt[k] >= deb[k]:
+                _trip(latch, 1 + k, tick, t, v)
+        else:
+            cnt[k] = 0
+    if latch[L_TRIPPED] != 0.0:
+        word |= 1 << BIT_LATCHED
+        for j in range(nu):
+            u[j] = safe_u[j]
+    return word
