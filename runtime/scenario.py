@@ -95,10 +95,21 @@ class _Ctx:
 
     def unknown(self, key: str, name: str, known) -> ScenarioError:
         known = sorted(known)
-        close = difflib.get_close_matches(name, known, n=3)
-        hint = f"; did you mean {', '.join(repr(c) for c in close)}?" if close else ""
         where = f"{key}.{name}" if key else name
-        return ScenarioError(f"{self.name}: unknown key {where!r}{hint} (allowed: {', '.join(known)})")
+        return ScenarioError(f"{self.name}: unknown key {where!r}{_hint(str(name), known)} "
+                             f"(allowed: {', '.join(known)})")
+
+
+def _hint(name: str, known) -> str:
+    """``"; did you mean 'L1'?"`` for the closest known names, or ``""`` when none is close.
+
+    Names that differ only in case come first: difflib scores a short name such as 'l1' against
+    'L1' at 0.5, below its cut-off, so it alone would suggest nothing.
+    """
+    known = list(known)
+    same = [k for k in known if k.lower() == name.lower()]
+    close = same + [c for c in difflib.get_close_matches(name, known, n=3) if c not in same]
+    return f"; did you mean {', '.join(repr(c) for c in close[:3])}?" if close else ""
 
 
 def load_scenario(path: str | Path, overrides: dict[str, Any] | None = None) -> Scenario:
@@ -122,7 +133,7 @@ def parse_scenario(text: str, name: str = "scenario.toml", path: str = "",
     except tomllib.TOMLDecodeError as exc:
         raise ScenarioError(f"{name}: not valid TOML: {exc}") from None
     for dotted, value in (overrides or {}).items():
-        _set_dotted(raw, dotted, value)
+        _set_dotted(cx, raw, dotted, value)
     for k in raw:
         if k not in TOP_KEYS:
             raise cx.unknown("", k, TOP_KEYS)
@@ -174,11 +185,15 @@ def parse_scenario(text: str, name: str = "scenario.toml", path: str = "",
                     recording=recording)
 
 
-def _set_dotted(raw: dict, dotted: str, value: Any) -> None:
+def _set_dotted(cx, raw: dict, dotted: str, value: Any) -> None:
     parts = dotted.split(".")
     node = raw
-    for p in parts[:-1]:
+    for i, p in enumerate(parts[:-1]):
         node = node.setdefault(p, {})
+        if not isinstance(node, dict):
+            # e.g. an override plant.L1.x = 1: plant.L1 holds a value, not a table
+            raise ScenarioError(f"{cx.name}: override {dotted!r}: {'.'.join(parts[:i + 1])} is a "
+                                f"{type(node).__name__}, not a table, so it has no key {parts[i + 1]!r}")
     node[parts[-1]] = value
 
 
@@ -203,11 +218,11 @@ def _quantity(cx, key, value, unit, bounds, integer=False, lower_open=False):
         raise ScenarioError(f"{cx.name}: {exc}") from None
     lo, hi = bounds
     unit_txt = "" if unit == "-" else f" {unit}"
+    br = "(" if lower_open else "["
     if integer and q != int(q):
-        raise cx.fail(key, f" = {value!r} is not a whole number")
+        raise cx.fail(key, f" = {value!r} is not a whole number in {br}{lo:g}, {hi:g}]{unit_txt}")
     low_ok = q > lo if lower_open else q >= lo
     if not (low_ok and q <= hi):
-        br = "(" if lower_open else "["
         raise cx.fail(key, f" = {q:g}{unit_txt} is outside {br}{lo:g}, {hi:g}]{unit_txt}")
     return q
 
@@ -235,6 +250,8 @@ def _plugin(cx, raw, key, default_name) -> PluginChoice:
     ref = tab.pop("plugin", default_name)
     if not isinstance(ref, str):
         raise cx.fail(f"{key}.plugin", f" = {ref!r} is not a plugin name or a path")
+    if ref.startswith("~"):
+        ref = str(Path(ref).expanduser())
     if (ref.endswith(".py") or "/" in ref) and not Path(ref).is_absolute():
         ref = str(cx.base / ref)
     try:
@@ -344,9 +361,9 @@ def _interlocks(cx, raw, plant: PluginChoice, controller: PluginChoice) -> list[
             if k not in INTERLOCK_KEYS:
                 raise cx.unknown(where, k, INTERLOCK_KEYS)
         sig = it.get("signal")
-        if sig not in signals:
-            close = difflib.get_close_matches(str(sig), list(signals), n=3)
-            hint = f"; did you mean {', '.join(repr(c) for c in close)}?" if close else ""
+        # a TOML array or table here is unhashable: test the type before the dict look-up
+        if not isinstance(sig, str) or sig not in signals:
+            hint = _hint(str(sig), signals)
             raise cx.fail(f"{where}.signal", f" = {sig!r} is not a signal of this plant or "
                           f"controller{hint} (signals: {', '.join(signals)})")
         if ("above" in it) == ("below" in it):

@@ -52,13 +52,23 @@ def design(order: int, pole: float, ts: float):
     a[-1, :] = [-comb(n, k) * w ** (n - k) for k in range(n)]
     b = np.zeros(n)
     b[-1] = w ** n
-    # first-order hold: expm([[A T, B T, 0], [0, 0, 1], [0, 0, 0]])
+    # First-order hold: expm([[A T, B T, 0], [0, 0, 1], [0, 0, 0]]), computed in normalised time.
+    # A's entries span 1 .. C(n, k) w^n (1e46 for n = 12 at 7500 rad/s); expm of A T directly
+    # loses every digit from order ~8 on, or overflows (an unstable or NaN filter). With
+    # z = D zeta, D = diag(1, w, ..., w^(n-1)): D^-1 A D = w A1 and D^-1 B = w e_n, A1 the
+    # companion matrix of (s + 1)^n, so expm only sees w T A1 and the result is scaled back.
+    a1 = np.zeros((n, n))
+    a1[:-1, 1:] = np.eye(n - 1)
+    a1[-1, :] = [-comb(n, k) for k in range(n)]
     m = np.zeros((n + 2, n + 2))
-    m[:n, :n] = a * ts
-    m[:n, n] = b * ts
+    m[:n, :n] = a1 * (w * ts)
+    m[n - 1, n] = w * ts
     m[n, n + 1] = 1.0
     e = expm(m)
-    ad, g1, g2 = e[:n, :n], e[:n, n], e[:n, n + 1]
+    scale = w ** np.arange(n, dtype=np.float64)
+    ad = e[:n, :n] * scale[:, None] / scale[None, :]
+    g1 = e[:n, n] * scale
+    g2 = e[:n, n + 1] * scale
     # output map r = cr z + dr s (value and four derivatives)
     cr = np.zeros((5, n))
     dr = np.zeros(5)

@@ -12,10 +12,14 @@ import re
 
 from .errors import UnitError
 
-PREFIXES = {
-    "p": 1e-12, "n": 1e-9, "u": 1e-6, "\u00b5": 1e-6, "\u03bc": 1e-6, "m": 1e-3,
-    "": 1.0, "k": 1e3, "M": 1e6, "G": 1e9,
+#: SI prefix -> power of ten (the prefix is applied by shifting the decimal exponent, so
+#: "50 us" reads as exactly the double nearest 5e-5, as the literal 5e-5 does; multiplying
+#: 50 * 1e-6 would round twice and give 4.9999999999999996e-05)
+PREFIX_EXPONENTS = {
+    "p": -12, "n": -9, "u": -6, "\u00b5": -6, "\u03bc": -6, "m": -3,
+    "": 0, "k": 3, "M": 6, "G": 9,
 }
+PREFIXES = {k: float(f"1e{e}") for k, e in PREFIX_EXPONENTS.items()}
 
 #: unit symbols hilrig understands, with accepted spellings -> canonical symbol
 UNITS = {
@@ -25,8 +29,8 @@ UNITS = {
     "V/(A s)": "V/(A s)", "A/(V s)": "A/(V s)", "1/s": "1/s",
 }
 
-_NUM = r"[-+]?(?:\d+\.?\d*|\.\d+)(?:[eE][-+]?\d+)?"
-_RE = re.compile(rf"^\s*({_NUM})\s*(.*?)\s*$")
+_MANTISSA = r"[-+]?(?:\d+\.?\d*|\.\d+)"
+_RE = re.compile(rf"^\s*({_MANTISSA})(?:[eE]([-+]?\d+))?\s*(.*?)\s*$")
 
 
 def parse_quantity(text: str | float | int, unit: str, where: str = "value") -> float:
@@ -49,10 +53,20 @@ def parse_quantity(text: str | float | int, unit: str, where: str = "value") -> 
         m = _RE.match(text)
         if not m:
             raise UnitError(f"{where} = {text!r} is not a quantity; write e.g. '12.5 {_example(unit)}'")
-        value = float(m.group(1))
-        rest = m.group(2)
+        mantissa, exp_txt, rest = m.group(1), m.group(2) or "0", m.group(3)
+        if rest[:1] in (",", "."):
+            # "1,5 V" (a decimal comma) or "1.2.3 V": no unit starts with these
+            raise UnitError(f"{where} = {text!r} is not a quantity; write e.g. "
+                            f"'12.5 {_example(unit)}' (one decimal point, no comma)")
+        # int() refuses thousands of digits; any exponent this long over- or underflows anyway
+        if len(exp_txt.lstrip("+-").lstrip("0")) <= 6:
+            exponent = int(exp_txt)
+        else:
+            exponent = -10**7 if exp_txt.startswith("-") else 10**7
         if rest:
-            value *= _scale(rest, unit, where, text)
+            exponent += _prefix_exponent(rest, unit, where, text)
+        # one decimal-to-binary conversion: correctly rounded, like a literal in the source
+        value = float(f"{mantissa}e{exponent}")
     else:
         raise UnitError(f"{where} = {text!r} is a {type(text).__name__}; expected a number in {unit}")
     if not math.isfinite(value):
@@ -64,17 +78,18 @@ def _example(unit: str) -> str:
     return unit if unit != "-" else ""
 
 
-def _scale(rest: str, unit: str, where: str, text: str) -> float:
+def _prefix_exponent(rest: str, unit: str, where: str, text: str) -> int:
     if rest in UNITS and UNITS[rest] == unit:
-        return 1.0
+        return 0
     # longest symbol first, so "mohm" is milli-ohm and "ms" is milliseconds, not mega-...
     for sym in sorted(UNITS, key=len, reverse=True):
         if rest.endswith(sym):
             prefix = rest[: len(rest) - len(sym)]
             if prefix in PREFIXES and UNITS[sym] == unit and unit not in ("-",):
-                return PREFIXES[prefix]
+                return PREFIX_EXPONENTS[prefix]
     got = _guess_unit(rest)
-    hint = f" (that reads as {got})" if got else ""
+    # "(that reads as A)" after "has unit 'A'" would only repeat it
+    hint = f" (that reads as {got})" if got and got != rest else ""
     raise UnitError(
         f"{where} = {text!r} has unit {rest!r}{hint}; expected {unit}"
         f"{' with an optional SI prefix (p n u m k M G)' if unit != '-' else ' (dimensionless)'}")

@@ -18,6 +18,7 @@ ISO 13849-1); hardware protection must stay in place.
 from __future__ import annotations
 
 import difflib
+import math
 from dataclasses import dataclass
 
 import numpy as np
@@ -30,7 +31,7 @@ L_TRIPPED, L_CAUSE, L_TICK, L_TIME, L_VALUE = range(5)
 LATCH_SIZE = 5
 #: cause codes: 1 + row for a limit row; these offsets for plausibility causes
 CAUSE_NONFINITE = 1000   # + index into [y..., u...]
-CAUSE_CONTROLLER = 2000  # + the controller's fault code
+CAUSE_CONTROLLER = 2000  # + the controller's fault code if > 0; -CAUSE_CONTROLLER + code if < 0
 #: bits of the interlock word
 BIT_NONFINITE = 48
 BIT_CONTROLLER = 49
@@ -75,6 +76,10 @@ class InterlockTable:
                 close = difflib.get_close_matches(r.signal, names, n=3)
                 hint = f"; did you mean {', '.join(close)}?" if close else f"; signals: {', '.join(names)}"
                 raise InterlockConfigError(f"interlock on unknown signal {r.signal!r}{hint}")
+            if not math.isfinite(r.threshold):
+                # a NaN limit would trip on every tick (every comparison is written so NaN trips)
+                raise InterlockConfigError(f"interlock on {r.signal}: threshold {r.threshold!r} "
+                                           f"{r.unit} is not finite".replace("  ", " "))
             if r.debounce < 1:
                 raise InterlockConfigError(f"interlock on {r.signal}: debounce {r.debounce} < 1 tick")
             sig.append(names.index(r.signal))
@@ -86,6 +91,8 @@ class InterlockTable:
 
     def cause_text(self, cause: int, n_y: int) -> str:
         """Human-readable latched cause."""
+        if cause <= -CAUSE_CONTROLLER:
+            return f"controller fault code {cause + CAUSE_CONTROLLER}"
         if cause <= 0:
             return "none"
         if cause < CAUSE_NONFINITE:
@@ -133,7 +140,9 @@ def protect(tick, t, y, u, code, sig, above, thr, deb, cnt, latch, pv, safe_u):
             break
     if code != 0:
         word |= 1 << BIT_CONTROLLER
-        _trip(latch, CAUSE_CONTROLLER + code, tick, t, float(code))
+        # a negative code (-1 is a common "failed") must not land in the non-finite cause range
+        cause = CAUSE_CONTROLLER + code if code > 0 else -CAUSE_CONTROLLER + code
+        _trip(latch, cause, tick, t, float(code))
     for k in range(sig.shape[0]):
         v = pv[sig[k]]
         if above[k] == 1:

@@ -1,0 +1,228 @@
+"""The ``hilrig`` command line: demo, run, report, plugins, export.
+
+User mistakes (a bad scenario, a missing run folder) print one message naming the file, key and
+value and exit with status 2; they never print a traceback. Nothing recorded is overwritten.
+"""
+from __future__ import annotations
+
+import argparse
+import json
+import sys
+import time
+from importlib.resources import files
+from pathlib import Path
+
+EXIT_USAGE = 2
+EXIT_INTERRUPTED = 130
+
+
+def _console(plain: bool):
+    from rich.console import Console
+    return Console(highlight=False, no_color=plain, force_terminal=False if plain else None)
+
+
+def _demo_path() -> Path:
+    return Path(str(files("hilrig.runtime") / "data" / "demo.toml"))
+
+
+class _Progress:
+    """A progress bar that appears only when the run will take longer than about a second."""
+
+    def __init__(self, console, plain: bool):
+        self.console = console
+        self.plain = plain
+        self.t0 = time.perf_counter()
+        self.bar = None
+        self.task = None
+        self.last_line = 0.0
+
+    def __call__(self, done: int, total: int) -> None:
+        el = time.perf_counter() - self.t0
+        if self.bar is None and done < total and el * total / max(done, 1) > 1.0:
+            if self.plain or not self.console.is_terminal:
+                self.bar = False
+            else:
+                from rich.progress import BarColumn, Progress, TextColumn, TimeRemainingColumn
+                self.bar = Progress(TextColumn("running"), BarColumn(),
+                                    TextColumn("{task.percentage:>3.0f} %"), TimeRemainingColumn(),
+                                    console=self.console, transient=True)
+                self.bar.start()
+                self.task = self.bar.add_task("run", total=total)
+        if self.bar:
+            self.bar.update(self.task, completed=done)
+        elif self.bar is False and time.perf_counter() - self.last_line > 2.0:
+            self.last_line = time.perf_counter()
+            self.console.print(f"progress: {done}/{total} ticks ({100 * done / total:.0f} %)")
+
+    def close(self):
+        if self.bar:
+            self.bar.stop()
+
+
+def _show_caution(console, sc) -> None:
+    from hilrig.safety.caution import CAUTION_TITLE, caution_text, scenario_voltages
+    text = caution_text(scenario_voltages(sc))
+    if text:
+        from rich.markup import escape
+        from rich.panel import Panel
+        console.print(Panel(escape(text), title=CAUTION_TITLE, border_style="bold yellow", expand=False, width=min(console.width, 100)))
+
+
+def _summary_table(console, s: dict, folder: Path | None) -> None:
+    from rich.markup import escape
+    from rich.table import Table
+    m = s["metrics"]
+    tm = s["timing"]
+    t = Table(title=escape((s.get("title") or "run") + ("  [demo data]" if s.get("demo_data") else "")),
+              show_header=True, header_style="bold", title_justify="left")
+    t.add_column("quantity", no_wrap=True)
+    t.add_column("value", justify="right")
+    t.add_row("plant / controller / reference", f"{s['plant']} / {s['controller']} / {s['reference']}")
+    t.add_row(escape("simulated [s]"), f"{s['simulated_s']:.4g} of {s['ticks_planned'] * s['Ts_s']:.4g}  ({s['ticks_run']} ticks at {s['Ts_s'] * 1e6:.4g} us)")
+    t.add_row("outcome", "completed" if s["completed"] else f"ended: {s['end_event'] or 'interrupted'}")
+    t.add_row("trip", "none" if not s["trip"] else f"{s['trip']['cause']} at t = {s['trip']['time_s']:.6g} s (tick {s['trip']['tick']}), value {s['trip']['value']:.6g}")
+    t.add_row(escape("RMS tracking error [V]"), f"{m['rms_error_V']:.4g}")
+    t.add_row(escape("max |v_ref - v_out| [V]"), f"{m['max_abs_error_V']:.4g} at t = {m['time_of_max_abs_error_s']:.6g} s")
+    t.add_row(escape("IAE [V s]"), f"{m['iae_Vs']:.4g}")
+    t.add_row(escape("v_out range [V]"), f"{m['v_out_min_V']:.5g} .. {m['v_out_max_V']:.5g}")
+    t.add_row(escape("time in saturation [s]"), f"{m['saturation_time_s']:.4g}")
+    tps = tm.get("ticks_per_s")
+    t.add_row(escape("loop speed [ticks/s]"), f"{tps:,.0f}  ({tm['loop_ns_per_tick']:.0f} ns per tick)" if tps else "-")
+    t.add_row(escape("faster than real time [x]"), f"{tm['realtime_factor']:.1f}" if tm.get("realtime_factor") else "-")
+    t.add_row(escape("compile or cache load [s]"), f"{tm['compile_or_load_s']:.2f}" + (" (compiled now)" if tm.get("compiled_now") else " (from cache)"))
+    if folder is not None:
+        t.add_row("run folder", str(folder))
+    console.print(t)
+
+
+def _run(console, plain, scenario_path: Path, out: str | None, overwrite: bool, sets: list[str]):
+    from hilrig.runtime.plots import overview_png
+    from hilrig.runtime.recording import open_run
+    from hilrig.runtime.run import run_scenario
+    from hilrig.runtime.scenario import load_scenario
+
+    overrides = {}
+    for item in sets:
+        if "=" not in item:
+            raise ValueError(f"--set {item!r}: write KEY=VALUE, e.g. --set timing.duration='0.5 s'")
+        k, v = item.split("=", 1)
+        overrides[k.strip()] = _literal(v.strip())
+    sc = load_scenario(scenario_path, overrides=overrides)
+    _show_caution(console, sc)
+    prog = _Progress(console, plain)
+    try:
+        res = run_scenario(sc, Path(out) if out else None, overwrite=overwrite, progress=prog,
+                           notice=lambda msg: console.print(msg))
+    finally:
+        prog.close()
+    try:
+        overview_png(open_run(res.folder), res.folder / "overview.png")
+    except ImportError:
+        console.print("(matplotlib is not installed: no overview.png)")
+    _summary_table(console, res.summary, res.folder)
+    return res
+
+
+def _literal(text: str):
+    import tomllib
+    try:
+        return tomllib.loads(f"v = {text}")["v"]
+    except tomllib.TOMLDecodeError:
+        return text
+
+
+def main(argv: list[str] | None = None) -> int:
+    ap = argparse.ArgumentParser(prog="hilrig", description=(
+        "Trial battery-emulator voltage controllers in a deterministic fixed-step loop "
+        "(SIL against an embedded plant model)."))
+    sub = ap.add_subparsers(dest="cmd", required=True, metavar="COMMAND")
+    p = sub.add_parser("demo", help="run the shipped demo scenario (invented demo data)")
+    p.add_argument("--out", help="run folder to write (default: runs/<time>-demo)")
+    p.add_argument("--headless", action="store_true", help="plain text output, no progress bar or colours")
+    p.add_argument("--overwrite", action="store_true", help="replace a recording already in --out")
+    p = sub.add_parser("run", help="run a scenario file")
+    p.add_argument("scenario", help="scenario TOML file")
+    p.add_argument("--out", help="run folder to write (default: runs/<time>-<scenario>)")
+    p.add_argument("--headless", action="store_true", help="plain text output, no progress bar or colours")
+    p.add_argument("--overwrite", action="store_true", help="replace a recording already in --out")
+    p.add_argument("--set", action="append", default=[], metavar="KEY=VALUE",
+                   help="override a scenario value, e.g. --set 'timing.duration=\"0.2 s\"' (repeatable)")
+    p = sub.add_parser("report", help="summarise a run folder")
+    p.add_argument("run", help="run folder")
+    p.add_argument("--json", action="store_true", help="print summary.json")
+    p = sub.add_parser("plugins", help="list installed plugins with their parameters")
+    p.add_argument("--json", action="store_true", help="machine-readable list")
+    p = sub.add_parser("export", help="export a run's recording")
+    p.add_argument("run", help="run folder")
+    p.add_argument("--csv", action="store_true", required=True, help="write recording.csv")
+    p.add_argument("--out", help="CSV file to write (default: RUN/recording.csv)")
+    args = ap.parse_args(argv)
+
+    plain = getattr(args, "headless", False) or getattr(args, "json", False)
+    console = _console(plain)
+    from hilrig.runtime.errors import PluginError, RecordingError, ScenarioError, UnitError
+    from hilrig.safety.errors import InterlockConfigError
+    try:
+        if args.cmd == "demo":
+            console.print("hilrig demo: invented demo data, not measurements of real equipment.")
+            _run(console, plain, _demo_path(), args.out, args.overwrite, [])
+        elif args.cmd == "run":
+            _run(console, plain, Path(args.scenario), args.out, args.overwrite, args.set)
+        elif args.cmd == "report":
+            from hilrig.runtime.recording import open_run
+            run = open_run(args.run)
+            if not run.summary:
+                raise RecordingError(f"{args.run}: no summary.json (the run did not finish)")
+            if args.json:
+                print(json.dumps(run.summary, indent=2))
+            else:
+                _summary_table(console, run.summary, run.folder)
+                for ev in run.summary.get("events", []):
+                    console.print(f"event: {ev}")
+        elif args.cmd == "plugins":
+            from hilrig.runtime.registry import all_plugins
+            items = [p.declaration.describe() for p in all_plugins()]
+            if args.json:
+                print(json.dumps(items, indent=2))
+            else:
+                _plugins_table(console, items)
+        elif args.cmd == "export":
+            from hilrig.runtime.recording import export_csv, open_run
+            run = open_run(args.run)
+            dest = Path(args.out) if args.out else run.folder / "recording.csv"
+            if dest.exists() and dest.resolve() != (run.folder / "recording.csv").resolve():
+                raise FileExistsError(f"{dest} exists; choose another --out (nothing was overwritten)")
+            export_csv(run, dest)
+            console.print(f"wrote {dest} ({run.time.shape[0]} rows, {len(run.signals) + 1} columns)")
+    except (ScenarioError, PluginError, RecordingError, UnitError, InterlockConfigError,
+            FileExistsError, ValueError) as exc:
+        console.print(f"error: {exc}", markup=False, soft_wrap=True)
+        return EXIT_USAGE
+    except KeyboardInterrupt:
+        console.print("interrupted: the recording is kept up to its last flushed chunk")
+        return EXIT_INTERRUPTED
+    return 0
+
+
+def _plugins_table(console, items: list[dict]) -> None:
+    from rich.markup import escape
+    from rich.table import Table
+    for it in items:
+        t = Table(title=f"{it['kind']}: {it['name']} - {it['summary']}", title_justify="left",
+                  header_style="bold")
+        for col in ("parameter", "unit", "default", "min", "max", "description"):
+            t.add_column(col)
+        for p in it["params"]:
+            dflt = p["default"]
+            dtxt = f"{dflt:g}" if isinstance(dflt, (int, float)) else f"{len(dflt)} rows"
+            t.add_row(escape(p["name"]), escape(p["unit"]), dtxt, "" if p["min"] is None else f"{p['min']:g}",
+                      "" if p["max"] is None else f"{p['max']:g}", escape(p["description"]))
+        console.print(t)
+        if it.get("reads"):
+            console.print(f"  reads: {', '.join(it['reads'])}")
+        if it.get("source"):
+            console.print(f"  method: {it['source']}")
+
+
+if __name__ == "__main__":
+    sys.exit(main())

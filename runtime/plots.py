@@ -1,0 +1,56 @@
+"""Plots of a run folder (PNG, matplotlib's non-interactive Agg backend)."""
+from __future__ import annotations
+
+from pathlib import Path
+
+import numpy as np
+
+from .recording import Run
+
+
+def overview_png(run: Run, dest: Path) -> Path:
+    """Four stacked panels: v_out and v_ref; tracking error; command u; currents."""
+    import matplotlib
+    matplotlib.use("Agg")
+    import matplotlib.pyplot as plt
+
+    t = run.time
+    s = run.signals
+    fig, ax = plt.subplots(4, 1, figsize=(9, 9), sharex=True, constrained_layout=True)
+    ax[0].plot(t, s["v_ref"], lw=1.6, color="0.65", label="v_ref (shaped)")
+    if "v_ref_raw" in s:
+        ax[0].plot(t, s["v_ref_raw"], lw=0.8, ls=":", color="0.3", label="v_ref_raw")
+    ax[0].plot(t, s["v_out"], lw=0.9, color="tab:blue", label="v_out")
+    ax[0].set_ylabel("voltage [V]")
+    ax[0].legend(loc="best", fontsize=8)
+    ax[1].plot(t, s["v_ref"] - s["v_out"], lw=0.8, color="tab:red")
+    ax[1].set_ylabel("v_ref - v_out [V]")
+    u = s.get("u")
+    if u is not None:
+        ax[2].plot(t, u, lw=0.8, color="tab:green", label="u")
+        if "v_dc" in s:
+            ax[2].plot(t, s["v_dc"], lw=0.8, ls="--", color="0.4", label="v_dc (limit)")
+        ax[2].legend(loc="best", fontsize=8)
+    ax[2].set_ylabel("command [V]")
+    for name in ("i_L1", "i_L2", "i_out"):
+        if name in s:
+            ax[3].plot(t, s[name], lw=0.8, label=name)
+    ax[3].set_ylabel("current [A]")
+    ax[3].set_xlabel("time [s]")
+    ax[3].legend(loc="best", fontsize=8)
+    word = s.get("interlock_word")
+    if word is not None:
+        latched = np.flatnonzero(word.astype(np.int64) & (1 << 50))
+        if latched.size:
+            for a in ax:
+                a.axvline(t[latched[0]], color="black", lw=1.0, ls="-.")
+            ax[0].annotate("trip", (t[latched[0]], ax[0].get_ylim()[1]), fontsize=8, va="top")
+    title = run.attrs.get("title", "") or run.folder.name
+    if run.attrs.get("demo_data"):
+        title += "  [demo data]"
+    fig.suptitle(title, fontsize=10)
+    for a in ax:
+        a.grid(True, lw=0.3)
+    fig.savefig(dest, dpi=90)
+    plt.close(fig)
+    return dest
