@@ -76,6 +76,8 @@ class TableParam:
     #: allow equal consecutive breakpoints (a step in a piecewise-linear profile)
     allow_equal_first: bool = False
     min_rows: int = 2
+    #: per column: (low, high, low_open); None means any finite value
+    column_bounds: tuple[tuple[float, float, bool] | None, ...] | None = None
 
 
 @dataclass(frozen=True)

@@ -101,9 +101,12 @@ def check(kind: str, module: ModuleType) -> Declaration:
         raise PluginError(f"{where}: no DECLARATION (a hilrig.plugins.base.Declaration)")
     if decl.kind != kind:
         raise PluginError(f"{where}: declares a {decl.kind} plugin, but a {kind} is needed here")
+    import numba
     for k in KERNELS[kind]:
         fn = getattr(module, k, None)
-        if fn is None or not hasattr(fn, "py_func"):
+        # with NUMBA_DISABLE_JIT=1 (debugging) the kernels are plain functions
+        compiled = hasattr(fn, "py_func") or (numba.config.DISABLE_JIT and callable(fn))
+        if fn is None or not compiled:
             raise PluginError(f"{where}: kernel {k!r} missing or not compiled with numba's @njit")
     if kind == "plant" and decl.equilibrium is None:
         raise PluginError(f"{where}: a plant declares equilibrium(values, v_out, d)")

@@ -284,11 +284,16 @@ def _table_param(cx, where, rows, q: TableParam):
             cols = ", ".join(f"{c} [{u}]" for c, u in q.columns)
             raise cx.fail(f"{where}[{i}]", f" = {row!r} has {len(row)} values; expected {len(q.columns)}: {cols}")
         vals = []
-        for (col, unit), v in zip(q.columns, row):
-            try:
-                vals.append(parse_quantity(v, unit, where=f"{where}[{i}].{col}"))
-            except UnitError as exc:
-                raise ScenarioError(f"{cx.name}: {exc}") from None
+        bounds = q.column_bounds or (None,) * len(q.columns)
+        for (col, unit), v, b in zip(q.columns, row, bounds):
+            key = f"{where}[{i}].{col}"
+            if b is None:
+                try:
+                    vals.append(parse_quantity(v, unit, where=key))
+                except UnitError as exc:
+                    raise ScenarioError(f"{cx.name}: {exc}") from None
+            else:
+                vals.append(_quantity(cx, key, v, unit, (b[0], b[1]), lower_open=b[2]))
         out.append(tuple(vals))
     if q.increasing_first:
         for i in range(1, len(out)):

@@ -134,7 +134,9 @@ def protect(tick, t, y, u, code, sig, above, thr, deb, cnt, latch, pv, safe_u):
     # plausibility first: a non-finite value makes every limit on it meaningless
     for j in range(ny + nu):
         v = pv[j]
-        if not (v - v == 0.0):  # NaN or +-Inf
+        # NaN or +-Inf; written without arithmetic because inf - inf warns when the kernel runs
+        # as plain Python (NUMBA_DISABLE_JIT=1)
+        if not (abs(v) < np.inf):
             word |= 1 << BIT_NONFINITE
             _trip(latch, CAUSE_NONFINITE + j, tick, t, v)
             break

@@ -31,7 +31,7 @@ def test_second_process_does_not_recompile(tmp_path, demo_path):
     first = _child(demo_path, tmp_path / "a", cache)
     second = _child(demo_path, tmp_path / "b", cache)
     assert first["compiled_now"] is True
-    assert first["misses"] >= 1 and first["hits"] == 0
+    assert first["hits"] == 0
     assert second["compiled_now"] is False
     assert second["hits"] >= 1 and second["misses"] == 0
     # the generated module is keyed by the hash of its sources: exactly one file for one combination

@@ -1,0 +1,404 @@
+"""Scenario validation: every mistake is one ScenarioError naming file, key, value, expectation.
+
+Malformed scenarios are derived from the shipped demo text or from a minimal valid scenario by a
+single edit, so each case tests exactly one mistake. Expected SI values are the literals the unit
+strings denote (SI prefixes: BIPM SI Brochure, 9th ed., 2019, Table 7, from memory).
+"""
+import math
+import re
+from importlib.resources import files
+from pathlib import Path
+
+import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
+
+from hilrig.runtime.errors import ScenarioError
+from hilrig.runtime.scenario import (LIMITS, RECORDING, SHAPING, TIMING, Scenario, load_scenario,
+                                     parse_scenario)
+from hilrig.safety.interlocks import Interlock
+
+DEMO = (files("hilrig.runtime") / "data" / "demo.toml").read_text(encoding="utf-8")
+
+#: the smallest scenario that names every part explicitly (values are demo data)
+MINIMAL = """\
+title = "minimal"
+mode = "sil"
+seed = 3
+
+[timing]
+Ts = "50 us"
+duration = "10 ms"
+
+[plant]
+plugin = "two_stage_lc"
+
+[controller]
+plugin = "cascaded_pi"
+
+[reference]
+plugin = "profile"
+
+[[load.points]]
+t = 0
+P = "10 kW"
+
+[[interlocks]]
+signal = "v_out"
+above = "480 V"
+"""
+
+NAME = "case.toml"
+
+
+def edit(text: str, old: str, new: str) -> str:
+    """Replace the one occurrence of ``old``; fail loudly if the base text no longer has it."""
+    assert text.count(old) == 1, f"base scenario no longer contains {old!r} exactly once"
+    return text.replace(old, new)
+
+
+def demo(old, new):
+    return edit(DEMO, old, new)
+
+
+def minimal(old, new):
+    return edit(MINIMAL, old, new)
+
+
+PLANT = '[plant]\nplugin = "two_stage_lc"\n'
+CONTROLLER = '[controller]\nplugin = "cascaded_pi"\n'
+LOAD0 = '[[load.points]]\nt = 0\nP = "10 kW"\n'
+INTERLOCK0 = '[[interlocks]]\nsignal = "v_out"\nabove = "480 V"\n'
+
+
+def expect_error(text, *fragments, name=NAME):
+    """Parse ``text``: exactly a ScenarioError (a ValueError) whose message starts with the file
+    name and contains every fragment."""
+    with pytest.raises(ScenarioError) as info:
+        parse_scenario(text, name=name)
+    assert type(info.value) is ScenarioError and isinstance(info.value, ValueError)
+    msg = str(info.value)
+    assert msg.startswith(f"{name}: "), msg
+    for frag in fragments:
+        assert frag in msg, f"{frag!r} missing from {msg!r}"
+    return msg
+
+
+# (id, scenario text, fragments the message must hold: dotted key, value with unit, what was
+# expected, suggestion). Ranges are the bounds the plugins and the scenario format declare.
+CASES = [
+    ("unknown top-level key",
+     minimal("[timing]", "[timming]"),
+     ["unknown key 'timming'", "did you mean 'timing'?", "allowed:"]),
+    ("plant parameter typo",
+     demo('L1 = "150 uH"', 'L_1 = "150 uH"'),
+     ["unknown key 'plant.L_1'", "did you mean 'L1'"]),
+    ("plant parameter in the wrong case",
+     demo('L1 = "150 uH"', 'l1 = "150 uH"'),
+     ["unknown key 'plant.l1'", "did you mean 'L1'"]),
+    ("wrong unit for an inductance",
+     demo('L1 = "150 uH"', 'L1 = "150 uF"'),
+     ["plant.L1", "'150 uF'", "expected H"]),
+    ("unparsable quantity",
+     minimal(PLANT, PLANT + 'L1 = "fast"\n'),
+     ["plant.L1", "'fast'", "not a quantity", "H"]),
+    ("boolean where a number is expected",
+     minimal(PLANT, PLANT + "L1 = true\n"),
+     ["plant.L1", "boolean", "number in H"]),
+    ("NaN where a number is expected",
+     minimal(PLANT, PLANT + "L1 = nan\n"),
+     ["plant.L1", "nan", "not finite", "H"]),
+    ("Ts zero",
+     minimal('Ts = "50 us"', "Ts = 0"),
+     ["timing.Ts = 0 s", "outside [1e-07, 1] s"]),
+    ("duration not a whole number of periods",
+     # 10.01 ms / 50 us = 200.2 periods
+     minimal('duration = "10 ms"', 'duration = "10.01 ms"'),
+     ["timing.duration = 0.01001 s", "not a whole number", "Ts = 5e-05 s"]),
+    ("substeps zero",
+     minimal('duration = "10 ms"', 'duration = "10 ms"\nsubsteps = 0'),
+     ["timing.substeps = 0", "[1, 1000]"]),
+    ("substeps not an integer",
+     minimal('duration = "10 ms"', 'duration = "10 ms"\nsubsteps = 2.5'),
+     ["timing.substeps = 2.5", "whole number", "[1, 1000]"]),
+    ("unknown plugin name",
+     minimal(CONTROLLER, '[controller]\nplugin = "cascade_pi"\n'),
+     ["controller.plugin", "'cascade_pi'", "did you mean cascaded_pi"]),
+    ("plugin file that does not exist",
+     minimal(CONTROLLER, '[controller]\nplugin = "no_such_folder/my_ctrl.py"\n'),
+     ["controller.plugin", "'no_such_folder/my_ctrl.py'", "does not exist"]),
+    ("table row of the wrong width",
+     demo('rc_pairs = [["0.6 mohm", "50 kF"], ', 'rc_pairs = [["0.6 mohm", "50 kF", "30 s"], '),
+     ["reference.rc_pairs[0]", "has 3 values", "expected 2: R [ohm], C [F]"]),
+    ("OCV table with non-increasing SOC",
+     demo("soc0 = 0.8\n",
+          'soc0 = 0.8\nocv = [[0.0, "3.0 V"], [0.5, "3.6 V"], [0.4, "3.7 V"], [1.0, "4.1 V"]]\n'),
+     ["reference.ocv[2]", "soc = 0.4 after 0.5", "strictly increasing"]),
+    ("load point without t",
+     minimal(LOAD0, '[[load.points]]\nP = "10 kW"\n'),
+     ["load.points[0]", "no time t [s]"]),
+    ("load times not increasing",
+     minimal(LOAD0, LOAD0 + '[[load.points]]\nt = "0 ms"\nP = "20 kW"\n'),
+     ["load.points[1].t = 0 s", "not after the previous point (0 s)"]),
+    ("load resistance zero",
+     minimal(LOAD0, '[[load.points]]\nt = 0\nR = "0 ohm"\n'),
+     ["load.points[0].R = 0 ohm", "outside (0, 1e+12] ohm"]),
+    ("unknown load column",
+     minimal(LOAD0, '[[load.points]]\nt = 0\np = "10 kW"\n'),
+     ["unknown key 'load.points[0].p'", "did you mean 'P'", "allowed: I, P, R, t"]),
+    ("interlock on an unknown signal",
+     minimal(INTERLOCK0, '[[interlocks]]\nsignal = "v_ot"\nabove = "480 V"\n'),
+     ["interlocks[0].signal = 'v_ot'", "did you mean 'v_out'", "signals: v_out"]),
+    ("interlock signal that is not a name",
+     minimal(INTERLOCK0, '[[interlocks]]\nsignal = ["v_out"]\nabove = "480 V"\n'),
+     ["interlocks[0].signal = ['v_out']", "not a signal"]),
+    ("interlock with both above and below",
+     minimal(INTERLOCK0, INTERLOCK0 + 'below = "300 V"\n'),
+     ["interlocks[0]", "exactly one of 'above' or 'below'"]),
+    ("interlock threshold in the wrong unit",
+     minimal(INTERLOCK0, '[[interlocks]]\nsignal = "v_out"\nabove = "480 A"\n'),
+     ["interlocks[0].above", "'480 A'", "expected V"]),
+    ("debounce zero",
+     minimal(INTERLOCK0, INTERLOCK0 + "debounce = 0\n"),
+     ["interlocks[0].debounce = 0", "[1, 1000000]"]),
+    ("mode not available yet",
+     demo('mode = "sil"', 'mode = "lockstep"'),
+     ["mode = 'lockstep'", "not available yet", "'sil'"]),
+    ("unknown mode",
+     demo('mode = "sil"', 'mode = "sill"'),
+     ["mode = 'sill'", "not a mode", "did you mean 'sil'"]),
+    ("negative seed",
+     minimal("seed = 3", "seed = -1"),
+     ["seed = -1", "whole number in [0, 2^63)"]),
+    ("shaping pole too fast for Ts",
+     # the shaping design needs pole * Ts <= 1: at Ts = 50 us at most 1 / 50 us = 20000 rad/s
+     demo('pole = "7500 rad/s"', 'pole = "30 krad/s"'),
+     ["shaping.pole = 30000 rad/s", "too fast for Ts = 5e-05 s", "at most 20000 rad/s"]),
+    ("shaping order 3",
+     demo("order = 5", "order = 3"),
+     ["shaping.order = 3", "outside [4, 12]"]),
+    ("unknown recording compression",
+     MINIMAL + '[recording]\ncompression = "zip"\n',
+     ["recording.compression = 'zip'", "'none', 'gzip'"]),
+]
+
+
+@pytest.mark.parametrize("text, fragments", [c[1:] for c in CASES], ids=[c[0] for c in CASES])
+def test_malformed_scenario_is_one_clear_error(text, fragments):
+    expect_error(text, *fragments)
+
+
+def test_the_bases_of_the_malformed_cases_are_valid():
+    # without this, a case could fail for a reason other than its one edit
+    assert isinstance(parse_scenario(MINIMAL, name=NAME), Scenario)
+    assert isinstance(parse_scenario(DEMO, name=NAME), Scenario)
+
+
+def test_negative_inductance_names_the_si_value_and_the_range():
+    msg = expect_error(demo('L1 = "150 uH"', 'L1 = "-200 uH"'), "plant.L1 = ", "outside (0, 1] H")
+    # the value is shown in SI with its unit: -200 uH = -2e-4 H
+    m = re.search(r"plant\.L1 = (\S+) H is outside", msg)
+    assert m and float(m.group(1)) == -2e-4
+
+
+def test_invalid_toml_names_the_line():
+    text = minimal("[plant]", "[plant")
+    line = text.splitlines().index("[plant") + 1  # 1-based, counted here
+    expect_error(text, "not valid TOML", f"line {line}")
+
+
+def test_override_into_a_value_is_an_error_not_a_crash():
+    # --set plant.L1.x=1 on the command line: plant.L1 holds a quantity, not a table
+    with pytest.raises(ScenarioError) as info:
+        parse_scenario(demo('L1 = "150 uH"', 'L1 = "150 uH"'), name=NAME,
+                       overrides={"plant.L1.x": 1.0})
+    assert type(info.value) is ScenarioError
+    assert str(info.value).startswith(f"{NAME}: ")
+    assert "'plant.L1.x'" in str(info.value) and "not a table" in str(info.value)
+
+
+def test_override_replaces_a_value():
+    sc = parse_scenario(MINIMAL, name=NAME, overrides={"timing.duration": "20 ms", "plant.L1": "0.2 mH"})
+    assert sc.duration == 0.02 and sc.plant.values["L1"] == 2e-4
+
+
+# --- files on disk -----------------------------------------------------------------------------
+
+def test_load_scenario_names_the_file(tmp_path):
+    path = tmp_path / "rig_a.toml"
+    path.write_text(minimal("[timing]", "[timming]"), encoding="utf-8")
+    with pytest.raises(ScenarioError) as info:
+        load_scenario(path)
+    assert type(info.value) is ScenarioError
+    assert str(info.value).startswith("rig_a.toml: unknown key 'timming'; did you mean 'timing'?")
+
+
+def test_load_scenario_out_of_range_value_names_file_key_and_range(tmp_path):
+    path = tmp_path / "rig_b.toml"
+    path.write_text(demo('C2 = "680 uF"', 'C2 = "2 F"'), encoding="utf-8")
+    with pytest.raises(ScenarioError) as info:
+        load_scenario(str(path))
+    assert str(info.value) == "rig_b.toml: plant.C2 = 2 F is outside (0, 1] F"
+
+
+def test_missing_and_unreadable_files(tmp_path):
+    with pytest.raises(ScenarioError, match="does not exist") as info:
+        load_scenario(tmp_path / "nope.toml")
+    assert "nope.toml" in str(info.value)
+    bad = tmp_path / "latin1.toml"
+    bad.write_bytes('title = "caf\u00e9"\n'.encode("latin-1"))  # not UTF-8, which TOML requires
+    with pytest.raises(ScenarioError, match="cannot read"):
+        load_scenario(bad)
+
+
+# --- valid scenarios ---------------------------------------------------------------------------
+
+VALID = """\
+title = "units"
+[timing]
+Ts = "50 us"
+duration = "20 ms"
+substeps = 2
+[plant]
+V_dc = "0.8 kV"
+L1 = "200 uH"
+R1 = "20 mohm"
+C1 = "500 uF"
+[shaping]
+pole = "7.5 krad/s"
+slew_rate = "200 kV/s"
+[[load.points]]
+t = "0 s"
+P = "60 kW"
+[[load.points]]
+t = "5 ms"
+P = "-40 kW"
+R = "200 ohm"
+[[load.points]]
+t = "10 ms"
+P = "-40 kW"
+I = "25 A"
+R = "open"
+[limits]
+v_collapse = "0.1 kV"
+[[interlocks]]
+signal = "v_out"
+below = "300 V"
+debounce = 20
+[[interlocks]]
+signal = "i_L1"
+above = "0.5 kA"
+[initial]
+v_out = "400 V"
+"""
+
+
+def test_unit_strings_become_exact_si_values():
+    sc = parse_scenario(VALID, name=NAME)
+    # each expected value is the literal the unit string denotes (SI Brochure, Table 7, from memory)
+    assert sc.plant.values["L1"] == 2e-4
+    assert sc.plant.values["R1"] == 2e-2
+    assert sc.plant.values["C1"] == 5e-4
+    assert sc.plant.values["V_dc"] == 800.0
+    assert sc.Ts == 5e-5
+    assert sc.duration == 0.02 and sc.n_ticks == 400
+    assert sc.substeps == 2 and type(sc.substeps) is int
+    assert sc.shaping["pole"] == 7500.0 and sc.shaping["slew_rate"] == 2e5
+    assert sc.v_collapse == 100.0 and sc.v_out0 == 400.0
+    assert sc.interlocks == [Interlock("v_out", 300.0, above=False, debounce=20, unit="V"),
+                             Interlock("i_L1", 500.0, above=True, debounce=1, unit="A")]
+    # step interpolation: each change is a pair of equal breakpoints (hold, then the new row);
+    # R = 200 ohm is G = 1/200 = 0.005 S, R = "open" is G = 0
+    assert sc.load_t.tolist() == [0.0, 5e-3, 5e-3, 1e-2, 1e-2]
+    assert sc.load_v.tolist() == [[6e4, 6e4, -4e4, -4e4, -4e4],
+                                  [0.0, 0.0, 0.005, 0.005, 0.0],
+                                  [0.0, 0.0, 0.0, 0.0, 25.0]]
+
+
+def test_defaults_fill_in_and_text_is_kept():
+    text = "# nothing but a comment\n"
+    sc = parse_scenario(text, name=NAME)
+    assert sc.text == text
+    assert (sc.mode, sc.seed, sc.title, sc.demo_data) == ("sil", 0, "", False)
+    # the defaults declared by the format and by each plugin, converted to SI
+    assert (sc.Ts, sc.substeps, sc.duration) == tuple(TIMING[k][1] for k in ("Ts", "substeps", "duration"))
+    assert sc.shaping == {k: v[1] for k, v in SHAPING.items()}
+    assert (sc.v_collapse, sc.safe_u) == (LIMITS["v_collapse"][1], LIMITS["safe_u"][1])
+    assert sc.recording == {"chunk": RECORDING["chunk"][1], "compression": "none"}
+    for choice, name in ((sc.plant, "two_stage_lc"), (sc.controller, "cascaded_pi"),
+                         (sc.reference, "profile")):
+        assert choice.plugin.name == name
+        assert choice.values == choice.plugin.declaration.defaults()
+    assert sc.interlocks == [] and sc.v_out0 is None
+    assert sc.load_t.tolist() == [0.0] and sc.load_v.tolist() == [[0.0], [0.0], [0.0]]
+
+
+def test_partly_given_section_keeps_the_other_defaults():
+    sc = parse_scenario(demo('L1 = "150 uH"', 'L1 = "0.25 mH"').replace('C2 = "680 uF"\n', ""),
+                        name=NAME)
+    assert sc.plant.values["L1"] == 2.5e-4
+    assert sc.plant.values["C2"] == sc.plant.plugin.declaration.param("C2").default
+
+
+def test_demo_text_is_kept_byte_for_byte(demo_path):
+    sc = load_scenario(demo_path)
+    assert sc.text == Path(demo_path).read_text(encoding="utf-8")
+    assert sc.path == str(demo_path) and sc.demo_data is True
+
+
+def test_relative_plugin_path_is_resolved_from_the_scenario_folder(tmp_path, monkeypatch):
+    source = (files("hilrig.plugins") / "controllers" / "cascaded_pi.py").read_text(encoding="utf-8")
+    (tmp_path / "cases" / "mine").mkdir(parents=True)
+    plugin_file = tmp_path / "cases" / "mine" / "my_pi.py"
+    plugin_file.write_text(edit(source, 'name="cascaded_pi"', 'name="my_pi"'), encoding="utf-8")
+    scenario_file = tmp_path / "cases" / "run.toml"
+    scenario_file.write_text(minimal(CONTROLLER, '[controller]\nplugin = "mine/my_pi.py"\nKp_v = 4\n'),
+                             encoding="utf-8")
+    # run from elsewhere: resolving against the working folder would not find the file
+    (tmp_path / "elsewhere").mkdir()
+    monkeypatch.chdir(tmp_path / "elsewhere")
+    sc = load_scenario(Path("..") / "cases" / "run.toml")
+    assert sc.controller.plugin.name == "my_pi"
+    assert sc.controller.plugin.origin == ("file", str(plugin_file.resolve()))
+    assert sc.controller.values["Kp_v"] == 4.0
+
+
+# --- property: random values in any key give a Scenario or a ScenarioError, nothing else --------
+
+_KEYS = ["title", "mode", "seed", "demo_data", "timing", "timing.Ts", "timing.substeps",
+         "timing.duration", "plant", "plant.plugin", "plant.L1", "plant.R2", "controller.Kp_v",
+         "reference.plugin", "reference.points", "shaping.order", "shaping.pole", "load",
+         "load.points", "load.interpolation", "limits.safe_u", "interlocks", "initial.v_out",
+         "recording", "recording.chunk", "recording.compression", "unknown"]
+_scalars = (st.booleans() | st.integers(-2**63, 2**63 - 1) | st.floats()
+            | st.sampled_from(["", "fast", "200 uH", "50 us", "-1 V", "1e999 V", "open", "auto",
+                               "v_out", "sil", "gzip", "linear"])
+            | st.text(max_size=8))
+_values = st.recursive(_scalars, lambda inner: st.lists(inner, max_size=3)
+                       | st.dictionaries(st.sampled_from(["t", "P", "R", "I", "signal", "above",
+                                                          "below", "debounce", "x"]),
+                                         inner, max_size=3),
+                       max_leaves=6)
+
+
+@settings(max_examples=150, deadline=None)
+@given(key=st.sampled_from(_KEYS), value=_values)
+def test_any_value_anywhere_is_a_scenario_or_a_scenario_error(key, value):
+    try:
+        sc = parse_scenario(MINIMAL, name=NAME, overrides={key: value})
+    except ScenarioError as exc:
+        assert str(exc).startswith(f"{NAME}: ")
+        return
+    assert math.isfinite(sc.Ts) and sc.n_ticks >= 1
+
+
+def test_table_columns_are_bounded(demo_path):
+    # RC pairs need R > 0 and C > 0: exp(-Ts/(R C)) must lie in (0, 1) for a decaying RC voltage
+    # (physics of the RC pair, textbook)
+    text = Path(demo_path).read_text()
+    bad = re.sub(r"rc_pairs = .*", 'rc_pairs = [["-0.6 mohm", "50 kF"]]', text)
+    with pytest.raises(ScenarioError, match=r"case\.toml: reference\.rc_pairs\[0\]\.R = -0\.0006 ohm is outside \(0, 10\] ohm"):
+        parse_scenario(bad, name="case.toml")
+    bad = re.sub(r"rc_pairs = .*", 'rc_pairs = [["0.6 mohm", "0 F"]]', text)
+    with pytest.raises(ScenarioError, match=r"reference\.rc_pairs\[0\]\.C = 0 F is outside \(0, 1e\+09\] F"):
+        parse_scenario(bad, name="case.toml")
