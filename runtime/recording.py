@@ -75,9 +75,10 @@ class RunWriter:
         end = self.n + n
         self.time.resize((end,))
         self.time[self.n:end] = time
+        cols = np.ascontiguousarray(rows[:n].T)  # one transpose instead of a strided copy per signal
         for j, d in enumerate(self.ds):
             d.resize((end,))
-            d[self.n:end] = rows[:n, j]
+            d[self.n:end] = cols[j]
         self.n = end
         self.f.flush()
 

@@ -39,7 +39,7 @@ TIMING = {"Ts": ("s", 50e-6, (1e-7, 1.0)), "substeps": ("-", 4, (1, 1000)),
 SHAPING = {"order": ("-", 5, (4, 12)), "pole": ("rad/s", 7500.0, (1.0, 1e7)),
            "slew_rate": ("V/s", 2e5, (1e-3, 1e9))}
 LIMITS = {"v_collapse": ("V", 25.0, (0.0, 1e5)), "safe_u": ("V", 0.0, (-1e5, 1e5))}
-RECORDING = {"chunk": ("s", 0.25, (1e-4, 3600.0))}
+RECORDING = {"chunk": ("s", 1.0, (1e-4, 3600.0))}
 RECORDING_CHOICES = {"compression": ("none", "gzip")}
 LOAD_COLUMNS = {"P": "W", "R": "ohm", "I": "A"}
 INTERLOCK_KEYS = {"signal", "above", "below", "debounce"}

@@ -17,7 +17,7 @@ runtime's collapse check ends the run.
 from numba import njit
 
 
-@njit(cache=True)
+@njit(cache=True, inline="always")
 def load_current(v, d, v_min):
     """Current [A] drawn by the summed load at output voltage v [V]; d = [P W, G S, I A]."""
     if v >= v_min:

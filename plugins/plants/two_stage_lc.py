@@ -68,7 +68,7 @@ DECLARATION = Declaration(
 )
 
 
-@njit(cache=True)
+@njit(cache=True, inline="always")
 def _clamp_u(p, u):
     uc = u[0]
     if uc > p[V_DC]:
