@@ -3,8 +3,10 @@
 Kernels (all ``@njit(cache=True)``, float64 arrays preallocated by the runtime, no allocation):
 
 plant
-    ``derivs(t, p, x, u, d, dx)`` writes dx/dt; ``outputs(t, p, x, u, d, y)`` writes the measured
-    signals in the order of ``DECLARATION.outputs``. ``d`` holds the load now:
+    ``derivs(t, p, x, u, d) -> tuple`` returns dx/dt as a tuple of the state count, for the
+    state ``x`` given as a tuple (the integrator keeps the state in registers this way; indexing
+    ``x[i]`` also works when a test passes an array); ``outputs(t, p, x, u, d, y)`` writes the
+    measured signals, in the order of ``DECLARATION.outputs``, for the state array ``x``. ``d`` holds the load now:
     ``d[0]`` constant power [W], ``d[1]`` conductance [S], ``d[2]`` constant current [A].
 controller
     ``init(p, xc, y, r)`` sets the controller states from the first measurement and reference

@@ -60,23 +60,20 @@ NX = {nx}
 
 
 @njit(inline="always")
-def advance(t, h, nsub, pp, x, u, d, k1, k2, k3, k4, xs):
-    """RK4 with nsub substeps over one control period h; u and the load d held."""
+def advance(t, h, nsub, pp, x, u, d):
+    """RK4 with nsub substeps over one control period h; u and the load d held.
+
+    The state travels as a tuple so that it stays in registers through the substeps."""
     dt = h / nsub
-    for s in range(nsub):
-        ta = t + s * dt
-        plant_derivs(ta, pp, x, u, d, k1)
-        for i in range(NX):
-            xs[i] = x[i] + 0.5 * dt * k1[i]
-        plant_derivs(ta + 0.5 * dt, pp, xs, u, d, k2)
-        for i in range(NX):
-            xs[i] = x[i] + 0.5 * dt * k2[i]
-        plant_derivs(ta + 0.5 * dt, pp, xs, u, d, k3)
-        for i in range(NX):
-            xs[i] = x[i] + dt * k3[i]
-        plant_derivs(ta + dt, pp, xs, u, d, k4)
-        for i in range(NX):
-            x[i] += dt / 6.0 * (k1[i] + 2.0 * k2[i] + 2.0 * k3[i] + k4[i])
+    s = ({x_items},)
+    for j in range(nsub):
+        ta = t + j * dt
+        k1 = plant_derivs(ta, pp, s, u, d)
+        k2 = plant_derivs(ta + 0.5 * dt, pp, ({s_k1},), u, d)
+        k3 = plant_derivs(ta + 0.5 * dt, pp, ({s_k2},), u, d)
+        k4 = plant_derivs(ta + dt, pp, ({s_k3},), u, d)
+        s = ({s_new},)
+{store}
 
 
 @njit(cache=True)
@@ -86,7 +83,7 @@ def run_chunk(k0, n, ts, nsub, v_collapse, i_vout,
               pr, xr, iyr, yr, w,
               ad, g1, g2, cr, dr, slew, z, s, zt, r,
               lim_sig, lim_above, lim_thr, lim_deb, lim_cnt, latch, pv,
-              y, d, k1, k2, k3, k4, xs, rec, ev):
+              y, d, rec, ev):
     """Run ticks k0 .. k0+n-1; return how many ran (fewer if the run ended)."""
     ny = y.shape[0]
     nu = u.shape[0]
@@ -116,7 +113,7 @@ def run_chunk(k0, n, ts, nsub, v_collapse, i_vout,
         word = protect(kk, t, y, u, code, lim_sig, lim_above, lim_thr, lim_deb, lim_cnt,
                        latch, pv, safe_u)
         # 6 actuate
-        advance(t, ts, nsub, pp, x, u, d, k1, k2, k3, k4, xs)
+        advance(t, ts, nsub, pp, x, u, d)
         # 7 record
         c = 0
         for j in range(ny):
@@ -215,6 +212,20 @@ def _import_lines(plant: Plugin, ctrl: Plugin, ref: Plugin) -> str:
     return "\n".join(lines)
 
 
+def _rk4_text(nx: int) -> dict[str, str]:
+    """The RK4 stage expressions, unrolled for nx states."""
+    r = range(nx)
+    return dict(
+        x_items=", ".join(f"x[{i}]" for i in r),
+        s_k1=", ".join(f"s[{i}] + 0.5 * dt * k1[{i}]" for i in r),
+        s_k2=", ".join(f"s[{i}] + 0.5 * dt * k2[{i}]" for i in r),
+        s_k3=", ".join(f"s[{i}] + dt * k3[{i}]" for i in r),
+        s_new=", ".join(f"s[{i}] + dt / 6.0 * (k1[{i}] + 2.0 * k2[{i}] + 2.0 * k3[{i}] + k4[{i}])"
+                        for i in r),
+        store="\n".join(f"    x[{i}] = s[{i}]" for i in r),
+    )
+
+
 def generate(plant: Plugin, ctrl: Plugin, ref: Plugin) -> tuple[Path, bool]:
     """Write (if absent) the loop module for this combination; return (path, was_new)."""
     key = combination_key(plant, ctrl, ref)
@@ -223,10 +234,11 @@ def generate(plant: Plugin, ctrl: Plugin, ref: Plugin) -> tuple[Path, bool]:
     path = folder / f"loop_{key}.py"
     if path.exists():
         return path, False
+    nx = len(plant.declaration.states)
     text = _TEMPLATE.format(version=_version(), plant=plant.name, ctrl=ctrl.name, ref=ref.name,
                             key=key, imports=_import_lines(plant, ctrl, ref),
                             ev_nonfinite=EV_NONFINITE, ev_collapse=EV_COLLAPSE,
-                            nx=len(plant.declaration.states))
+                            nx=nx, **_rk4_text(nx))
     # write then rename: concurrent workers never import a half-written file, and an existing
     # file is never rewritten (a new mtime would invalidate numba's cache of it)
     fd, tmp = tempfile.mkstemp(dir=folder, suffix=".tmp")

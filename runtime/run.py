@@ -157,7 +157,6 @@ def prepare(sc: Scenario) -> Prepared:
         lim_sig=table.sig, lim_above=table.above, lim_thr=table.thr, lim_deb=table.deb,
         lim_cnt=np.zeros(len(table.rows), dtype=np.int64), latch=new_latch(),
         pv=np.zeros(ny + nu), y=np.zeros(ny), d=np.zeros(3),
-        k1=np.zeros(nx), k2=np.zeros(nx), k3=np.zeros(nx), k4=np.zeros(nx), xs=np.zeros(nx),
         ev=np.zeros(2),
     )
     return Prepared(sc=sc, args=args, signals=signals, table=table, y_names=outputs,
@@ -183,7 +182,7 @@ def _call(fn, k0, n, rec, a):
               a["pr"], a["xr"], a["iyr"], a["yr"], a["w"],
               a["ad"], a["g1"], a["g2"], a["cr"], a["dr"], a["slew"], a["z"], a["s"], a["zt"], a["r"],
               a["lim_sig"], a["lim_above"], a["lim_thr"], a["lim_deb"], a["lim_cnt"], a["latch"], a["pv"],
-              a["y"], a["d"], a["k1"], a["k2"], a["k3"], a["k4"], a["xs"], rec, a["ev"])
+              a["y"], a["d"], rec, a["ev"])
 
 
 def default_folder(sc: Scenario, base: Path = Path("runs")) -> Path:

@@ -24,7 +24,13 @@ from numba import njit
 from hilrig.plugins.base import Declaration, Param, Signal
 from hilrig.plugins.plants.loads import load_current
 
-V_DC, L, R, C, V_LOAD_MIN = range(5)
+# indices into p: the declared parameters in order, L and C stored as reciprocals
+V_DC, INV_L, R, INV_C, V_LOAD_MIN = range(5)
+
+
+def _build(values, ctx):
+    v = values
+    return np.array([v["V_dc"], 1.0 / v["L"], v["R"], 1.0 / v["C"], v["v_load_min"]])
 
 
 def _equilibrium(values, v_out, d):
@@ -52,6 +58,7 @@ DECLARATION = Declaration(
     source="R. W. Erickson and D. Maksimovic, Fundamentals of Power Electronics, 2nd ed., "
            "Springer, 2001, ch. 3 and 7; Emadi et al., IEEE Trans. Veh. Technol. 55(4), 2006",
     equilibrium=_equilibrium,
+    build=_build,
 )
 
 
@@ -66,10 +73,11 @@ def _clamp_u(p, u):
 
 
 @njit(cache=True)
-def derivs(t, p, x, u, d, dx):
+def derivs(t, p, x, u, d):
+    i_l, v_out = x[0], x[1]
     uc = _clamp_u(p, u)
-    dx[0] = (uc - p[R] * x[0] - x[1]) / p[L]
-    dx[1] = (x[0] - load_current(x[1], d, p[V_LOAD_MIN])) / p[C]
+    return ((uc - p[R] * i_l - v_out) * p[INV_L],
+            (i_l - load_current(v_out, d, p[V_LOAD_MIN])) * p[INV_C])
 
 
 @njit(cache=True)

@@ -117,10 +117,10 @@ def _rk4_periods(derivs, p, x0, schedule, nsub=NSUB):
         d = np.asarray(d, dtype=np.float64)
         for s in range(nsub):
             ta = t + s * h
-            derivs(ta, p, x, u, d, k1)
-            derivs(ta + 0.5 * h, p, x + 0.5 * h * k1, u, d, k2)
-            derivs(ta + 0.5 * h, p, x + 0.5 * h * k2, u, d, k3)
-            derivs(ta + h, p, x + h * k3, u, d, k4)
+            k1[:] = derivs(ta, p, x, u, d)
+            k2[:] = derivs(ta + 0.5 * h, p, x + 0.5 * h * k1, u, d)
+            k3[:] = derivs(ta + 0.5 * h, p, x + 0.5 * h * k2, u, d)
+            k4[:] = derivs(ta + h, p, x + h * k3, u, d)
             x = x + h / 6.0 * (k1 + 2.0 * k2 + 2.0 * k3 + k4)
         t += TS
         out.append(x.copy())
@@ -180,8 +180,8 @@ def _fd_jacobian(derivs, p, x0, u, d):
         xp, xm = x0.copy(), x0.copy()
         xp[j] += step
         xm[j] -= step
-        derivs(0.0, p, xp, u, d, fp)
-        derivs(0.0, p, xm, u, d, fm)
+        fp[:] = derivs(0.0, p, xp, u, d)
+        fm[:] = derivs(0.0, p, xm, u, d)
         J[:, j] = (fp - fm) / (xp[j] - xm[j])
     return J
 
@@ -259,12 +259,12 @@ def test_command_clamp(u_cmd, u_applied):
     d = _vec(20e3, 0.25, 10.0)  # demo data
     x2 = _vec(100.0, 402.0, 90.0, 399.0)  # demo data: an arbitrary off-equilibrium state
     dx = np.empty(4)
-    two_stage_lc.derivs(0.0, _pack(two_stage_lc, TWO), x2, _vec(u_cmd), d, dx)
+    dx[:] = two_stage_lc.derivs(0.0, _pack(two_stage_lc, TWO), x2, _vec(u_cmd), d)
     np.testing.assert_allclose(dx, _two_stage_rhs(0.0, x2, u_applied, *d, TWO), rtol=1e-12)
 
     x1 = _vec(100.0, 399.0)
     dx = np.empty(2)
-    single_lc.derivs(0.0, _pack(single_lc, ONE), x1, _vec(u_cmd), d, dx)
+    dx[:] = single_lc.derivs(0.0, _pack(single_lc, ONE), x1, _vec(u_cmd), d)
     np.testing.assert_allclose(dx, _single_rhs(0.0, x1, u_applied, *d, ONE), rtol=1e-12)
 
 
@@ -289,7 +289,7 @@ def test_two_stage_equilibrium_and_eigenvalues(P, i_eq, v1_eq, u_eq, expected):
     # dx/dt = 0 at the equilibrium with the worked u, to rounding: each row's terms are of
     # size |u|/L1, |i|/C1, |v1|/L2, |i|/C2, so allow 16 eps of those.
     dx = np.full(4, np.nan)
-    two_stage_lc.derivs(0.0, p, x0, u, d, dx)
+    dx[:] = two_stage_lc.derivs(0.0, p, x0, u, d)
     scale = np.array([u_eq / c["L1"], max(i_eq, 1.0) / c["C1"], v1_eq / c["L2"],
                       max(i_eq, 1.0) / c["C2"]])
     assert np.all(np.abs(dx) <= 16 * np.finfo(float).eps * scale), dx
@@ -322,7 +322,7 @@ def test_single_stage_eigenvalues(R, expected):
     np.testing.assert_allclose(x0, [250.0, V0], rtol=1e-12)
     u = _vec(V0 + R * 250.0)
     dx = np.full(2, np.nan)
-    single_lc.derivs(0.0, p, x0, u, d, dx)
+    dx[:] = single_lc.derivs(0.0, p, x0, u, d)
     assert np.all(np.abs(dx) <= 16 * np.finfo(float).eps * np.array([u[0] / c["L"], 250.0 / c["C"]]))
 
     J_fd = _fd_jacobian(single_lc.derivs, p, x0, u, d)
@@ -387,14 +387,14 @@ def test_energy_balance():
         d = _vec(rng.uniform(-50e3, 100e3), rng.uniform(0.0, 1.0), rng.uniform(-50.0, 50.0))
         i_ld = _i_load_ref(v2, *d, TWO["v_load_min"])
 
-        two_stage_lc.derivs(0.0, p2, _vec(i1, v1, i2, v2), _vec(u), d, dx2)
+        dx2[:] = two_stage_lc.derivs(0.0, p2, _vec(i1, v1, i2, v2), _vec(u), d)
         stored = (TWO["L1"] * i1 * dx2[0] + TWO["C1"] * v1 * dx2[1]
                   + TWO["L2"] * i2 * dx2[2] + TWO["C2"] * v2 * dx2[3])
         balance = u * i1 - TWO["R1"] * i1 ** 2 - TWO["R2"] * i2 ** 2 - v2 * i_ld
         terms = abs(u * i1) + TWO["R1"] * i1 ** 2 + TWO["R2"] * i2 ** 2 + abs(v2 * i_ld)
         assert stored == pytest.approx(balance, abs=1e-10 * terms)
 
-        single_lc.derivs(0.0, p1, _vec(i1, v2), _vec(u), d, dx1)
+        dx1[:] = single_lc.derivs(0.0, p1, _vec(i1, v2), _vec(u), d)
         stored = ONE["L"] * i1 * dx1[0] + ONE["C"] * v2 * dx1[1]
         balance = u * i1 - ONE["R"] * i1 ** 2 - v2 * i_ld
         terms = abs(u * i1) + ONE["R"] * i1 ** 2 + abs(v2 * i_ld)
@@ -437,7 +437,7 @@ def test_two_stage_equilibrium_without_jit(tmp_path):
         x = np.asarray(m.DECLARATION.equilibrium(c, 400.0, d), dtype=np.float64)
         assert np.allclose(x, [250.0, 402.5, 250.0, 400.0], rtol=1e-12), x
         dx = np.full(4, np.nan)
-        m.derivs(0.0, p, x, np.array([405.0]), d, dx)
+        dx[:] = m.derivs(0.0, p, x, np.array([405.0]), d)
         scale = np.array([405.0 / c["L1"], 250.0 / c["C1"], 402.5 / c["L2"], 250.0 / c["C2"]])
         assert np.all(np.abs(dx) <= 16 * np.finfo(float).eps * scale), dx
         print("ok")
