@@ -16,7 +16,11 @@ def overview_png(run: Run, dest: Path) -> Path:
 
     t = run.time
     s = run.signals
-    fig, ax = plt.subplots(4, 1, figsize=(9, 9), sharex=True, constrained_layout=True)
+    fig = plt.figure(figsize=(9, 11), constrained_layout=True)
+    grid = fig.add_gridspec(5, 1, height_ratios=[1, 1, 1, 1, 1.1])
+    ax = [fig.add_subplot(grid[0])]
+    ax += [fig.add_subplot(grid[i], sharex=ax[0]) for i in range(1, 4)]
+    zoom = fig.add_subplot(grid[4])
     ax[0].plot(t, s["v_ref"], lw=1.6, color="0.65", label="v_ref (shaped)")
     if "v_ref_raw" in s:
         ax[0].plot(t, s["v_ref_raw"], lw=0.8, ls=":", color="0.3", label="v_ref_raw")
@@ -38,6 +42,20 @@ def overview_png(run: Run, dest: Path) -> Path:
     ax[3].set_ylabel("current [A]")
     ax[3].set_xlabel("time [s]")
     ax[3].legend(loc="best", fontsize=8)
+    # zoom on the largest tracking error: the transient a reviewer wants to see
+    err = np.abs(s["v_ref"] - s["v_out"])
+    if t.size > 1 and np.isfinite(err).any():
+        j = int(np.nanargmax(err))
+        half = max(40, int(round(3e-3 / max(t[1] - t[0], 1e-12))))
+        k = slice(max(0, j - half), min(t.size, j + 2 * half))
+        zoom.plot(t[k] * 1e3, s["v_ref"][k], lw=1.6, color="0.65", label="v_ref")
+        zoom.plot(t[k] * 1e3, s["v_out"][k], lw=0.9, color="tab:blue", label="v_out")
+        zoom.set_xlabel("time [ms]")
+        zoom.set_ylabel("voltage [V]")
+        zoom.set_title(f"zoom on the largest |v_ref - v_out| = {err[j]:.3g} V at {t[j]:.6g} s",
+                       fontsize=9)
+        zoom.legend(loc="best", fontsize=8)
+        zoom.grid(True, lw=0.3)
     word = s.get("interlock_word")
     if word is not None:
         latched = np.flatnonzero(word.astype(np.int64) & (1 << 50))
