@@ -34,7 +34,7 @@ class _Progress:
         self.t0 = time.perf_counter()
         self.bar = None
         self.task = None
-        self.last_line = 0.0
+        self.last_line = float("-inf")
 
     def __call__(self, done: int, total: int) -> None:
         el = time.perf_counter() - self.t0
