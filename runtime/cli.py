@@ -124,7 +124,10 @@ def _run(console, plain, scenario_path: Path, out: str | None, overwrite: bool, 
 
 
 def _literal(text: str):
-    import tomllib
+    try:
+        import tomllib
+    except ModuleNotFoundError:  # Python 3.10
+        import tomli as tomllib
     try:
         return tomllib.loads(f"v = {text}")["v"]
     except tomllib.TOMLDecodeError:
