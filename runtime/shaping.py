@@ -118,6 +118,11 @@ def shape_step(ad, g1, g2, cr, dr, slew, ts, z, s, zt, w_raw, r):
         v = zt[i]
         z[i] = v if not (-1e-200 < v < 1e-200) else 0.0
     s[0] = s_now
+    if n >= 5:
+        # the first five states are the value and its four derivatives (cr = [I 0], dr = 0)
+        for k in range(5):
+            r[k] = z[k]
+        return
     for k in range(5):
         acc = dr[k] * s_now
         for j in range(n):
