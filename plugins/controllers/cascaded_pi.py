@@ -23,11 +23,14 @@ negatively damped. A plain cascaded PI on i_L1 and v_out then leaves the second 
 current i_L2 - i_out into the current reference and of the L2 voltage v_C1 - v_out into the
 converter voltage, act as virtual resistances. The default gains were chosen by minimising the
 largest closed-loop eigenvalue magnitude of the sampled (ZOH, Ts = 50 us) linearised loop over
-300-500 V and -40..80 kW on the demo plant: it is 0.90 there, and the loop loses stability
-below about 250 V at 100 kW or 200 V at 50 kW (a linear controller far from its design point).
+300-500 V and -40..80 kW on the demo plant: it is 0.89-0.92 there, and the loop loses
+stability below about 250 V at 100 kW or about 180 V at 50 kW (a linear controller far from its
+design point).
 
 Anti-windup: conditional integration (an integrator holds while its output is clamped and its
-error pushes further into the clamp). Bumpless start: ``init`` presets both integrators so that
+error pushes further into the clamp). In the cascade the outer integrator also holds whenever
+the inner one holds: while the converter voltage is clamped, a larger current reference could
+not be followed anyway. Bumpless start: ``init`` presets both integrators so that
 the first output equals the steady-state command at the measured operating point.
 
 On the single-stage plant the reads fall back: v_C1 -> v_out and i_L2 -> i_L1 (there is no second
@@ -54,12 +57,15 @@ def _build(values, ctx):
     plant = ctx.plant
     # the series resistance seen by the inner loop, for the bumpless preset of its integrator
     r_series = float(plant.get("R1", plant.get("R", 0.0)))
-    u_max = values["u_max"]
+    u_max, u_min = values["u_max"], values["u_min"]
     if "V_dc" in plant:
+        # the plant clamps the converter voltage to [0, V_dc]: clamp the command the same way,
+        # or the integrators would wind up against a limit the controller cannot see
         u_max = min(u_max, float(plant["V_dc"]))
+        u_min = max(u_min, 0.0)
     return np.array([ctx.Ts, values["Kp_v"], values["Ki_v"], values["Kp_i"], values["Ki_i"],
                      values["K_vd"], values["K_ic"], values["C_ff"], values["I_max"],
-                     values["u_min"], u_max, r_series])
+                     u_min, u_max, r_series])
 
 
 DECLARATION = Declaration(
