@@ -275,14 +275,25 @@ def test_current_reference_clamped_at_i_max():
     assert u < plant["V_dc"]
     assert xc[0] == XC0[0]
     assert xc[1] == pytest.approx(XC0[1] + g["Ki_i"] * TS * ei, rel=1e-12)
-    # the same on the negative side
+    # the same on the negative side; a negative command is only left unclamped by a plant
+    # without a DC-link clamp (with V_dc the command is clamped to [0, V_dc] like the plant)
     ei = -300.0 - y[2]
-    u, xc, _ = _run_step(_pack_ctrl({"I_max": 300.0, "u_min": -1e4}, plant=plant), XC0, y,
+    no_clamp = {k: v for k, v in plant.items() if k != "V_dc"}
+    u, xc, _ = _run_step(_pack_ctrl({"I_max": 300.0, "u_min": -1e4}, plant=no_clamp), XC0, y,
                          _ref(200.0))
     assert u == pytest.approx(y[3] + g["Kp_i"] * ei + XC0[1] - g["K_vd"] * (y[3] - y[0]),
                               rel=1e-12)
     assert xc[0] == XC0[0]
     assert xc[1] == pytest.approx(XC0[1] + g["Ki_i"] * TS * ei, rel=1e-12)
+
+
+def test_negative_u_min_is_raised_to_the_plants_zero_clamp():
+    """The plant clamps the converter voltage at 0 V, so the command is clamped there too and
+    the inner integrator holds instead of winding up against a clamp it cannot see."""
+    p = _pack_ctrl({"u_min": -1e4})
+    u, xc, _ = _run_step(p, XC0, Y400, _ref(200.0))
+    assert u == 0.0
+    assert xc[1] == XC0[1]
 
 
 def test_integrators_run_when_error_leads_out_of_the_clamp():
