@@ -83,6 +83,16 @@ class TableParam:
 
 
 @dataclass(frozen=True)
+class ChoiceParam:
+    """A parameter that is one of a few named options (a design method, a variant)."""
+
+    name: str
+    choices: tuple[str, ...]
+    default: str
+    description: str
+
+
+@dataclass(frozen=True)
 class Signal:
     """A named signal with its SI unit."""
 
@@ -99,6 +109,11 @@ class BuildContext:
     plant: Mapping[str, Any] = field(default_factory=dict)
     plant_name: str = ""
     plant_outputs: tuple[str, ...] = ()
+    #: names of the plant's states, in the order of its ``derivs``
+    plant_states: tuple[str, ...] = ()
+    #: the plant plugin module (``derivs``, ``outputs``, ``DECLARATION``): for design work such
+    #: as linearising the plant at an operating point in a controller's build hook
+    plant_module: Any = None
 
 
 @dataclass
@@ -108,7 +123,7 @@ class Declaration:
     kind: str
     name: str
     summary: str
-    params: Sequence[Param | TableParam]
+    params: Sequence[Param | TableParam | ChoiceParam]
     states: Sequence[Signal]
     reads: Sequence[str] = ()
     outputs: Sequence[Signal] = ()
@@ -125,7 +140,7 @@ class Declaration:
         if self.kind not in KINDS:
             raise ValueError(f"plugin {self.name!r}: kind {self.kind!r} is not one of {KINDS}")
 
-    def param(self, name: str) -> Param | TableParam:
+    def param(self, name: str) -> Param | TableParam | ChoiceParam:
         for p in self.params:
             if p.name == name:
                 return p
@@ -157,6 +172,9 @@ class Declaration:
             if isinstance(q, Param):
                 params.append(dict(name=q.name, unit=q.unit, default=q.default,
                                    min=q.bounds[0], max=q.bounds[1], description=q.description))
+            elif isinstance(q, ChoiceParam):
+                params.append(dict(name=q.name, unit="-", default=q.default, min=None, max=None,
+                                   description=f"{q.description} (one of: {', '.join(q.choices)})"))
             else:
                 params.append(dict(name=q.name, unit=" | ".join(f"{c} [{u}]" for c, u in q.columns),
                                    default=[list(r) for r in q.default], min=None, max=None,

@@ -217,7 +217,8 @@ def _plugins_table(console, items: list[dict]) -> None:
             t.add_column(col)
         for p in it["params"]:
             dflt = p["default"]
-            dtxt = f"{dflt:g}" if isinstance(dflt, (int, float)) else f"{len(dflt)} rows"
+            dtxt = (f"{dflt:g}" if isinstance(dflt, (int, float)) else dflt if isinstance(dflt, str)
+                    else f"{len(dflt)} rows")
             t.add_row(escape(p["name"]), escape(p["unit"]), dtxt, "" if p["min"] is None else f"{p['min']:g}",
                       "" if p["max"] is None else f"{p['max']:g}", escape(p["description"]))
         console.print(t)

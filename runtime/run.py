@@ -117,7 +117,9 @@ def prepare(sc: Scenario) -> Prepared:
     pdecl = plant.plugin.declaration
     outputs = [s.name for s in pdecl.outputs]
     ctx = BuildContext(Ts=sc.Ts, plant=dict(plant.values), plant_name=pdecl.name,
-                       plant_outputs=tuple(outputs))
+                       plant_outputs=tuple(outputs),
+                       plant_states=tuple(s.name for s in pdecl.states),
+                       plant_module=plant.plugin.module)
     pp = pdecl.pack(plant.values, ctx)
     pc = ctrl.plugin.declaration.pack(ctrl.values, ctx)
     pr = ref.plugin.declaration.pack(ref.values, ctx)

@@ -22,7 +22,7 @@ try:
 except ModuleNotFoundError:  # Python 3.10
     import tomli as tomllib
 
-from hilrig.plugins.base import Param, TableParam
+from hilrig.plugins.base import ChoiceParam, Param, TableParam
 from hilrig.safety.interlocks import Interlock
 
 from . import registry
@@ -268,6 +268,12 @@ def _plugin(cx, raw, key, default_name) -> PluginChoice:
         where = f"{key}.{k}"
         if isinstance(q, Param):
             values[k] = _quantity(cx, where, v, q.unit, q.bounds, lower_open=q.lower_open)
+        elif isinstance(q, ChoiceParam):
+            if v not in q.choices:
+                close = difflib.get_close_matches(str(v), q.choices, n=2)
+                hint = f"; did you mean {', '.join(repr(c) for c in close)}?" if close else ""
+                raise cx.fail(where, f" = {v!r} is not one of {', '.join(repr(c) for c in q.choices)}{hint}")
+            values[k] = v
         else:
             values[k] = _table_param(cx, where, v, q)
     return PluginChoice(plugin=plugin, values=values)

@@ -8,6 +8,8 @@ from __future__ import annotations
 
 from typing import Iterable
 
+from hilrig.plugins.base import Param, TableParam
+
 #: ISO 6469-3 voltage class B begins above 60 V DC
 CLASS_B_DC_V = 60.0
 
@@ -41,10 +43,9 @@ def scenario_voltages(sc) -> list[tuple[str, float]]:
     for choice, key in ((sc.plant, "plant"), (sc.controller, "controller"), (sc.reference, "reference")):
         decl = choice.plugin.declaration
         for p in decl.params:
-            unit = getattr(p, "unit", None)
-            if unit == "V":
+            if isinstance(p, Param) and p.unit == "V":
                 out.append((f"{key}.{p.name}", choice.values[p.name]))
-            elif unit is None:  # table: any column in volts
+            elif isinstance(p, TableParam):  # any column in volts
                 for j, (col, cu) in enumerate(p.columns):
                     if cu == "V":
                         vals = [row[j] for row in choice.values[p.name]]
