@@ -7,6 +7,7 @@ from __future__ import annotations
 
 import argparse
 import json
+import math
 import sys
 import time
 from importlib.resources import files
@@ -28,7 +29,8 @@ def _demo_path() -> Path:
 class _Progress:
     """A progress bar that appears only when the run will take longer than about a second."""
 
-    def __init__(self, console, plain: bool):
+    def __init__(self, console, plain: bool, unit: str = "ticks"):
+        self.unit = unit
         self.console = console
         self.plain = plain
         self.t0 = time.perf_counter()
@@ -52,7 +54,7 @@ class _Progress:
             self.bar.update(self.task, completed=done)
         elif self.bar is False and time.perf_counter() - self.last_line > 2.0:
             self.last_line = time.perf_counter()
-            self.console.print(f"progress: {done}/{total} ticks ({100 * done / total:.0f} %)")
+            self.console.print(f"progress: {done}/{total} {self.unit} ({100 * done / total:.0f} %)")
 
     def close(self):
         if self.bar:
@@ -101,13 +103,7 @@ def _run(console, plain, scenario_path: Path, out: str | None, overwrite: bool, 
     from hilrig.runtime.run import run_scenario
     from hilrig.runtime.scenario import load_scenario
 
-    overrides = {}
-    for item in sets:
-        if "=" not in item:
-            raise ValueError(f"--set {item!r}: write KEY=VALUE, e.g. --set timing.duration='0.5 s'")
-        k, v = item.split("=", 1)
-        overrides[k.strip()] = _literal(v.strip())
-    sc = load_scenario(scenario_path, overrides=overrides)
+    sc = load_scenario(scenario_path, overrides=_overrides(sets))
     _show_caution(console, sc)
     prog = _Progress(console, plain)
     try:
@@ -121,6 +117,137 @@ def _run(console, plain, scenario_path: Path, out: str | None, overwrite: bool, 
         console.print("(matplotlib is not installed: no overview.png)")
     _summary_table(console, res.summary, res.folder)
     return res
+
+
+def _overrides(sets: list[str]) -> dict:
+    out = {}
+    for item in sets:
+        if "=" not in item:
+            raise ValueError(f"--set {item!r}: write KEY=VALUE, e.g. --set timing.duration='0.5 s'")
+        k, v = item.split("=", 1)
+        out[k.strip()] = _literal(v.strip())
+    return out
+
+
+def _compare(console, args) -> None:
+    import datetime as _dt
+    from rich.markup import escape
+    from rich.table import Table
+
+    from hilrig.runtime.compare import compare, json_view
+    from hilrig.runtime.scenario import load_scenario
+
+    names = [c.strip() for c in args.controllers.split(",") if c.strip()]
+    out = Path(args.out) if args.out else Path("runs") / (
+        _dt.datetime.now().strftime("%Y%m%d-%H%M%S") + "-compare")
+    overrides = _overrides(args.set)
+    if not args.json:
+        _show_caution(console, load_scenario(args.scenario, overrides=overrides))
+    results = compare(Path(args.scenario), names, out, overwrite=args.overwrite,
+                      overrides=overrides,
+                      notice=None if args.json else (lambda m: console.print(m)),
+                      on_run=None if args.json else (lambda n: console.print(f"running {n} ...")))
+    if args.json:
+        print(json.dumps(json_view(results), indent=2))
+        return
+
+    def f(v, scale=1.0, fmt="{:.3g}"):
+        return "-" if v is None or (isinstance(v, float) and not math.isfinite(v)) else fmt.format(v * scale)
+
+    from rich import box
+    cols = [("rise [ms]", "rise_time_s", 1e3, "{:.3g}"), ("settle [ms]", "settling_time_s", 1e3, "{:.3g}"),
+            ("overshoot [%]", "overshoot_pct", 1.0, "{:.3g}"), ("ss error [V]", "steady_state_error_V", 1.0, "{:.2g}"),
+            ("IAE [V s]", "iae_Vs", 1.0, "{:.3g}"), ("RMS e [V]", "rms_error_V", 1.0, "{:.3g}"),
+            ("max |e| [V]", "max_abs_error_V", 1.0, "{:.3g}"), ("saturated [ms]", "saturation_time_s", 1e3, "{:.3g}"),
+            ("trips", "trips", 1.0, "{:.0f}"), ("loop [ns/tick]", "compute_ns_per_tick", 1.0, "{:.0f}")]
+    from hilrig.runtime.compare import folder_name
+    labels = {name: folder_name(name) for name in results}
+
+    def outcome(r):
+        return "ok" if r["outcome"] == "completed" else r["outcome"]
+
+    title = escape(f"controller comparison: {args.scenario}")
+    if console.width >= 110:  # rows: controllers
+        t = Table(title=title, title_justify="left", header_style="bold", box=box.SIMPLE_HEAD)
+        t.add_column("controller", no_wrap=True)
+        for head, *_ in cols:
+            t.add_column(escape(head.replace(" [", "\n[")), justify="right")
+        t.add_column("outcome")
+        for name, r in results.items():
+            t.add_row(escape(labels[name]), *[f(r[k], sc, fm) for _, k, sc, fm in cols], escape(outcome(r)))
+    else:  # narrow terminal: rows are the metrics, one column per controller
+        t = Table(title=title, title_justify="left", header_style="bold", box=box.SIMPLE_HEAD)
+        t.add_column("metric", no_wrap=True)
+        for name in results:
+            t.add_column(escape(labels[name]), justify="right")
+        for head, k, sc, fm in cols:
+            t.add_row(escape(head), *[f(results[n][k], sc, fm) for n in results])
+        t.add_row("outcome", *[escape(outcome(results[n])) for n in results])
+    console.print(t)
+    console.print("rise, settle, overshoot and ss error: of the largest reference step of the run "
+                  "(10-90 % rise, 2 % settling band). Plots and run folders: " + escape(str(out)))
+
+
+def _envelope(console, args, plain: bool) -> None:
+    import datetime as _dt
+
+    from rich.markup import escape
+
+    from hilrig.runtime import envelope as env
+    from hilrig.runtime.scenario import load_scenario
+    from hilrig.runtime.units import parse_quantity
+
+    names = [c.strip() for c in args.controllers.split(",") if c.strip()]
+    if not names:
+        raise ValueError("--controllers: name at least one controller")
+    grid = env.Grid.parse(args.v_range, args.p_range, args.grid)
+    if not 0.0 < args.tolerance < 100.0:
+        raise ValueError(f"--tolerance {args.tolerance:g} %: expected a value in (0, 100)")
+    path = Path(args.scenario)
+    sc = load_scenario(path)  # validates the file once, with its own messages
+    for c in names:  # and every candidate before anything runs
+        load_scenario(path, overrides=env._controller_override(sc.text, c))
+    v_start = parse_quantity(args.v_start, "V", "--v-start") if args.v_start else None
+    out = Path(args.out) if args.out else Path("runs") / (
+        _dt.datetime.now().strftime("%Y%m%d-%H%M%S") + "-envelope")
+    if (out / "envelope.csv").exists():
+        raise FileExistsError(f"{out / 'envelope.csv'} exists; choose another --out (nothing was overwritten)")
+    if not args.json:
+        _show_caution(console, sc)
+        console.print(f"{len(names)} controller(s) x {len(grid.v)} x {len(grid.p)} operating points"
+                      + (f" on the Dask cluster at {args.cluster}" if args.cluster else " on local processes"))
+    tasks = env.tasks_for(sc.text, path.name, names, grid, tol_pct=args.tolerance, v_start=v_start)
+    if not args.cluster:
+        if not args.json:
+            console.print("preparing the compiled loops (a first compile takes a few seconds per controller) ...")
+        env.warm_up(tasks)
+    prog = None if args.json else _Progress(console, plain, unit="grid rows")
+    t0 = time.perf_counter()
+    try:
+        results = env.run_envelope(tasks, cluster=args.cluster, workers=args.workers, progress=prog)
+    finally:
+        if prog:
+            prog.close()
+    wall = time.perf_counter() - t0
+    rows = env.table(tasks, results)
+    out.mkdir(parents=True, exist_ok=True)
+    env.write_csv(rows, out / "envelope.csv")
+    try:
+        env.heat_map_png(rows, out / "envelope.png", title=f"{sc.title or path.name}: tracking within "
+                         f"{args.tolerance:g} % (SIL, {sc.plant.plugin.name})")
+    except ImportError:
+        pass
+    cnt = env.counts(rows)
+    if args.json:
+        print(json.dumps(cnt, indent=2))
+        return
+    for c in names:
+        console.print(f"[bold]{escape(c)}[/bold]  " + "  ".join(f"{o} {n}" for o, n in cnt[c].items()))
+        for line in env.text_map(rows, c):
+            console.print(escape(line), highlight=False)
+    console.print("map: " + "  ".join(f"{sym} {o}" for o, sym in env.SYMBOLS.items()))
+    console.print(f"{len(rows)} points in {wall:.1f} s; wrote {escape(str(out / 'envelope.csv'))} "
+                  f"and {escape(str(out / 'envelope.png'))}")
 
 
 def _literal(text: str):
@@ -150,6 +277,29 @@ def main(argv: list[str] | None = None) -> int:
     p.add_argument("--overwrite", action="store_true", help="replace a recording already in --out")
     p.add_argument("--set", action="append", default=[], metavar="KEY=VALUE",
                    help="override a scenario value, e.g. --set 'timing.duration=\"0.2 s\"' (repeatable)")
+    p = sub.add_parser("compare", help="run one scenario with several controllers side by side")
+    p.add_argument("scenario", help="scenario TOML file")
+    p.add_argument("--controllers", required=True, metavar="A,B,...",
+                   help="comma-separated controller plugin names or .py paths")
+    p.add_argument("--out", help="folder for the candidates' run folders and plots (default: runs/<time>-compare)")
+    p.add_argument("--json", action="store_true", help="print the metrics as JSON")
+    p.add_argument("--overwrite", action="store_true", help="replace recordings already in --out")
+    p.add_argument("--set", action="append", default=[], metavar="KEY=VALUE",
+                   help="override a scenario value for every candidate (repeatable)")
+    p = sub.add_parser("envelope", help="map where each controller keeps tracking (voltage x load power)")
+    p.add_argument("scenario", help="scenario TOML file (plant, controller settings, shaping, interlocks, timing)")
+    p.add_argument("--controllers", required=True, metavar="A,B,...",
+                   help="comma-separated controller plugin names or .py paths")
+    p.add_argument("--v-range", default="50:600", metavar="LOW:HIGH", help="target voltages [V] (default 50:600)")
+    p.add_argument("--p-range", default="0:150e3", metavar="LOW:HIGH", help="constant load powers [W] (default 0:150e3)")
+    p.add_argument("--grid", default="25x25", metavar="NVxNP", help="points per axis (default 25x25)")
+    p.add_argument("--tolerance", type=float, default=2.0, metavar="PCT",
+                   help="tracking band in %% of the target voltage (default 2)")
+    p.add_argument("--v-start", metavar="V", help="start voltage (default: the scenario's start)")
+    p.add_argument("--out", help="folder for envelope.csv and the heat map (default: runs/<time>-envelope)")
+    p.add_argument("--json", action="store_true", help="print per-controller outcome counts as JSON")
+    p.add_argument("--cluster", metavar="ADDRESS", help="run on a Dask distributed scheduler instead of local processes")
+    p.add_argument("--workers", type=int, help="local worker processes (default: all cores)")
     p = sub.add_parser("report", help="summarise a run folder")
     p.add_argument("run", help="run folder")
     p.add_argument("--json", action="store_true", help="print summary.json")
@@ -171,6 +321,10 @@ def main(argv: list[str] | None = None) -> int:
             _run(console, plain, _demo_path(), args.out, args.overwrite, [])
         elif args.cmd == "run":
             _run(console, plain, Path(args.scenario), args.out, args.overwrite, args.set)
+        elif args.cmd == "compare":
+            _compare(console, args)
+        elif args.cmd == "envelope":
+            _envelope(console, args, plain)
         elif args.cmd == "report":
             from hilrig.runtime.recording import open_run
             run = open_run(args.run)

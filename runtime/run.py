@@ -21,7 +21,7 @@ from hilrig.safety.interlocks import (L_CAUSE, L_TICK, L_TIME, L_TRIPPED, L_VALU
 from . import loop as loopgen
 from . import shaping
 from .errors import ScenarioError
-from .metrics import TrackingMetrics
+from .metrics import TrackingMetrics, step_metrics
 from .recording import SCENARIO, SUMMARY, RunWriter, SignalSpec
 from .scenario import PluginChoice, Scenario
 
@@ -273,6 +273,11 @@ def run_scenario(sc: Scenario, folder: Path | None = None, *, overwrite: bool = 
                 "tick": int(latch[L_TICK]), "time_s": float(latch[L_TIME]),
                 "value": float(latch[L_VALUE])}
         events.insert(0, {"event": "trip", **trip})
+    # per-step metrics need whole signals: read the two back from the flushed recording
+    steps = step_metrics(writer.time[()], writer.ds[i_vout][()],
+                         writer.ds[names.index("v_ref_raw")][()])
+    result = metrics.result()
+    result["trips"] = 1 if trip else 0
     summary = {
         "title": sc.title, "demo_data": sc.demo_data, "mode": sc.mode, "seed": sc.seed,
         "plant": sc.plant.plugin.name, "controller": sc.controller.plugin.name,
@@ -283,7 +288,8 @@ def run_scenario(sc: Scenario, folder: Path | None = None, *, overwrite: bool = 
         "end_event": loopgen.EVENT_TEXT[ev] if ev else None,
         "events": events, "trip": trip,
         "v_out_start_V": prep.v0,
-        "metrics": metrics.result(),
+        "metrics": result,
+        "steps": [st.as_dict() for st in steps],
         "timing": {
             "compile_or_load_s": t_compile, "compiled_now": compiled,
             "process_start_to_first_tick_s": startup,

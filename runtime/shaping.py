@@ -23,6 +23,7 @@ G. F. Franklin, J. D. Powell, M. L. Workman, *Digital Control of Dynamic Systems
 """
 from __future__ import annotations
 
+from functools import lru_cache
 from math import comb
 
 import numpy as np
@@ -30,6 +31,7 @@ from numba import njit
 from scipy.linalg import expm
 
 
+@lru_cache(maxsize=64)
 def design(order: int, pole: float, ts: float):
     """Return (ad, g1, g2, cr, dr) for :func:`shape_step`.
 
@@ -77,8 +79,11 @@ def design(order: int, pole: float, ts: float):
     if n == 4:
         cr[4, :] = a[-1, :]
         dr[4] = b[-1]
-    return (np.ascontiguousarray(ad), np.ascontiguousarray(g1), np.ascontiguousarray(g2),
-            np.ascontiguousarray(cr), dr)
+    out = (np.ascontiguousarray(ad), np.ascontiguousarray(g1), np.ascontiguousarray(g2),
+           np.ascontiguousarray(cr), dr)
+    for a in out:  # shared between runs through the cache: never written
+        a.flags.writeable = False
+    return out
 
 
 @njit(cache=True)

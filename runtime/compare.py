@@ -1,0 +1,129 @@
+"""Side-by-side trial of candidate controllers on one scenario.
+
+Each candidate runs the same scenario (same plant, load, reference, interlocks, seed) with only
+the controller replaced; each gets its own run folder ``OUT/<controller>/``. The comparison
+reports, per candidate, the characteristics of the largest reference step (see
+:mod:`hilrig.runtime.metrics`), the whole-run tracking metrics, trips and the loop's compute
+time per tick, and draws one figure per quantity with every candidate overlaid.
+"""
+from __future__ import annotations
+
+import json
+import math
+import re
+from pathlib import Path
+from typing import Any, Callable
+
+from .metrics import StepMetrics, largest_step
+from .recording import open_run
+from .run import run_scenario
+from .scenario import load_scenario
+
+JSON_KEYS = ("rise_time_s", "settling_time_s", "overshoot_pct", "steady_state_error_V", "iae_Vs",
+             "rms_error_V", "max_abs_error_V", "saturation_time_s", "trips", "compute_ns_per_tick")
+
+
+def folder_name(candidate: str) -> str:
+    """A file-system-safe folder name for a candidate (plugin name or a .py path's stem)."""
+    stem = Path(candidate).stem if candidate.endswith(".py") else candidate
+    return re.sub(r"[^A-Za-z0-9_.-]+", "_", stem)
+
+
+def compare(scenario: Path, candidates: list[str], out: Path, *, overwrite: bool = False,
+            overrides: dict[str, Any] | None = None,
+            notice: Callable[[str], None] | None = None,
+            on_run: Callable[[str], None] | None = None) -> dict[str, dict[str, Any]]:
+    """Run every candidate; return {controller: metrics} and write plots and comparison.json."""
+    if not candidates:
+        raise ValueError("--controllers: name at least one controller, e.g. cascaded_pi,flatness")
+    if len(set(candidates)) != len(candidates):
+        raise ValueError(f"--controllers: {','.join(candidates)} names a controller twice")
+    out = Path(out)
+    base = load_scenario(scenario, overrides=overrides)
+    # check every candidate (and every target folder) before running any
+    scenarios = {}
+    for name in candidates:
+        ov = dict(overrides or {})
+        if name != base.controller.plugin.name and name != base.controller.plugin.origin[1]:
+            # the scenario's controller parameters belong to its own controller: others run
+            # with their defaults
+            ov["controller"] = {"plugin": name}
+        scenarios[name] = load_scenario(scenario, overrides=ov)
+        folder = out / folder_name(name)
+        if (folder / "recording.h5").exists() and not overwrite:
+            raise FileExistsError(f"{folder} already holds a recording; choose another --out "
+                                  f"(nothing was overwritten)")
+    results: dict[str, dict[str, Any]] = {}
+    for name, sc in scenarios.items():
+        if on_run:
+            on_run(name)
+        res = run_scenario(sc, out / folder_name(name), overwrite=overwrite, notice=notice)
+        s = res.summary
+        steps = [StepMetrics(**d) for d in s["steps"]]
+        big = largest_step(steps)
+        m = s["metrics"]
+        results[name] = {
+            "rise_time_s": big.rise_time_s if big else math.nan,
+            "settling_time_s": big.settling_time_s if big else math.nan,
+            "overshoot_pct": big.overshoot_pct if big else math.nan,
+            "steady_state_error_V": big.steady_state_error_V if big else math.nan,
+            "iae_Vs": m["iae_Vs"], "rms_error_V": m["rms_error_V"],
+            "max_abs_error_V": m["max_abs_error_V"], "saturation_time_s": m["saturation_time_s"],
+            "trips": m["trips"],
+            "compute_ns_per_tick": s["timing"]["loop_ns_per_tick"],
+            "outcome": "completed" if s["completed"] else (s["end_event"] or "interrupted"),
+            "step": big.as_dict() if big else None,
+            "folder": str(res.folder),
+        }
+    (out / "comparison.json").write_text(json.dumps(results, indent=2) + "\n")
+    try:
+        plot_comparison(out, results)
+    except ImportError:
+        pass
+    return results
+
+
+def json_view(results: dict[str, dict[str, Any]]) -> dict[str, dict[str, Any]]:
+    """The documented ``--json`` shape: only the metric keys, NaN as null."""
+    def clean(v):
+        return None if isinstance(v, float) and not math.isfinite(v) else v
+    return {k: {key: clean(r[key]) for key in JSON_KEYS} for k, r in results.items()}
+
+
+def plot_comparison(out: Path, results: dict[str, dict[str, Any]]) -> list[Path]:
+    """One PNG per quantity (v_out and reference, error, command u), all candidates overlaid."""
+    import matplotlib
+    matplotlib.use("Agg")
+    import matplotlib.pyplot as plt
+
+    runs = {name: open_run(r["folder"]) for name, r in results.items()}
+    written = []
+    # a zoom window around the largest step when there is one, else the whole run
+    first = next(iter(results.values()))
+    window = None
+    if first["step"]:
+        t0 = first["step"]["t_step_s"]
+        window = (t0 - 0.002, t0 + 0.012)
+    specs = [("compare_v_out.png", "output voltage [V]", lambda r: r.signals["v_out"], True),
+             ("compare_error.png", "v_ref - v_out [V]", lambda r: r.signals["v_ref"] - r.signals["v_out"], False),
+             ("compare_u.png", "converter command u [V]", lambda r: r.signals["u"], False)]
+    for fname, ylabel, get, with_ref in specs:
+        fig, axes = plt.subplots(1, 2 if window else 1, figsize=(11 if window else 8, 4),
+                                 constrained_layout=True, squeeze=False)
+        for ax, win in zip(axes[0], ([None, window] if window else [None])):
+            if with_ref:
+                r0 = next(iter(runs.values()))
+                ax.plot(r0.time, r0.signals["v_ref"], color="0.6", lw=2.0, label="v_ref")
+            for name, run in runs.items():
+                ax.plot(run.time, get(run), lw=0.9, label=name)
+            if win:
+                ax.set_xlim(*win)
+                ax.set_title("around the largest reference step", fontsize=9)
+            ax.set_xlabel("time [s]")
+            ax.set_ylabel(ylabel)
+            ax.grid(True, lw=0.3)
+            ax.legend(fontsize=8, loc="best")
+        fig.savefig(out / fname, dpi=90)
+        plt.close(fig)
+        written.append(out / fname)
+    return written
