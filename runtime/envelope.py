@@ -4,8 +4,9 @@ For every operating point (target reference voltage V, constant load power P) th
 run in SIL with its plant, controller, shaping, interlocks and timing, but with
 
 - a constant-power load P from t = 0 (the device under test's demand),
-- a reference that starts at the scenario's start voltage and steps at ``t_step`` to V (the
-  shaping stage turns the step into a smooth, slew-limited transition),
+- a reference that starts at the scenario's start voltage and steps at ``t_step`` (5 ms, or
+  10 % of a shorter run) to V (the shaping stage turns the step into a smooth, slew-limited
+  transition),
 
 and the run is classified from its final part (the last 30 % of the run):
 
@@ -159,7 +160,7 @@ def run_row(task: Task) -> list[str]:
     from .run import _call, prepare
     sc, fn, profile = _base(task)
     n = sc.n_ticks
-    t_step = task.t_step if task.t_step is not None else 0.1 * sc.duration
+    t_step = task.t_step if task.t_step is not None else min(5e-3, 0.1 * sc.duration)
     out = []
     for p_load in task.p:
         v_start = task.v_start if task.v_start is not None else _start_voltage(sc)

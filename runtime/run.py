@@ -120,9 +120,19 @@ def prepare(sc: Scenario) -> Prepared:
                        plant_outputs=tuple(outputs),
                        plant_states=tuple(s.name for s in pdecl.states),
                        plant_module=plant.plugin.module)
-    pp = pdecl.pack(plant.values, ctx)
-    pc = ctrl.plugin.declaration.pack(ctrl.values, ctx)
-    pr = ref.plugin.declaration.pack(ref.values, ctx)
+    where = Path(sc.path).name if sc.path else "scenario"
+
+    def pack(key, choice):
+        try:
+            return choice.plugin.declaration.pack(choice.values, ctx)
+        except (ValueError, ArithmeticError, np.linalg.LinAlgError) as exc:
+            # a design step that fails (a pole count, an unstabilisable operating point) is a
+            # scenario mistake: name the file and the section
+            raise ScenarioError(f"{where}: [{key}] {choice.plugin.name}: {exc}") from None
+
+    pp = pack("plant", plant)
+    pc = pack("controller", ctrl)
+    pr = pack("reference", ref)
     iyc = _resolve_reads(ctrl, outputs)
     iyr = _resolve_reads(ref, outputs)
     n_xc = max(ctrl.plugin.declaration.state_count(ctrl.values), 1)

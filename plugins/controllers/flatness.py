@@ -67,26 +67,46 @@ at one voltage sees a different plant there; the law above cancels the load's no
 the current state, so the error dynamics stay those designed, as long as the limits below hold.
 
 Units: u, v_out, v_C1, v_ref, e [V]; i_L1, i_L2, i_out [A]; L [H]; C [F]; R [ohm]; P [W];
-p, p_I [rad/s]; :math:`a_k` [s^-(4-k)]; :math:`\\xi` [V s]; :math:`v_{ref}^{(k)}` [V/s^k].
+p, p_I [rad/s]; :math:`a_k` [s^-(n-k)] (s^-(n+1-k) with integral action), :math:`a_I`
+[s^-(n+1)]; :math:`\\xi` [V s]; :math:`v_{ref}^{(k)}` [V/s^k].
 
-Bumpless start: the runtime starts every run at an equilibrium. ``init`` presets
-:math:`\\xi` so that the first command equals the model's steady-state command
+Integral action (parameter ``pole_int``, default 0 = off). Off by default because with the
+nominal model and the measured load power the law has no steady-state offset, while the
+integral state stores the large error of any recovery (after the DC-link clamp, a load step)
+and returns it as overshoot. Errors in R1 or R2 (parameter ``model_R_scale``, or a real
+filter whose resistances are uncertain) leave an offset of a fraction of a volt per mohm at a
+few hundred amperes; turn it on (e.g. ``pole_int = 300`` rad/s, well below p) to remove it.
+:math:`\\xi` integrates only while :math:`|e|` is inside ``int_band`` [V] and u is not clamped
+in the direction the error pushes (conditional integration). While :math:`\\xi` is held, the
+loop runs on the first four coefficients of the 5th-order design, which are not those of
+:math:`(s + p)^4`: for p = 5000 rad/s, p_I = 300 rad/s the held loop's roots are
+-3425 +- j2135 and -6725 +- j1534 rad/s (damped, not the 4-fold real pole).
+
+Bumpless start: the runtime starts every run at an equilibrium. With integral action ``init``
+presets :math:`\\xi` so that the first command equals the model's steady-state command
 :math:`v_{C1} + R_1 i_{L1}` plus the reference and error terms
 :math:`L_1 C_1 L_2 C_2 (v_{ref}^{(4)} + \\sum_{k \\ge 1} a_k v_{ref}^{(k)} - a_0 e)`: the
-integrator absorbs derivative estimates that a mismatched model computes at rest. With the
-nominal model and a settled start it is 0. Without integral action it is 0.
-
-Anti-windup: conditional integration; :math:`\\xi` holds while u is clamped and the error pushes
-further into the clamp, and whenever e or the update is not finite.
+integrator absorbs the derivative estimates that a mismatched model computes at rest. With the
+nominal model and a settled start it is 0; without integral action it is 0 and, at a settled
+start, the first command is the steady-state command.
 
 Fault codes: ``step`` always returns 0. The low-voltage guard is a numerical safeguard, not a
-protection: the runtime's collapse check and the interlocks act on low voltage.
+protection: the runtime's collapse check and the interlocks act on low voltage. u is always
+finite and inside [0, V_dc] (a non-finite intermediate, e.g. from a NaN measurement, gives 0 V,
+the plant's own clamp; the protect stage trips on the NaN measurement itself).
 
 Limits of validity
 ------------------
-- The whole load is treated as a constant-power load. Resistive or constant-current parts
-  make the estimated power vary with voltage; at rest the law is still exact (q equals the
-  measured current), in transients the load derivatives are then approximate.
+- The whole load is treated as a constant-power load of constant power. Resistive or
+  constant-current parts make the estimated power vary with voltage; at rest the law is still
+  exact (q equals the measured current), in transients the load derivatives are then
+  approximate. A change of the load power is not in the model: a power ramp at the rate
+  :math:`\\dot P` [W/s] falsifies the estimate of :math:`y^{(2)}` by about
+  :math:`\\dot P / (v C_2)` and leaves, while it lasts, an error of the order of
+  :math:`a_2/a_0 \\cdot \\dot P/(v C_2) = 6 \\dot P / (v C_2 p^2)` [V]; a load step acts as an
+  initial error :math:`e^{(1)} = -\\Delta i_{out}/C_2` that the error dynamics remove at their
+  own pace (a dip of the order of :math:`\\Delta i_{out}/(C_2 p)` [V]). A cascaded loop with
+  load-current feed-forward reacts to both more directly.
 - The model is the plant's averaged model with its nominal parameters (scaled by
   ``model_R_scale`` and ``model_LC_scale`` for robustness studies). Errors in R1 or R2 leave
   a steady offset unless integral action is on.
@@ -199,9 +219,12 @@ DECLARATION = Declaration(
         Param("pole", "rad/s", 5000.0, (0.0, 1e6),
               "magnitude p of the n-fold real error pole (s + p)^n, n = 4 two-stage, 2 single-stage",
               lower_open=True),
-        Param("pole_int", "rad/s", 1000.0, (0.0, 1e6),
-              "pole of the integral action (removes offsets from resistance errors); 0 turns it off"),
-        Param("int_band", "V", 1e9, (0.0, 1e9), "integrate only while |e| is below this", lower_open=True),
+        Param("pole_int", "rad/s", 0.0, (0.0, 1e6),
+              "pole p_I of the integral action, error dynamics (s + p)^n (s + p_I); removes "
+              "offsets from resistance errors; 0 turns it off"),
+        Param("int_band", "V", 5.0, (0.0, 1e5),
+              "the integral state integrates only while |v_out - v_ref| is below this (keeps "
+              "large transient errors, e.g. after the DC-link clamp, out of it)", lower_open=True),
         Param("v_guard", "V", 10.0, (0.0, 1e4),
               "low-voltage guard: the law uses max(v_out, v_guard) where the load model divides by v_out",
               lower_open=True),
@@ -282,16 +305,19 @@ def init(p, xc, y, r):
 @njit(cache=True)
 def step(t, p, xc, y, r, u):
     xi = xc[0]
-    v, e, _ = _law(p, xi, y, r)
-    uc = v
+    u_raw, e, _ = _law(p, xi, y, r)
+    uc = u_raw
     if uc > p[V_DC]:
         uc = p[V_DC]
     elif not (uc >= 0.0):  # also catches NaN (e.g. from an overflow): 0 V, the plant's own clamp
         uc = 0.0
     u[0] = uc
     if p[KI] != 0.0:
-        # conditional integration: xi decreasing (e < 0) raises u; hold it in the clamp's direction
-        if not ((v > p[V_DC] and e < 0.0) or (v < 0.0 and e > 0.0) or not (v == v) or not (abs(e) < p[E_BAND])):
+        # conditional integration: xi decreasing (e < 0) raises u, so hold it while u is clamped
+        # in that direction; hold it also outside the error band, where the error is a transient
+        # (a recovery from the clamp, a load step) rather than an offset of the model
+        if not ((u_raw > p[V_DC] and e < 0.0) or (u_raw < 0.0 and e > 0.0)
+                or not (u_raw == u_raw) or not (abs(e) < p[E_BAND])):
             xn = xi + p[TS] * e
             if xn - xn == 0.0:
                 xc[0] = xn
