@@ -1,5 +1,12 @@
-"""Soft-HIL bridge to an external plant simulator (wire protocol, transports, sessions).
+"""Soft-HIL bridge: run the same compiled controller against a plant in another process.
 
-Not built yet: the bridge is the subject of its own issue. Runs today use the embedded plant
-(``mode = "sil"``); a scenario asking for another mode is refused with a clear message.
+- :mod:`hilrig.bridge.protocol`: the wire format (msgpack frames; docs/protocol.md is the
+  authority), codec, sequence tracking and handshake checks.
+- :mod:`hilrig.bridge.transport`: ZeroMQ request/reply transports (loopback by default).
+- :mod:`hilrig.bridge.session`: the runtime's side of a lockstep session.
+- :mod:`hilrig.bridge.standin`: the stand-in simulator (``hilrig serve-sim``).
+
+Today: lockstep over ZeroMQ (tcp or ipc). Still to come: free-running mode, the datagram (UDP)
+transport, transport fault injection in the stand-in simulator, CurveZMQ keys for non-loopback
+peers.
 """

@@ -97,7 +97,9 @@ def _summary_table(console, s: dict, folder: Path | None) -> None:
     console.print(t)
 
 
-def _run(console, plain, scenario_path: Path, out: str | None, overwrite: bool, sets: list[str]):
+def _run(console, plain, scenario_path: Path, out: str | None, overwrite: bool, sets: list[str],
+         bridge: str | None = None, mode: str = "lockstep", timeout: float = 2.0,
+         allow_remote: bool = False):
     from hilrig.runtime.plots import overview_png
     from hilrig.runtime.recording import open_run
     from hilrig.runtime.run import run_scenario
@@ -107,8 +109,14 @@ def _run(console, plain, scenario_path: Path, out: str | None, overwrite: bool, 
     _show_caution(console, sc)
     prog = _Progress(console, plain)
     try:
-        res = run_scenario(sc, Path(out) if out else None, overwrite=overwrite, progress=prog,
-                           notice=lambda msg: console.print(msg))
+        if bridge:
+            from hilrig.bridge.session import run_bridge
+            res = run_bridge(sc, bridge, Path(out) if out else None, mode=mode, timeout_s=timeout,
+                             allow_remote=allow_remote, overwrite=overwrite, progress=prog,
+                             notice=lambda msg: console.print(msg))
+        else:
+            res = run_scenario(sc, Path(out) if out else None, overwrite=overwrite, progress=prog,
+                               notice=lambda msg: console.print(msg))
     finally:
         prog.close()
     try:
@@ -277,6 +285,19 @@ def main(argv: list[str] | None = None) -> int:
     p.add_argument("--overwrite", action="store_true", help="replace a recording already in --out")
     p.add_argument("--set", action="append", default=[], metavar="KEY=VALUE",
                    help="override a scenario value, e.g. --set 'timing.duration=\"0.2 s\"' (repeatable)")
+    p.add_argument("--bridge", metavar="ADDRESS",
+                   help="run against an external simulator at ADDRESS (tcp://127.0.0.1:PORT or ipc:///PATH) instead of the embedded plant")
+    p.add_argument("--mode", default="lockstep", choices=["lockstep"], help="bridge mode (default lockstep)")
+    p.add_argument("--timeout", type=float, default=2.0, metavar="S", help="bridge reply timeout [s] (default 2)")
+    p.add_argument("--allow-remote", action="store_true",
+                   help="allow a bridge address that is not on this machine (you take responsibility for the network)")
+    p = sub.add_parser("serve-sim", help="serve the stand-in simulator: the scenario's plant over the bridge protocol")
+    p.add_argument("--scenario", required=True, help="scenario whose plant, load profile and timing to simulate")
+    p.add_argument("--bind", default="tcp://127.0.0.1:47810", metavar="ADDRESS",
+                   help="address to listen on (default tcp://127.0.0.1:47810)")
+    p.add_argument("--sessions", type=int, metavar="N", help="stop after N sessions (default: serve until interrupted)")
+    p.add_argument("--idle-timeout", type=float, metavar="S", help="stop when nothing arrives for S seconds")
+    p.add_argument("--allow-remote", action="store_true", help="allow binding to a non-loopback address")
     p = sub.add_parser("compare", help="run one scenario with several controllers side by side")
     p.add_argument("scenario", help="scenario TOML file")
     p.add_argument("--controllers", required=True, metavar="A,B,...",
@@ -316,11 +337,24 @@ def main(argv: list[str] | None = None) -> int:
     from hilrig.runtime.errors import PluginError, RecordingError, ScenarioError, UnitError
     from hilrig.safety.errors import InterlockConfigError
     try:
+        from hilrig.bridge.errors import BridgeError
+    except ImportError:  # pragma: no cover - the bridge package is part of hilrig
+        BridgeError = ValueError
+    try:
         if args.cmd == "demo":
             console.print("hilrig demo: invented demo data, not measurements of real equipment.")
             _run(console, plain, _demo_path(), args.out, args.overwrite, [])
         elif args.cmd == "run":
-            _run(console, plain, Path(args.scenario), args.out, args.overwrite, args.set)
+            _run(console, plain, Path(args.scenario), args.out, args.overwrite, args.set,
+                 bridge=args.bridge, mode=args.mode, timeout=args.timeout,
+                 allow_remote=args.allow_remote)
+        elif args.cmd == "serve-sim":
+            from hilrig.bridge.standin import serve
+            from hilrig.runtime.scenario import load_scenario
+            sc = load_scenario(args.scenario)
+            _show_caution(console, sc)
+            serve(sc, args.bind, sessions=args.sessions, allow_remote=args.allow_remote,
+                  idle_timeout_s=args.idle_timeout, log=lambda m: console.print(m, markup=False))
         elif args.cmd == "compare":
             _compare(console, args)
         elif args.cmd == "envelope":
@@ -352,7 +386,7 @@ def main(argv: list[str] | None = None) -> int:
             export_csv(run, dest)
             console.print(f"wrote {dest} ({run.time.shape[0]} rows, {len(run.signals) + 1} columns)")
     except (ScenarioError, PluginError, RecordingError, UnitError, InterlockConfigError,
-            FileExistsError, ValueError) as exc:
+            FileExistsError, ValueError, BridgeError) as exc:
         console.print(f"error: {exc}", markup=False, soft_wrap=True)
         return EXIT_USAGE
     except KeyboardInterrupt:

@@ -87,9 +87,7 @@ def run_chunk(k0, n, ts, nsub, v_collapse, i_vout,
               ad, g1, g2, cr, dr, slew, z, s, zt, r,
               lim_sig, lim_above, lim_thr, lim_deb, lim_cnt, latch, pv,
               y, d, rec, ev):
-    """Run ticks k0 .. k0+n-1; return how many ran (fewer if the run ended)."""
-    ny = y.shape[0]
-    nu = u.shape[0]
+    """SIL: run ticks k0 .. k0+n-1; return how many ran (fewer if the run ended)."""
     for i in range(n):
         kk = k0 + i
         t = kk * ts
@@ -97,44 +95,10 @@ def run_chunk(k0, n, ts, nsub, v_collapse, i_vout,
         interp_rows(load_t, load_v, t, lcur, d)
         plant_outputs(t, pp, x, u, d, y)
         # 2 inject: none yet
-        # 3 reference
-        for j in range(iyr.shape[0]):
-            yr[j] = y[iyr[j]]
-        if kk == 0:
-            ref_init(pr, xr, yr)
-        ref_step(t, ts, pr, xr, yr, w)
-        if kk == 0:
-            shape_init(w[0], z, s)
-        shape_step(ad, g1, g2, cr, dr, slew, ts, z, s, zt, w[0], r)
-        # 4 control
-        for j in range(iyc.shape[0]):
-            yc[j] = y[iyc[j]]
-        if kk == 0:
-            ctrl_init(pc, xc, yc, r)
-        code = ctrl_step(t, pc, xc, yc, r, u)
-        # 5 protect
-        word = protect(kk, t, y, u, code, lim_sig, lim_above, lim_thr, lim_deb, lim_cnt,
-                       latch, pv, safe_u)
+{decide_8}
         # 6 actuate
         advance(t, ts, nsub, pp, x, u, d)
-        # 7 record
-        c = 0
-        for j in range(ny):
-            rec[i, c] = y[j]
-            c += 1
-        for j in range(nu):
-            rec[i, c] = u[j]
-            c += 1
-        for j in range(5):
-            rec[i, c] = r[j]
-            c += 1
-        rec[i, c] = w[0]
-        c += 1
-        for j in range(d.shape[0]):
-            rec[i, c] = d[j]
-            c += 1
-        rec[i, c] = word
-        rec[i, c + 1] = code
+{record_8}
         # end of tick: the run ends on a collapse or a non-finite plant state
         for j in range(NX):
             if not (x[j] - x[j] == 0.0):
@@ -146,7 +110,91 @@ def run_chunk(k0, n, ts, nsub, v_collapse, i_vout,
             ev[1] = kk
             return i + 1
     return n
+
+
+@njit(cache=True)
+def bridge_tick(kk, i, ts, v_collapse, i_vout,
+                pc, xc, iyc, yc, u, safe_u,
+                pr, xr, iyr, yr, w,
+                ad, g1, g2, cr, dr, slew, z, s, zt, r,
+                lim_sig, lim_above, lim_thr, lim_deb, lim_cnt, latch, pv,
+                y, d, rec, ev):
+    """Bridge modes: one tick on a y received from the simulator (stages 3-5 and 7; the
+    simulator samples and actuates). Writes row i of rec; returns 1, or 0 if the run ends."""
+    t = kk * ts
+{decide_4}
+{record_4}
+    for j in range(y.shape[0]):
+        if not (y[j] - y[j] == 0.0):
+            return 1  # the protect stage has tripped on it; the safe output goes out
+    if not (y[i_vout] >= v_collapse):
+        ev[0] = {ev_collapse}
+        ev[1] = kk
+        return 0
+    return 1
+
+
+@njit(cache=True)
+def sim_sample(t, pp, x, u, load_t, load_v, lcur, d, y):
+    """Stand-in simulator: the plant's outputs at time t (the load sampled at t)."""
+    interp_rows(load_t, load_v, t, lcur, d)
+    plant_outputs(t, pp, x, u, d, y)
+
+
+@njit(cache=True)
+def sim_advance(t, ts, nsub, pp, x, u, d):
+    """Stand-in simulator: advance the plant one period with u and the load d held."""
+    advance(t, ts, nsub, pp, x, u, d)
+    for j in range(NX):
+        if not (x[j] - x[j] == 0.0):
+            return False
+    return True
 '''
+
+
+# Stages 3-5 and 7, written once and placed in both the SIL chunk loop and the bridge tick
+# (numba's inliner cannot nest these many inlined calls, so the text is shared instead).
+_DECIDE = """# 3 reference
+for j in range(iyr.shape[0]):
+    yr[j] = y[iyr[j]]
+if kk == 0:
+    ref_init(pr, xr, yr)
+ref_step(t, ts, pr, xr, yr, w)
+if kk == 0:
+    shape_init(w[0], z, s)
+shape_step(ad, g1, g2, cr, dr, slew, ts, z, s, zt, w[0], r)
+# 4 control
+for j in range(iyc.shape[0]):
+    yc[j] = y[iyc[j]]
+if kk == 0:
+    ctrl_init(pc, xc, yc, r)
+code = ctrl_step(t, pc, xc, yc, r, u)
+# 5 protect
+word = protect(kk, t, y, u, code, lim_sig, lim_above, lim_thr, lim_deb, lim_cnt,
+               latch, pv, safe_u)"""
+
+_RECORD = """# 7 record
+c = 0
+for j in range(y.shape[0]):
+    rec[i, c] = y[j]
+    c += 1
+for j in range(u.shape[0]):
+    rec[i, c] = u[j]
+    c += 1
+for j in range(5):
+    rec[i, c] = r[j]
+    c += 1
+rec[i, c] = w[0]
+c += 1
+for j in range(d.shape[0]):
+    rec[i, c] = d[j]
+    c += 1
+rec[i, c] = word
+rec[i, c + 1] = code"""
+
+
+def _indent(text: str, n: int) -> str:
+    return "\n".join((" " * n + line) if line else line for line in text.splitlines())
 
 
 def inline(kernel):
@@ -241,7 +289,9 @@ def generate(plant: Plugin, ctrl: Plugin, ref: Plugin) -> tuple[Path, bool]:
     text = _TEMPLATE.format(version=_version(), plant=plant.name, ctrl=ctrl.name, ref=ref.name,
                             key=key, imports=_import_lines(plant, ctrl, ref),
                             ev_nonfinite=EV_NONFINITE, ev_collapse=EV_COLLAPSE,
-                            nx=nx, **_rk4_text(nx))
+                            nx=nx, decide_8=_indent(_DECIDE, 8), decide_4=_indent(_DECIDE, 4),
+                            record_8=_indent(_RECORD, 8), record_4=_indent(_RECORD, 4),
+                            **_rk4_text(nx))
     # write then rename: concurrent workers never import a half-written file, and an existing
     # file is never rewritten (a new mtime would invalidate numba's cache of it)
     fd, tmp = tempfile.mkstemp(dir=folder, suffix=".tmp")

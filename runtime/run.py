@@ -208,32 +208,51 @@ def default_folder(sc: Scenario, base: Path = Path("runs")) -> Path:
     return folder
 
 
+def check_folder(folder: Path, overwrite: bool) -> None:
+    if (folder / "recording.h5").exists() and not overwrite:
+        raise FileExistsError(f"{folder} already holds a recording; choose another --out "
+                              f"folder (nothing was overwritten)")
+
+
 def run_scenario(sc: Scenario, folder: Path | None = None, *, overwrite: bool = False,
                  progress: Callable[[int, int], None] | None = None,
                  notice: Callable[[str], None] | None = None) -> RunResult:
     """Run a validated scenario in SIL and write its run folder; return the summary."""
     folder = Path(folder) if folder is not None else default_folder(sc)
-    if (folder / "recording.h5").exists() and not overwrite:
-        raise FileExistsError(f"{folder} already holds a recording; choose another --out "
-                              f"folder (nothing was overwritten)")
+    check_folder(folder, overwrite)
     prep = prepare(sc)
     fn, t_compile, compiled = compile_loop(sc, notice)
+    a = prep.args
+    # first call with zero ticks: compiles (or loads from the cache) outside the timed loop
+    t = time.perf_counter()
+    _call(fn, 0, 0, np.zeros((1, len(prep.signals))), a)
+    t_compile += time.perf_counter() - t
+    return execute(sc, prep, folder, lambda k0, n, rec: _call(fn, k0, n, rec, a),
+                   timing={"compile_or_load_s": t_compile, "compiled_now": compiled},
+                   progress=progress)
+
+
+def execute(sc: Scenario, prep: Prepared, folder: Path,
+            produce: Callable[[int, int, np.ndarray], int], *, timing: dict[str, Any],
+            progress: Callable[[int, int], None] | None = None,
+            extra: Callable[[], dict[str, Any]] | None = None,
+            end_events: Callable[[], list[dict[str, Any]]] | None = None) -> RunResult:
+    """Drive ``produce(k0, n, rec) -> ticks run`` chunk by chunk, record and summarise.
+
+    ``produce`` fills rows of ``rec`` for ticks k0 .. k0+n-1 and returns how many it ran
+    (fewer ends the run). It is the compiled SIL loop, or a bridge session's tick loop.
+    """
     a = prep.args
     n_total = sc.n_ticks
     chunk = max(1, min(n_total, int(round(sc.recording["chunk"] / sc.Ts))))
     ncols = len(prep.signals)
     rec = np.zeros((chunk, ncols))
-    # first call with zero ticks: compiles (or loads from the cache) outside the timed loop
-    t = time.perf_counter()
-    _call(fn, 0, 0, rec, a)
-    t_compile += time.perf_counter() - t
-
     folder.mkdir(parents=True, exist_ok=True)
     (folder / SCENARIO).write_text(sc.text)
     vers = versions()
     writer = RunWriter(folder, prep.signals, {
         "scenario_text": sc.text, "versions": json.dumps(vers), "seed": sc.seed, "Ts": sc.Ts,
-        "title": sc.title, "demo_data": sc.demo_data,
+        "title": sc.title, "demo_data": sc.demo_data, "mode": sc.mode,
         "plant": sc.plant.plugin.name, "controller": sc.controller.plugin.name,
         "reference": sc.reference.plugin.name,
     }, chunk_rows=chunk, compression=sc.recording["compression"])
@@ -244,13 +263,14 @@ def run_scenario(sc: Scenario, folder: Path | None = None, *, overwrite: bool = 
     t_loop = 0.0
     t_write = 0.0
     done = 0
+    ran = 0
     wall0 = time.perf_counter()
     startup = process_age_s()
     try:
         while done < n_total:
             n = min(chunk, n_total - done)
             t0 = time.perf_counter()
-            ran = _call(fn, done, n, rec, a)
+            ran = produce(done, n, rec)
             t1 = time.perf_counter()
             tt = np.arange(done, done + ran, dtype=np.int64) * sc.Ts
             writer.append(tt, rec)
@@ -275,7 +295,9 @@ def run_scenario(sc: Scenario, folder: Path | None = None, *, overwrite: bool = 
     if ev:
         kk = int(a["ev"][1])
         events.append({"event": loopgen.EVENT_TEXT[ev], "tick": kk, "time_s": kk * sc.Ts,
-                       "v_out_V": float(rec[ran - 1, i_vout])})
+                       "v_out_V": float(rec[max(ran - 1, 0), i_vout])})
+    if end_events:
+        events += end_events()
     latch = a["latch"]
     trip = None
     if latch[L_TRIPPED]:
@@ -288,20 +310,22 @@ def run_scenario(sc: Scenario, folder: Path | None = None, *, overwrite: bool = 
                          writer.ds[names.index("v_ref_raw")][()])
     result = metrics.result()
     result["trips"] = 1 if trip else 0
+    ending = [e for e in events if e["event"] != "trip"]
+    end_event = ending[0]["event"] if ending else None
     summary = {
         "title": sc.title, "demo_data": sc.demo_data, "mode": sc.mode, "seed": sc.seed,
         "plant": sc.plant.plugin.name, "controller": sc.controller.plugin.name,
         "reference": sc.reference.plugin.name,
         "Ts_s": sc.Ts, "substeps": sc.substeps,
         "ticks_planned": n_total, "ticks_run": done, "simulated_s": done * sc.Ts,
-        "completed": done == n_total and not ev,
-        "end_event": loopgen.EVENT_TEXT[ev] if ev else None,
+        "completed": done == n_total and end_event is None,
+        "end_event": end_event,
         "events": events, "trip": trip,
         "v_out_start_V": prep.v0,
         "metrics": result,
         "steps": [st.as_dict() for st in steps],
         "timing": {
-            "compile_or_load_s": t_compile, "compiled_now": compiled,
+            **timing,
             "process_start_to_first_tick_s": startup,
             "loop_s": t_loop, "write_s": t_write, "wall_s": wall,
             "loop_ns_per_tick": t_loop / max(done, 1) * 1e9,
@@ -311,6 +335,8 @@ def run_scenario(sc: Scenario, folder: Path | None = None, *, overwrite: bool = 
         "versions": vers,
         "recording": "recording.h5",
     }
+    if extra:
+        summary.update(extra())
     # wall-clock figures stay out of the recording so that it is bit-identical run to run
     writer.close({"events": json.dumps(events)})
     (folder / SUMMARY).write_text(json.dumps(summary, indent=2) + "\n")

@@ -1,0 +1,173 @@
+"""The runtime's side of a bridge session: run a scenario's controller against an external
+simulator, tick by tick, recording as in SIL.
+
+Lockstep: the simulator advances one tick only after the actuation for that tick arrives, so
+the run is a deterministic co-simulation: against the stand-in simulator it reproduces the
+in-process SIL recording of the same scenario. The order of exchange is in docs/protocol.md.
+"""
+from __future__ import annotations
+
+import dataclasses
+import time
+from pathlib import Path
+from typing import Any, Callable
+
+import numpy as np
+
+from hilrig.runtime import loop as loopgen
+from hilrig.runtime.run import RunResult, _call, check_folder, default_folder, execute, prepare
+
+from . import protocol as P
+from .errors import BridgeError, PeerError, ProtocolError, TransportTimeout
+from .transport import ReqTransport
+
+MODES = ("lockstep",)
+
+
+def signal_maps(sc) -> tuple[list[list[str]], list[list[str]]]:
+    """The measurement and actuation maps of a scenario's plant: [[name, unit], ...]."""
+    decl = sc.plant.plugin.declaration
+    meas = [[s.name, s.unit] for s in decl.outputs]
+    act = [[s.name, s.unit] for s in decl.inputs] or [["u", "V"]]
+    return meas, act
+
+
+def _bridge_kernel(sc):
+    path, _ = loopgen.generate(sc.plant.plugin, sc.controller.plugin, sc.reference.plugin)
+    return loopgen.load_module(path).bridge_tick
+
+
+def _tick_args(a: dict) -> tuple:
+    return (a["pc"], a["xc"], a["iyc"], a["yc"], a["u"], a["safe_u"],
+            a["pr"], a["xr"], a["iyr"], a["yr"], a["w"],
+            a["ad"], a["g1"], a["g2"], a["cr"], a["dr"], a["slew"], a["z"], a["s"], a["zt"], a["r"],
+            a["lim_sig"], a["lim_above"], a["lim_thr"], a["lim_deb"], a["lim_cnt"], a["latch"],
+            a["pv"], a["y"], a["d"])
+
+
+class BridgeStats:
+    """Frames, losses and round-trip times of one session."""
+
+    def __init__(self):
+        self.sent = 0
+        self.received = 0
+        self.rtt_ns: list[int] = []
+        self.seq = P.SequenceTracker()
+        self.rejects = P.RejectCounter()
+
+    def as_dict(self) -> dict[str, Any]:
+        rtt = np.array(self.rtt_ns, dtype=float) / 1e3
+        pct = (lambda q: float(np.percentile(rtt, q))) if rtt.size else (lambda q: None)
+        return {"frames_sent": self.sent, "frames_received": self.received,
+                "lost": self.seq.lost, "duplicates": self.seq.duplicates,
+                "out_of_order": self.seq.out_of_order, "late": 0,
+                "rejected": dict(self.rejects.counts),
+                "rtt_us": {"p50": pct(50), "p99": pct(99),
+                           "max": float(rtt.max()) if rtt.size else None, "n": int(rtt.size)}}
+
+
+def run_bridge(sc, address: str, folder: Path | None = None, *, mode: str = "lockstep",
+               timeout_s: float = 2.0, allow_remote: bool = False, overwrite: bool = False,
+               progress: Callable[[int, int], None] | None = None,
+               notice: Callable[[str], None] | None = None) -> RunResult:
+    """Run the scenario's controller against the simulator at ``address``."""
+    if mode not in MODES:
+        raise BridgeError(f"bridge mode {mode!r} is not available; modes: {', '.join(MODES)}")
+    sc = dataclasses.replace(sc, mode=mode)
+    folder = Path(folder) if folder is not None else default_folder(sc)
+    check_folder(folder, overwrite)
+    tick = _bridge_kernel(sc)
+    t = time.perf_counter()
+    warm = prepare(sc)  # compile (or load) the tick kernel on throw-away state
+    tick(0, 0, sc.Ts, sc.v_collapse, warm.args["i_vout"], *_tick_args(warm.args),
+         np.zeros((1, len(warm.signals))), warm.args["ev"])
+    t_compile = time.perf_counter() - t
+    prep = prepare(sc)
+    a = prep.args
+    meas_map, act_map = signal_maps(sc)
+    n_meas, n_act = len(meas_map), len(act_map)
+    h = P.map_hash(meas_map, act_map)
+    link = ReqTransport(address, timeout_s=timeout_s, allow_remote=allow_remote)
+    stats = BridgeStats()
+    ended: list[dict[str, Any]] = []
+
+    def ask(frame, expect):
+        data = P.encode(frame)
+        t0 = time.perf_counter_ns()
+        reply = link.request(data)
+        stats.rtt_ns.append(time.perf_counter_ns() - t0)
+        stats.sent += 1
+        stats.received += 1
+        try:
+            got = P.decode(reply, n_meas=n_meas, n_act=n_act)
+        except ProtocolError as exc:
+            stats.rejects.add(exc.reason, str(exc))
+            raise
+        if isinstance(got, P.Error):
+            raise PeerError(got.code, got.reason)
+        if not isinstance(got, expect):
+            stats.rejects.add("unexpected", f"expected {expect.__name__}, got {type(got).__name__}")
+            raise ProtocolError("unexpected", f"the simulator answered a {type(got).__name__} "
+                                f"frame where a {expect.__name__} was due")
+        return got
+
+    hello = P.Hello(version=P.PROTOCOL_VERSION, tick_period_s=sc.Ts, mode=mode,
+                    meas_map=meas_map, act_map=act_map, map_hash=h)
+    try:
+        welcome = ask(hello, P.Welcome)
+        P.handshake_check(hello, welcome)
+        current = ask(P.Heartbeat(seq=0, t_sender_s=0.0), P.Sample)
+    except (ProtocolError, PeerError, TransportTimeout) as exc:
+        link.close()
+        raise BridgeError(f"bridge handshake with {address} failed: {exc}") from None
+    if notice:
+        notice(f"bridge: connected to {welcome.simulator_name!r} at {address} ({mode}, "
+               f"{n_meas} measurements, {n_act} actuations)")
+    state = {"sample": current}
+
+    def produce(k0: int, n: int, rec: np.ndarray) -> int:
+        targs = _tick_args(a)
+        for i in range(n):
+            kk = k0 + i
+            smp = state["sample"]
+            verdict = stats.seq.check(smp.seq)
+            if smp.seq != kk:
+                ended.append({"event": "bridge sequence error", "tick": kk,
+                              "detail": f"sample seq {smp.seq} ({verdict}) where {kk} was due"})
+                return i
+            a["y"][:] = smp.meas
+            a["d"][:] = np.nan  # the load lives in the simulator
+            go = tick(kk, i, sc.Ts, sc.v_collapse, a["i_vout"], *targs, rec, a["ev"])
+            enable = not bool(a["latch"][0])
+            word = int(rec[i, -2])
+            try:
+                state["sample"] = ask(P.Actuation(seq=kk, u=a["u"].copy(), interlock_word=word,
+                                                  output_enable=enable), P.Sample)
+            except TransportTimeout as exc:
+                ended.append({"event": "bridge timeout", "tick": kk, "detail": str(exc)})
+                return i + 1
+            except (ProtocolError, PeerError) as exc:
+                ended.append({"event": "bridge protocol error", "tick": kk, "detail": str(exc)})
+                return i + 1
+            if not go:
+                return i + 1
+        return n
+
+    def finish() -> list[dict[str, Any]]:
+        # the orderly end goes out before the summary is written, so its statistics count it
+        if not link.closed:
+            try:
+                ask(P.Stop(reason="run ended"), P.Stop)
+            except (ProtocolError, PeerError, TransportTimeout) as exc:
+                ended.append({"event": "bridge stop not acknowledged", "detail": str(exc)})
+        return ended
+
+    try:
+        return execute(sc, prep, folder, produce,
+                       timing={"compile_or_load_s": t_compile, "compiled_now": False},
+                       progress=progress, extra=lambda: {"bridge": {
+                           "address": address, "mode": mode,
+                           "simulator": welcome.simulator_name, **stats.as_dict()}},
+                       end_events=finish)
+    finally:
+        link.close()

@@ -1,0 +1,130 @@
+"""The stand-in simulator: a separate process that runs a scenario's plant with its load
+profile and speaks the bridge protocol, so the runtime's bridge can be rehearsed without a
+real-time simulator. It uses the same compiled plant kernels as SIL, so a lockstep run against
+it reproduces the SIL recording of the same scenario.
+"""
+from __future__ import annotations
+
+import math
+import time
+from typing import Callable
+
+import numpy as np
+
+from hilrig.runtime import loop as loopgen
+from hilrig.runtime.run import prepare
+
+from . import protocol as P
+from .errors import ProtocolError
+from .session import signal_maps
+from .transport import RepTransport
+
+SIMULATOR_NAME = "hilrig stand-in simulator"
+
+
+class StandIn:
+    """State of the simulated plant for one session (reset by each handshake)."""
+
+    def __init__(self, sc):
+        self.sc = sc
+        path, _ = loopgen.generate(sc.plant.plugin, sc.controller.plugin, sc.reference.plugin)
+        mod = loopgen.load_module(path)
+        self.sample_k, self.advance_k = mod.sim_sample, mod.sim_advance
+        self.meas_map, self.act_map = signal_maps(sc)
+        self.hash = P.map_hash(self.meas_map, self.act_map)
+        self.reset()
+        # compile (or load) both kernels now, not in the middle of a session
+        self.sample(0)
+        self.advance_k(0.0, sc.Ts, sc.substeps, self.pp, self.x.copy(), self.u, self.d.copy())
+        self.reset()
+
+    def reset(self):
+        a = prepare(self.sc).args
+        self.pp, self.x = a["pp"], a["x"].copy()
+        self.load_t, self.load_v = a["load_t"], a["load_v"]
+        self.lcur = np.zeros(1, dtype=np.int64)
+        self.d = np.zeros(3)
+        self.u = np.zeros(len(self.act_map))
+        self.y = np.zeros(len(self.meas_map))
+        self.k = 0
+        self.last: bytes | None = None
+
+    def sample(self, k: int) -> P.Sample:
+        t = k * self.sc.Ts
+        self.sample_k(t, self.pp, self.x, self.u, self.load_t, self.load_v, self.lcur, self.d, self.y)
+        return P.Sample(seq=k, t_sim_s=t, meas=self.y.copy())
+
+    def step(self, u: np.ndarray) -> bool:
+        """Apply u for one period from tick k (load held as sampled), advance to k + 1."""
+        self.u[:] = u
+        ok = self.advance_k(self.k * self.sc.Ts, self.sc.Ts, self.sc.substeps, self.pp, self.x,
+                            self.u, self.d)
+        self.k += 1
+        return bool(ok)
+
+
+def serve(sc, bind: str, *, sessions: int | None = None, allow_remote: bool = False,
+          idle_timeout_s: float | None = None, log: Callable[[str], None] = print) -> int:
+    """Serve lockstep sessions on ``bind`` until ``sessions`` have ended (None: forever) or
+    nothing arrives for ``idle_timeout_s``. Returns the number of sessions served."""
+    sim = StandIn(sc)
+    rep = RepTransport(bind, allow_remote=allow_remote)
+    n_meas, n_act = len(sim.meas_map), len(sim.act_map)
+    served = 0
+    in_session = False
+    log(f"stand-in simulator: {sc.plant.plugin.name}, Ts = {sc.Ts:g} s, listening on {bind}")
+
+    def reply(frame):
+        data = P.encode(frame)
+        rep.send(data)
+        return data
+
+    try:
+        while sessions is None or served < sessions:
+            data = rep.recv(timeout_s=idle_timeout_s)
+            if data is None:
+                log("stand-in simulator: idle timeout, stopping")
+                break
+            try:
+                frame = P.decode(data, n_meas=n_meas, n_act=n_act)
+            except ProtocolError as exc:
+                reply(P.error_frame(exc))
+                continue
+            if isinstance(frame, P.Hello):
+                welcome = P.Welcome(version=P.PROTOCOL_VERSION, tick_period_s=sc.Ts,
+                                    mode="lockstep", meas_map=sim.meas_map, act_map=sim.act_map,
+                                    map_hash=sim.hash, simulator_name=SIMULATOR_NAME)
+                try:
+                    P.handshake_check(frame, welcome)
+                except ProtocolError as exc:
+                    reply(P.error_frame(exc))
+                    continue
+                sim.reset()
+                in_session = True
+                reply(welcome)
+            elif isinstance(frame, P.Heartbeat) and in_session and sim.k == 0 and sim.last is None:
+                sim.last = reply(sim.sample(0))
+            elif isinstance(frame, P.Actuation) and in_session:
+                if frame.seq == sim.k - 1 and sim.last is not None:
+                    rep.send(sim.last)  # a repeated actuation: answer again, do not advance
+                elif frame.seq == sim.k:
+                    # output disabled: the stage is switched off, modelled as 0 V applied
+                    u = frame.u if frame.output_enable else np.zeros_like(frame.u)
+                    if not sim.step(u):
+                        reply(P.Error(code=6, reason=f"the plant state became non-finite at tick {sim.k}"))
+                        in_session = False
+                        continue
+                    sim.last = reply(sim.sample(sim.k))
+                else:
+                    reply(P.Error(code=6, reason=f"actuation seq {frame.seq} where {sim.k} was due"))
+            elif isinstance(frame, P.Stop):
+                reply(P.Stop(reason="session ended"))
+                if in_session:
+                    served += 1
+                    log(f"stand-in simulator: session {served} ended after {sim.k} ticks")
+                in_session = False
+            else:
+                reply(P.Error(code=6, reason=f"unexpected {type(frame).__name__} frame"))
+    finally:
+        rep.close()
+    return served
