@@ -19,7 +19,7 @@ from hilrig.runtime.run import RunResult, _call, check_folder, default_folder, e
 
 from . import protocol as P
 from .errors import BridgeError, PeerError, ProtocolError, TransportTimeout
-from .transport import ReqTransport
+from .transport import client_for
 
 MODES = ("lockstep",)
 
@@ -54,11 +54,15 @@ class BridgeStats:
         self.rtt_ns: list[int] = []
         self.seq = P.SequenceTracker()
         self.rejects = P.RejectCounter()
+        self.link = None
 
     def as_dict(self) -> dict[str, Any]:
         rtt = np.array(self.rtt_ns, dtype=float) / 1e3
         pct = (lambda q: float(np.percentile(rtt, q))) if rtt.size else (lambda q: None)
+        resent = getattr(self.link, "resent", 0)
+        stale = getattr(self.link, "stale", 0)
         return {"frames_sent": self.sent, "frames_received": self.received,
+                "resent": resent, "stale_replies": stale,
                 "lost": self.seq.lost, "duplicates": self.seq.duplicates,
                 "out_of_order": self.seq.out_of_order, "late": 0,
                 "rejected": dict(self.rejects.counts),
@@ -87,14 +91,20 @@ def run_bridge(sc, address: str, folder: Path | None = None, *, mode: str = "loc
     meas_map, act_map = signal_maps(sc)
     n_meas, n_act = len(meas_map), len(act_map)
     h = P.map_hash(meas_map, act_map)
-    link = ReqTransport(address, timeout_s=timeout_s, allow_remote=allow_remote)
+    link = client_for(address, timeout_s=timeout_s, allow_remote=allow_remote)
     stats = BridgeStats()
+    stats.link = link
     ended: list[dict[str, Any]] = []
 
-    def ask(frame, expect):
+    def ask(frame, expect, want_seq=None):
         data = P.encode(frame)
         t0 = time.perf_counter_ns()
-        reply = link.request(data)
+        if want_seq is None or not hasattr(link, "stale"):
+            reply = link.request(data)
+        else:
+            # datagrams: a late copy of an earlier sample is recognised by its sequence number;
+            # a datagram that does not decode is counted and treated as lost (resent)
+            reply = link.request(data, accept=lambda b: _acceptable(b, want_seq))
         stats.rtt_ns.append(time.perf_counter_ns() - t0)
         stats.sent += 1
         stats.received += 1
@@ -111,12 +121,20 @@ def run_bridge(sc, address: str, folder: Path | None = None, *, mode: str = "loc
                                 f"frame where a {expect.__name__} was due")
         return got
 
+    def _acceptable(b: bytes, want: int) -> bool:
+        try:
+            got = P.decode(b, n_meas=n_meas, n_act=n_act)
+        except ProtocolError as exc:
+            stats.rejects.add(exc.reason, str(exc))
+            return False
+        return not isinstance(got, P.Sample) or got.seq == want
+
     hello = P.Hello(version=P.PROTOCOL_VERSION, tick_period_s=sc.Ts, mode=mode,
                     meas_map=meas_map, act_map=act_map, map_hash=h)
     try:
         welcome = ask(hello, P.Welcome)
         P.handshake_check(hello, welcome)
-        current = ask(P.Heartbeat(seq=0, t_sender_s=0.0), P.Sample)
+        current = ask(P.Heartbeat(seq=0, t_sender_s=0.0), P.Sample, want_seq=0)
     except (ProtocolError, PeerError, TransportTimeout) as exc:
         link.close()
         raise BridgeError(f"bridge handshake with {address} failed: {exc}") from None
@@ -142,7 +160,7 @@ def run_bridge(sc, address: str, folder: Path | None = None, *, mode: str = "loc
             word = int(rec[i, -2])
             try:
                 state["sample"] = ask(P.Actuation(seq=kk, u=a["u"].copy(), interlock_word=word,
-                                                  output_enable=enable), P.Sample)
+                                                  output_enable=enable), P.Sample, want_seq=kk + 1)
             except TransportTimeout as exc:
                 ended.append({"event": "bridge timeout", "tick": kk, "detail": str(exc)})
                 return i + 1

@@ -17,9 +17,58 @@ from hilrig.runtime.run import prepare
 from . import protocol as P
 from .errors import ProtocolError
 from .session import signal_maps
-from .transport import RepTransport
+from .transport import server_for
 
 SIMULATOR_NAME = "hilrig stand-in simulator"
+
+
+class Faults:
+    """Transport faults the stand-in simulator injects into its replies, on a schedule.
+
+    drop        probability of not answering a tick (datagram transports only: ZeroMQ's
+                request/reply cannot skip a reply)
+    delay_s     added before every reply; jitter_s: plus a uniform random share of this
+    freeze_after stop answering from this tick on (the simulator hangs)
+    corrupt_every mangle every N-th reply on the wire (its leading byte)
+    seed        seed of the random generator (drops, jitter)
+    """
+
+    def __init__(self, drop: float = 0.0, delay_s: float = 0.0, jitter_s: float = 0.0,
+                 freeze_after: int | None = None, corrupt_every: int | None = None, seed: int = 0):
+        if not 0.0 <= drop < 1.0:
+            raise ValueError(f"--drop {drop:g}: expected a fraction in [0, 1)")
+        if delay_s < 0 or jitter_s < 0:
+            raise ValueError("--delay and --jitter must not be negative")
+        if corrupt_every is not None and corrupt_every < 1:
+            raise ValueError(f"--corrupt-every {corrupt_every}: expected a whole number >= 1")
+        self.drop, self.delay_s, self.jitter_s = drop, delay_s, jitter_s
+        self.freeze_after, self.corrupt_every = freeze_after, corrupt_every
+        self.rng = np.random.default_rng(seed)
+        self.replies = 0
+        self.dropped = 0
+        self.corrupted = 0
+
+    def active(self) -> bool:
+        return bool(self.drop or self.delay_s or self.jitter_s or self.freeze_after is not None
+                    or self.corrupt_every)
+
+    def wire(self, data: bytes) -> bytes | None:
+        """The bytes to send for a reply, or None to drop it."""
+        if self.drop and self.rng.random() < self.drop:
+            self.dropped += 1
+            return None
+        if self.delay_s or self.jitter_s:
+            time.sleep(self.delay_s + self.jitter_s * self.rng.random())
+        self.replies += 1
+        if self.corrupt_every and self.replies % self.corrupt_every == 0:
+            self.corrupted += 1
+            # break the frame's structure (its leading array marker): the protocol has no checksum
+            # of its own and relies on the transport's (TCP, UDP); a flipped payload bit that
+            # passed those would go unnoticed, so the fault models a frame that arrives mangled
+            b = bytearray(data)
+            b[0] ^= 0xFF
+            return bytes(b)
+        return data
 
 
 class StandIn:
@@ -64,19 +113,29 @@ class StandIn:
 
 
 def serve(sc, bind: str, *, sessions: int | None = None, allow_remote: bool = False,
-          idle_timeout_s: float | None = None, log: Callable[[str], None] = print) -> int:
+          idle_timeout_s: float | None = None, faults: Faults | None = None,
+          log: Callable[[str], None] = print) -> int:
     """Serve lockstep sessions on ``bind`` until ``sessions`` have ended (None: forever) or
     nothing arrives for ``idle_timeout_s``. Returns the number of sessions served."""
+    faults = faults or Faults()
+    if faults.drop and not bind.startswith("udp://"):
+        raise ValueError("--drop needs a datagram transport (udp://): ZeroMQ request/reply "
+                         "cannot skip a reply; use --freeze-after to stop answering")
     sim = StandIn(sc)
-    rep = RepTransport(bind, allow_remote=allow_remote)
+    rep = server_for(bind, allow_remote=allow_remote)
     n_meas, n_act = len(sim.meas_map), len(sim.act_map)
     served = 0
     in_session = False
     log(f"stand-in simulator: {sc.plant.plugin.name}, Ts = {sc.Ts:g} s, listening on {bind}")
 
+    def send(data: bytes) -> None:
+        wire = faults.wire(data) if faults.active() else data
+        if wire is not None:
+            rep.send(wire)
+
     def reply(frame):
         data = P.encode(frame)
-        rep.send(data)
+        send(data)
         return data
 
     try:
@@ -102,11 +161,18 @@ def serve(sc, bind: str, *, sessions: int | None = None, allow_remote: bool = Fa
                 sim.reset()
                 in_session = True
                 reply(welcome)
-            elif isinstance(frame, P.Heartbeat) and in_session and sim.k == 0 and sim.last is None:
-                sim.last = reply(sim.sample(0))
+            elif isinstance(frame, P.Heartbeat) and in_session and sim.k == 0:
+                if sim.last is None:
+                    sim.last = reply(sim.sample(0))
+                else:
+                    send(sim.last)  # the first sample was lost: send it again
             elif isinstance(frame, P.Actuation) and in_session:
+                if faults.freeze_after is not None and sim.k >= faults.freeze_after:
+                    log(f"stand-in simulator: frozen at tick {sim.k} (fault injection)")
+                    time.sleep(idle_timeout_s if idle_timeout_s is not None else 3600.0)
+                    break
                 if frame.seq == sim.k - 1 and sim.last is not None:
-                    rep.send(sim.last)  # a repeated actuation: answer again, do not advance
+                    send(sim.last)  # a repeated actuation: answer again, do not advance
                 elif frame.seq == sim.k:
                     # output disabled: the stage is switched off, modelled as 0 V applied
                     u = frame.u if frame.output_enable else np.zeros_like(frame.u)
@@ -127,4 +193,7 @@ def serve(sc, bind: str, *, sessions: int | None = None, allow_remote: bool = Fa
                 reply(P.Error(code=6, reason=f"unexpected {type(frame).__name__} frame"))
     finally:
         rep.close()
+        if faults.active():
+            log(f"stand-in simulator: faults injected: {faults.dropped} dropped, "
+                f"{faults.corrupted} corrupted replies")
     return served

@@ -1,5 +1,10 @@
 """Transports for the bridge's frames. The protocol (bridge/protocol.py) does not depend on them.
 
+Datagrams (UDP): one frame per datagram, the same order of exchange as ZeroMQ request/reply.
+Loss is the protocol's business: the requester resends its last frame after a timeout (up to a
+number of retries) and the simulator answers a repeated frame with its last reply, without
+advancing; a late duplicate reply is recognised by its sequence number and dropped.
+
 ZeroMQ request/reply: the runtime is the requester (REQ) and the simulator the replier (REP).
 In lockstep every tick is one request (the actuation) and one reply (the next sample), which is
 exactly REQ/REP's strict alternation, so the pattern enforces the protocol's order of exchange.
@@ -13,6 +18,9 @@ from __future__ import annotations
 
 import ipaddress
 import re
+import select
+import socket
+from typing import Callable
 
 import zmq
 
@@ -20,12 +28,13 @@ from .errors import BridgeError, TransportTimeout  # noqa: F401  (defined in err
 
 
 def check_address(address: str, allow_remote: bool = False) -> str:
-    """Validate a transport address; refuse a non-loopback tcp host unless allowed."""
-    m = re.fullmatch(r"tcp://(\[[^\]]+\]|[^:/]+):(\d+|\*)", address)
+    """Validate a transport address; refuse a non-loopback host unless allowed."""
+    m = re.fullmatch(r"(?:tcp|udp)://(\[[^\]]+\]|[^:/]+):(\d+|\*)", address)
     if address.startswith("ipc://") and len(address) > len("ipc://"):
         return address
     if not m:
-        raise BridgeError(f"bridge address {address!r} is not tcp://HOST:PORT or ipc:///PATH")
+        raise BridgeError(f"bridge address {address!r} is not tcp://HOST:PORT, udp://HOST:PORT "
+                          f"or ipc:///PATH")
     host = m.group(1).strip("[]")
     if host in ("localhost", "*") and host != "*":
         return address
@@ -94,3 +103,109 @@ class RepTransport:
 
     def close(self) -> None:
         self.sock.close(linger=0)
+
+
+def _udp_endpoint(address: str) -> tuple[int, tuple]:
+    m = re.fullmatch(r"udp://(\[[^\]]+\]|[^:/]+):(\d+)", address)
+    if not m:
+        raise BridgeError(f"bridge address {address!r} is not udp://HOST:PORT")
+    host, port = m.group(1).strip("[]"), int(m.group(2))
+    try:
+        info = socket.getaddrinfo(host, port, type=socket.SOCK_DGRAM)[0]
+    except socket.gaierror as exc:
+        raise BridgeError(f"bridge address {address!r}: {exc}") from None
+    return info[0], info[4]
+
+
+#: largest UDP payload (IPv4: 65535 - 8 UDP - 20 IP header bytes)
+MAX_DATAGRAM = 65507
+
+
+class UdpClient:
+    """The runtime's side over UDP: send a frame, wait for the reply, resend on timeout."""
+
+    def __init__(self, address: str, timeout_s: float = 0.05, retries: int = 20,
+                 allow_remote: bool = False):
+        self.address = check_address(address, allow_remote)
+        family, self.peer = _udp_endpoint(address)
+        self.sock = socket.socket(family, socket.SOCK_DGRAM)
+        self.sock.connect(self.peer)
+        self.timeout_s = timeout_s
+        self.retries = retries
+        self.resent = 0
+        self.stale = 0
+        self.closed = False
+
+    def request(self, data: bytes, accept: Callable[[bytes], bool] | None = None) -> bytes:
+        """Send ``data`` and return the first reply that ``accept`` takes (default: any)."""
+        if self.closed:
+            raise BridgeError("the bridge connection is closed")
+        for attempt in range(self.retries + 1):
+            if attempt:
+                self.resent += 1
+            try:
+                self.sock.send(data)
+            except OSError as exc:  # e.g. ICMP port unreachable reported on a connected socket
+                if attempt == self.retries:
+                    raise TransportTimeout(f"{self.address}: {exc}") from None
+                continue
+            while True:
+                ready, _, _ = select.select([self.sock], [], [], self.timeout_s)
+                if not ready:
+                    break
+                try:
+                    reply = self.sock.recv(MAX_DATAGRAM)
+                except OSError:
+                    break
+                if accept is None or accept(reply):
+                    return reply
+                self.stale += 1  # a late answer to an earlier copy: drop it, keep waiting
+        self.close()
+        raise TransportTimeout(f"no reply from {self.address} after {self.retries + 1} tries "
+                               f"{self.timeout_s * 1e3:g} ms apart")
+
+    def close(self) -> None:
+        if not self.closed:
+            self.sock.close()
+            self.closed = True
+
+
+class UdpServer:
+    """The simulator's side over UDP: receive a request, answer its sender."""
+
+    def __init__(self, address: str, allow_remote: bool = False):
+        self.address = check_address(address, allow_remote)
+        family, endpoint = _udp_endpoint(address)
+        self.sock = socket.socket(family, socket.SOCK_DGRAM)
+        self.sock.bind(endpoint)
+        self.peer = None
+
+    def recv(self, timeout_s: float | None = None) -> bytes | None:
+        ready, _, _ = select.select([self.sock], [], [], timeout_s)
+        if not ready:
+            return None
+        data, self.peer = self.sock.recvfrom(MAX_DATAGRAM)
+        return data
+
+    def send(self, data: bytes) -> None:
+        if self.peer is not None:
+            self.sock.sendto(data, self.peer)
+
+    def close(self) -> None:
+        self.sock.close()
+
+
+def client_for(address: str, timeout_s: float, allow_remote: bool = False):
+    """The runtime's transport for an address: UDP for udp://, ZeroMQ request/reply otherwise."""
+    if address.startswith("udp://"):
+        # a datagram transport retries instead of waiting long: the timeout is split into tries
+        return UdpClient(address, timeout_s=min(0.05, timeout_s), retries=max(1, int(timeout_s / 0.05)),
+                         allow_remote=allow_remote)
+    return ReqTransport(address, timeout_s=timeout_s, allow_remote=allow_remote)
+
+
+def server_for(address: str, allow_remote: bool = False):
+    """The simulator's transport for an address."""
+    if address.startswith("udp://"):
+        return UdpServer(address, allow_remote=allow_remote)
+    return RepTransport(address, allow_remote=allow_remote)

@@ -298,6 +298,13 @@ def main(argv: list[str] | None = None) -> int:
     p.add_argument("--sessions", type=int, metavar="N", help="stop after N sessions (default: serve until interrupted)")
     p.add_argument("--idle-timeout", type=float, metavar="S", help="stop when nothing arrives for S seconds")
     p.add_argument("--allow-remote", action="store_true", help="allow binding to a non-loopback address")
+    p.add_argument("--drop", type=float, default=0.0, metavar="FRACTION",
+                   help="fault injection: drop this fraction of replies (udp:// only)")
+    p.add_argument("--delay", type=float, default=0.0, metavar="S", help="fault injection: delay every reply")
+    p.add_argument("--jitter", type=float, default=0.0, metavar="S", help="fault injection: plus up to this random delay")
+    p.add_argument("--freeze-after", type=int, metavar="N", help="fault injection: stop answering from tick N on")
+    p.add_argument("--corrupt-every", type=int, metavar="N", help="fault injection: flip a byte in every N-th reply")
+    p.add_argument("--fault-seed", type=int, default=0, metavar="SEED", help="seed of the fault injection")
     p = sub.add_parser("compare", help="run one scenario with several controllers side by side")
     p.add_argument("scenario", help="scenario TOML file")
     p.add_argument("--controllers", required=True, metavar="A,B,...",
@@ -349,12 +356,16 @@ def main(argv: list[str] | None = None) -> int:
                  bridge=args.bridge, mode=args.mode, timeout=args.timeout,
                  allow_remote=args.allow_remote)
         elif args.cmd == "serve-sim":
-            from hilrig.bridge.standin import serve
+            from hilrig.bridge.standin import Faults, serve
             from hilrig.runtime.scenario import load_scenario
+            faults = Faults(drop=args.drop, delay_s=args.delay, jitter_s=args.jitter,
+                            freeze_after=args.freeze_after, corrupt_every=args.corrupt_every,
+                            seed=args.fault_seed)
             sc = load_scenario(args.scenario)
             _show_caution(console, sc)
             serve(sc, args.bind, sessions=args.sessions, allow_remote=args.allow_remote,
-                  idle_timeout_s=args.idle_timeout, log=lambda m: console.print(m, markup=False))
+                  idle_timeout_s=args.idle_timeout, faults=faults,
+                  log=lambda m: console.print(m, markup=False))
         elif args.cmd == "compare":
             _compare(console, args)
         elif args.cmd == "envelope":

@@ -133,3 +133,53 @@ def test_simulator_gone_ends_the_run_with_a_timeout_event(tmp_path, demo_path):
     assert not s["completed"] and s["end_event"] == "bridge timeout"
     run = open_run(tmp_path / "r")
     assert run.time.shape[0] == s["ticks_run"] > 0
+
+
+def _free_udp_port():
+    import socket
+    with socket.socket(socket.AF_INET, socket.SOCK_DGRAM) as s:
+        s.bind(("127.0.0.1", 0))
+        return s.getsockname()[1]
+
+
+def test_udp_lockstep_with_lost_and_corrupted_datagrams_still_reproduces_sil(lockstep_run):
+    """Loss and corruption are the protocol's business: the runtime resends its actuation, the
+    simulator answers a repeated actuation with its last sample without advancing, and a
+    datagram that does not decode is counted and treated as lost."""
+    tmp, scen, sil, _ = lockstep_run
+    address = f"udp://127.0.0.1:{_free_udp_port()}"
+    sim = _serve(scen, address, "--drop", "0.05", "--corrupt-every", "97", "--fault-seed", "7")
+    try:
+        time.sleep(1.0)  # let it bind before the first datagram
+        p = subprocess.run(CLI + ["run", str(scen), "--bridge", address, "--out", str(tmp / "udp"),
+                                  "--headless", "--timeout", "60"],
+                           capture_output=True, text=True, timeout=600)
+        sim_out, sim_err = sim.communicate(timeout=120)
+    finally:
+        if sim.poll() is None:
+            sim.kill()
+            sim.communicate(timeout=60)
+    assert p.returncode == 0, p.stdout + p.stderr
+    a, b = open_run(tmp / "udp"), open_run(sil.folder)
+    for name in ("v_out", "i_L1", "u"):
+        assert a.signals[name].tobytes() == b.signals[name].tobytes(), name
+    s = json.loads((tmp / "udp" / "summary.json").read_text())
+    br = s["bridge"]
+    assert br["resent"] > 0 and br["rejected"]
+    assert "dropped" in sim_out and "corrupted" in sim_out
+
+
+def test_frozen_simulator_over_zeromq_times_out(tmp_path, demo_path):
+    scen = _scenario(tmp_path, demo_path)
+    address = f"ipc://{tmp_path}/frz.sock"
+    sim = _serve(scen, address, "--freeze-after", "200")
+    try:
+        p = subprocess.run(CLI + ["run", str(scen), "--bridge", address, "--out", str(tmp_path / "r"),
+                                  "--headless", "--timeout", "3"],
+                           capture_output=True, text=True, timeout=600)
+    finally:
+        sim.kill()
+        sim.communicate(timeout=60)
+    assert p.returncode == 0, p.stdout + p.stderr
+    s = json.loads((tmp_path / "r" / "summary.json").read_text())
+    assert s["end_event"] == "bridge timeout" and s["ticks_run"] == 201
