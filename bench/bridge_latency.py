@@ -36,7 +36,8 @@ every loop is bounded in count and time and the script stops by itself. Not run 
 
 Run: python bench/bridge_latency.py [--seconds 0.5] [--reps 3]
      python bench/bridge_latency.py --profile   (adds a cProfile of one short session per
-     transport, runtime side and stand-in side, as microseconds per tick)
+     transport, runtime side and stand-in side, in microseconds per tick, and the pieces of a
+     lockstep tick timed in this process without any transport)
 The last printed line is JSON: {"zmq_ipc": {"lockstep_ticks_per_s", "lockstep_loop_ticks_per_s",
 "raw_round_trips_per_s", "ratio", "rtt_us": {"p50", "p99", "max"}, "raw_rtt_us": {...}, ...},
 "zmq_tcp": {...}, "udp": {...} or "unavailable", "udp_raw": {...} (only when "udp" is
@@ -405,12 +406,45 @@ def summarise(m: dict) -> dict:
 # ---------------------------------------------------------------------------------------------
 # profile (optional)
 
+# The stand-in under cProfile (run with ``python -c``): the plant kernels are compiled or loaded
+# before profiling starts, so the profile holds the serving loop, not imports and kernel loading.
+PROFILED_STANDIN = r"""
+import cProfile, sys
+from hilrig.bridge import standin
+from hilrig.runtime.scenario import load_scenario
+scen, bind, out = sys.argv[1:4]
+sc = load_scenario(scen)
+sim = standin.StandIn(sc)
+standin.StandIn = lambda sc: sim  # serve() builds its plant state once: hand it the loaded one
+pr = cProfile.Profile()
+pr.enable()
+standin.serve(sc, bind, sessions=1, idle_timeout_s=60.0, log=lambda m: print(m, flush=True))
+pr.disable()
+pr.dump_stats(out)
+"""
+
+
+def print_profile(side: str, stats: pstats.Stats, ticks: int, top: int) -> None:
+    rows = []
+    for (file, line, fn), (cc, nc, tt, ct, _) in stats.stats.items():
+        if nc >= ticks // 2:  # called about once per tick or more: the per-tick path
+            rows.append((tt, nc, ct, f"{Path(file).name}:{line}({fn})"))
+    rows.sort(reverse=True)
+    per_tick = sum(r[0] for r in rows) / ticks * 1e6
+    print(f"  {side}: {ticks} ticks; functions called >= once per tick: {per_tick:.1f} us of own "
+          f"time per tick under the profiler (waits included)")
+    print(f"    {'own us/tick':>11} {'cum us/tick':>11} {'calls/tick':>10}  function")
+    for tt, nc, ct, name in rows[:top]:
+        print(f"    {tt / ticks * 1e6:11.2f} {ct / ticks * 1e6:11.2f} {nc / ticks:10.2f}  {name}")
+
+
 def profile(key: str, sc, scen: Path, tmp: Path, top: int = 12) -> None:
     """cProfile of one short session: runtime side here, stand-in side in its process."""
     from hilrig.bridge.session import run_bridge
     sim_addr, _ = addresses(key, tmp)
     prof_sim = tmp / f"{key}-sim.prof"
-    sim = start_standin(scen, sim_addr, 1, tmp / f"{key}-prof-sim.log", profile_to=prof_sim)
+    sim = start([sys.executable, "-c", PROFILED_STANDIN, str(scen), sim_addr, str(prof_sim)],
+                tmp / f"{key}-prof-sim.log", "listening")
     pr = cProfile.Profile()
     try:
         pr.enable()
@@ -419,24 +453,71 @@ def profile(key: str, sc, scen: Path, tmp: Path, top: int = 12) -> None:
     finally:
         stop(sim, wait_s=30)
     ticks = res.summary["ticks_run"]
-    for side, stats in (("runtime (run_bridge)", pstats.Stats(pr)),
-                        ("stand-in simulator", pstats.Stats(str(prof_sim)) if prof_sim.exists() else None)):
-        if stats is None:
-            print(f"  {side}: no profile written")
-            continue
-        rows = []
-        total = 0.0
-        for (file, line, fn), (cc, nc, tt, ct, _) in stats.stats.items():
-            total += tt
-            if nc >= ticks // 2:  # called about once per tick or more: the per-tick path
-                rows.append((tt, nc, ct, f"{Path(file).name}:{line}({fn})"))
-        rows.sort(reverse=True)
-        per_tick = sum(r[0] for r in rows) / ticks * 1e6
-        print(f"  {side}: {ticks} ticks; functions called >= once per tick take {per_tick:.1f} us "
-              f"per tick (own time, under the profiler), all functions {total / ticks * 1e6:.1f} us")
-        print(f"    {'own us/tick':>11} {'cum us/tick':>11} {'calls/tick':>10}  function")
-        for tt, nc, ct, name in rows[:top]:
-            print(f"    {tt / ticks * 1e6:11.2f} {ct / ticks * 1e6:11.2f} {nc / ticks:10.2f}  {name}")
+    print_profile("runtime (run_bridge)", pstats.Stats(pr), ticks, top)
+    if prof_sim.exists():
+        print_profile("stand-in simulator (serve)", pstats.Stats(str(prof_sim)), ticks, top)
+    else:
+        print("  stand-in simulator: no profile written")
+
+
+def pieces(sc, n: int) -> None:
+    """The work of a lockstep tick without any transport, piece by piece, in this process.
+
+    The same calls as the session's tick loop and the stand-in's reply to an ACTUATION, in the
+    same order, closed into a loop (SAMPLE bytes -> runtime -> ACTUATION bytes -> simulator ->
+    SAMPLE bytes ...), each piece timed with perf_counter_ns. Their sum is the processing a
+    lockstep tick adds to a raw round trip.
+    """
+    from hilrig.bridge import protocol as P
+    from hilrig.bridge.session import _bridge_kernel, _tick_args, signal_maps
+    from hilrig.bridge.standin import StandIn
+    from hilrig.runtime.run import prepare
+    meas_map, act_map = signal_maps(sc)
+    n_meas, n_act = len(meas_map), len(act_map)
+    tick = _bridge_kernel(sc)
+    prep = prepare(sc)
+    a = prep.args
+    targs = _tick_args(a)
+    rec = np.zeros((n, len(prep.signals)))
+    sim = StandIn(sc)
+    seq = P.SequenceTracker()
+    names = ("runtime: decode SAMPLE", "runtime: tick kernel + bookkeeping",
+             "runtime: build + encode ACTUATION", "sim: decode ACTUATION",
+             "sim: plant advance (kernel)", "sim: plant sample + build SAMPLE", "sim: encode SAMPLE")
+    cost = dict.fromkeys(names, 0)
+    clock = time.perf_counter_ns
+    wire = P.encode(sim.sample(0))
+    t_all = clock()
+    for kk in range(n):
+        t0 = clock()
+        smp = P.decode(wire, n_meas=n_meas, n_act=n_act)
+        t1 = clock()
+        seq.check(smp.seq)
+        a["y"][:] = smp.meas
+        a["d"][:] = np.nan
+        tick(kk, kk, sc.Ts, sc.v_collapse, a["i_vout"], *targs, rec, a["ev"])
+        enable = not bool(a["latch"][0])
+        word = int(rec[kk, -2])
+        t2 = clock()
+        act = P.encode(P.Actuation(seq=kk, u=a["u"].copy(), interlock_word=word,
+                                   output_enable=enable))
+        t3 = clock()
+        frame = P.decode(act, n_meas=n_meas, n_act=n_act)
+        t4 = clock()
+        sim.step(frame.u if frame.output_enable else np.zeros_like(frame.u))
+        t5 = clock()
+        out = sim.sample(sim.k)
+        t6 = clock()
+        wire = P.encode(out)
+        t7 = clock()
+        for name, dt in zip(names, (t1 - t0, t2 - t1, t3 - t2, t4 - t3, t5 - t4, t6 - t5, t7 - t6)):
+            cost[name] += dt
+    wall = (clock() - t_all) / 1e9
+    total = sum(cost.values()) / n / 1e3
+    print(f"  in-process lockstep, no transport: {n / wall:,.0f} ticks/s ({wall / n * 1e6:.1f} us "
+          f"per tick; the pieces below sum to {total:.1f} us)")
+    for name in names:
+        print(f"    {cost[name] / n / 1e3:7.2f} us  {name}")
 
 
 # ---------------------------------------------------------------------------------------------
@@ -556,6 +637,11 @@ def main():
                 continue
             print(f" {label}:")
             profile(key, psc, psc_path, tmp)
+        print(" pieces of a tick:")
+        try:
+            pieces(psc, psc.n_ticks)
+        except Exception as exc:  # noqa: BLE001 -- mirrors session internals that may change
+            print(f"  not measured: {type(exc).__name__}: {exc}")
 
     out = {}
     for key in ("zmq_ipc", "zmq_tcp", "udp"):

@@ -72,6 +72,7 @@ class BridgeStats:
 
 def run_bridge(sc, address: str, folder: Path | None = None, *, mode: str = "lockstep",
                timeout_s: float = 2.0, allow_remote: bool = False, overwrite: bool = False,
+               curve_keys: Path | None = None,
                progress: Callable[[int, int], None] | None = None,
                notice: Callable[[str], None] | None = None) -> RunResult:
     """Run the scenario's controller against the simulator at ``address``."""
@@ -91,7 +92,8 @@ def run_bridge(sc, address: str, folder: Path | None = None, *, mode: str = "loc
     meas_map, act_map = signal_maps(sc)
     n_meas, n_act = len(meas_map), len(act_map)
     h = P.map_hash(meas_map, act_map)
-    link = client_for(address, timeout_s=timeout_s, allow_remote=allow_remote)
+    link = client_for(address, timeout_s=timeout_s, allow_remote=allow_remote,
+                      curve_keys=curve_keys)
     stats = BridgeStats()
     stats.link = link
     ended: list[dict[str, Any]] = []

@@ -113,7 +113,7 @@ class StandIn:
 
 
 def serve(sc, bind: str, *, sessions: int | None = None, allow_remote: bool = False,
-          idle_timeout_s: float | None = None, faults: Faults | None = None,
+          idle_timeout_s: float | None = None, faults: Faults | None = None, curve_keys=None,
           log: Callable[[str], None] = print) -> int:
     """Serve lockstep sessions on ``bind`` until ``sessions`` have ended (None: forever) or
     nothing arrives for ``idle_timeout_s``. Returns the number of sessions served."""
@@ -122,7 +122,7 @@ def serve(sc, bind: str, *, sessions: int | None = None, allow_remote: bool = Fa
         raise ValueError("--drop needs a datagram transport (udp://): ZeroMQ request/reply "
                          "cannot skip a reply; use --freeze-after to stop answering")
     sim = StandIn(sc)
-    rep = server_for(bind, allow_remote=allow_remote)
+    rep = server_for(bind, allow_remote=allow_remote, curve_keys=curve_keys)
     n_meas, n_act = len(sim.meas_map), len(sim.act_map)
     served = 0
     in_session = False

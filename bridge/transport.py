@@ -36,13 +36,11 @@ def check_address(address: str, allow_remote: bool = False) -> str:
         raise BridgeError(f"bridge address {address!r} is not tcp://HOST:PORT, udp://HOST:PORT "
                           f"or ipc:///PATH")
     host = m.group(1).strip("[]")
-    if host in ("localhost", "*") and host != "*":
+    if host == "localhost":
         return address
     try:
         loop = ipaddress.ip_address(host).is_loopback
-    except ValueError:
-        loop = False
-    if host == "*":
+    except ValueError:  # a host name or "*" (every interface): not loopback
         loop = False
     if not loop and not allow_remote:
         raise BridgeError(f"bridge address {address!r} is not on this machine (loopback); a remote "
@@ -50,14 +48,39 @@ def check_address(address: str, allow_remote: bool = False) -> str:
     return address
 
 
-class ReqTransport:
-    """The runtime's side: send a frame, wait for the reply frame (with a timeout)."""
+def _is_loopback(address: str) -> bool:
+    try:
+        check_address(address, allow_remote=False)
+        return True
+    except BridgeError:
+        return False
 
-    def __init__(self, address: str, timeout_s: float = 1.0, allow_remote: bool = False):
+
+class ReqTransport:
+    """The runtime's side: send a frame, wait for the reply frame (with a timeout).
+
+    With ``curve_keys`` (a folder made by ``hilrig keys``) the connection is authenticated and
+    encrypted with CurveZMQ; a ZeroMQ peer that is not on this machine requires it.
+    """
+
+    def __init__(self, address: str, timeout_s: float = 1.0, allow_remote: bool = False,
+                 curve_keys=None):
         self.address = check_address(address, allow_remote)
+        if curve_keys is None and not _is_loopback(address) and not address.startswith("ipc://"):
+            raise BridgeError(f"a ZeroMQ peer that is not on this machine ({address}) needs "
+                              f"CurveZMQ keys: make them with 'hilrig keys DIR' and pass --curve-keys DIR")
         self.timeout_ms = max(1, int(round(timeout_s * 1000)))
         self.ctx = zmq.Context.instance()
         self.sock = self.ctx.socket(zmq.REQ)
+        self.monitor = None
+        if curve_keys is not None:
+            from .keys import client_keys
+            pub, sec, server_pub = client_keys(curve_keys)
+            self.sock.curve_publickey, self.sock.curve_secretkey = pub, sec
+            self.sock.curve_serverkey = server_pub
+            self.monitor = self.sock.get_monitor_socket(zmq.EVENT_HANDSHAKE_FAILED_AUTH
+                                                        | zmq.EVENT_HANDSHAKE_FAILED_NO_DETAIL
+                                                        | zmq.EVENT_HANDSHAKE_FAILED_PROTOCOL)
         self.sock.setsockopt(zmq.LINGER, 0)
         self.sock.setsockopt(zmq.RCVTIMEO, self.timeout_ms)
         self.sock.setsockopt(zmq.SNDTIMEO, self.timeout_ms)
@@ -72,22 +95,54 @@ class ReqTransport:
             self.sock.send(data, copy=True)
             return self.sock.recv(copy=True)
         except zmq.Again:
+            why = self._handshake_failure()
             self.close()
+            if why:
+                raise BridgeError(f"{self.address} refused the CurveZMQ handshake ({why}): the "
+                                  f"simulator does not accept this runtime's key, or its key is "
+                                  f"not the one in the keys folder") from None
             raise TransportTimeout(f"no reply from {self.address} within {self.timeout_ms} ms") from None
+
+    def _handshake_failure(self) -> str | None:
+        if self.monitor is None:
+            return None
+        from zmq.utils.monitor import recv_monitor_message
+        while self.monitor.poll(0):
+            ev = recv_monitor_message(self.monitor)
+            if ev["event"] & (zmq.EVENT_HANDSHAKE_FAILED_AUTH | zmq.EVENT_HANDSHAKE_FAILED_NO_DETAIL
+                              | zmq.EVENT_HANDSHAKE_FAILED_PROTOCOL):
+                return zmq.Event(ev["event"]).name.lower()
+        return None
 
     def close(self) -> None:
         if not self.closed:
+            if self.monitor is not None:
+                self.sock.disable_monitor()
+                self.monitor.close(linger=0)
             self.sock.close(linger=0)
             self.closed = True
 
 
 class RepTransport:
-    """The simulator's side: receive a request, send exactly one reply."""
+    """The simulator's side: receive a request, send exactly one reply.
 
-    def __init__(self, address: str, allow_remote: bool = False):
+    With ``curve_keys`` only runtimes whose public certificate is in that folder get through.
+    """
+
+    def __init__(self, address: str, allow_remote: bool = False, curve_keys=None):
         self.address = check_address(address, allow_remote)
+        if curve_keys is None and not _is_loopback(address) and not address.startswith("ipc://"):
+            raise BridgeError(f"binding ZeroMQ to {address}, reachable from other machines, needs "
+                              f"CurveZMQ keys: make them with 'hilrig keys DIR' and pass --curve-keys DIR")
         self.ctx = zmq.Context.instance()
+        self.auth = None
         self.sock = self.ctx.socket(zmq.REP)
+        if curve_keys is not None:
+            from .keys import server_keys, start_authenticator
+            pub, sec = server_keys(curve_keys)
+            self.auth = start_authenticator(self.ctx, curve_keys)
+            self.sock.curve_server = True
+            self.sock.curve_publickey, self.sock.curve_secretkey = pub, sec
         self.sock.setsockopt(zmq.LINGER, 0)
         self.sock.setsockopt(zmq.MAXMSGSIZE, 1 << 20)
         self.sock.bind(self.address)
@@ -103,6 +158,8 @@ class RepTransport:
 
     def close(self) -> None:
         self.sock.close(linger=0)
+        if self.auth is not None:
+            self.auth.stop()
 
 
 def _udp_endpoint(address: str) -> tuple[int, tuple]:
@@ -195,17 +252,22 @@ class UdpServer:
         self.sock.close()
 
 
-def client_for(address: str, timeout_s: float, allow_remote: bool = False):
+def client_for(address: str, timeout_s: float, allow_remote: bool = False, curve_keys=None):
     """The runtime's transport for an address: UDP for udp://, ZeroMQ request/reply otherwise."""
     if address.startswith("udp://"):
+        if curve_keys is not None:
+            raise BridgeError("--curve-keys applies to ZeroMQ addresses (tcp://, ipc://), not udp://")
         # a datagram transport retries instead of waiting long: the timeout is split into tries
         return UdpClient(address, timeout_s=min(0.05, timeout_s), retries=max(1, int(timeout_s / 0.05)),
                          allow_remote=allow_remote)
-    return ReqTransport(address, timeout_s=timeout_s, allow_remote=allow_remote)
+    return ReqTransport(address, timeout_s=timeout_s, allow_remote=allow_remote,
+                        curve_keys=curve_keys)
 
 
-def server_for(address: str, allow_remote: bool = False):
+def server_for(address: str, allow_remote: bool = False, curve_keys=None):
     """The simulator's transport for an address."""
     if address.startswith("udp://"):
+        if curve_keys is not None:
+            raise BridgeError("--curve-keys applies to ZeroMQ addresses (tcp://, ipc://), not udp://")
         return UdpServer(address, allow_remote=allow_remote)
-    return RepTransport(address, allow_remote=allow_remote)
+    return RepTransport(address, allow_remote=allow_remote, curve_keys=curve_keys)

@@ -99,7 +99,7 @@ def _summary_table(console, s: dict, folder: Path | None) -> None:
 
 def _run(console, plain, scenario_path: Path, out: str | None, overwrite: bool, sets: list[str],
          bridge: str | None = None, mode: str = "lockstep", timeout: float = 2.0,
-         allow_remote: bool = False):
+         allow_remote: bool = False, curve_keys: str | None = None):
     from hilrig.runtime.plots import overview_png
     from hilrig.runtime.recording import open_run
     from hilrig.runtime.run import run_scenario
@@ -113,6 +113,7 @@ def _run(console, plain, scenario_path: Path, out: str | None, overwrite: bool, 
             from hilrig.bridge.session import run_bridge
             res = run_bridge(sc, bridge, Path(out) if out else None, mode=mode, timeout_s=timeout,
                              allow_remote=allow_remote, overwrite=overwrite, progress=prog,
+                             curve_keys=Path(curve_keys) if curve_keys else None,
                              notice=lambda msg: console.print(msg))
         else:
             res = run_scenario(sc, Path(out) if out else None, overwrite=overwrite, progress=prog,
@@ -291,6 +292,9 @@ def main(argv: list[str] | None = None) -> int:
     p.add_argument("--timeout", type=float, default=2.0, metavar="S", help="bridge reply timeout [s] (default 2)")
     p.add_argument("--allow-remote", action="store_true",
                    help="allow a bridge address that is not on this machine (you take responsibility for the network)")
+    p.add_argument("--curve-keys", metavar="DIR", help="CurveZMQ keys folder (hilrig keys DIR); required for a remote ZeroMQ peer")
+    p = sub.add_parser("keys", help="make CurveZMQ key pairs for a bridge between two machines")
+    p.add_argument("folder", help="folder to write simulator.key[_secret] and runtime.key[_secret]")
     p = sub.add_parser("serve-sim", help="serve the stand-in simulator: the scenario's plant over the bridge protocol")
     p.add_argument("--scenario", required=True, help="scenario whose plant, load profile and timing to simulate")
     p.add_argument("--bind", default="tcp://127.0.0.1:47810", metavar="ADDRESS",
@@ -298,6 +302,7 @@ def main(argv: list[str] | None = None) -> int:
     p.add_argument("--sessions", type=int, metavar="N", help="stop after N sessions (default: serve until interrupted)")
     p.add_argument("--idle-timeout", type=float, metavar="S", help="stop when nothing arrives for S seconds")
     p.add_argument("--allow-remote", action="store_true", help="allow binding to a non-loopback address")
+    p.add_argument("--curve-keys", metavar="DIR", help="CurveZMQ keys folder; only runtimes whose public key is there get in")
     p.add_argument("--drop", type=float, default=0.0, metavar="FRACTION",
                    help="fault injection: drop this fraction of replies (udp:// only)")
     p.add_argument("--delay", type=float, default=0.0, metavar="S", help="fault injection: delay every reply")
@@ -354,7 +359,14 @@ def main(argv: list[str] | None = None) -> int:
         elif args.cmd == "run":
             _run(console, plain, Path(args.scenario), args.out, args.overwrite, args.set,
                  bridge=args.bridge, mode=args.mode, timeout=args.timeout,
-                 allow_remote=args.allow_remote)
+                 allow_remote=args.allow_remote, curve_keys=args.curve_keys)
+        elif args.cmd == "keys":
+            from hilrig.bridge.keys import generate
+            for f in generate(Path(args.folder)):
+                console.print(f"wrote {f}", markup=False)
+            console.print("Keep the *.key_secret files private: the simulator side needs "
+                          "simulator.key_secret and runtime.key; the runtime side runtime.key_secret "
+                          "and simulator.key.")
         elif args.cmd == "serve-sim":
             from hilrig.bridge.standin import Faults, serve
             from hilrig.runtime.scenario import load_scenario
@@ -364,7 +376,7 @@ def main(argv: list[str] | None = None) -> int:
             sc = load_scenario(args.scenario)
             _show_caution(console, sc)
             serve(sc, args.bind, sessions=args.sessions, allow_remote=args.allow_remote,
-                  idle_timeout_s=args.idle_timeout, faults=faults,
+                  idle_timeout_s=args.idle_timeout, faults=faults, curve_keys=args.curve_keys,
                   log=lambda m: console.print(m, markup=False))
         elif args.cmd == "compare":
             _compare(console, args)

@@ -183,3 +183,61 @@ def test_frozen_simulator_over_zeromq_times_out(tmp_path, demo_path):
     assert p.returncode == 0, p.stdout + p.stderr
     s = json.loads((tmp_path / "r" / "summary.json").read_text())
     assert s["end_event"] == "bridge timeout" and s["ticks_run"] == 201
+
+
+def _free_tcp_port():
+    import socket
+    with socket.socket() as s:
+        s.bind(("127.0.0.1", 0))
+        return s.getsockname()[1]
+
+
+def test_curve_keys_authenticate_and_a_wrong_key_is_refused(tmp_path, demo_path):
+    """CurveZMQ (ZeroMQ RFC 26): the simulator admits only runtimes whose public key it holds."""
+    scen = _scenario(tmp_path, demo_path)
+    good, other = tmp_path / "keys", tmp_path / "other"
+    for folder in (good, other):
+        p = subprocess.run(CLI + ["keys", str(folder)], capture_output=True, text=True, timeout=120)
+        assert p.returncode == 0, p.stderr
+    assert oct((good / "runtime.key_secret").stat().st_mode & 0o777) == "0o600"
+    # making keys again into the same folder is refused, nothing overwritten
+    before = (good / "runtime.key_secret").read_bytes()
+    p = subprocess.run(CLI + ["keys", str(good)], capture_output=True, text=True, timeout=120)
+    assert p.returncode == 2 and (good / "runtime.key_secret").read_bytes() == before
+    address = f"tcp://127.0.0.1:{_free_tcp_port()}"
+    sim = subprocess.Popen(CLI + ["serve-sim", "--scenario", str(scen), "--bind", address,
+                                  "--sessions", "1", "--idle-timeout", "60", "--curve-keys", str(good)],
+                           stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
+    try:
+        # a runtime with keys from another folder: refused during the handshake, clearly
+        wrong = tmp_path / "wrong"
+        wrong.mkdir()
+        for f in ("runtime.key", "runtime.key_secret"):
+            (wrong / f).write_bytes((other / f).read_bytes())
+        (wrong / "simulator.key").write_bytes((good / "simulator.key").read_bytes())
+        p = subprocess.run(CLI + ["run", str(scen), "--bridge", address, "--out", str(tmp_path / "w"),
+                                  "--headless", "--timeout", "5", "--curve-keys", str(wrong)],
+                           capture_output=True, text=True, timeout=300)
+        assert p.returncode == 2, p.stdout + p.stderr
+        assert "CurveZMQ" in p.stdout and "Traceback" not in p.stdout + p.stderr
+        # the right keys: the session runs
+        p = subprocess.run(CLI + ["run", str(scen), "--bridge", address, "--out", str(tmp_path / "ok"),
+                                  "--headless", "--timeout", "30", "--curve-keys", str(good)],
+                           capture_output=True, text=True, timeout=600)
+        assert p.returncode == 0, p.stdout + p.stderr
+        sim.communicate(timeout=120)
+    finally:
+        if sim.poll() is None:
+            sim.kill()
+            sim.communicate(timeout=60)
+    assert json.loads((tmp_path / "ok" / "summary.json").read_text())["completed"]
+
+
+def test_remote_zeromq_needs_curve_keys():
+    from hilrig.bridge.errors import BridgeError
+    from hilrig.bridge.transport import ReqTransport, check_address
+    with pytest.raises(BridgeError, match="--allow-remote"):
+        check_address("tcp://192.0.2.1:47810")
+    assert check_address("tcp://192.0.2.1:47810", allow_remote=True)
+    with pytest.raises(BridgeError, match="needs CurveZMQ keys"):
+        ReqTransport("tcp://192.0.2.1:47810", allow_remote=True)
