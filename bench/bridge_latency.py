@@ -12,7 +12,8 @@ constant 50 kW load (demo data, written to a temporary folder). Per session:
   not the one-off set-up, handshake or summary);
 - "loop only" = ticks / time inside the tick loop (summary.json "timing" -> "loop_s", HDF5 writes
   and metrics excluded);
-- round trip p50/p99/max = summary.json "bridge" -> "rtt_us" (encode to decode of each request).
+- round trip p50/p99/max = summary.json "bridge" -> "rtt_us" (each request, from handing the
+  encoded frame to the transport to getting the reply back, so it includes the simulator's work).
 
 Raw ping-pong: an echo server in a subprocess answers each request with fixed bytes; the client
 here sends the encoded bytes of a real ACTUATION frame (1 actuation) and gets back those of a real
@@ -287,6 +288,11 @@ class RawClient:
             self.sock.connect(address)
             self.zmq = True
 
+    def exchange(self, data: bytes) -> bytes:
+        """One request and its reply (no timing)."""
+        self.sock.send(data)
+        return self.sock.recv() if self.zmq else self.sock.recv(65507)
+
     def series(self, request: bytes, n: int) -> dict:
         """``n`` round trips (capped at :data:`RAW_CAP_S`); rate and round-trip percentiles."""
         rtt = np.empty(n, dtype=np.int64)
@@ -415,7 +421,7 @@ from hilrig.runtime.scenario import load_scenario
 scen, bind, out = sys.argv[1:4]
 sc = load_scenario(scen)
 sim = standin.StandIn(sc)
-standin.StandIn = lambda sc: sim  # serve() builds its plant state once: hand it the loaded one
+standin.StandIn = lambda *a, **k: sim  # serve() builds its plant state once: hand it the loaded one
 pr = cProfile.Profile()
 pr.enable()
 standin.serve(sc, bind, sessions=1, idle_timeout_s=60.0, log=lambda m: print(m, flush=True))
@@ -460,6 +466,43 @@ def profile(key: str, sc, scen: Path, tmp: Path, top: int = 12) -> None:
         print("  stand-in simulator: no profile written")
 
 
+def standin_probe(key: str, sc, scen: Path, tmp: Path, n: int) -> dict:
+    """The stand-in's service in place: a bare client (no controller, frames encoded beforehand)
+    runs one lockstep session of ``n`` ACTUATIONs against it. Its round trip is the transport
+    plus the stand-in's work per tick, in its own process, as the bridge sees it."""
+    from hilrig.bridge import protocol as P
+    from hilrig.bridge.session import signal_maps
+    sim_addr, _ = addresses(key, tmp)
+    sim = start_standin(scen, sim_addr, 1, tmp / f"{key}-probe-sim.log")
+    client = RawClient(sim_addr)
+    try:
+        meas_map, act_map = signal_maps(sc)
+        u = np.full(len(act_map), 400.0)
+        hello = P.encode(P.Hello(version=P.PROTOCOL_VERSION, tick_period_s=sc.Ts, mode="lockstep",
+                                 meas_map=meas_map, act_map=act_map,
+                                 map_hash=P.map_hash(meas_map, act_map)))
+        reqs = [P.encode_actuation(k, u, 0, True) for k in range(n)]
+        for frame in (hello, P.encode(P.Heartbeat(seq=0, t_sender_s=0.0))):
+            client.exchange(frame)
+        rtt = np.empty(n, dtype=np.int64)
+        clock = time.perf_counter_ns
+        exchange = client.exchange
+        deadline = clock() + int(RAW_CAP_S * 1e9)
+        done = 0
+        t_start = clock()
+        while done < n and clock() < deadline:
+            t0 = clock()
+            exchange(reqs[done])
+            rtt[done] = clock() - t0
+            done += 1
+        wall = (clock() - t_start) / 1e9
+        client.exchange(P.encode(P.Stop(reason="probe ended")))
+    finally:
+        client.sock.close()
+        stop(sim, wait_s=10)
+    return {"round_trips_per_s": done / wall, "rtt_us": pct(rtt[:done] / 1e3)}
+
+
 def pieces(sc, n: int) -> None:
     """The work of a lockstep tick without any transport, piece by piece, in this process.
 
@@ -478,7 +521,8 @@ def pieces(sc, n: int) -> None:
     prep = prepare(sc)
     a = prep.args
     targs = _tick_args(a)
-    rec = np.zeros((n, len(prep.signals)))
+    warm = min(n, 500)  # first calls load kernels and fill caches: not counted
+    rec = np.zeros((n + warm, len(prep.signals)))
     sim = StandIn(sc)
     seq = P.SequenceTracker()
     names = ("runtime: decode SAMPLE", "runtime: tick kernel + bookkeeping",
@@ -487,8 +531,11 @@ def pieces(sc, n: int) -> None:
     cost = dict.fromkeys(names, 0)
     clock = time.perf_counter_ns
     wire = P.encode(sim.sample(0))
-    t_all = clock()
-    for kk in range(n):
+    t_all = 0
+    for kk in range(n + warm):
+        if kk == warm:
+            cost = dict.fromkeys(names, 0)
+            t_all = clock()
         t0 = clock()
         smp = P.decode(wire, n_meas=n_meas, n_act=n_act)
         t1 = clock()
@@ -635,7 +682,18 @@ def main():
                 continue
             if "error" in results[key]:
                 continue
-            print(f" {label}:")
+            r = results[key]
+            try:
+                probe = standin_probe(key, psc, psc_path, tmp, psc.n_ticks)
+            except Exception as exc:  # noqa: BLE001 -- a side measurement: report and go on
+                print(f" {label}: bare-client probe failed: {type(exc).__name__}: {exc}")
+                continue
+            per_tick = 1e6 / r["lockstep_ticks_per_s"]
+            print(f" {label}: round trip p50 raw {r['raw_rtt_us']['p50']:.0f} us -> bare client "
+                  f"against the stand-in {probe['rtt_us']['p50']:.0f} us "
+                  f"({probe['round_trips_per_s']:,.0f} rt/s) -> lockstep {r['rtt_us']['p50']:.0f} us;"
+                  f" lockstep tick {per_tick:.0f} us, of which about "
+                  f"{per_tick - r['rtt_us']['p50']:.0f} us in this process between round trips")
             profile(key, psc, psc_path, tmp)
         print(" pieces of a tick:")
         try:

@@ -21,7 +21,7 @@ from . import protocol as P
 from .errors import BridgeError, PeerError, ProtocolError, TransportTimeout
 from .transport import client_for
 
-MODES = ("lockstep",)
+MODES = ("lockstep", "free-running")
 
 
 def signal_maps(sc) -> tuple[list[list[str]], list[list[str]]]:
@@ -78,6 +78,9 @@ def run_bridge(sc, address: str, folder: Path | None = None, *, mode: str = "loc
     """Run the scenario's controller against the simulator at ``address``."""
     if mode not in MODES:
         raise BridgeError(f"bridge mode {mode!r} is not available; modes: {', '.join(MODES)}")
+    if mode == "free-running":
+        return run_free_running(sc, address, folder, timeout_s=timeout_s, overwrite=overwrite,
+                                progress=progress, notice=notice)
     sc = dataclasses.replace(sc, mode=mode)
     folder = Path(folder) if folder is not None else default_folder(sc)
     check_folder(folder, overwrite)
@@ -189,5 +192,162 @@ def run_bridge(sc, address: str, folder: Path | None = None, *, mode: str = "loc
                            "address": address, "mode": mode,
                            "simulator": welcome.simulator_name, **stats.as_dict()}},
                        end_events=finish)
+    finally:
+        link.close()
+
+
+def run_free_running(sc, address: str, folder: Path | None = None, *, timeout_s: float = 2.0,
+                     stale_s: float | None = None, overwrite: bool = False,
+                     progress: Callable[[int, int], None] | None = None,
+                     notice: Callable[[str], None] | None = None) -> RunResult:
+    """Free-running: the simulator keeps its own clock and sends a sample every period; the
+    runtime answers each within the deadline of one period. A lost sample is a gap: the
+    controller runs its tick on the last measurement held. No sample for ``stale_s``
+    (default 20 periods, at least 50 ms) ends the run with a ``bridge stale`` event."""
+    from .transport import free_running_link
+    mode = "free-running"
+    sc = dataclasses.replace(sc, mode=mode)
+    folder = Path(folder) if folder is not None else default_folder(sc)
+    check_folder(folder, overwrite)
+    stale_s = stale_s if stale_s is not None else max(20 * sc.Ts, 0.05)
+    tick = _bridge_kernel(sc)
+    t = time.perf_counter()
+    warm = prepare(sc)
+    tick(0, 0, sc.Ts, sc.v_collapse, warm.args["i_vout"], *_tick_args(warm.args),
+         np.zeros((1, len(warm.signals))), warm.args["ev"])
+    t_compile = time.perf_counter() - t
+    prep = prepare(sc)
+    a = prep.args
+    meas_map, act_map = signal_maps(sc)
+    n_meas, n_act = len(meas_map), len(act_map)
+    link = free_running_link(address, bind=False)
+    stats = BridgeStats()
+    ended: list[dict[str, Any]] = []
+    counts = {"late_runtime": 0, "held_ticks": 0, "sim_late": None, "sim_missing": None}
+
+    def recv_frame(wait):
+        data = link.recv(wait)
+        if data is None:
+            return None
+        stats.received += 1
+        try:
+            return P.decode(data, n_meas=n_meas, n_act=n_act)
+        except ProtocolError as exc:
+            stats.rejects.add(exc.reason, str(exc))
+            return False
+
+    hello = P.Hello(version=P.PROTOCOL_VERSION, tick_period_s=sc.Ts, mode=mode,
+                    meas_map=meas_map, act_map=act_map, map_hash=P.map_hash(meas_map, act_map))
+    link.send(P.encode(hello))
+    stats.sent += 1
+    welcome = recv_frame(timeout_s)
+    try:
+        if welcome is None:
+            raise BridgeError(f"no answer from {address} within {timeout_s:g} s")
+        if isinstance(welcome, P.Error):
+            raise PeerError(welcome.code, welcome.reason)
+        if not isinstance(welcome, P.Welcome):
+            raise BridgeError(f"the simulator answered HELLO with {type(welcome).__name__}")
+        P.handshake_check(hello, welcome)
+    except (ProtocolError, PeerError, BridgeError) as exc:
+        link.close()
+        raise BridgeError(f"bridge handshake with {address} failed: {exc}") from None
+    if notice:
+        notice(f"bridge: connected to {welcome.simulator_name!r} at {address} (free-running, "
+               f"Ts = {sc.Ts:g} s, stale after {stale_s * 1e3:g} ms)")
+    link.send(P.encode(P.Heartbeat(seq=0, t_sender_s=0.0)))
+    stats.sent += 1
+    state = {"next": None}
+
+    def next_sample(kk):
+        """The sample for tick kk, None if stale; a later sample means kk was lost."""
+        nxt = state["next"]
+        if nxt is not None and nxt.seq >= kk:
+            return nxt
+        deadline = time.perf_counter() + stale_s
+        while True:
+            f = recv_frame(max(0.0, deadline - time.perf_counter()))
+            if f is None:
+                return None
+            if isinstance(f, P.Sample):
+                verdict = stats.seq.check(f.seq)
+                if verdict in ("duplicate", "out-of-order"):
+                    continue
+                state["next"] = f
+                return f
+            if isinstance(f, P.Error):
+                ended.append({"event": "bridge protocol error", "tick": kk,
+                              "detail": f"simulator error {f.code}: {f.reason}"})
+                return None
+
+    def produce(k0: int, n: int, rec: np.ndarray) -> int:
+        targs = _tick_args(a)
+        for i in range(n):
+            kk = k0 + i
+            smp = next_sample(kk)
+            if smp is None:
+                if not ended:
+                    ended.append({"event": "bridge stale", "tick": kk,
+                                  "detail": f"no sample for {stale_s * 1e3:g} ms"})
+                return i
+            t_in = time.perf_counter()
+            fresh = smp.seq == kk
+            if fresh:
+                a["y"][:] = smp.meas
+            else:
+                counts["held_ticks"] += 1  # sample kk was lost: hold the last measurement
+            a["d"][:] = np.nan
+            go = tick(kk, i, sc.Ts, sc.v_collapse, a["i_vout"], *targs, rec, a["ev"])
+            if fresh:
+                try:
+                    link.send(P.encode(P.Actuation(seq=kk, u=a["u"].copy(),
+                                                   interlock_word=int(rec[i, -2]),
+                                                   output_enable=not bool(a["latch"][0]))))
+                    stats.sent += 1
+                except TransportTimeout as exc:
+                    ended.append({"event": "bridge timeout", "tick": kk, "detail": str(exc)})
+                    return i + 1
+                took = time.perf_counter() - t_in
+                stats.rtt_ns.append(int(took * 1e9))  # the runtime's response time
+                if took > sc.Ts:
+                    counts["late_runtime"] += 1
+            if not go:
+                return i + 1
+        return n
+
+    def finish() -> list[dict[str, Any]]:
+        if any(e["event"] == "bridge stale" for e in ended):
+            return ended  # nobody is there to answer a STOP
+        try:
+            link.send(P.encode(P.Stop(reason="run ended")))
+            stats.sent += 1
+            deadline = time.perf_counter() + min(timeout_s, 2.0)
+            while time.perf_counter() < deadline:
+                f = recv_frame(max(0.0, deadline - time.perf_counter()))
+                if f is None:
+                    break
+                if isinstance(f, P.Stop):
+                    import re
+                    m = re.search(r"late (\d+); missing (\d+)", f.reason)
+                    if m:
+                        counts["sim_late"], counts["sim_missing"] = int(m.group(1)), int(m.group(2))
+                    break
+        except TransportTimeout:
+            pass
+        return ended
+
+    def extra():
+        d = stats.as_dict()
+        d["response_us"] = d.pop("rtt_us")
+        d["late"] = counts["late_runtime"]
+        return {"bridge": {"address": address, "mode": mode, "simulator": welcome.simulator_name,
+                           "stale_limit_s": stale_s, "held_ticks": counts["held_ticks"],
+                           "simulator_late_actuations": counts["sim_late"],
+                           "simulator_missing_actuations": counts["sim_missing"], **d}}
+
+    try:
+        return execute(sc, prep, folder, produce,
+                       timing={"compile_or_load_s": t_compile, "compiled_now": False},
+                       progress=progress, extra=extra, end_events=finish)
     finally:
         link.close()

@@ -197,3 +197,106 @@ def serve(sc, bind: str, *, sessions: int | None = None, allow_remote: bool = Fa
             log(f"stand-in simulator: faults injected: {faults.dropped} dropped, "
                 f"{faults.corrupted} corrupted replies")
     return served
+
+
+def serve_free_running(sc, bind: str, *, sessions: int | None = None,
+                       idle_timeout_s: float | None = None, stale_s: float = 1.0,
+                       log: Callable[[str], None] = print) -> int:
+    """Serve free-running sessions: after the handshake the simulator advances on its own clock
+    every tick period, applies the actuation that answered the current sample if it came in
+    time, holds the last input otherwise (a *missing* actuation), and counts actuations that
+    arrive after their tick as *late*. A session ends on STOP, or when the runtime has sent
+    nothing for ``stale_s``."""
+    from .transport import free_running_link
+    sim = StandIn(sc)
+    link = free_running_link(bind, bind=True)
+    n_meas, n_act = len(sim.meas_map), len(sim.act_map)
+    ts = sc.Ts
+    served = 0
+    log(f"stand-in simulator (free-running): {sc.plant.plugin.name}, Ts = {ts:g} s, "
+        f"listening on {bind}")
+
+    def send(frame) -> None:
+        link.send(P.encode(frame))
+
+    try:
+        while sessions is None or served < sessions:
+            data = link.recv(idle_timeout_s)
+            if data is None:
+                log("stand-in simulator: idle timeout, stopping")
+                break
+            try:
+                hello = P.decode(data, n_meas=n_meas, n_act=n_act)
+            except ProtocolError as exc:
+                send(P.error_frame(exc))
+                continue
+            if not isinstance(hello, P.Hello):
+                send(P.Error(code=6, reason=f"expected HELLO, got {type(hello).__name__}"))
+                continue
+            welcome = P.Welcome(version=P.PROTOCOL_VERSION, tick_period_s=ts, mode="free-running",
+                                meas_map=sim.meas_map, act_map=sim.act_map, map_hash=sim.hash,
+                                simulator_name=SIMULATOR_NAME)
+            try:
+                P.handshake_check(hello, welcome)
+            except ProtocolError as exc:
+                send(P.error_frame(exc))
+                continue
+            sim.reset()
+            send(welcome)
+            ready = link.recv(10.0)
+            try:
+                hb = P.decode(ready) if ready is not None else None
+            except ProtocolError:
+                hb = None
+            if not isinstance(hb, P.Heartbeat):
+                continue
+            late = missing = 0
+            pending = None
+            last_heard = time.perf_counter()
+            t0 = time.perf_counter()
+            send(sim.sample(0))
+            reason = "stale"
+            while True:
+                deadline = t0 + (sim.k + 1) * ts
+                stop = False
+                while True:
+                    now = time.perf_counter()
+                    if now >= deadline:
+                        break
+                    data = link.recv(min(deadline - now, 0.0005) if deadline - now > 0.002 else 0)
+                    if data is None:
+                        continue
+                    last_heard = time.perf_counter()
+                    try:
+                        f = P.decode(data, n_meas=n_meas, n_act=n_act)
+                    except ProtocolError:
+                        continue
+                    if isinstance(f, P.Actuation):
+                        if f.seq == sim.k and pending is None:
+                            pending = f.u if f.output_enable else np.zeros_like(f.u)
+                        elif f.seq < sim.k:
+                            late += 1
+                    elif isinstance(f, P.Stop):
+                        stop = True
+                        reason = "stop"
+                        break
+                if stop or time.perf_counter() - last_heard > stale_s:
+                    break
+                if pending is None:
+                    missing += 1
+                    u = sim.u.copy()
+                else:
+                    u = pending
+                pending = None
+                if not sim.step(u):
+                    send(P.Error(code=6, reason=f"the plant state became non-finite at tick {sim.k}"))
+                    break
+                send(sim.sample(sim.k))
+            text = f"ticks {sim.k}; late {late}; missing {missing}"
+            if reason == "stop":
+                send(P.Stop(reason=text))
+            served += 1
+            log(f"stand-in simulator: session {served} ended ({reason}) after {text}")
+    finally:
+        link.close()
+    return served

@@ -221,6 +221,23 @@ class UdpClient:
         raise TransportTimeout(f"no reply from {self.address} after {self.retries + 1} tries "
                                f"{self.timeout_s * 1e3:g} ms apart")
 
+    def send(self, data: bytes) -> None:
+        """Free-running: send without waiting for an answer."""
+        try:
+            self.sock.send(data)
+        except OSError as exc:  # e.g. the peer's port is closed (ICMP unreachable)
+            raise TransportTimeout(f"{self.address}: {exc}") from None
+
+    def recv(self, timeout_s: float | None = None) -> bytes | None:
+        """Free-running: the next datagram, or None after ``timeout_s``."""
+        ready, _, _ = select.select([self.sock], [], [], timeout_s)
+        if not ready:
+            return None
+        try:
+            return self.sock.recv(MAX_DATAGRAM)
+        except OSError:
+            return None
+
     def close(self) -> None:
         if not self.closed:
             self.sock.close()
@@ -250,6 +267,48 @@ class UdpServer:
 
     def close(self) -> None:
         self.sock.close()
+
+
+class PairTransport:
+    """Free-running over ZeroMQ: an exclusive pair, both sides send when they have something.
+
+    The simulator binds, the runtime connects. Loopback and ipc only in this version (no
+    CurveZMQ on this pattern yet).
+    """
+
+    def __init__(self, address: str, bind: bool):
+        self.address = check_address(address, allow_remote=False)
+        self.ctx = zmq.Context.instance()
+        self.sock = self.ctx.socket(zmq.PAIR)
+        self.sock.setsockopt(zmq.LINGER, 0)
+        self.sock.setsockopt(zmq.MAXMSGSIZE, 1 << 20)
+        self.sock.setsockopt(zmq.SNDHWM, 1000)
+        (self.sock.bind if bind else self.sock.connect)(self.address)
+        self.closed = False
+
+    def send(self, data: bytes) -> None:
+        try:
+            self.sock.send(data, flags=zmq.NOBLOCK)
+        except zmq.Again:
+            raise TransportTimeout(f"{self.address}: the peer is not taking frames") from None
+
+    def recv(self, timeout_s: float | None = None) -> bytes | None:
+        ms = None if timeout_s is None else max(0, int(timeout_s * 1000))
+        if not self.sock.poll(ms, zmq.POLLIN):
+            return None
+        return self.sock.recv(copy=True)
+
+    def close(self) -> None:
+        if not self.closed:
+            self.sock.close(linger=0)
+            self.closed = True
+
+
+def free_running_link(address: str, bind: bool):
+    """A transport for free-running: UDP for udp://, a ZeroMQ pair otherwise."""
+    if address.startswith("udp://"):
+        return UdpServer(address) if bind else UdpClient(address)
+    return PairTransport(address, bind)
 
 
 def client_for(address: str, timeout_s: float, allow_remote: bool = False, curve_keys=None):

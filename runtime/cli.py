@@ -288,7 +288,8 @@ def main(argv: list[str] | None = None) -> int:
                    help="override a scenario value, e.g. --set 'timing.duration=\"0.2 s\"' (repeatable)")
     p.add_argument("--bridge", metavar="ADDRESS",
                    help="run against an external simulator at ADDRESS (tcp://127.0.0.1:PORT or ipc:///PATH) instead of the embedded plant")
-    p.add_argument("--mode", default="lockstep", choices=["lockstep"], help="bridge mode (default lockstep)")
+    p.add_argument("--mode", default="lockstep", choices=["lockstep", "free-running"],
+                   help="bridge mode (default lockstep)")
     p.add_argument("--timeout", type=float, default=2.0, metavar="S", help="bridge reply timeout [s] (default 2)")
     p.add_argument("--allow-remote", action="store_true",
                    help="allow a bridge address that is not on this machine (you take responsibility for the network)")
@@ -300,6 +301,8 @@ def main(argv: list[str] | None = None) -> int:
     p.add_argument("--bind", default="tcp://127.0.0.1:47810", metavar="ADDRESS",
                    help="address to listen on (default tcp://127.0.0.1:47810)")
     p.add_argument("--sessions", type=int, metavar="N", help="stop after N sessions (default: serve until interrupted)")
+    p.add_argument("--mode", default="lockstep", choices=["lockstep", "free-running"],
+                   help="lockstep: advance one tick per actuation; free-running: on the simulator's own clock")
     p.add_argument("--idle-timeout", type=float, metavar="S", help="stop when nothing arrives for S seconds")
     p.add_argument("--allow-remote", action="store_true", help="allow binding to a non-loopback address")
     p.add_argument("--curve-keys", metavar="DIR", help="CurveZMQ keys folder; only runtimes whose public key is there get in")
@@ -375,6 +378,12 @@ def main(argv: list[str] | None = None) -> int:
                             seed=args.fault_seed)
             sc = load_scenario(args.scenario)
             _show_caution(console, sc)
+            if args.mode == "free-running":
+                from hilrig.bridge.standin import serve_free_running
+                serve_free_running(sc, args.bind, sessions=args.sessions,
+                                   idle_timeout_s=args.idle_timeout,
+                                   log=lambda m: console.print(m, markup=False))
+                return 0
             serve(sc, args.bind, sessions=args.sessions, allow_remote=args.allow_remote,
                   idle_timeout_s=args.idle_timeout, faults=faults, curve_keys=args.curve_keys,
                   log=lambda m: console.print(m, markup=False))
