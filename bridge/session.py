@@ -66,6 +66,7 @@ class BridgeStats:
                 "lost": self.seq.lost, "duplicates": self.seq.duplicates,
                 "out_of_order": self.seq.out_of_order, "late": 0,
                 "rejected": dict(self.rejects.counts),
+                "reject_log": [list(e) for e in list(self.rejects.log)[-10:]],
                 "rtt_us": {"p50": pct(50), "p99": pct(99),
                            "max": float(rtt.max()) if rtt.size else None, "n": int(rtt.size)}}
 

@@ -29,12 +29,14 @@ class Faults:
                 request/reply cannot skip a reply)
     delay_s     added before every reply; jitter_s: plus a uniform random share of this
     freeze_after stop answering from this tick on (the simulator hangs)
+    disconnect_after close the connection at this tick and stop serving
     corrupt_every mangle every N-th reply on the wire (its leading byte)
     seed        seed of the random generator (drops, jitter)
     """
 
     def __init__(self, drop: float = 0.0, delay_s: float = 0.0, jitter_s: float = 0.0,
-                 freeze_after: int | None = None, corrupt_every: int | None = None, seed: int = 0):
+                 freeze_after: int | None = None, corrupt_every: int | None = None, seed: int = 0,
+                 disconnect_after: int | None = None):
         if not 0.0 <= drop < 1.0:
             raise ValueError(f"--drop {drop:g}: expected a fraction in [0, 1)")
         if delay_s < 0 or jitter_s < 0:
@@ -43,6 +45,7 @@ class Faults:
             raise ValueError(f"--corrupt-every {corrupt_every}: expected a whole number >= 1")
         self.drop, self.delay_s, self.jitter_s = drop, delay_s, jitter_s
         self.freeze_after, self.corrupt_every = freeze_after, corrupt_every
+        self.disconnect_after = disconnect_after
         self.rng = np.random.default_rng(seed)
         self.replies = 0
         self.dropped = 0
@@ -50,7 +53,7 @@ class Faults:
 
     def active(self) -> bool:
         return bool(self.drop or self.delay_s or self.jitter_s or self.freeze_after is not None
-                    or self.corrupt_every)
+                    or self.corrupt_every or self.disconnect_after is not None)
 
     def wire(self, data: bytes) -> bytes | None:
         """The bytes to send for a reply, or None to drop it."""
@@ -167,6 +170,9 @@ def serve(sc, bind: str, *, sessions: int | None = None, allow_remote: bool = Fa
                 else:
                     send(sim.last)  # the first sample was lost: send it again
             elif isinstance(frame, P.Actuation) and in_session:
+                if faults.disconnect_after is not None and sim.k >= faults.disconnect_after:
+                    log(f"stand-in simulator: disconnected at tick {sim.k} (fault injection)")
+                    break
                 if faults.freeze_after is not None and sim.k >= faults.freeze_after:
                     log(f"stand-in simulator: frozen at tick {sim.k} (fault injection)")
                     time.sleep(idle_timeout_s if idle_timeout_s is not None else 3600.0)

@@ -311,7 +311,8 @@ def main(argv: list[str] | None = None) -> int:
     p.add_argument("--delay", type=float, default=0.0, metavar="S", help="fault injection: delay every reply")
     p.add_argument("--jitter", type=float, default=0.0, metavar="S", help="fault injection: plus up to this random delay")
     p.add_argument("--freeze-after", type=int, metavar="N", help="fault injection: stop answering from tick N on")
-    p.add_argument("--corrupt-every", type=int, metavar="N", help="fault injection: flip a byte in every N-th reply")
+    p.add_argument("--corrupt-every", type=int, metavar="N", help="fault injection: mangle every N-th reply")
+    p.add_argument("--disconnect-after", type=int, metavar="N", help="fault injection: close the connection at tick N")
     p.add_argument("--fault-seed", type=int, default=0, metavar="SEED", help="seed of the fault injection")
     p = sub.add_parser("compare", help="run one scenario with several controllers side by side")
     p.add_argument("scenario", help="scenario TOML file")
@@ -375,7 +376,7 @@ def main(argv: list[str] | None = None) -> int:
             from hilrig.runtime.scenario import load_scenario
             faults = Faults(drop=args.drop, delay_s=args.delay, jitter_s=args.jitter,
                             freeze_after=args.freeze_after, corrupt_every=args.corrupt_every,
-                            seed=args.fault_seed)
+                            seed=args.fault_seed, disconnect_after=args.disconnect_after)
             sc = load_scenario(args.scenario)
             _show_caution(console, sc)
             if args.mode == "free-running":

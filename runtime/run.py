@@ -335,9 +335,13 @@ def execute(sc: Scenario, prep: Prepared, folder: Path,
         "versions": vers,
         "recording": "recording.h5",
     }
+    attrs = {"events": json.dumps(events)}
     if extra:
-        summary.update(extra())
-    # wall-clock figures stay out of the recording so that it is bit-identical run to run
-    writer.close({"events": json.dumps(events)})
+        more = extra()
+        summary.update(more)
+        if "bridge" in more:  # link statistics of a bridge run go into the recording too
+            attrs["bridge"] = json.dumps(more["bridge"])
+    # wall-clock figures of SIL runs stay out of the recording so that it is bit-identical
+    writer.close(attrs)
     (folder / SUMMARY).write_text(json.dumps(summary, indent=2) + "\n")
     return RunResult(folder=folder, summary=summary)

@@ -241,3 +241,24 @@ def test_remote_zeromq_needs_curve_keys():
     assert check_address("tcp://192.0.2.1:47810", allow_remote=True)
     with pytest.raises(BridgeError, match="needs CurveZMQ keys"):
         ReqTransport("tcp://192.0.2.1:47810", allow_remote=True)
+
+
+def test_disconnect_fault_ends_the_run_and_statistics_are_recorded(tmp_path, demo_path):
+    scen = _scenario(tmp_path, demo_path)
+    address = f"ipc://{tmp_path}/dc.sock"
+    sim = _serve(scen, address, "--disconnect-after", "300")
+    try:
+        p = subprocess.run(CLI + ["run", str(scen), "--bridge", address, "--out", str(tmp_path / "r"),
+                                  "--headless", "--timeout", "2"],
+                           capture_output=True, text=True, timeout=600)
+        sim_out, _ = sim.communicate(timeout=60)
+    finally:
+        if sim.poll() is None:
+            sim.kill()
+            sim.communicate(timeout=60)
+    assert p.returncode == 0, p.stdout + p.stderr
+    assert "disconnected at tick 300" in sim_out
+    s = json.loads((tmp_path / "r" / "summary.json").read_text())
+    assert s["end_event"] == "bridge timeout" and s["ticks_run"] == 301
+    run = open_run(tmp_path / "r")
+    assert json.loads(run.attrs["bridge"])["frames_sent"] == s["bridge"]["frames_sent"]
