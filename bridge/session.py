@@ -102,9 +102,12 @@ def run_bridge(sc, address: str, folder: Path | None = None, *, mode: str = "loc
     stats.link = link
     ended: list[dict[str, Any]] = []
 
+    seen: dict[str, Any] = {}
+
     def ask(frame, expect, want_seq=None):
-        data = P.encode(frame)
+        data = frame if isinstance(frame, bytes) else P.encode(frame)
         t0 = time.perf_counter_ns()
+        seen.clear()
         if want_seq is None or not hasattr(link, "stale"):
             reply = link.request(data)
         else:
@@ -114,11 +117,13 @@ def run_bridge(sc, address: str, folder: Path | None = None, *, mode: str = "loc
         stats.rtt_ns.append(time.perf_counter_ns() - t0)
         stats.sent += 1
         stats.received += 1
-        try:
-            got = P.decode(reply, n_meas=n_meas, n_act=n_act)
-        except ProtocolError as exc:
-            stats.rejects.add(exc.reason, str(exc))
-            raise
+        got = seen.get("frame")
+        if got is None:
+            try:
+                got = P.decode(reply, n_meas=n_meas, n_act=n_act)
+            except ProtocolError as exc:
+                stats.rejects.add(exc.reason, str(exc))
+                raise
         if isinstance(got, P.Error):
             raise PeerError(got.code, got.reason)
         if not isinstance(got, expect):
@@ -133,7 +138,10 @@ def run_bridge(sc, address: str, folder: Path | None = None, *, mode: str = "loc
         except ProtocolError as exc:
             stats.rejects.add(exc.reason, str(exc))
             return False
-        return not isinstance(got, P.Sample) or got.seq == want
+        if isinstance(got, P.Sample) and got.seq != want:
+            return False
+        seen["frame"] = got  # decoded once: ask() reuses it
+        return True
 
     hello = P.Hello(version=P.PROTOCOL_VERSION, tick_period_s=sc.Ts, mode=mode,
                     meas_map=meas_map, act_map=act_map, map_hash=h)
@@ -165,8 +173,8 @@ def run_bridge(sc, address: str, folder: Path | None = None, *, mode: str = "loc
             enable = not bool(a["latch"][0])
             word = int(rec[i, -2])
             try:
-                state["sample"] = ask(P.Actuation(seq=kk, u=a["u"].copy(), interlock_word=word,
-                                                  output_enable=enable), P.Sample, want_seq=kk + 1)
+                state["sample"] = ask(P.encode_actuation(kk, a["u"], word, enable), P.Sample,
+                                      want_seq=kk + 1)
             except TransportTimeout as exc:
                 ended.append({"event": "bridge timeout", "tick": kk, "detail": str(exc)})
                 return i + 1
@@ -301,9 +309,8 @@ def run_free_running(sc, address: str, folder: Path | None = None, *, timeout_s:
             go = tick(kk, i, sc.Ts, sc.v_collapse, a["i_vout"], *targs, rec, a["ev"])
             if fresh:
                 try:
-                    link.send(P.encode(P.Actuation(seq=kk, u=a["u"].copy(),
-                                                   interlock_word=int(rec[i, -2]),
-                                                   output_enable=not bool(a["latch"][0]))))
+                    link.send(P.encode_actuation(kk, a["u"], int(rec[i, -2]),
+                                                 not bool(a["latch"][0])))
                     stats.sent += 1
                 except TransportTimeout as exc:
                     ended.append({"event": "bridge timeout", "tick": kk, "detail": str(exc)})

@@ -101,10 +101,11 @@ class StandIn:
         self.k = 0
         self.last: bytes | None = None
 
-    def sample(self, k: int) -> P.Sample:
+    def sample(self, k: int) -> bytes:
+        """The encoded SAMPLE frame of tick k (the per-tick path: no frame object)."""
         t = k * self.sc.Ts
         self.sample_k(t, self.pp, self.x, self.u, self.load_t, self.load_v, self.lcur, self.d, self.y)
-        return P.Sample(seq=k, t_sim_s=t, meas=self.y.copy())
+        return P.encode_sample(k, t, self.y)
 
     def step(self, u: np.ndarray) -> bool:
         """Apply u for one period from tick k (load held as sampled), advance to k + 1."""
@@ -137,7 +138,7 @@ def serve(sc, bind: str, *, sessions: int | None = None, allow_remote: bool = Fa
             rep.send(wire)
 
     def reply(frame):
-        data = P.encode(frame)
+        data = frame if isinstance(frame, bytes) else P.encode(frame)
         send(data)
         return data
 
@@ -223,7 +224,7 @@ def serve_free_running(sc, bind: str, *, sessions: int | None = None,
         f"listening on {bind}")
 
     def send(frame) -> None:
-        link.send(P.encode(frame))
+        link.send(frame if isinstance(frame, bytes) else P.encode(frame))
 
     try:
         while sessions is None or served < sessions:
