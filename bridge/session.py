@@ -37,6 +37,17 @@ def _bridge_kernel(sc):
     return loopgen.load_module(path).bridge_tick
 
 
+def _ready_tick(sc):
+    """The compiled tick kernel, compiled (or loaded) now on throw-away state; and the seconds
+    that took."""
+    tick = _bridge_kernel(sc)
+    t = time.perf_counter()
+    warm = prepare(sc)
+    tick(0, 0, sc.Ts, sc.v_collapse, warm.args["i_vout"], *_tick_args(warm.args),
+         np.zeros((1, len(warm.signals))), warm.args["ev"])
+    return tick, time.perf_counter() - t
+
+
 def _tick_args(a: dict) -> tuple:
     return (a["pc"], a["xc"], a["iyc"], a["yc"], a["u"], a["safe_u"],
             a["pr"], a["xr"], a["iyr"], a["yr"], a["w"],
@@ -85,12 +96,7 @@ def run_bridge(sc, address: str, folder: Path | None = None, *, mode: str = "loc
     sc = dataclasses.replace(sc, mode=mode)
     folder = Path(folder) if folder is not None else default_folder(sc)
     check_folder(folder, overwrite)
-    tick = _bridge_kernel(sc)
-    t = time.perf_counter()
-    warm = prepare(sc)  # compile (or load) the tick kernel on throw-away state
-    tick(0, 0, sc.Ts, sc.v_collapse, warm.args["i_vout"], *_tick_args(warm.args),
-         np.zeros((1, len(warm.signals))), warm.args["ev"])
-    t_compile = time.perf_counter() - t
+    tick, t_compile = _ready_tick(sc)
     prep = prepare(sc)
     a = prep.args
     meas_map, act_map = signal_maps(sc)
@@ -219,12 +225,7 @@ def run_free_running(sc, address: str, folder: Path | None = None, *, timeout_s:
     folder = Path(folder) if folder is not None else default_folder(sc)
     check_folder(folder, overwrite)
     stale_s = stale_s if stale_s is not None else max(20 * sc.Ts, 0.05)
-    tick = _bridge_kernel(sc)
-    t = time.perf_counter()
-    warm = prepare(sc)
-    tick(0, 0, sc.Ts, sc.v_collapse, warm.args["i_vout"], *_tick_args(warm.args),
-         np.zeros((1, len(warm.signals))), warm.args["ev"])
-    t_compile = time.perf_counter() - t
+    tick, t_compile = _ready_tick(sc)
     prep = prepare(sc)
     a = prep.args
     meas_map, act_map = signal_maps(sc)

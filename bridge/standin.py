@@ -90,6 +90,12 @@ class StandIn:
         self.advance_k(0.0, sc.Ts, sc.substeps, self.pp, self.x.copy(), self.u, self.d.copy())
         self.reset()
 
+    def welcome(self, mode: str) -> P.Welcome:
+        """This simulator's answer to a HELLO in ``mode``."""
+        return P.Welcome(version=P.PROTOCOL_VERSION, tick_period_s=self.sc.Ts, mode=mode,
+                         meas_map=self.meas_map, act_map=self.act_map, map_hash=self.hash,
+                         simulator_name=SIMULATOR_NAME)
+
     def reset(self):
         a = prepare(self.sc).args
         self.pp, self.x = a["pp"], a["x"].copy()
@@ -154,9 +160,7 @@ def serve(sc, bind: str, *, sessions: int | None = None, allow_remote: bool = Fa
                 reply(P.error_frame(exc))
                 continue
             if isinstance(frame, P.Hello):
-                welcome = P.Welcome(version=P.PROTOCOL_VERSION, tick_period_s=sc.Ts,
-                                    mode="lockstep", meas_map=sim.meas_map, act_map=sim.act_map,
-                                    map_hash=sim.hash, simulator_name=SIMULATOR_NAME)
+                welcome = sim.welcome("lockstep")
                 try:
                     P.handshake_check(frame, welcome)
                 except ProtocolError as exc:
@@ -240,9 +244,7 @@ def serve_free_running(sc, bind: str, *, sessions: int | None = None,
             if not isinstance(hello, P.Hello):
                 send(P.Error(code=6, reason=f"expected HELLO, got {type(hello).__name__}"))
                 continue
-            welcome = P.Welcome(version=P.PROTOCOL_VERSION, tick_period_s=ts, mode="free-running",
-                                meas_map=sim.meas_map, act_map=sim.act_map, map_hash=sim.hash,
-                                simulator_name=SIMULATOR_NAME)
+            welcome = sim.welcome("free-running")
             try:
                 P.handshake_check(hello, welcome)
             except ProtocolError as exc:
