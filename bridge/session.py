@@ -15,7 +15,8 @@ from typing import Any, Callable
 import numpy as np
 
 from hilrig.runtime import loop as loopgen
-from hilrig.runtime.run import RunResult, _call, check_folder, default_folder, execute, prepare
+from hilrig.runtime.run import (RunResult, check_folder, default_folder, execute, fault_args,
+                                prepare)
 
 from . import protocol as P
 from .errors import BridgeError, PeerError, ProtocolError, TransportTimeout
@@ -53,7 +54,7 @@ def _tick_args(a: dict) -> tuple:
             a["pr"], a["xr"], a["iyr"], a["yr"], a["w"],
             a["ad"], a["g1"], a["g2"], a["cr"], a["dr"], a["slew"], a["z"], a["s"], a["zt"], a["r"],
             a["lim_sig"], a["lim_above"], a["lim_thr"], a["lim_deb"], a["lim_cnt"], a["latch"],
-            a["pv"], a["y"], a["d"])
+            a["pv"], *fault_args(a), a["y"], a["d"])
 
 
 class BridgeStats:

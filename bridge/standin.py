@@ -12,7 +12,7 @@ from typing import Callable
 import numpy as np
 
 from hilrig.runtime import loop as loopgen
-from hilrig.runtime.run import prepare
+from hilrig.runtime.run import fault_args, prepare
 
 from . import protocol as P
 from .errors import ProtocolError
@@ -98,6 +98,7 @@ class StandIn:
 
     def reset(self):
         a = prepare(self.sc).args
+        self.faults = fault_args(a)
         self.pp, self.x = a["pp"], a["x"].copy()
         self.load_t, self.load_v = a["load_t"], a["load_v"]
         self.lcur = np.zeros(1, dtype=np.int64)
@@ -110,7 +111,8 @@ class StandIn:
     def sample(self, k: int) -> bytes:
         """The encoded SAMPLE frame of tick k (the per-tick path: no frame object)."""
         t = k * self.sc.Ts
-        self.sample_k(t, self.pp, self.x, self.u, self.load_t, self.load_v, self.lcur, self.d, self.y)
+        self.sample_k(k, t, self.pp, self.x, self.u, self.load_t, self.load_v, self.lcur, self.d,
+                      self.y, *self.faults)
         return P.encode_sample(k, t, self.y)
 
     def step(self, u: np.ndarray) -> bool:

@@ -3,8 +3,8 @@
 One tick k at time t = k Ts runs these stages, in this order, in every mode:
 
 1. sample    - plant outputs y from the plant state (in-process plant).
-2. inject    - scheduled sensor faults applied to y. (Arrives with the safety layer's fault
-               injection; today y passes through unchanged.)
+2. inject    - scheduled sensor faults applied to y (:mod:`hilrig.safety.faults`; load faults
+               act on the load when it is sampled, controller faults right after stage 4).
 3. reference - the reference plugin writes the raw reference w from its declared reads of y;
                the shaping stage (rate limiter + linear filter, :mod:`hilrig.runtime.shaping`)
                yields r = [v_ref, v_ref', v_ref'', v_ref''', v_ref''''].
@@ -53,10 +53,12 @@ from hilrig.plugins.tables import interp_rows as _interp_rows
 from hilrig.runtime.loop import inline as _inline
 from hilrig.runtime.shaping import shape_init, shape_step as _shape_step
 from hilrig.safety.interlocks import protect as _protect
+from hilrig.safety.faults import apply as _apply_faults
 {imports}
 interp_rows = _inline(_interp_rows)
 shape_step = _inline(_shape_step)
 protect = _inline(_protect)
+apply_faults = _inline(_apply_faults)
 
 #: plant state count, a literal so that the compiler unrolls the state loops
 NX = {nx}
@@ -86,15 +88,19 @@ def run_chunk(k0, n, ts, nsub, v_collapse, i_vout,
               pr, xr, iyr, yr, w,
               ad, g1, g2, cr, dr, slew, z, s, zt, r,
               lim_sig, lim_above, lim_thr, lim_deb, lim_cnt, latch, pv,
+              seed, f_stage, f_kind, f_sig, f_t0, f_t1, f_val, f_hold,
               y, d, rec, ev):
     """SIL: run ticks k0 .. k0+n-1; return how many ran (fewer if the run ended)."""
     for i in range(n):
         kk = k0 + i
         t = kk * ts
-        # 1 sample
+        # 1 sample (load faults act on the load, as a real device would)
         interp_rows(load_t, load_v, t, lcur, d)
+        apply_faults(0, kk, t, seed, f_stage, f_kind, f_sig, f_t0, f_t1, f_val, f_hold, y, u, d)
         plant_outputs(t, pp, x, u, d, y)
-        # 2 inject: none yet
+        v_true = y[i_vout]
+        # 2 inject: sensor faults on the measured signals
+        apply_faults(1, kk, t, seed, f_stage, f_kind, f_sig, f_t0, f_t1, f_val, f_hold, y, u, d)
 {decide_8}
         # 6 actuate
         advance(t, ts, nsub, pp, x, u, d)
@@ -105,7 +111,7 @@ def run_chunk(k0, n, ts, nsub, v_collapse, i_vout,
                 ev[0] = {ev_nonfinite}
                 ev[1] = kk
                 return i + 1
-        if not (y[i_vout] >= v_collapse):
+        if not (v_true >= v_collapse):
             ev[0] = {ev_collapse}
             ev[1] = kk
             return i + 1
@@ -118,16 +124,19 @@ def bridge_tick(kk, i, ts, v_collapse, i_vout,
                 pr, xr, iyr, yr, w,
                 ad, g1, g2, cr, dr, slew, z, s, zt, r,
                 lim_sig, lim_above, lim_thr, lim_deb, lim_cnt, latch, pv,
+                seed, f_stage, f_kind, f_sig, f_t0, f_t1, f_val, f_hold,
                 y, d, rec, ev):
-    """Bridge modes: one tick on a y received from the simulator (stages 3-5 and 7; the
+    """Bridge modes: one tick on a y received from the simulator (stages 2-5 and 7; the
     simulator samples and actuates). Writes row i of rec; returns 1, or 0 if the run ends."""
     t = kk * ts
+    v_true = y[i_vout]
+    # 2 inject: sensor faults on the measured signals
+    apply_faults(1, kk, t, seed, f_stage, f_kind, f_sig, f_t0, f_t1, f_val, f_hold, y, u, d)
 {decide_4}
 {record_4}
-    for j in range(y.shape[0]):
-        if not (y[j] - y[j] == 0.0):
-            return 1  # the protect stage has tripped on it; the safe output goes out
-    if not (y[i_vout] >= v_collapse):
+    if not (v_true - v_true == 0.0):
+        return 1  # the protect stage has tripped on it; the safe output goes out
+    if not (v_true >= v_collapse):
         ev[0] = {ev_collapse}
         ev[1] = kk
         return 0
@@ -135,9 +144,12 @@ def bridge_tick(kk, i, ts, v_collapse, i_vout,
 
 
 @njit(cache=True)
-def sim_sample(t, pp, x, u, load_t, load_v, lcur, d, y):
-    """Stand-in simulator: the plant's outputs at time t (the load sampled at t)."""
+def sim_sample(kk, t, pp, x, u, load_t, load_v, lcur, d, y,
+               seed, f_stage, f_kind, f_sig, f_t0, f_t1, f_val, f_hold):
+    """Stand-in simulator: the plant's outputs at time t (the load sampled at t, with the
+    scenario's load faults; its sensor faults are injected on the runtime's side)."""
     interp_rows(load_t, load_v, t, lcur, d)
+    apply_faults(0, kk, t, seed, f_stage, f_kind, f_sig, f_t0, f_t1, f_val, f_hold, y, u, d)
     plant_outputs(t, pp, x, u, d, y)
 
 
@@ -169,6 +181,7 @@ for j in range(iyc.shape[0]):
 if kk == 0:
     ctrl_init(pc, xc, yc, r)
 code = ctrl_step(t, pc, xc, yc, r, u)
+apply_faults(2, kk, t, seed, f_stage, f_kind, f_sig, f_t0, f_t1, f_val, f_hold, y, u, d)
 # 5 protect
 word = protect(kk, t, y, u, code, lim_sig, lim_above, lim_thr, lim_deb, lim_cnt,
                latch, pv, safe_u)"""

@@ -15,6 +15,7 @@ from typing import Any, Callable
 import numpy as np
 
 from hilrig.plugins.base import LOAD_SIGNALS, REFERENCE_SIGNALS, BuildContext
+from hilrig.safety.faults import table as fault_table
 from hilrig.safety.interlocks import (L_CAUSE, L_TICK, L_TIME, L_TRIPPED, L_VALUE,
                                       InterlockTable, new_latch)
 
@@ -169,7 +170,8 @@ def prepare(sc: Scenario) -> Prepared:
         lim_sig=table.sig, lim_above=table.above, lim_thr=table.thr, lim_deb=table.deb,
         lim_cnt=np.zeros(len(table.rows), dtype=np.int64), latch=new_latch(),
         pv=np.zeros(ny + nu), y=np.zeros(ny), d=np.zeros(3),
-        ev=np.zeros(2),
+        ev=np.zeros(2), seed=np.int64(sc.seed % (2**32)),
+        **fault_table(sc.faults, outputs),
     )
     return Prepared(sc=sc, args=args, signals=signals, table=table, y_names=outputs,
                     u_names=u_names, v0=v0)
@@ -194,7 +196,12 @@ def _call(fn, k0, n, rec, a):
               a["pr"], a["xr"], a["iyr"], a["yr"], a["w"],
               a["ad"], a["g1"], a["g2"], a["cr"], a["dr"], a["slew"], a["z"], a["s"], a["zt"], a["r"],
               a["lim_sig"], a["lim_above"], a["lim_thr"], a["lim_deb"], a["lim_cnt"], a["latch"], a["pv"],
-              a["y"], a["d"], rec, a["ev"])
+              *fault_args(a), a["y"], a["d"], rec, a["ev"])
+
+
+def fault_args(a: dict) -> tuple:
+    return (a["seed"], a["f_stage"], a["f_kind"], a["f_sig"], a["f_t0"], a["f_t1"], a["f_val"],
+            a["f_hold"])
 
 
 def default_folder(sc: Scenario, base: Path = Path("runs")) -> Path:

@@ -23,6 +23,8 @@ except ModuleNotFoundError:  # Python 3.10
     import tomli as tomllib
 
 from hilrig.plugins.base import ChoiceParam, Param, TableParam
+from hilrig.safety import faults as fault_kinds
+from hilrig.safety.faults import Fault
 from hilrig.safety.interlocks import Interlock
 
 from . import registry
@@ -33,7 +35,8 @@ MODES = ("sil",)
 PLANNED_MODES = ("paced", "lockstep", "free-running")
 
 TOP_KEYS = {"title", "description", "demo_data", "mode", "seed", "timing", "plant", "controller",
-            "reference", "shaping", "load", "limits", "interlocks", "initial", "recording"}
+            "reference", "shaping", "load", "limits", "interlocks", "initial", "recording",
+            "faults"}
 TIMING = {"Ts": ("s", 50e-6, (1e-7, 1.0)), "substeps": ("-", 4, (1, 1000)),
           "duration": ("s", 1.0, (1e-6, 1e6))}
 SHAPING = {"order": ("-", 5, (4, 12)), "pole": ("rad/s", 7500.0, (1.0, 1e7)),
@@ -77,6 +80,7 @@ class Scenario:
     interlocks: list[Interlock]
     v_out0: float | None
     recording: dict[str, Any] = field(default_factory=dict)
+    faults: list[Fault] = field(default_factory=list)
 
     @property
     def n_ticks(self) -> int:
@@ -175,6 +179,7 @@ def parse_scenario(text: str, name: str = "scenario.toml", path: str = "",
     limits = _section(cx, raw, "limits", LIMITS)
     interlocks = _interlocks(cx, raw, plant, controller)
     v_out0 = _initial(cx, raw)
+    faults = _faults(cx, raw, plant, duration)
     recording = _section(cx, raw, "recording", RECORDING, choices=RECORDING_CHOICES)
     recording.setdefault("compression", "none")
     return Scenario(path=path, text=text, title=title, description=description, demo_data=demo,
@@ -182,7 +187,7 @@ def parse_scenario(text: str, name: str = "scenario.toml", path: str = "",
                     plant=plant, controller=controller, reference=reference, shaping=shaping,
                     load_t=load_t, load_v=load_v, v_collapse=limits["v_collapse"],
                     safe_u=limits["safe_u"], interlocks=interlocks, v_out0=v_out0,
-                    recording=recording)
+                    recording=recording, faults=faults)
 
 
 def _set_dotted(cx, raw: dict, dotted: str, value: Any) -> None:
@@ -386,6 +391,61 @@ def _interlocks(cx, raw, plant: PluginChoice, controller: PluginChoice) -> list[
         if isinstance(deb, bool) or not isinstance(deb, int) or not 1 <= deb <= 1_000_000:
             raise cx.fail(f"{where}.debounce", f" = {deb!r} is not a whole number of ticks in [1, 1000000]")
         out.append(Interlock(signal=sig, threshold=thr, above=side == "above", debounce=deb, unit=unit))
+    return out
+
+
+FAULT_KEYS = {"kind", "signal", "start", "end", "value"}
+
+
+def _faults(cx, raw, plant: PluginChoice, duration: float) -> list[Fault]:
+    items = raw.get("faults", [])
+    if not isinstance(items, list) or not all(isinstance(x, dict) for x in items):
+        raise cx.fail("faults", " must be an array of tables [[faults]]")
+    signals = {sg.name: sg.unit for sg in plant.plugin.declaration.outputs}
+    out = []
+    for i, it in enumerate(items):
+        where = f"faults[{i}]"
+        for k in it:
+            if k not in FAULT_KEYS:
+                raise cx.unknown(where, k, FAULT_KEYS)
+        kind = it.get("kind")
+        if kind not in fault_kinds.KINDS:
+            close = difflib.get_close_matches(str(kind), fault_kinds.KINDS, n=2)
+            hint = f"; did you mean {', '.join(repr(c) for c in close)}?" if close else ""
+            raise cx.fail(f"{where}.kind", f" = {kind!r} is not a fault kind{hint} "
+                          f"(kinds: {', '.join(fault_kinds.KINDS)})")
+        if "start" not in it:
+            raise cx.fail(where, " has no start time [s]")
+        start = _quantity(cx, f"{where}.start", it["start"], "s", (0.0, 1e9))
+        end = math.inf
+        if "end" in it:
+            end = _quantity(cx, f"{where}.end", it["end"], "s", (0.0, 1e9))
+            if not end > start:
+                raise cx.fail(f"{where}.end", f" = {end:g} s is not after start = {start:g} s")
+        signal = it.get("signal", "")
+        if kind in fault_kinds.SENSOR_KINDS:
+            if signal not in signals:
+                close = difflib.get_close_matches(str(signal), list(signals), n=3)
+                hint = f"; did you mean {', '.join(repr(c) for c in close)}?" if close else ""
+                raise cx.fail(f"{where}.signal", f" = {signal!r} is not a measured signal of this "
+                              f"plant{hint} (signals: {', '.join(signals)})")
+        elif "signal" in it:
+            raise cx.fail(f"{where}.signal", f": a {kind} fault acts on the "
+                          f"{'load' if kind in fault_kinds.LOAD_KINDS else 'controller output'}, "
+                          f"not on a signal; remove the key")
+        unit = fault_kinds.VALUE_UNITS[kind]
+        value = 0.0
+        if unit is None:
+            if "value" in it:
+                raise cx.fail(f"{where}.value", f": a {kind} fault takes no value; remove the key")
+        else:
+            if "value" not in it:
+                raise cx.fail(where, f" ({kind}) needs a value")
+            unit = unit or signals[signal]
+            lo, lower_open = (0.0, True) if kind in ("short_circuit", "noise") else (-1e9, False)
+            value = _quantity(cx, f"{where}.value", it["value"], unit, (lo, 1e9),
+                              lower_open=lower_open)
+        out.append(Fault(kind=kind, start=start, end=end, signal=signal, value=value))
     return out
 
 
