@@ -16,7 +16,7 @@ import numpy as np
 
 from hilrig.runtime import loop as loopgen
 from hilrig.runtime.run import (RunResult, check_folder, default_folder, execute, fault_args,
-                                prepare)
+                                prepare, supervision_args)
 
 from . import protocol as P
 from .errors import BridgeError, PeerError, ProtocolError, TransportTimeout
@@ -54,7 +54,7 @@ def _tick_args(a: dict) -> tuple:
             a["pr"], a["xr"], a["iyr"], a["yr"], a["w"],
             a["ad"], a["g1"], a["g2"], a["cr"], a["dr"], a["slew"], a["z"], a["s"], a["zt"], a["r"],
             a["lim_sig"], a["lim_above"], a["lim_thr"], a["lim_deb"], a["lim_cnt"], a["latch"],
-            a["pv"], *fault_args(a), a["y"], a["d"])
+            a["pv"], *fault_args(a), *supervision_args(a), a["y"], a["d"])
 
 
 class BridgeStats:

@@ -11,7 +11,8 @@ One tick k at time t = k Ts runs these stages, in this order, in every mode:
 4. control   - the controller kernel ``step(t, p, xc, y, r, u) -> code`` writes u
                (on tick 0 its ``init`` runs first, from the first y and r: bumpless start).
 5. protect   - interlocks on [y, u] (:mod:`hilrig.safety.interlocks`); a trip latches and
-               forces the safe output on this same tick.
+               forces the safe output on this same tick; a scheduled reset request clears the
+               latch only if no condition holds (else it is refused).
 6. actuate   - the plant advances one period by RK4 substeps with u and the load held
                (zero-order hold; the load profile is sampled at the tick's start).
 7. record    - one row into the chunk buffer: y, u, r, raw reference, load, interlock word,
@@ -52,12 +53,13 @@ from numba import njit
 from hilrig.plugins.tables import interp_rows as _interp_rows
 from hilrig.runtime.loop import inline as _inline
 from hilrig.runtime.shaping import shape_init, shape_step as _shape_step
-from hilrig.safety.interlocks import protect as _protect
+from hilrig.safety.interlocks import protect as _protect, supervise as _supervise, L_REINIT
 from hilrig.safety.faults import apply as _apply_faults
 {imports}
 interp_rows = _inline(_interp_rows)
 shape_step = _inline(_shape_step)
 protect = _inline(_protect)
+supervise = _inline(_supervise)
 apply_faults = _inline(_apply_faults)
 
 #: plant state count, a literal so that the compiler unrolls the state loops
@@ -89,6 +91,7 @@ def run_chunk(k0, n, ts, nsub, v_collapse, i_vout,
               ad, g1, g2, cr, dr, slew, z, s, zt, r,
               lim_sig, lim_above, lim_thr, lim_deb, lim_cnt, latch, pv,
               seed, f_stage, f_kind, f_sig, f_t0, f_t1, f_val, f_hold,
+              reset_t, reset_i, evlog, evn,
               y, d, rec, ev):
     """SIL: run ticks k0 .. k0+n-1; return how many ran (fewer if the run ended)."""
     for i in range(n):
@@ -125,6 +128,7 @@ def bridge_tick(kk, i, ts, v_collapse, i_vout,
                 ad, g1, g2, cr, dr, slew, z, s, zt, r,
                 lim_sig, lim_above, lim_thr, lim_deb, lim_cnt, latch, pv,
                 seed, f_stage, f_kind, f_sig, f_t0, f_t1, f_val, f_hold,
+                reset_t, reset_i, evlog, evn,
                 y, d, rec, ev):
     """Bridge modes: one tick on a y received from the simulator (stages 2-5 and 7; the
     simulator samples and actuates). Writes row i of rec; returns 1, or 0 if the run ends."""
@@ -178,13 +182,16 @@ shape_step(ad, g1, g2, cr, dr, slew, ts, z, s, zt, w[0], r)
 # 4 control
 for j in range(iyc.shape[0]):
     yc[j] = y[iyc[j]]
-if kk == 0:
+if kk == 0 or latch[L_REINIT] != 0.0:
+    # bumpless start, and restart after an accepted reset
     ctrl_init(pc, xc, yc, r)
+    latch[L_REINIT] = 0.0
 code = ctrl_step(t, pc, xc, yc, r, u)
 apply_faults(2, kk, t, seed, f_stage, f_kind, f_sig, f_t0, f_t1, f_val, f_hold, y, u, d)
 # 5 protect
 word = protect(kk, t, y, u, code, lim_sig, lim_above, lim_thr, lim_deb, lim_cnt,
-               latch, pv, safe_u)"""
+               latch, pv, safe_u)
+word = supervise(kk, t, word, latch, reset_t, reset_i, evlog, evn)"""
 
 _RECORD = """# 7 record
 c = 0

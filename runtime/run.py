@@ -16,8 +16,8 @@ import numpy as np
 
 from hilrig.plugins.base import LOAD_SIGNALS, REFERENCE_SIGNALS, BuildContext
 from hilrig.safety.faults import table as fault_table
-from hilrig.safety.interlocks import (L_CAUSE, L_TICK, L_TIME, L_TRIPPED, L_VALUE,
-                                      InterlockTable, new_latch)
+from hilrig.safety.interlocks import (EVENT_NAMES, EVT_TRIP, InterlockTable, new_event_log,
+                                      new_latch)
 
 from . import loop as loopgen
 from . import shaping
@@ -155,7 +155,7 @@ def prepare(sc: Scenario) -> Prepared:
                 for n, u in REFERENCE_SIGNALS]
     signals.append(SignalSpec("v_ref_raw", "V", "reference before shaping"))
     signals += [SignalSpec(n, u, "load profile") for n, u in LOAD_SIGNALS]
-    signals.append(SignalSpec("interlock_word", "-", "bit j: interlock j beyond its limit; bit 48 non-finite; bit 49 controller fault; bit 50 latched"))
+    signals.append(SignalSpec("interlock_word", "-", "bit j: interlock j beyond its limit; bit 48 non-finite; bit 49 controller fault; bit 50 latched; bit 51 reset requested; bit 52 reset refused"))
     signals.append(SignalSpec("ctrl_code", "-", "controller return code (0 ok)"))
     if "v_out" not in outputs:
         raise ScenarioError(f"plant {pdecl.name!r} has no v_out output; the runtime needs it")
@@ -171,6 +171,8 @@ def prepare(sc: Scenario) -> Prepared:
         lim_cnt=np.zeros(len(table.rows), dtype=np.int64), latch=new_latch(),
         pv=np.zeros(ny + nu), y=np.zeros(ny), d=np.zeros(3),
         ev=np.zeros(2), seed=np.int64(sc.seed % (2**32)),
+        reset_t=np.array(sorted(sc.resets), dtype=np.float64), reset_i=np.zeros(1, dtype=np.int64),
+        evlog=new_event_log()[0], evn=new_event_log()[1],
         **fault_table(sc.faults, outputs),
     )
     return Prepared(sc=sc, args=args, signals=signals, table=table, y_names=outputs,
@@ -196,12 +198,18 @@ def _call(fn, k0, n, rec, a):
               a["pr"], a["xr"], a["iyr"], a["yr"], a["w"],
               a["ad"], a["g1"], a["g2"], a["cr"], a["dr"], a["slew"], a["z"], a["s"], a["zt"], a["r"],
               a["lim_sig"], a["lim_above"], a["lim_thr"], a["lim_deb"], a["lim_cnt"], a["latch"], a["pv"],
-              *fault_args(a), a["y"], a["d"], rec, a["ev"])
+              *fault_args(a), *supervision_args(a), a["y"], a["d"], rec, a["ev"])
 
 
 def fault_args(a: dict) -> tuple:
+    """The fault-injection arrays, in the kernels' argument order."""
     return (a["seed"], a["f_stage"], a["f_kind"], a["f_sig"], a["f_t0"], a["f_t1"], a["f_val"],
             a["f_hold"])
+
+
+def supervision_args(a: dict) -> tuple:
+    """The reset schedule and the event log, in the kernels' argument order."""
+    return (a["reset_t"], a["reset_i"], a["evlog"], a["evn"])
 
 
 def default_folder(sc: Scenario, base: Path = Path("runs")) -> Path:
@@ -305,19 +313,28 @@ def execute(sc: Scenario, prep: Prepared, folder: Path,
                        "v_out_V": float(rec[max(ran - 1, 0), i_vout])})
     if end_events:
         events += end_events()
-    latch = a["latch"]
-    trip = None
-    if latch[L_TRIPPED]:
-        trip = {"cause": prep.table.cause_text(int(latch[L_CAUSE]), len(prep.y_names)),
-                "tick": int(latch[L_TICK]), "time_s": float(latch[L_TIME]),
-                "value": float(latch[L_VALUE])}
-        events.insert(0, {"event": "trip", **trip})
+    # trips and resets, in order, from the loop's event log
+    log_events = []
+    for row in a["evlog"][:min(int(a["evn"][0]), a["evlog"].shape[0])]:
+        tick_k, kind, cause, value = int(row[0]), int(row[1]), int(row[2]), float(row[3])
+        e = {"event": EVENT_NAMES[kind], "tick": tick_k, "time_s": tick_k * sc.Ts}
+        if kind != 4:
+            e["cause"] = prep.table.cause_text(cause, len(prep.y_names))
+        if kind == EVT_TRIP:
+            e["value"] = value
+        log_events.append(e)
+    if int(a["evn"][0]) > a["evlog"].shape[0]:
+        log_events.append({"event": "event log full", "dropped": int(a["evn"][0]) - a["evlog"].shape[0]})
+    trips = [e for e in log_events if e["event"] == "trip"]
+    trip = {k: v for k, v in trips[0].items() if k != "event"} if trips else None
+    events = log_events + events
     # per-step metrics need whole signals: read the two back from the flushed recording
     steps = step_metrics(writer.time[()], writer.ds[i_vout][()],
                          writer.ds[names.index("v_ref_raw")][()])
     result = metrics.result()
-    result["trips"] = 1 if trip else 0
-    ending = [e for e in events if e["event"] != "trip"]
+    result["trips"] = len(trips)
+    ending = [e for e in events if e["event"] not in ("trip", "reset accepted", "reset refused",
+                                                      "reset (nothing latched)", "event log full")]
     end_event = ending[0]["event"] if ending else None
     summary = {
         "title": sc.title, "demo_data": sc.demo_data, "mode": sc.mode, "seed": sc.seed,

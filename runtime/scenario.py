@@ -36,7 +36,7 @@ PLANNED_MODES = ("paced", "lockstep", "free-running")
 
 TOP_KEYS = {"title", "description", "demo_data", "mode", "seed", "timing", "plant", "controller",
             "reference", "shaping", "load", "limits", "interlocks", "initial", "recording",
-            "faults"}
+            "faults", "resets"}
 TIMING = {"Ts": ("s", 50e-6, (1e-7, 1.0)), "substeps": ("-", 4, (1, 1000)),
           "duration": ("s", 1.0, (1e-6, 1e6))}
 SHAPING = {"order": ("-", 5, (4, 12)), "pole": ("rad/s", 7500.0, (1.0, 1e7)),
@@ -81,6 +81,8 @@ class Scenario:
     v_out0: float | None
     recording: dict[str, Any] = field(default_factory=dict)
     faults: list[Fault] = field(default_factory=list)
+    #: times [s] at which a reset of a latched trip is requested (an operator's intended reset)
+    resets: list[float] = field(default_factory=list)
 
     @property
     def n_ticks(self) -> int:
@@ -180,6 +182,10 @@ def parse_scenario(text: str, name: str = "scenario.toml", path: str = "",
     interlocks = _interlocks(cx, raw, plant, controller)
     v_out0 = _initial(cx, raw)
     faults = _faults(cx, raw, plant, duration)
+    resets_raw = raw.get("resets", [])
+    if not isinstance(resets_raw, list):
+        raise cx.fail("resets", f" = {resets_raw!r} is not a list of times, e.g. [\"0.3 s\"]")
+    resets = sorted(_quantity(cx, f"resets[{i}]", v, "s", (0.0, 1e9)) for i, v in enumerate(resets_raw))
     recording = _section(cx, raw, "recording", RECORDING, choices=RECORDING_CHOICES)
     recording.setdefault("compression", "none")
     return Scenario(path=path, text=text, title=title, description=description, demo_data=demo,
@@ -187,7 +193,7 @@ def parse_scenario(text: str, name: str = "scenario.toml", path: str = "",
                     plant=plant, controller=controller, reference=reference, shaping=shaping,
                     load_t=load_t, load_v=load_v, v_collapse=limits["v_collapse"],
                     safe_u=limits["safe_u"], interlocks=interlocks, v_out0=v_out0,
-                    recording=recording, faults=faults)
+                    recording=recording, faults=faults, resets=resets)
 
 
 def _set_dotted(cx, raw: dict, dotted: str, value: Any) -> None:

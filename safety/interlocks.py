@@ -26,9 +26,10 @@ from numba import njit
 
 from .errors import InterlockConfigError
 
-#: latch array layout
-L_TRIPPED, L_CAUSE, L_TICK, L_TIME, L_VALUE = range(5)
-LATCH_SIZE = 5
+#: latch array layout (L_LOGGED: the trip is in the event log; L_REINIT: re-initialise the
+#: controller on the next tick, after an accepted reset)
+L_TRIPPED, L_CAUSE, L_TICK, L_TIME, L_VALUE, L_LOGGED, L_REINIT = range(7)
+LATCH_SIZE = 7
 #: cause codes: 1 + row for a limit row; these offsets for plausibility causes
 CAUSE_NONFINITE = 1000   # + index into [y..., u...]
 CAUSE_CONTROLLER = 2000  # + the controller's fault code if > 0; -CAUSE_CONTROLLER + code if < 0
@@ -36,7 +37,16 @@ CAUSE_CONTROLLER = 2000  # + the controller's fault code if > 0; -CAUSE_CONTROLL
 BIT_NONFINITE = 48
 BIT_CONTROLLER = 49
 BIT_LATCHED = 50
+BIT_RESET_REQUESTED = 51
+BIT_RESET_REFUSED = 52
 MAX_ROWS = 40
+#: the bits that say a condition holds now (rows, non-finite, controller fault)
+CONDITIONS = ((1 << MAX_ROWS) - 1) | (1 << BIT_NONFINITE) | (1 << BIT_CONTROLLER)
+#: event log: rows of (tick, kind, cause, value); kinds
+EVT_TRIP, EVT_RESET_ACCEPTED, EVT_RESET_REFUSED, EVT_RESET_IDLE = 1, 2, 3, 4
+EVENT_NAMES = {EVT_TRIP: "trip", EVT_RESET_ACCEPTED: "reset accepted",
+               EVT_RESET_REFUSED: "reset refused", EVT_RESET_IDLE: "reset (nothing latched)"}
+EVENT_LOG_SIZE = 256
 
 
 @dataclass(frozen=True)
@@ -105,6 +115,57 @@ class InterlockTable:
 
 def new_latch() -> np.ndarray:
     return np.zeros(LATCH_SIZE)
+
+
+def new_event_log() -> tuple[np.ndarray, np.ndarray]:
+    """(rows, count): the kernel appends (tick, kind, cause, value) rows; count may exceed the
+    rows (then the later events were not kept, only counted)."""
+    return np.zeros((EVENT_LOG_SIZE, 4)), np.zeros(1, dtype=np.int64)
+
+
+@njit(cache=True)
+def _log(evlog, evn, tick, kind, cause, value):
+    n = evn[0]
+    if n < evlog.shape[0]:
+        evlog[n, 0] = tick
+        evlog[n, 1] = kind
+        evlog[n, 2] = cause
+        evlog[n, 3] = value
+    evn[0] = n + 1
+
+
+@njit(cache=True)
+def supervise(tick, t, word, latch, reset_t, reset_i, evlog, evn):
+    """After the protect stage: log a trip latched on this tick, and handle a reset request.
+
+    A reset (requested at a scheduled time) clears the latch only if no interlock condition
+    holds on this tick; otherwise it is refused and the safe state stays (ISO 13849-1
+    5.2.2.3: a stop is held until it is safe, and restarting needs a separate, intended reset).
+    The output stays safe on the reset tick; the controller is re-initialised from the
+    measurements on the next tick (bumpless restart). Returns the interlock word with the reset
+    bits set.
+    """
+    if latch[L_TRIPPED] != 0.0 and latch[L_LOGGED] == 0.0:
+        _log(evlog, evn, tick, EVT_TRIP, latch[L_CAUSE], latch[L_VALUE])
+        latch[L_LOGGED] = 1.0
+    i = reset_i[0]
+    if i < reset_t.shape[0] and t >= reset_t[i]:
+        reset_i[0] = i + 1
+        word |= 1 << BIT_RESET_REQUESTED
+        if latch[L_TRIPPED] == 0.0:
+            _log(evlog, evn, tick, EVT_RESET_IDLE, 0.0, 0.0)
+        elif (word & CONDITIONS) != 0:
+            word |= 1 << BIT_RESET_REFUSED
+            _log(evlog, evn, tick, EVT_RESET_REFUSED, latch[L_CAUSE], 0.0)
+        else:
+            _log(evlog, evn, tick, EVT_RESET_ACCEPTED, latch[L_CAUSE], 0.0)
+            latch[L_TRIPPED] = 0.0
+            latch[L_LOGGED] = 0.0
+            latch[L_REINIT] = 1.0
+            # the word says what holds at the end of the tick: no longer latched (this tick's
+            # output is still the safe one)
+            word &= ~(1 << BIT_LATCHED)
+    return word
 
 
 @njit(cache=True)

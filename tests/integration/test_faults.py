@@ -90,3 +90,67 @@ def test_bad_faults_are_refused_clearly(demo_path, fault, message):
     with pytest.raises(ScenarioError) as err:
         parse_scenario(_demo(demo_path, "[[faults]]\n" + fault + "\n"), name="faults.toml")
     assert message in str(err.value) and str(err.value).startswith("faults.toml: ")
+
+
+RESET = '''
+title = "reset test (test data)"
+seed = 1
+resets = ["0.1 s", "0.2 s"]
+[timing]
+Ts = "50 us"
+duration = "0.3 s"
+[plant]
+plugin = "first_order.py"
+tau = "20 ms"
+[controller]
+plugin = "pi_v.py"
+Kp = 1.0
+Ki = 20.0
+[reference]
+plugin = "profile"
+points = [[0, 400]]
+[limits]
+v_collapse = 0
+[[interlocks]]
+signal = "v_out"
+above = "480 V"
+[[faults]]
+kind = "offset"
+signal = "v_out"
+start = "0.05 s"
+end = "0.15 s"
+value = "500 V"
+'''
+
+
+def test_reset_is_refused_while_the_cause_persists_and_accepted_after(tmp_path):
+    """ISO 13849-1:2023 5.2.2.3 (secondary source): a stop is held until it is safe, and a
+    restart needs a separate, intended reset. The cause (a +500 V offset on the v_out sensor, so
+    the measured value stays above the 480 V limit even with the output off) persists from
+    0.05 s to 0.15 s: the reset at 0.1 s is refused, the one at 0.2 s accepted. A first-order
+    test plant keeps the example free of filter ringing while the output is off."""
+    from hilrig.safety.interlocks import BIT_LATCHED, BIT_RESET_REFUSED, BIT_RESET_REQUESTED
+    from tests.integration.test_protocol_example import CONTROLLER, PLANT
+    (tmp_path / "first_order.py").write_text(PLANT)
+    (tmp_path / "pi_v.py").write_text(CONTROLLER)
+    (tmp_path / "reset.toml").write_text(RESET)
+    from hilrig.runtime.scenario import load_scenario
+    res = run_scenario(load_scenario(tmp_path / "reset.toml"), tmp_path / "r")
+    s, run = res.summary, open_run(res.folder)
+    kinds = [(e["event"], round(e["time_s"], 9)) for e in s["events"]]
+    assert kinds == [("trip", 0.05), ("reset refused", 0.1), ("reset accepted", 0.2)]
+    assert s["events"][0]["cause"] == "interlock v_out > 480 V"
+    assert s["metrics"]["trips"] == 1 and s["completed"]
+    word = run.signals["interlock_word"].astype(np.int64)
+    t, u = run.time, run.signals["u"]
+    k_trip, k_refuse, k_accept = (int(np.searchsorted(t, x - 1e-12)) for x in (0.05, 0.1, 0.2))
+    latched = (word >> BIT_LATCHED) & 1
+    assert not latched[:k_trip].any() and latched[k_trip:k_accept].all() and not latched[k_accept:].any()
+    assert (word[k_refuse] >> BIT_RESET_REQUESTED) & 1 and (word[k_refuse] >> BIT_RESET_REFUSED) & 1
+    assert (word[k_accept] >> BIT_RESET_REQUESTED) & 1 and not (word[k_accept] >> BIT_RESET_REFUSED) & 1
+    assert np.all(u[k_trip:k_accept + 1] == 0.0)    # safe output held, also on the reset tick
+    assert u[k_accept + 1] > 0.0                    # the controller restarts on the next tick
+    # and, restarting from the measurement, brings the output back towards 400 V (gains
+    # chosen so the restart does not overshoot into the 480 V limit again)
+    v = run.signals["v_out"]
+    assert v[-1] > 300.0 and v[k_accept:].max() < 480.0
