@@ -161,9 +161,10 @@ def run_row(task: Task) -> list[str]:
     sc, fn, profile = _base(task)
     n = sc.n_ticks
     t_step = task.t_step if task.t_step is not None else min(5e-3, 0.1 * sc.duration)
+    # the same for every point of the row (and a whole prepare() for a battery reference)
+    v_start = task.v_start if task.v_start is not None else _start_voltage(sc)
     out = []
     for p_load in task.p:
-        v_start = task.v_start if task.v_start is not None else _start_voltage(sc)
         spt = point_scenario(sc, profile, v_start, task.v, p_load, t_step)
         prep = prepare(spt)
         names = [s.name for s in prep.signals]
