@@ -18,6 +18,9 @@ from hilrig.runtime import loop as loopgen
 from hilrig.runtime.run import (RunResult, check_folder, default_folder, execute, fault_args,
                                 prepare, supervision_args)
 
+from hilrig.safety.interlocks import (HOST_GAP, HOST_LOST, HOST_STALE, W_FORCED, W_HOST_BITS,
+                                      W_HOST_TIME, W_HOST_VALUE)
+
 from . import protocol as P
 from .errors import BridgeError, PeerError, ProtocolError, TransportTimeout
 from .transport import client_for
@@ -49,11 +52,17 @@ def _ready_tick(sc):
     return tick, time.perf_counter() - t
 
 
+def _spin_until(t_end: float) -> None:
+    """Busy-wait to a perf_counter time (a forced overrun spends its time for real)."""
+    while time.perf_counter() < t_end:
+        pass
+
+
 def _tick_args(a: dict) -> tuple:
     return (a["pc"], a["xc"], a["iyc"], a["yc"], a["u"], a["safe_u"],
             a["pr"], a["xr"], a["iyr"], a["yr"], a["w"],
             a["ad"], a["g1"], a["g2"], a["cr"], a["dr"], a["slew"], a["z"], a["s"], a["zt"], a["r"],
-            a["lim_sig"], a["lim_above"], a["lim_thr"], a["lim_deb"], a["lim_cnt"], a["latch"],
+            a["dix"], a["lim_sig"], a["lim_side"], a["lim_thr"], a["lim_deb"], a["lim_cnt"], a["latch"],
             a["pv"], *fault_args(a), *supervision_args(a), a["y"], a["d"])
 
 
@@ -133,6 +142,9 @@ def run_bridge(sc, address: str, folder: Path | None = None, *, mode: str = "loc
                 raise
         if isinstance(got, P.Error):
             raise PeerError(got.code, got.reason)
+        if isinstance(got, P.Stop) and expect is not P.Stop:
+            # the simulator ends the session unasked (an orderly disconnect on its side)
+            raise PeerError(0, f"the simulator stopped: {got.reason}")
         if not isinstance(got, expect):
             stats.rejects.add("unexpected", f"expected {expect.__name__}, got {type(got).__name__}")
             raise ProtocolError("unexpected", f"the simulator answered a {type(got).__name__} "
@@ -159,33 +171,59 @@ def run_bridge(sc, address: str, folder: Path | None = None, *, mode: str = "loc
     except (ProtocolError, PeerError, TransportTimeout) as exc:
         link.close()
         raise BridgeError(f"bridge handshake with {address} failed: {exc}") from None
+    stale_s = sc.watchdogs["stale_limit"] or timeout_s
+    link.set_timeout(stale_s)
     if notice:
         notice(f"bridge: connected to {welcome.simulator_name!r} at {address} ({mode}, "
-               f"{n_meas} measurements, {n_act} actuations)")
-    state = {"sample": current}
+               f"{n_meas} measurements, {n_act} actuations; stale after {stale_s * 1e3:g} ms)")
+    # the sample for the next tick, or the reason there is none: ("stale" | "lost", detail)
+    state: dict[str, Any] = {"sample": current, "took": 0.0, "missing": None, "waited": 0.0}
+    wd = a["wd"]
 
     def produce(k0: int, n: int, rec: np.ndarray) -> int:
         targs = _tick_args(a)
         for i in range(n):
             kk = k0 + i
+            if state["missing"] is not None:
+                # watchdog tick: no fresh sample; the controller runs on the measurement held,
+                # the trip forces the safe output, and the run ends (nobody answers any more)
+                why, detail = state["missing"]
+                wd[W_HOST_BITS] = HOST_STALE if why == "stale" else HOST_LOST
+                wd[W_HOST_VALUE] = state["waited"] if why == "stale" else 0.0
+                tick(kk, i, sc.Ts, sc.v_collapse, a["i_vout"], *targs, rec, a["ev"])
+                wd[W_HOST_BITS] = 0.0
+                e = {"event": f"bridge {'stale' if why == 'stale' else 'peer lost'}",
+                     "tick": kk, "detail": detail}
+                if why == "stale":
+                    e["detected_after_s"] = state["waited"]
+                ended.append(e)
+                return i + 1
             smp = state["sample"]
             verdict = stats.seq.check(smp.seq)
             if smp.seq != kk:
                 ended.append({"event": "bridge sequence error", "tick": kk,
                               "detail": f"sample seq {smp.seq} ({verdict}) where {kk} was due"})
                 return i
+            t_in = time.perf_counter()
             a["y"][:] = smp.meas
             a["d"][:] = np.nan  # the load lives in the simulator
+            wd[W_HOST_TIME] = state["took"]
             go = tick(kk, i, sc.Ts, sc.v_collapse, a["i_vout"], *targs, rec, a["ev"])
+            if wd[W_FORCED] > 0.0:
+                _spin_until(t_in + wd[W_FORCED])
             enable = not bool(a["latch"][0])
             word = int(rec[i, -2])
+            frame = P.encode_actuation(kk, a["u"], word, enable)
+            t_sent = time.perf_counter()
+            state["took"] = t_sent - t_in
             try:
-                state["sample"] = ask(P.encode_actuation(kk, a["u"], word, enable), P.Sample,
-                                      want_seq=kk + 1)
+                state["sample"] = ask(frame, P.Sample, want_seq=kk + 1)
             except TransportTimeout as exc:
-                ended.append({"event": "bridge timeout", "tick": kk, "detail": str(exc)})
-                return i + 1
-            except (ProtocolError, PeerError) as exc:
+                state["waited"] = time.perf_counter() - t_sent
+                state["missing"] = ("stale", f"no sample within {stale_s * 1e3:g} ms: {exc}")
+            except PeerError as exc:
+                state["missing"] = ("lost", f"the simulator ended the session: {exc}")
+            except ProtocolError as exc:
                 ended.append({"event": "bridge protocol error", "tick": kk, "detail": str(exc)})
                 return i + 1
             if not go:
@@ -194,7 +232,7 @@ def run_bridge(sc, address: str, folder: Path | None = None, *, mode: str = "loc
 
     def finish() -> list[dict[str, Any]]:
         # the orderly end goes out before the summary is written, so its statistics count it
-        if not link.closed:
+        if not link.closed and state["missing"] is None:
             try:
                 ask(P.Stop(reason="run ended"), P.Stop)
             except (ProtocolError, PeerError, TransportTimeout) as exc:
@@ -218,14 +256,21 @@ def run_free_running(sc, address: str, folder: Path | None = None, *, timeout_s:
                      notice: Callable[[str], None] | None = None) -> RunResult:
     """Free-running: the simulator keeps its own clock and sends a sample every period; the
     runtime answers each within the deadline of one period. A lost sample is a gap: the
-    controller runs its tick on the last measurement held. No sample for ``stale_s``
-    (default 20 periods, at least 50 ms) ends the run with a ``bridge stale`` event."""
+    controller runs its tick on the last measurement held; more than ``watchdogs.max_gap``
+    samples lost in a row trip the sequence-gap watchdog. No sample for ``stale_s`` (default:
+    the scenario's ``watchdogs.stale_limit``, else 20 periods and at least 50 ms) trips the
+    staleness watchdog: that tick runs on the measurement held, its safe output goes out, and
+    the runtime waits ``watchdogs.peer_timeout`` more for the simulator; if nothing comes the
+    peer-lost watchdog ends the run, with the safe state latched and the recording closed.
+    An ERROR or unasked STOP frame from the simulator trips peer lost at once."""
     from .transport import free_running_link
     mode = "free-running"
     sc = dataclasses.replace(sc, mode=mode)
     folder = Path(folder) if folder is not None else default_folder(sc)
     check_folder(folder, overwrite)
-    stale_s = stale_s if stale_s is not None else max(20 * sc.Ts, 0.05)
+    stale_s = stale_s if stale_s is not None else sc.stale_limit_s
+    peer_timeout = sc.watchdogs["peer_timeout"]
+    max_gap = int(sc.watchdogs["max_gap"])
     tick, t_compile = _ready_tick(sc)
     prep = prepare(sc)
     a = prep.args
@@ -266,67 +311,123 @@ def run_free_running(sc, address: str, folder: Path | None = None, *, timeout_s:
     if notice:
         notice(f"bridge: connected to {welcome.simulator_name!r} at {address} (free-running, "
                f"Ts = {sc.Ts:g} s, stale after {stale_s * 1e3:g} ms)")
-    link.send(P.encode(P.Heartbeat(seq=0, t_sender_s=0.0)))
-    stats.sent += 1
-    state = {"next": None}
+    state: dict[str, Any] = {"next": None, "took": 0.0, "last_seq": -1, "t_last": None,
+                             "stale": False, "lost": None, "started": False}
+    wd = a["wd"]
 
-    def next_sample(kk):
-        """The sample for tick kk, None if stale; a later sample means kk was lost."""
+    def next_sample(kk, wait, since):
+        """The sample for tick kk, or None when none came ``wait`` s after ``since`` (a
+        perf_counter time); a later sample means kk was lost. An ERROR or STOP frame from the
+        simulator sets state["lost"]."""
         nxt = state["next"]
         if nxt is not None and nxt.seq >= kk:
             return nxt
-        deadline = time.perf_counter() + stale_s
+        deadline = since + wait
         while True:
-            f = recv_frame(max(0.0, deadline - time.perf_counter()))
-            if f is None:
+            left = deadline - time.perf_counter()
+            if left <= 0.0:
                 return None
+            f = recv_frame(left)
+            if f is None:
+                continue  # the transport's wait is rounded to whole ms: wait out the rest
             if isinstance(f, P.Sample):
                 verdict = stats.seq.check(f.seq)
                 if verdict in ("duplicate", "out-of-order"):
                     continue
+                # a runtime that fell behind answers the newest sample, not a queue of old
+                # ones: the samples passed over are lost ticks (held measurement)
+                while True:
+                    g = recv_frame(0.0)
+                    if g is None or g is False:
+                        break
+                    if isinstance(g, P.Sample) and stats.seq.check(g.seq) not in (
+                            "duplicate", "out-of-order"):
+                        f = g
                 state["next"] = f
+                state["t_last"] = time.perf_counter()
                 return f
             if isinstance(f, P.Error):
-                ended.append({"event": "bridge protocol error", "tick": kk,
-                              "detail": f"simulator error {f.code}: {f.reason}"})
+                state["lost"] = f"simulator error {f.code}: {f.reason}"
+                return None
+            if isinstance(f, P.Stop):
+                state["lost"] = f"the simulator stopped: {f.reason}"
                 return None
 
     def produce(k0: int, n: int, rec: np.ndarray) -> int:
         targs = _tick_args(a)
+        if not state["started"]:
+            # the simulator's clock starts now, with the recording open and the loop ready
+            link.send(P.encode(P.Heartbeat(seq=0, t_sender_s=0.0)))
+            stats.sent += 1
+            state["started"] = True
         for i in range(n):
             kk = k0 + i
-            smp = next_sample(kk)
-            if smp is None:
-                if not ended:
-                    ended.append({"event": "bridge stale", "tick": kk,
-                                  "detail": f"no sample for {stale_s * 1e3:g} ms"})
-                return i
-            t_in = time.perf_counter()
-            fresh = smp.seq == kk
-            if fresh:
-                a["y"][:] = smp.meas
+            # after a stale trip the runtime waits for the peer a while longer
+            t_wait = time.perf_counter()
+            if state["stale"]:
+                smp = next_sample(kk, peer_timeout, t_wait)
             else:
-                counts["held_ticks"] += 1  # sample kk was lost: hold the last measurement
+                # staleness counts from the last sample that arrived
+                smp = next_sample(kk, stale_s, state["t_last"] or t_wait)
+            t_in = time.perf_counter()
+            bits, value, end = 0, 0.0, None
+            fresh = False
+            if smp is None:
+                since = t_in - (state["t_last"] if state["t_last"] is not None else t_wait)
+                if state["lost"] is not None or state["stale"]:
+                    bits, value = HOST_LOST, since
+                    end = {"event": "bridge peer lost", "tick": kk,
+                           "detail": state["lost"] or f"nothing from the simulator for "
+                                                      f"{since * 1e3:.1f} ms"}
+                else:
+                    state["stale"] = True
+                    bits, value = HOST_STALE, since
+                    ended.append({"event": "bridge stale", "tick": kk, "ends_run": False,
+                                  "detail": f"no sample for {stale_s * 1e3:g} ms (limit)",
+                                  "detected_after_s": since})
+            else:
+                state["stale"] = False
+                fresh = smp.seq == kk
+                if fresh:
+                    gap = kk - state["last_seq"] - 1
+                    state["last_seq"] = kk
+                    a["y"][:] = smp.meas
+                    if gap > max_gap:
+                        bits, value = HOST_GAP, float(gap)
+                else:
+                    counts["held_ticks"] += 1  # sample kk was lost: hold the last measurement
             a["d"][:] = np.nan
+            wd[W_HOST_BITS] = bits
+            wd[W_HOST_VALUE] = value
+            wd[W_HOST_TIME] = state["took"]
             go = tick(kk, i, sc.Ts, sc.v_collapse, a["i_vout"], *targs, rec, a["ev"])
-            if fresh:
+            wd[W_HOST_BITS] = 0.0
+            if fresh or bits:
+                if wd[W_FORCED] > 0.0:
+                    _spin_until(t_in + wd[W_FORCED])
                 try:
+                    # a watchdog tick answers too: the safe output, output enable off
                     link.send(P.encode_actuation(kk, a["u"], int(rec[i, -2]),
                                                  not bool(a["latch"][0])))
                     stats.sent += 1
                 except TransportTimeout as exc:
-                    ended.append({"event": "bridge timeout", "tick": kk, "detail": str(exc)})
-                    return i + 1
+                    if end is None:
+                        end = {"event": "bridge timeout", "tick": kk, "detail": str(exc)}
                 took = time.perf_counter() - t_in
-                stats.rtt_ns.append(int(took * 1e9))  # the runtime's response time
-                if took > sc.Ts:
-                    counts["late_runtime"] += 1
+                if fresh:
+                    state["took"] = took
+                    stats.rtt_ns.append(int(took * 1e9))  # the runtime's response time
+                    if took > sc.Ts:
+                        counts["late_runtime"] += 1
+            if end is not None:
+                ended.append(end)
+                return i + 1
             if not go:
                 return i + 1
         return n
 
     def finish() -> list[dict[str, Any]]:
-        if any(e["event"] == "bridge stale" for e in ended):
+        if any(e["event"] == "bridge peer lost" for e in ended):
             return ended  # nobody is there to answer a STOP
         try:
             link.send(P.encode(P.Stop(reason="run ended")))

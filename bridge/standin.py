@@ -74,6 +74,70 @@ class Faults:
         return data
 
 
+COMMAND_HELP = ("freeze | disconnect | drop FRACTION | delay S | jitter S | corrupt N | clear "
+                "(one per line)")
+
+
+def apply_command(faults: Faults, line: str, tick: int, datagrams: bool) -> str:
+    """Apply one fault command typed while serving; return what was done (or why not)."""
+    words = line.split()
+    if not words:
+        return ""
+    cmd, args = words[0].lower(), words[1:]
+    try:
+        if cmd == "freeze" and not args:
+            faults.freeze_after = tick
+            return f"fault: freezing from tick {tick}"
+        if cmd == "disconnect" and not args:
+            faults.disconnect_after = tick
+            return f"fault: disconnecting at tick {tick}"
+        if cmd == "clear" and not args:
+            faults.drop = faults.delay_s = faults.jitter_s = 0.0
+            faults.corrupt_every = None
+            return "fault: drop, delay, jitter and corruption cleared"
+        if len(args) == 1:
+            v = float(args[0])
+            if cmd == "drop":
+                if not datagrams:
+                    return "refused: drop needs a datagram transport (udp://)"
+                if not 0.0 <= v < 1.0:
+                    return f"refused: drop {v:g} is not a fraction in [0, 1)"
+                faults.drop = v
+                return f"fault: dropping {v:.0%} of frames"
+            if cmd in ("delay", "jitter"):
+                if not 0.0 <= v <= 10.0:
+                    return f"refused: {cmd} {v:g} s is not in [0, 10] s"
+                setattr(faults, f"{cmd}_s", v)
+                return f"fault: {cmd} {v:g} s"
+            if cmd == "corrupt":
+                if v != int(v) or v < 1:
+                    return f"refused: corrupt {args[0]} is not a whole number >= 1"
+                faults.corrupt_every = int(v)
+                return f"fault: mangling every {int(v)}th frame"
+    except ValueError:
+        return f"refused: {args[0]!r} is not a number"
+    return f"unknown command {line.strip()!r}; commands: {COMMAND_HELP}"
+
+
+def start_command_reader(faults: Faults, stream, tick: Callable[[], int], datagrams: bool,
+                         log: Callable[[str], None]):
+    """Read fault commands from ``stream`` (e.g. standard input) in a background thread.
+
+    Each command changes the Faults object the serving loop reads every tick (single attribute
+    writes, so no lock is needed)."""
+    import threading
+
+    def read():
+        for line in stream:
+            msg = apply_command(faults, line, tick(), datagrams)
+            if msg:
+                log(f"stand-in simulator: {msg}")
+
+    th = threading.Thread(target=read, name="fault-commands", daemon=True)
+    th.start()
+    return th
+
+
 class StandIn:
     """State of the simulated plant for one session (reset by each handshake)."""
 
@@ -98,7 +162,7 @@ class StandIn:
 
     def reset(self):
         a = prepare(self.sc).args
-        self.faults = fault_args(a)
+        self.faults = (*fault_args(a), a["wd"])
         self.pp, self.x = a["pp"], a["x"].copy()
         self.load_t, self.load_v = a["load_t"], a["load_v"]
         self.lcur = np.zeros(1, dtype=np.int64)
@@ -126,7 +190,7 @@ class StandIn:
 
 def serve(sc, bind: str, *, sessions: int | None = None, allow_remote: bool = False,
           idle_timeout_s: float | None = None, faults: Faults | None = None, curve_keys=None,
-          log: Callable[[str], None] = print) -> int:
+          commands=None, log: Callable[[str], None] = print) -> int:
     """Serve lockstep sessions on ``bind`` until ``sessions`` have ended (None: forever) or
     nothing arrives for ``idle_timeout_s``. Returns the number of sessions served."""
     faults = faults or Faults()
@@ -135,6 +199,8 @@ def serve(sc, bind: str, *, sessions: int | None = None, allow_remote: bool = Fa
                          "cannot skip a reply; use --freeze-after to stop answering")
     sim = StandIn(sc)
     rep = server_for(bind, allow_remote=allow_remote, curve_keys=curve_keys)
+    if commands is not None:
+        start_command_reader(faults, commands, lambda: sim.k, bind.startswith("udp://"), log)
     n_meas, n_act = len(sim.meas_map), len(sim.act_map)
     served = 0
     in_session = False
@@ -178,6 +244,8 @@ def serve(sc, bind: str, *, sessions: int | None = None, allow_remote: bool = Fa
                     send(sim.last)  # the first sample was lost: send it again
             elif isinstance(frame, P.Actuation) and in_session:
                 if faults.disconnect_after is not None and sim.k >= faults.disconnect_after:
+                    # an orderly disconnect: the simulator says so (an unasked STOP), then goes
+                    reply(P.Stop(reason=f"simulator disconnecting at tick {sim.k}"))
                     log(f"stand-in simulator: disconnected at tick {sim.k} (fault injection)")
                     break
                 if faults.freeze_after is not None and sim.k >= faults.freeze_after:
@@ -214,15 +282,22 @@ def serve(sc, bind: str, *, sessions: int | None = None, allow_remote: bool = Fa
 
 def serve_free_running(sc, bind: str, *, sessions: int | None = None,
                        idle_timeout_s: float | None = None, stale_s: float = 1.0,
+                       faults: Faults | None = None, commands=None,
                        log: Callable[[str], None] = print) -> int:
     """Serve free-running sessions: after the handshake the simulator advances on its own clock
     every tick period, applies the actuation that answered the current sample if it came in
     time, holds the last input otherwise (a *missing* actuation), and counts actuations that
     arrive after their tick as *late*. A session ends on STOP, or when the runtime has sent
-    nothing for ``stale_s``."""
+    nothing for ``stale_s``. Faults act on the samples sent: drop, delay, jitter, corrupt;
+    ``freeze_after`` stops sending (and advancing) from that tick; ``disconnect_after`` sends
+    an unasked STOP at that tick and ends the session."""
+    faults = faults or Faults()
     from .transport import free_running_link
     sim = StandIn(sc)
     link = free_running_link(bind, bind=True)
+    if commands is not None:
+        # a free-running simulator sends its samples unasked: dropping them works on any transport
+        start_command_reader(faults, commands, lambda: sim.k, True, log)
     n_meas, n_act = len(sim.meas_map), len(sim.act_map)
     ts = sc.Ts
     served = 0
@@ -302,7 +377,24 @@ def serve_free_running(sc, bind: str, *, sessions: int | None = None,
                 if not sim.step(u):
                     send(P.Error(code=6, reason=f"the plant state became non-finite at tick {sim.k}"))
                     break
-                send(sim.sample(sim.k))
+                if faults.disconnect_after is not None and sim.k >= faults.disconnect_after:
+                    send(P.Stop(reason=f"simulator disconnecting at tick {sim.k}"))
+                    log(f"stand-in simulator: disconnected at tick {sim.k} (fault injection)")
+                    reason = "disconnect"
+                    break
+                if faults.freeze_after is not None and sim.k >= faults.freeze_after:
+                    log(f"stand-in simulator: frozen at tick {sim.k} (fault injection)")
+                    # hang: send nothing until the runtime has been silent for stale_s
+                    while True:
+                        got = link.recv(stale_s)
+                        if got is None:
+                            break
+                    reason = "frozen"
+                    break
+                data = sim.sample(sim.k)
+                wire = faults.wire(data) if faults.active() else data
+                if wire is not None:
+                    link.send(wire)
             text = f"ticks {sim.k}; late {late}; missing {missing}"
             if reason == "stop":
                 send(P.Stop(reason=text))

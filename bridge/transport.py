@@ -103,6 +103,12 @@ class ReqTransport:
                                   f"not the one in the keys folder") from None
             raise TransportTimeout(f"no reply from {self.address} within {self.timeout_ms} ms") from None
 
+    def set_timeout(self, timeout_s: float) -> None:
+        """The reply timeout from now on (the session's staleness limit after the handshake)."""
+        self.timeout_ms = max(1, int(round(timeout_s * 1000)))
+        self.sock.setsockopt(zmq.RCVTIMEO, self.timeout_ms)
+        self.sock.setsockopt(zmq.SNDTIMEO, self.timeout_ms)
+
     def _handshake_failure(self) -> str | None:
         if self.monitor is None:
             return None
@@ -220,6 +226,11 @@ class UdpClient:
         self.close()
         raise TransportTimeout(f"no reply from {self.address} after {self.retries + 1} tries "
                                f"{self.timeout_s * 1e3:g} ms apart")
+
+    def set_timeout(self, timeout_s: float) -> None:
+        """The total wait for a reply from now on, split into at least 4 tries of at most 50 ms."""
+        self.timeout_s = min(0.05, timeout_s / 4)
+        self.retries = max(1, int(round(timeout_s / self.timeout_s))) - 1
 
     def send(self, data: bytes) -> None:
         """Free-running: send without waiting for an answer."""

@@ -97,9 +97,25 @@ def _summary_table(console, s: dict, folder: Path | None) -> None:
     console.print(t)
 
 
+def _check_hv_acknowledged(sc, address: str, ack_hv: bool, allow_remote: bool) -> None:
+    """A bridge to another machine at hazardous voltage needs the explicit acknowledgement."""
+    from hilrig.bridge.transport import _is_loopback, check_address
+    check_address(address, allow_remote)  # the --allow-remote message comes first
+    from hilrig.safety.caution import hazardous_voltages, scenario_voltages
+    hv = hazardous_voltages(scenario_voltages(sc))
+    if hv and not _is_loopback(address) and not ack_hv:
+        raise ValueError(
+            f"the bridge address {address} is not on this machine and the scenario configures "
+            f"voltages above 60 V DC ({hv[0][0]} = {hv[0][1]:g} V). The far end may drive real "
+            f"equipment: confirm that hardware protection and isolation are in place and that "
+            f"the work follows local codes and licensed practice, then pass "
+            f"--acknowledge-high-voltage. hilrig's interlocks are monitoring functions, not "
+            f"safety-rated functions.")
+
+
 def _run(console, plain, scenario_path: Path, out: str | None, overwrite: bool, sets: list[str],
          bridge: str | None = None, mode: str = "lockstep", timeout: float = 2.0,
-         allow_remote: bool = False, curve_keys: str | None = None):
+         allow_remote: bool = False, curve_keys: str | None = None, ack_hv: bool = False):
     from hilrig.runtime.plots import overview_png
     from hilrig.runtime.recording import open_run
     from hilrig.runtime.run import run_scenario
@@ -107,6 +123,8 @@ def _run(console, plain, scenario_path: Path, out: str | None, overwrite: bool, 
 
     sc = load_scenario(scenario_path, overrides=_overrides(sets))
     _show_caution(console, sc)
+    if bridge:
+        _check_hv_acknowledged(sc, bridge, ack_hv, allow_remote)
     prog = _Progress(console, plain)
     try:
         if bridge:
@@ -294,6 +312,15 @@ def main(argv: list[str] | None = None) -> int:
     p.add_argument("--allow-remote", action="store_true",
                    help="allow a bridge address that is not on this machine (you take responsibility for the network)")
     p.add_argument("--curve-keys", metavar="DIR", help="CurveZMQ keys folder (hilrig keys DIR); required for a remote ZeroMQ peer")
+    p.add_argument("--acknowledge-high-voltage", action="store_true",
+                   help="required for a bridge to another machine when the scenario exceeds 60 V DC: "
+                        "you confirm hardware protection, isolation and local codes are in place")
+    p = sub.add_parser("interlock-test", help="run an interlock test suite: cases of scenario, fault and expected trip")
+    p.add_argument("suite", help="suite TOML file (see examples/interlock_suite.toml)")
+    p.add_argument("--out", help="folder for the cases' run folders and results.json (default: runs/<time>-<suite>)")
+    p.add_argument("--junit", metavar="FILE", help="also write the results as JUnit XML")
+    p.add_argument("--workers", type=int, help="parallel worker processes for SIL cases (default: all cores)")
+    p.add_argument("--headless", action="store_true", help="plain text output")
     p = sub.add_parser("keys", help="make CurveZMQ key pairs for a bridge between two machines")
     p.add_argument("folder", help="folder to write simulator.key[_secret] and runtime.key[_secret]")
     p = sub.add_parser("serve-sim", help="serve the stand-in simulator: the scenario's plant over the bridge protocol")
@@ -314,6 +341,9 @@ def main(argv: list[str] | None = None) -> int:
     p.add_argument("--corrupt-every", type=int, metavar="N", help="fault injection: mangle every N-th reply")
     p.add_argument("--disconnect-after", type=int, metavar="N", help="fault injection: close the connection at tick N")
     p.add_argument("--fault-seed", type=int, default=0, metavar="SEED", help="seed of the fault injection")
+    p.add_argument("--commands", action="store_true",
+                   help="read fault commands from standard input while serving, one per line: "
+                        "freeze, disconnect, drop FRACTION, delay S, jitter S, corrupt N, clear")
     p = sub.add_parser("compare", help="run one scenario with several controllers side by side")
     p.add_argument("scenario", help="scenario TOML file")
     p.add_argument("--controllers", required=True, metavar="A,B,...",
@@ -363,7 +393,10 @@ def main(argv: list[str] | None = None) -> int:
         elif args.cmd == "run":
             _run(console, plain, Path(args.scenario), args.out, args.overwrite, args.set,
                  bridge=args.bridge, mode=args.mode, timeout=args.timeout,
-                 allow_remote=args.allow_remote, curve_keys=args.curve_keys)
+                 allow_remote=args.allow_remote, curve_keys=args.curve_keys,
+                 ack_hv=args.acknowledge_high_voltage)
+        elif args.cmd == "interlock-test":
+            return _interlock_test(console, args)
         elif args.cmd == "keys":
             from hilrig.bridge.keys import generate
             for f in generate(Path(args.folder)):
@@ -382,11 +415,13 @@ def main(argv: list[str] | None = None) -> int:
             if args.mode == "free-running":
                 from hilrig.bridge.standin import serve_free_running
                 serve_free_running(sc, args.bind, sessions=args.sessions,
-                                   idle_timeout_s=args.idle_timeout,
+                                   idle_timeout_s=args.idle_timeout, faults=faults,
+                                   commands=sys.stdin if args.commands else None,
                                    log=lambda m: console.print(m, markup=False))
                 return 0
             serve(sc, args.bind, sessions=args.sessions, allow_remote=args.allow_remote,
                   idle_timeout_s=args.idle_timeout, faults=faults, curve_keys=args.curve_keys,
+                  commands=sys.stdin if args.commands else None,
                   log=lambda m: console.print(m, markup=False))
         elif args.cmd == "compare":
             _compare(console, args)
@@ -426,6 +461,56 @@ def main(argv: list[str] | None = None) -> int:
         console.print("interrupted: the recording is kept up to its last flushed chunk")
         return EXIT_INTERRUPTED
     return 0
+
+
+def _interlock_test(console, args) -> int:
+    import datetime as _dt
+    from rich.markup import escape
+    from rich.table import Table
+
+    from hilrig.safety.caution import CAUTION_TITLE
+    from hilrig.safety.suite import junit_xml, latency_text, load_suite, run_suite
+    suite = load_suite(args.suite)
+    out = Path(args.out) if args.out else Path("runs") / (
+        _dt.datetime.now().strftime("%Y%m%d-%H%M%S") + "-" + Path(args.suite).stem)
+    if (out / "results.json").exists():
+        raise FileExistsError(f"{out} already holds suite results; choose another --out "
+                              f"(nothing was overwritten)")
+    from rich.panel import Panel
+    console.print(Panel("Interlock test cases prove what hilrig's software interlocks do in "
+                        "simulation. They are monitoring functions, not safety-rated functions "
+                        "(IEC 61508, ISO 13849); hardware protection and isolation must stay in "
+                        "place, and local codes and licensed practice govern real equipment.",
+                        title=CAUTION_TITLE, border_style="bold yellow", expand=False,
+                        width=min(console.width, 100)))
+    n_bridge = sum(c.bridge is not None for c in suite.cases)
+    console.print(f"{suite.title}{'  [demo data]' if suite.demo_data else ''}: "
+                  f"{len(suite.cases)} cases ({len(suite.cases) - n_bridge} SIL in parallel, "
+                  f"{n_bridge} bridge one at a time) -> {out}", markup=False)
+
+    def progress(r, done, total):
+        mark = "pass" if r.passed else "FAIL"
+        console.print(f"[{done}/{total}] {mark}  {r.name}  ({r.outcome}; {latency_text(r)})",
+                      markup=False)
+
+    results = run_suite(suite, out, workers=args.workers, progress=progress)
+    t = Table(title=escape(suite.title), header_style="bold", title_justify="left")
+    for col in ("case", "expected", "got", "trip latency", "result"):
+        t.add_column(col)
+    for c, r in zip(suite.cases, results):
+        exp = c.expect if c.expect == "no trip" else f"trip: {c.cause or 'any'}"
+        res = "pass" if r.passed else "FAIL: " + "; ".join(r.reasons)
+        t.add_row(escape(r.name), escape(exp), escape(r.outcome), latency_text(r),
+                  escape(res), style=None if r.passed else "bold red")
+    console.print(t)
+    failed = sum(not r.passed for r in results)
+    if args.junit:
+        Path(args.junit).parent.mkdir(parents=True, exist_ok=True)
+        Path(args.junit).write_text(junit_xml(suite, results))
+        console.print(f"wrote {args.junit}", markup=False)
+    console.print(f"{len(results) - failed} passed, {failed} failed; results in "
+                  f"{out / 'results.json'}", markup=False)
+    return 1 if failed else 0
 
 
 def _plugins_table(console, items: list[dict]) -> None:

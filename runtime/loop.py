@@ -53,12 +53,15 @@ from numba import njit
 from hilrig.plugins.tables import interp_rows as _interp_rows
 from hilrig.runtime.loop import inline as _inline
 from hilrig.runtime.shaping import shape_init, shape_step as _shape_step
-from hilrig.safety.interlocks import protect as _protect, supervise as _supervise, L_REINIT
-from hilrig.safety.faults import apply as _apply_faults
+from hilrig.safety.interlocks import (protect as _protect, supervise as _supervise,
+                                      watch as _watch, L_REINIT)
+from hilrig.safety.faults import apply as _apply_faults, trigger as _trigger
 {imports}
 interp_rows = _inline(_interp_rows)
 shape_step = _inline(_shape_step)
 protect = _inline(_protect)
+watch = _inline(_watch)
+trigger = _inline(_trigger)
 supervise = _inline(_supervise)
 apply_faults = _inline(_apply_faults)
 
@@ -89,9 +92,9 @@ def run_chunk(k0, n, ts, nsub, v_collapse, i_vout,
               pc, xc, iyc, yc, u, safe_u,
               pr, xr, iyr, yr, w,
               ad, g1, g2, cr, dr, slew, z, s, zt, r,
-              lim_sig, lim_above, lim_thr, lim_deb, lim_cnt, latch, pv,
-              seed, f_stage, f_kind, f_sig, f_t0, f_t1, f_val, f_hold,
-              reset_t, reset_i, evlog, evn,
+              dix, lim_sig, lim_side, lim_thr, lim_deb, lim_cnt, latch, pv,
+              seed, f_stage, f_kind, f_sig, f_t0, f_t1, f_val, f_hold, f_cond,
+              reset_t, reset_i, evlog, evn, wd,
               y, d, rec, ev):
     """SIL: run ticks k0 .. k0+n-1; return how many ran (fewer if the run ended)."""
     for i in range(n):
@@ -99,11 +102,11 @@ def run_chunk(k0, n, ts, nsub, v_collapse, i_vout,
         t = kk * ts
         # 1 sample (load faults act on the load, as a real device would)
         interp_rows(load_t, load_v, t, lcur, d)
-        apply_faults(0, kk, t, seed, f_stage, f_kind, f_sig, f_t0, f_t1, f_val, f_hold, y, u, d)
+        apply_faults(0, kk, t, seed, f_stage, f_kind, f_sig, f_t0, f_t1, f_val, f_hold, f_cond, wd, y, u, d)
         plant_outputs(t, pp, x, u, d, y)
         v_true = y[i_vout]
         # 2 inject: sensor faults on the measured signals
-        apply_faults(1, kk, t, seed, f_stage, f_kind, f_sig, f_t0, f_t1, f_val, f_hold, y, u, d)
+        apply_faults(1, kk, t, seed, f_stage, f_kind, f_sig, f_t0, f_t1, f_val, f_hold, f_cond, wd, y, u, d)
 {decide_8}
         # 6 actuate
         advance(t, ts, nsub, pp, x, u, d)
@@ -126,16 +129,16 @@ def bridge_tick(kk, i, ts, v_collapse, i_vout,
                 pc, xc, iyc, yc, u, safe_u,
                 pr, xr, iyr, yr, w,
                 ad, g1, g2, cr, dr, slew, z, s, zt, r,
-                lim_sig, lim_above, lim_thr, lim_deb, lim_cnt, latch, pv,
-                seed, f_stage, f_kind, f_sig, f_t0, f_t1, f_val, f_hold,
-                reset_t, reset_i, evlog, evn,
+                dix, lim_sig, lim_side, lim_thr, lim_deb, lim_cnt, latch, pv,
+                seed, f_stage, f_kind, f_sig, f_t0, f_t1, f_val, f_hold, f_cond,
+                reset_t, reset_i, evlog, evn, wd,
                 y, d, rec, ev):
     """Bridge modes: one tick on a y received from the simulator (stages 2-5 and 7; the
     simulator samples and actuates). Writes row i of rec; returns 1, or 0 if the run ends."""
     t = kk * ts
     v_true = y[i_vout]
     # 2 inject: sensor faults on the measured signals
-    apply_faults(1, kk, t, seed, f_stage, f_kind, f_sig, f_t0, f_t1, f_val, f_hold, y, u, d)
+    apply_faults(1, kk, t, seed, f_stage, f_kind, f_sig, f_t0, f_t1, f_val, f_hold, f_cond, wd, y, u, d)
 {decide_4}
 {record_4}
     if not (v_true - v_true == 0.0):
@@ -149,12 +152,14 @@ def bridge_tick(kk, i, ts, v_collapse, i_vout,
 
 @njit(cache=True)
 def sim_sample(kk, t, pp, x, u, load_t, load_v, lcur, d, y,
-               seed, f_stage, f_kind, f_sig, f_t0, f_t1, f_val, f_hold):
+               seed, f_stage, f_kind, f_sig, f_t0, f_t1, f_val, f_hold, f_cond, wd):
     """Stand-in simulator: the plant's outputs at time t (the load sampled at t, with the
-    scenario's load faults; its sensor faults are injected on the runtime's side)."""
+    scenario's load faults; its sensor faults are injected on the runtime's side). Conditional
+    faults are triggered on these outputs, as in SIL."""
     interp_rows(load_t, load_v, t, lcur, d)
-    apply_faults(0, kk, t, seed, f_stage, f_kind, f_sig, f_t0, f_t1, f_val, f_hold, y, u, d)
+    apply_faults(0, kk, t, seed, f_stage, f_kind, f_sig, f_t0, f_t1, f_val, f_hold, f_cond, wd, y, u, d)
     plant_outputs(t, pp, x, u, d, y)
+    trigger(t, y, f_t0, f_t1, f_cond)
 
 
 @njit(cache=True)
@@ -186,11 +191,14 @@ if kk == 0 or latch[L_REINIT] != 0.0:
     # bumpless start, and restart after an accepted reset
     ctrl_init(pc, xc, yc, r)
     latch[L_REINIT] = 0.0
+# watchdogs (the last tick's overrun, link conditions raised by the host), before the
+# controller faults of this tick overwrite the forced overrun they read
+wword = watch(kk, t, wd, latch)
 code = ctrl_step(t, pc, xc, yc, r, u)
-apply_faults(2, kk, t, seed, f_stage, f_kind, f_sig, f_t0, f_t1, f_val, f_hold, y, u, d)
+apply_faults(2, kk, t, seed, f_stage, f_kind, f_sig, f_t0, f_t1, f_val, f_hold, f_cond, wd, y, u, d)
 # 5 protect
-word = protect(kk, t, y, u, code, lim_sig, lim_above, lim_thr, lim_deb, lim_cnt,
-               latch, pv, safe_u)
+word = wword | protect(kk, t, ts, y, u, code, dix, lim_sig, lim_side, lim_thr, lim_deb,
+                       lim_cnt, latch, pv, safe_u)
 word = supervise(kk, t, word, latch, reset_t, reset_i, evlog, evn)"""
 
 _RECORD = """# 7 record

@@ -16,8 +16,8 @@ import numpy as np
 
 from hilrig.plugins.base import LOAD_SIGNALS, REFERENCE_SIGNALS, BuildContext
 from hilrig.safety.faults import table as fault_table
-from hilrig.safety.interlocks import (EVENT_NAMES, EVT_TRIP, InterlockTable, new_event_log,
-                                      new_latch)
+from hilrig.safety.interlocks import (DERIVED, EVENT_NAMES, EVT_TRIP, InterlockTable,
+                                      new_event_log, new_latch, new_watchdog)
 
 from . import loop as loopgen
 from . import shaping
@@ -146,7 +146,7 @@ def prepare(sc: Scenario) -> Prepared:
     if nx != len(pdecl.states):
         raise ScenarioError(f"plant {pdecl.name!r}: equilibrium gave {nx} states, declared {len(pdecl.states)}")
     ad, g1, g2, cr, dr = shaping.design(sc.shaping["order"], sc.shaping["pole"], sc.Ts)
-    table = InterlockTable.build(sc.interlocks, outputs + u_names)
+    table = InterlockTable.build(sc.interlocks, outputs + u_names + [d[0] for d in DERIVED])
     ny = len(outputs)
     out_units = {s.name: (s.unit, s.description) for s in pdecl.outputs}
     signals = [SignalSpec(n, out_units[n][0], out_units[n][1]) for n in outputs]
@@ -155,7 +155,7 @@ def prepare(sc: Scenario) -> Prepared:
                 for n, u in REFERENCE_SIGNALS]
     signals.append(SignalSpec("v_ref_raw", "V", "reference before shaping"))
     signals += [SignalSpec(n, u, "load profile") for n, u in LOAD_SIGNALS]
-    signals.append(SignalSpec("interlock_word", "-", "bit j: interlock j beyond its limit; bit 48 non-finite; bit 49 controller fault; bit 50 latched; bit 51 reset requested; bit 52 reset refused"))
+    signals.append(SignalSpec("interlock_word", "-", "bit j: interlock j beyond its limit; bits 40-43 watchdogs overrun, stale, sequence gap, peer lost; bit 48 non-finite; bit 49 controller fault; bit 50 latched; bit 51 reset requested; bit 52 reset refused"))
     signals.append(SignalSpec("ctrl_code", "-", "controller return code (0 ok)"))
     if "v_out" not in outputs:
         raise ScenarioError(f"plant {pdecl.name!r} has no v_out output; the runtime needs it")
@@ -167,9 +167,12 @@ def prepare(sc: Scenario) -> Prepared:
         pr=pr, xr=np.zeros(n_xr), iyr=iyr, yr=np.zeros(max(len(iyr), 1)), w=np.zeros(1),
         ad=ad, g1=g1, g2=g2, cr=cr, dr=dr, slew=sc.shaping["slew_rate"],
         z=np.zeros(ad.shape[0]), s=np.zeros(1), zt=np.zeros(ad.shape[0]), r=np.zeros(5),
-        lim_sig=table.sig, lim_above=table.above, lim_thr=table.thr, lim_deb=table.deb,
+        dix=np.array([outputs.index(n) if n in outputs else -1 for n in ("v_out", "i_out")],
+                     dtype=np.int64),
+        lim_sig=table.sig, lim_side=table.side, lim_thr=table.thr, lim_deb=table.deb,
         lim_cnt=np.zeros(len(table.rows), dtype=np.int64), latch=new_latch(),
-        pv=np.zeros(ny + nu), y=np.zeros(ny), d=np.zeros(3),
+        pv=np.zeros(2 * (ny + nu + len(DERIVED))), y=np.zeros(ny), d=np.zeros(3),
+        wd=new_watchdog(sc.watchdogs["overrun_budget"], int(sc.watchdogs["overrun_ticks"])),
         ev=np.zeros(2), seed=np.int64(sc.seed % (2**32)),
         reset_t=np.array(sorted(sc.resets), dtype=np.float64), reset_i=np.zeros(1, dtype=np.int64),
         evlog=new_event_log()[0], evn=new_event_log()[1],
@@ -197,19 +200,38 @@ def _call(fn, k0, n, rec, a):
               a["pc"], a["xc"], a["iyc"], a["yc"], a["u"], a["safe_u"],
               a["pr"], a["xr"], a["iyr"], a["yr"], a["w"],
               a["ad"], a["g1"], a["g2"], a["cr"], a["dr"], a["slew"], a["z"], a["s"], a["zt"], a["r"],
-              a["lim_sig"], a["lim_above"], a["lim_thr"], a["lim_deb"], a["lim_cnt"], a["latch"], a["pv"],
+              a["dix"], a["lim_sig"], a["lim_side"], a["lim_thr"], a["lim_deb"], a["lim_cnt"],
+              a["latch"], a["pv"],
               *fault_args(a), *supervision_args(a), a["y"], a["d"], rec, a["ev"])
 
 
 def fault_args(a: dict) -> tuple:
     """The fault-injection arrays, in the kernels' argument order."""
     return (a["seed"], a["f_stage"], a["f_kind"], a["f_sig"], a["f_t0"], a["f_t1"], a["f_val"],
-            a["f_hold"])
+            a["f_hold"], a["f_cond"])
 
 
 def supervision_args(a: dict) -> tuple:
-    """The reset schedule and the event log, in the kernels' argument order."""
-    return (a["reset_t"], a["reset_i"], a["evlog"], a["evn"])
+    """The reset schedule, the event log and the watchdog array, in the kernels' argument
+    order."""
+    return (a["reset_t"], a["reset_i"], a["evlog"], a["evn"], a["wd"])
+
+
+def _fault_times(sc: Scenario, a: dict) -> list[dict[str, Any]]:
+    """Each fault with the times it was active (a conditional one: from its trigger; None if
+    its condition never held)."""
+    out = []
+    for i, f in enumerate(sc.faults):
+        t0, t1 = float(a["f_t0"][i]), float(a["f_t1"][i])
+        e: dict[str, Any] = {"kind": f.kind}
+        if f.signal:
+            e["signal"] = f.signal
+        if f.conditional:
+            e["when"] = f"{f.when_signal} {f.when_side} {f.when_threshold:g}"
+        e["active_from_s"] = t0 if t0 != float("inf") else None
+        e["active_to_s"] = t1 if t1 != float("inf") else None
+        out.append(e)
+    return out
 
 
 def default_folder(sc: Scenario, base: Path = Path("runs")) -> Path:
@@ -320,6 +342,7 @@ def execute(sc: Scenario, prep: Prepared, folder: Path,
         e = {"event": EVENT_NAMES[kind], "tick": tick_k, "time_s": tick_k * sc.Ts}
         if kind != 4:
             e["cause"] = prep.table.cause_text(cause, len(prep.y_names))
+            e["cause_id"] = prep.table.cause_id(cause)
         if kind == EVT_TRIP:
             e["value"] = value
         log_events.append(e)
@@ -334,7 +357,8 @@ def execute(sc: Scenario, prep: Prepared, folder: Path,
     result = metrics.result()
     result["trips"] = len(trips)
     ending = [e for e in events if e["event"] not in ("trip", "reset accepted", "reset refused",
-                                                      "reset (nothing latched)", "event log full")]
+                                                      "reset (nothing latched)", "event log full")
+              and e.get("ends_run", True)]
     end_event = ending[0]["event"] if ending else None
     summary = {
         "title": sc.title, "demo_data": sc.demo_data, "mode": sc.mode, "seed": sc.seed,
@@ -345,6 +369,8 @@ def execute(sc: Scenario, prep: Prepared, folder: Path,
         "completed": done == n_total and end_event is None,
         "end_event": end_event,
         "events": events, "trip": trip,
+        "faults": _fault_times(sc, a),
+        "watchdogs": dict(sc.watchdogs),
         "v_out_start_V": prep.v0,
         "metrics": result,
         "steps": [st.as_dict() for st in steps],

@@ -25,7 +25,8 @@ except ModuleNotFoundError:  # Python 3.10
 from hilrig.plugins.base import ChoiceParam, Param, TableParam
 from hilrig.safety import faults as fault_kinds
 from hilrig.safety.faults import Fault
-from hilrig.safety.interlocks import Interlock
+from hilrig.safety.interlocks import (SIDE_ABOVE, SIDE_BELOW, SIDE_FROZEN, SIDE_MAGNITUDE,
+                                      Interlock)
 
 from . import registry
 from .errors import PluginError, ScenarioError, UnitError
@@ -36,7 +37,7 @@ PLANNED_MODES = ("paced", "lockstep", "free-running")
 
 TOP_KEYS = {"title", "description", "demo_data", "mode", "seed", "timing", "plant", "controller",
             "reference", "shaping", "load", "limits", "interlocks", "initial", "recording",
-            "faults", "resets"}
+            "faults", "resets", "watchdogs"}
 TIMING = {"Ts": ("s", 50e-6, (1e-7, 1.0)), "substeps": ("-", 4, (1, 1000)),
           "duration": ("s", 1.0, (1e-6, 1e6))}
 SHAPING = {"order": ("-", 5, (4, 12)), "pole": ("rad/s", 7500.0, (1.0, 1e7)),
@@ -45,7 +46,12 @@ LIMITS = {"v_collapse": ("V", 25.0, (0.0, 1e5)), "safe_u": ("V", 0.0, (-1e5, 1e5
 RECORDING = {"chunk": ("s", 1.0, (1e-4, 3600.0))}
 RECORDING_CHOICES = {"compression": ("none", "gzip")}
 LOAD_COLUMNS = {"P": "W", "R": "ohm", "I": "A"}
-INTERLOCK_KEYS = {"signal", "above", "below", "debounce"}
+INTERLOCK_KEYS = {"signal", "above", "below", "magnitude_above", "frozen", "debounce"}
+INTERLOCK_SIDES = ("above", "below", "magnitude_above", "frozen")
+#: watchdogs: overrun budget 0 = off; stale limit 0 = automatic (20 periods, at least 50 ms)
+WATCHDOGS = {"overrun_budget": ("s", 0.0, (0.0, 10.0)), "overrun_ticks": ("-", 1, (1, 1_000_000)),
+             "stale_limit": ("s", 0.0, (0.0, 60.0)), "max_gap": ("-", 10, (1, 1_000_000)),
+             "peer_timeout": ("s", 1.0, (1e-3, 600.0))}
 MAX_TICKS = 2_000_000_000
 
 
@@ -83,6 +89,15 @@ class Scenario:
     faults: list[Fault] = field(default_factory=list)
     #: times [s] at which a reset of a latched trip is requested (an operator's intended reset)
     resets: list[float] = field(default_factory=list)
+    #: watchdog settings (WATCHDOGS keys, SI units)
+    watchdogs: dict[str, float] = field(default_factory=lambda: {
+        k: float(v[1]) for k, v in WATCHDOGS.items()})
+
+    @property
+    def stale_limit_s(self) -> float:
+        """The bridge staleness limit: as set, or 20 periods and at least 50 ms."""
+        set_ = self.watchdogs.get("stale_limit", 0.0)
+        return set_ if set_ > 0 else max(20 * self.Ts, 0.05)
 
     @property
     def n_ticks(self) -> int:
@@ -182,18 +197,20 @@ def parse_scenario(text: str, name: str = "scenario.toml", path: str = "",
     interlocks = _interlocks(cx, raw, plant, controller)
     v_out0 = _initial(cx, raw)
     faults = _faults(cx, raw, plant, duration)
+    _check_short_circuits(cx, faults, plant, Ts, substeps)
     resets_raw = raw.get("resets", [])
     if not isinstance(resets_raw, list):
         raise cx.fail("resets", f" = {resets_raw!r} is not a list of times, e.g. [\"0.3 s\"]")
     resets = sorted(_quantity(cx, f"resets[{i}]", v, "s", (0.0, 1e9)) for i, v in enumerate(resets_raw))
     recording = _section(cx, raw, "recording", RECORDING, choices=RECORDING_CHOICES)
     recording.setdefault("compression", "none")
+    watchdogs = _section(cx, raw, "watchdogs", WATCHDOGS)
     return Scenario(path=path, text=text, title=title, description=description, demo_data=demo,
                     mode=mode, seed=seed, Ts=Ts, substeps=substeps, duration=duration,
                     plant=plant, controller=controller, reference=reference, shaping=shaping,
                     load_t=load_t, load_v=load_v, v_collapse=limits["v_collapse"],
                     safe_u=limits["safe_u"], interlocks=interlocks, v_out0=v_out0,
-                    recording=recording, faults=faults, resets=resets)
+                    recording=recording, faults=faults, resets=resets, watchdogs=watchdogs)
 
 
 def _set_dotted(cx, raw: dict, dotted: str, value: Any) -> None:
@@ -375,7 +392,13 @@ def _interlocks(cx, raw, plant: PluginChoice, controller: PluginChoice) -> list[
     if not isinstance(items, list) or not all(isinstance(x, dict) for x in items):
         raise cx.fail("interlocks", " must be an array of tables [[interlocks]]")
     signals = {s.name: s.unit for s in plant.plugin.declaration.outputs}
+    measured = set(signals)
     signals.update({s.name: s.unit for s in controller.plugin.declaration.outputs})
+    # derived signals (safety/interlocks.py DERIVED) where the plant measures what they need
+    if "v_out" in measured:
+        if "i_out" in measured:
+            signals["p_out"] = "W"
+        signals["dv_out_dt"] = "V/s"
     out = []
     for i, it in enumerate(items):
         where = f"interlocks[{i}]"
@@ -388,19 +411,38 @@ def _interlocks(cx, raw, plant: PluginChoice, controller: PluginChoice) -> list[
             hint = _hint(str(sig), signals)
             raise cx.fail(f"{where}.signal", f" = {sig!r} is not a signal of this plant or "
                           f"controller{hint} (signals: {', '.join(signals)})")
-        if ("above" in it) == ("below" in it):
-            raise cx.fail(where, " needs exactly one of 'above' or 'below'")
-        side = "above" if "above" in it else "below"
+        sides = [k for k in INTERLOCK_SIDES if k in it]
+        if len(sides) != 1:
+            raise cx.fail(where, " needs exactly one of 'above', 'below', 'magnitude_above' or "
+                          "'frozen'")
+        side = sides[0]
         unit = signals[sig]
-        thr = _quantity(cx, f"{where}.{side}", it[side], unit, (-1e9, 1e9))
+        if side == "frozen":
+            if "debounce" in it:
+                raise cx.fail(where, ": 'frozen' is itself the tick count; remove 'debounce'")
+            if sig not in measured:
+                raise cx.fail(f"{where}.signal", f" = {sig!r}: only a measured signal can be "
+                              f"frozen (measured: {', '.join(sorted(measured))})")
+            n = it["frozen"]
+            if isinstance(n, bool) or not isinstance(n, int) or not 1 <= n <= 1_000_000:
+                raise cx.fail(f"{where}.frozen", f" = {n!r} is not a whole number of ticks in "
+                              f"[1, 1000000]")
+            out.append(Interlock(signal=sig, threshold=0.0, debounce=n, unit=unit,
+                                 side=SIDE_FROZEN))
+            continue
+        lo = 0.0 if side == "magnitude_above" else -1e9
+        thr = _quantity(cx, f"{where}.{side}", it[side], unit, (lo, 1e9))
         deb = it.get("debounce", 1)
         if isinstance(deb, bool) or not isinstance(deb, int) or not 1 <= deb <= 1_000_000:
             raise cx.fail(f"{where}.debounce", f" = {deb!r} is not a whole number of ticks in [1, 1000000]")
-        out.append(Interlock(signal=sig, threshold=thr, above=side == "above", debounce=deb, unit=unit))
+        code = {"above": SIDE_ABOVE, "below": SIDE_BELOW, "magnitude_above": SIDE_MAGNITUDE}[side]
+        out.append(Interlock(signal=sig, threshold=thr, above=side != "below", debounce=deb,
+                             unit=unit, side=code))
     return out
 
 
-FAULT_KEYS = {"kind", "signal", "start", "end", "value"}
+FAULT_KEYS = {"kind", "signal", "start", "end", "value", "when", "duration"}
+WHEN_KEYS = {"signal", "above", "below"}
 
 
 def _faults(cx, raw, plant: PluginChoice, duration: float) -> list[Fault]:
@@ -420,10 +462,38 @@ def _faults(cx, raw, plant: PluginChoice, duration: float) -> list[Fault]:
             hint = f"; did you mean {', '.join(repr(c) for c in close)}?" if close else ""
             raise cx.fail(f"{where}.kind", f" = {kind!r} is not a fault kind{hint} "
                           f"(kinds: {', '.join(fault_kinds.KINDS)})")
-        if "start" not in it:
-            raise cx.fail(where, " has no start time [s]")
-        start = _quantity(cx, f"{where}.start", it["start"], "s", (0.0, 1e9))
+        when = it.get("when")
+        if when is not None and not isinstance(when, dict):
+            raise cx.fail(f"{where}.when", f" = {when!r} is not a table such as "
+                          f"{{ signal = \"v_out\", above = \"450 V\" }}")
+        if "start" not in it and when is None:
+            raise cx.fail(where, " has no start time [s] (or a 'when' condition)")
+        start = _quantity(cx, f"{where}.start", it.get("start", 0.0), "s", (0.0, 1e9))
         end = math.inf
+        cond = {}
+        if when is not None:
+            for k in when:
+                if k not in WHEN_KEYS:
+                    raise cx.unknown(f"{where}.when", k, WHEN_KEYS)
+            wsig = when.get("signal")
+            if not isinstance(wsig, str) or wsig not in signals:
+                raise cx.fail(f"{where}.when.signal", f" = {wsig!r} is not a measured signal of "
+                              f"this plant{_hint(str(wsig), signals)} (signals: {', '.join(signals)})")
+            if ("above" in when) == ("below" in when):
+                raise cx.fail(f"{where}.when", " needs exactly one of 'above' or 'below'")
+            wside = "above" if "above" in when else "below"
+            cond = dict(when_signal=wsig, when_side=wside,
+                        when_threshold=_quantity(cx, f"{where}.when.{wside}", when[wside],
+                                                 signals[wsig], (-1e9, 1e9)))
+            if "end" in it:
+                raise cx.fail(f"{where}.end", ": a conditional fault has no fixed end; give its "
+                              "'duration' instead")
+            if "duration" in it:
+                cond["duration"] = _quantity(cx, f"{where}.duration", it["duration"], "s",
+                                             (0.0, 1e9), lower_open=True)
+        elif "duration" in it:
+            raise cx.fail(f"{where}.duration", ": only a conditional fault (with 'when') takes "
+                          "a duration; a timed one has 'end'")
         if "end" in it:
             end = _quantity(cx, f"{where}.end", it["end"], "s", (0.0, 1e9))
             if not end > start:
@@ -448,11 +518,32 @@ def _faults(cx, raw, plant: PluginChoice, duration: float) -> list[Fault]:
             if "value" not in it:
                 raise cx.fail(where, f" ({kind}) needs a value")
             unit = unit or signals[signal]
-            lo, lower_open = (0.0, True) if kind in ("short_circuit", "noise") else (-1e9, False)
+            lo, lower_open = ((0.0, True) if kind in ("short_circuit", "noise", "overrun")
+                              else (-1e9, False))
             value = _quantity(cx, f"{where}.value", it["value"], unit, (lo, 1e9),
                               lower_open=lower_open)
-        out.append(Fault(kind=kind, start=start, end=end, signal=signal, value=value))
+        out.append(Fault(kind=kind, start=start, end=end, signal=signal, value=value, **cond))
     return out
+
+
+def _check_short_circuits(cx, faults, plant: PluginChoice, Ts: float, substeps: int) -> None:
+    """A short circuit across the output capacitance is a fast pole (tau = R C): explicit RK4
+    needs substeps no longer than tau / 2, or the integration rings and the recorded voltage
+    is an artefact (it can even rise). Refuse such a scenario with the fix."""
+    vals = plant.values
+    cap = next((vals[k] for k in ("C2", "C") if isinstance(vals.get(k), float)), None)
+    if cap is None:
+        return
+    for i, f in enumerate(faults):
+        if f.kind != "short_circuit":
+            continue
+        tau = f.value * cap
+        need = math.ceil(2.0 * Ts / tau)
+        if substeps < need:
+            raise cx.fail(f"faults[{i}].value", f" = {f.value:g} ohm across the output "
+                          f"capacitance ({cap:g} F) has a time constant of {tau * 1e6:.3g} us; "
+                          f"the plant's RK4 substeps ({Ts / substeps * 1e6:.3g} us) must not be "
+                          f"longer than half of it: set timing.substeps to at least {need}")
 
 
 def _initial(cx, raw):

@@ -1,12 +1,24 @@
 """Interlocks evaluated every tick inside the compiled loop (the protect stage), and the latch.
 
-An interlock is data: the signal it watches (a plant output or a controller output), the side
-that trips (above or below a threshold in SI units) and a debounce count (the condition must
-hold on that many consecutive ticks). Every comparison is written so that NaN trips:
-``not (value <= threshold)`` rather than ``value > threshold``.
+An interlock is data: the signal it watches, the side that trips and a debounce count (the
+condition must hold on that many consecutive ticks). Signals are the plant's measured outputs,
+the controller's outputs, and two derived signals: ``p_out`` = v_out * i_out [W] (when the plant
+measures both) and ``dv_out_dt`` [V/s], the backward difference of the measured v_out over one
+tick (0 on tick 0). Sides: above or below a threshold in SI units, magnitude above a threshold
+(|value| > threshold, for a rate in either direction), or frozen (the measured value exactly
+unchanged from the previous tick while a controller output changed; the debounce is then the
+tick count). Every comparison is written so that NaN trips: ``not (value <= threshold)`` rather
+than ``value > threshold``.
 
 Plausibility checks that always run: a non-finite measurement or controller output, and a
 non-zero fault code returned by the controller.
+
+Watchdogs (:func:`watch`, evaluated before the interlocks of a tick) are about time, so the host
+measures what they need and hands it over in the ``wd`` array: the compute time of the last tick
+(overrun, against a budget and its own debounce), and the link conditions a bridge session
+detects (stale samples, a sequence gap beyond its limit, the peer lost). A forced-overrun fault
+adds a modelled compute time, so overrun trips are testable in SIL too. An overrun can only be
+known once the tick is over: the overrun of tick k trips on tick k+1.
 
 Trip semantics: on the tick where a (debounced) condition first holds, the safe output is forced
 on that same tick and the trip latches with its first cause, tick, time and the offending value.
@@ -33,7 +45,11 @@ LATCH_SIZE = 7
 #: cause codes: 1 + row for a limit row; these offsets for plausibility causes
 CAUSE_NONFINITE = 1000   # + index into [y..., u...]
 CAUSE_CONTROLLER = 2000  # + the controller's fault code if > 0; -CAUSE_CONTROLLER + code if < 0
-#: bits of the interlock word
+#: + watchdog index (WD_NAMES)
+CAUSE_WATCHDOG = 3000
+#: bits of the interlock word. The word is recorded as float64, which holds integers exactly only
+#: up to 2**53: every bit must stay below 53.
+BIT_WATCHDOG = 40        # + watchdog index: 40 overrun, 41 stale, 42 sequence gap, 43 peer lost
 BIT_NONFINITE = 48
 BIT_CONTROLLER = 49
 BIT_LATCHED = 50
@@ -41,7 +57,23 @@ BIT_RESET_REQUESTED = 51
 BIT_RESET_REFUSED = 52
 MAX_ROWS = 40
 #: the bits that say a condition holds now (rows, non-finite, controller fault)
-CONDITIONS = ((1 << MAX_ROWS) - 1) | (1 << BIT_NONFINITE) | (1 << BIT_CONTROLLER)
+WD_NAMES = ("overrun", "stale", "sequence gap", "peer lost")
+CONDITIONS = (((1 << MAX_ROWS) - 1) | (1 << BIT_NONFINITE) | (1 << BIT_CONTROLLER)
+              | (((1 << len(WD_NAMES)) - 1) << BIT_WATCHDOG))
+#: interlock sides
+SIDE_BELOW, SIDE_ABOVE, SIDE_MAGNITUDE, SIDE_FROZEN = 0, 1, 2, 3
+SIDE_WORDS = {SIDE_BELOW: "below", SIDE_ABOVE: "above", SIDE_MAGNITUDE: "magnitude_above",
+              SIDE_FROZEN: "frozen"}
+#: derived signals appended to the protect vector: name, unit, description
+DERIVED = (("p_out", "W", "output power v_out * i_out"),
+           ("dv_out_dt", "V/s", "rate of change of v_out over one tick"))
+#: watchdog array layout (float64): overrun budget [s] (0: off), debounce [ticks], count,
+#: host-measured compute time of the last tick [s], host-raised condition bits (1 stale,
+#: 2 sequence gap, 4 peer lost), the value that goes with them, forced-overrun seconds of the
+#: last tick (written by the fault stage after watch has read it)
+W_BUDGET, W_DEB, W_CNT, W_HOST_TIME, W_HOST_BITS, W_HOST_VALUE, W_FORCED = range(7)
+WD_SIZE = 8
+HOST_STALE, HOST_GAP, HOST_LOST = 1, 2, 4
 #: event log: rows of (tick, kind, cause, value); kinds
 EVT_TRIP, EVT_RESET_ACCEPTED, EVT_RESET_REFUSED, EVT_RESET_IDLE = 1, 2, 3, 4
 EVENT_NAMES = {EVT_TRIP: "trip", EVT_RESET_ACCEPTED: "reset accepted",
@@ -55,14 +87,32 @@ class Interlock:
 
     signal: str
     threshold: float
-    above: bool
+    above: bool = True
     debounce: int = 1
     unit: str = ""
+    side: int = -1   # SIDE_*; -1: from ``above``
+
+    def __post_init__(self):
+        if self.side < 0:
+            object.__setattr__(self, "side", SIDE_ABOVE if self.above else SIDE_BELOW)
+
+    @property
+    def side_code(self) -> int:
+        return self.side
 
     def describe(self) -> str:
-        side = ">" if self.above else "<"
         deb = f" for {self.debounce} ticks" if self.debounce > 1 else ""
+        sc = self.side_code
+        if sc == SIDE_FROZEN:
+            return f"{self.signal} frozen for {self.debounce} ticks"
+        if sc == SIDE_MAGNITUDE:
+            return f"|{self.signal}| > {self.threshold:g} {self.unit}{deb}".replace("  ", " ")
+        side = ">" if sc == SIDE_ABOVE else "<"
         return f"{self.signal} {side} {self.threshold:g} {self.unit}{deb}".replace("  ", " ")
+
+    def cause_id(self) -> str:
+        """Short name of this cause, as interlock test suites write it: 'v_out above'."""
+        return f"{self.signal} {SIDE_WORDS[self.side_code]}"
 
 
 @dataclass
@@ -72,7 +122,7 @@ class InterlockTable:
     rows: list[Interlock]
     names: list[str]
     sig: np.ndarray
-    above: np.ndarray
+    side: np.ndarray
     thr: np.ndarray
     deb: np.ndarray
 
@@ -86,6 +136,9 @@ class InterlockTable:
                 close = difflib.get_close_matches(r.signal, names, n=3)
                 hint = f"; did you mean {', '.join(close)}?" if close else f"; signals: {', '.join(names)}"
                 raise InterlockConfigError(f"interlock on unknown signal {r.signal!r}{hint}")
+            if r.side_code == SIDE_FROZEN and r.signal in [d[0] for d in DERIVED]:
+                raise InterlockConfigError(f"a frozen check on {r.signal} makes no sense: it is "
+                                           f"derived, not measured")
             if not math.isfinite(r.threshold):
                 # a NaN limit would trip on every tick (every comparison is written so NaN trips)
                 raise InterlockConfigError(f"interlock on {r.signal}: threshold {r.threshold!r} "
@@ -95,12 +148,14 @@ class InterlockTable:
             sig.append(names.index(r.signal))
         return cls(rows=list(rows), names=list(names),
                    sig=np.array(sig, dtype=np.int64),
-                   above=np.array([1 if r.above else 0 for r in rows], dtype=np.int64),
+                   side=np.array([r.side_code for r in rows], dtype=np.int64),
                    thr=np.array([r.threshold for r in rows], dtype=np.float64),
                    deb=np.array([r.debounce for r in rows], dtype=np.int64))
 
-    def cause_text(self, cause: int, n_y: int) -> str:
+    def cause_text(self, cause: int, n_y: int = 0) -> str:
         """Human-readable latched cause."""
+        if cause >= CAUSE_WATCHDOG:
+            return f"watchdog {WD_NAMES[cause - CAUSE_WATCHDOG]}"
         if cause <= -CAUSE_CONTROLLER:
             return f"controller fault code {cause + CAUSE_CONTROLLER}"
         if cause <= 0:
@@ -111,6 +166,27 @@ class InterlockTable:
             j = cause - CAUSE_NONFINITE
             return f"non-finite value of {self.names[j] if j < len(self.names) else j}"
         return f"controller fault code {cause - CAUSE_CONTROLLER}"
+
+    def cause_id(self, cause: int) -> str:
+        """Short name of a cause: 'v_out above', 'non-finite v_out', 'controller fault',
+        'watchdog stale', ... (the names interlock test suites expect)."""
+        if cause >= CAUSE_WATCHDOG:
+            return f"watchdog {WD_NAMES[cause - CAUSE_WATCHDOG]}"
+        if cause <= -CAUSE_CONTROLLER or cause >= CAUSE_CONTROLLER:
+            return "controller fault"
+        if cause <= 0:
+            return "none"
+        if cause < CAUSE_NONFINITE:
+            return self.rows[cause - 1].cause_id()
+        j = cause - CAUSE_NONFINITE
+        return f"non-finite {self.names[j] if j < len(self.names) else j}"
+
+
+def new_watchdog(budget_s: float = 0.0, debounce: int = 1) -> np.ndarray:
+    wd = np.zeros(WD_SIZE)
+    wd[W_BUDGET] = budget_s
+    wd[W_DEB] = debounce
+    return wd
 
 
 def new_latch() -> np.ndarray:
@@ -179,18 +255,63 @@ def _trip(latch, cause, tick, t, value):
 
 
 @njit(cache=True)
-def protect(tick, t, y, u, code, sig, above, thr, deb, cnt, latch, pv, safe_u):
-    """Evaluate every interlock on [y, u]; latch the first cause; force the safe output.
+def watch(tick, t, wd, latch):
+    """The watchdogs of one tick, before the interlocks: trip on an overrun of the last tick
+    (host-measured or forced, beyond the budget for the debounce count of ticks in a row) and on
+    the link conditions the host raised. Returns their bits of the interlock word."""
+    word = 0
+    late = wd[W_HOST_TIME]
+    if wd[W_FORCED] > late:
+        late = wd[W_FORCED]
+    if wd[W_BUDGET] > 0.0 and not (late <= wd[W_BUDGET]):
+        word |= 1 << BIT_WATCHDOG
+        wd[W_CNT] += 1.0
+        if wd[W_CNT] >= wd[W_DEB]:
+            _trip(latch, CAUSE_WATCHDOG, tick, t, late)
+    else:
+        wd[W_CNT] = 0.0
+    hb = int(wd[W_HOST_BITS])
+    for b in range(3):
+        if hb & (1 << b):
+            word |= 1 << (BIT_WATCHDOG + 1 + b)
+            _trip(latch, CAUSE_WATCHDOG + 1 + b, tick, t, wd[W_HOST_VALUE])
+    return word
 
-    Returns the interlock word: bit j set while row j's condition holds (before debounce),
-    BIT_NONFINITE, BIT_CONTROLLER for the plausibility checks, BIT_LATCHED while tripped.
+
+@njit(cache=True)
+def protect(tick, t, ts, y, u, code, dix, sig, side, thr, deb, cnt, latch, pv, safe_u):
+    """Evaluate every interlock on [y, u, derived]; latch the first cause; force the safe output.
+
+    ``dix`` holds the indices of v_out and i_out in y (-1 when absent); ``pv`` has room for the
+    protect vector of this tick and of the last one. Returns the interlock word: bit j set
+    while row j's condition holds (before debounce), BIT_NONFINITE, BIT_CONTROLLER for the
+    plausibility checks, BIT_LATCHED while tripped.
     """
     ny = y.shape[0]
     nu = u.shape[0]
+    m = ny + nu + 2
+    # the last tick's vector moves to the second half (on tick 0 there is none: it is this one)
+    first = tick == 0
+    if not first:
+        for j in range(m):
+            pv[m + j] = pv[j]
     for j in range(ny):
         pv[j] = y[j]
     for j in range(nu):
         pv[ny + j] = u[j]
+    iv = dix[0]
+    ii = dix[1]
+    # derived signals; a non-finite input trips the non-finite check below, and the guard keeps
+    # inf * 0 and inf - inf (which warn when the kernel runs as plain Python) out of the way
+    pv[ny + nu] = 0.0
+    pv[ny + nu + 1] = 0.0
+    if iv >= 0 and ii >= 0 and abs(y[iv]) < np.inf and abs(y[ii]) < np.inf:
+        pv[ny + nu] = y[iv] * y[ii]
+    if first:
+        for j in range(m):
+            pv[m + j] = pv[j]
+    elif iv >= 0 and abs(y[iv]) < np.inf and abs(pv[m + iv]) < np.inf:
+        pv[ny + nu + 1] = (y[iv] - pv[m + iv]) / ts
     word = 0
     # plausibility first: a non-finite value makes every limit on it meaningless
     for j in range(ny + nu):
@@ -206,12 +327,22 @@ def protect(tick, t, y, u, code, sig, above, thr, deb, cnt, latch, pv, safe_u):
         # a negative code (-1 is a common "failed") must not land in the non-finite cause range
         cause = CAUSE_CONTROLLER + code if code > 0 else -CAUSE_CONTROLLER + code
         _trip(latch, cause, tick, t, float(code))
+    # did any controller output change since the last tick (for the frozen check)?
+    u_moved = False
+    for j in range(nu):
+        if pv[ny + j] != pv[m + ny + j]:
+            u_moved = True
     for k in range(sig.shape[0]):
         v = pv[sig[k]]
-        if above[k] == 1:
+        sk = side[k]
+        if sk == SIDE_ABOVE:
             beyond = not (v <= thr[k])
-        else:
+        elif sk == SIDE_BELOW:
             beyond = not (v >= thr[k])
+        elif sk == SIDE_MAGNITUDE:
+            beyond = not (abs(v) <= thr[k])
+        else:
+            beyond = u_moved and v == pv[m + sig[k]]
         if beyond:
             word |= 1 << k
             cnt[k] += 1

@@ -106,13 +106,33 @@ def test_non_loopback_address_needs_explicit_flag(tmp_path, demo_path):
     assert "not on this machine" in p.stdout and "--allow-remote" in p.stdout
 
 
-def test_simulator_gone_ends_the_run_with_a_timeout_event(tmp_path, demo_path):
+def test_remote_bridge_above_60_v_needs_the_high_voltage_acknowledgement(tmp_path, demo_path):
+    """ISO 6469-3 voltage class B begins above 60 V DC (from memory): the demo's 800 V link is
+    far above it, so a bridge to another machine needs the explicit acknowledgement flag."""
+    scen = _scenario(tmp_path, demo_path)
+    base = CLI + ["run", str(scen), "--bridge", "tcp://192.0.2.1:47810", "--allow-remote",
+                  "--out", str(tmp_path / "r"), "--headless"]
+    p = subprocess.run(base, capture_output=True, text=True, timeout=300)
+    assert p.returncode == 2 and "--acknowledge-high-voltage" in p.stdout
+    assert "not safety-rated" in p.stdout
+    # acknowledged, the run goes on to the next check (CurveZMQ keys for a remote ZeroMQ peer)
+    p = subprocess.run(base + ["--acknowledge-high-voltage"], capture_output=True, text=True,
+                       timeout=300)
+    assert p.returncode == 2 and "needs CurveZMQ keys" in p.stdout
+    assert not (tmp_path / "r" / "recording.h5").exists()
+
+
+def test_killing_the_simulator_trips_the_staleness_watchdog(tmp_path, demo_path):
+    """Killing the stand-in simulator mid-run: no reply within the staleness limit trips the
+    stale watchdog on the next tick, whose output is the safe one, and the run ends with the
+    recording intact (trip semantics: common practice, no source)."""
     scen = _scenario(tmp_path, demo_path)
     address = f"ipc://{tmp_path}/sim3.sock"
     sim = _serve(scen, address)
     proc = subprocess.Popen(CLI + ["run", str(scen), "--bridge", address, "--out", str(tmp_path / "r"),
-                                   "--headless", "--timeout", "2",
-                                   "--set", 'timing.duration="20 s"'],
+                                   "--headless", "--timeout", "30",
+                                   "--set", 'timing.duration="20 s"',
+                                   "--set", 'watchdogs.stale_limit="200 ms"'],
                             stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
     try:
         # let the session run, then kill the simulator mid-run
@@ -130,9 +150,17 @@ def test_simulator_gone_ends_the_run_with_a_timeout_event(tmp_path, demo_path):
                 pr.communicate(timeout=60)
     assert proc.returncode == 0, out + err
     s = json.loads((tmp_path / "r" / "summary.json").read_text())
-    assert not s["completed"] and s["end_event"] == "bridge timeout"
+    assert not s["completed"] and s["end_event"] == "bridge stale", s["events"]
+    assert s["trip"]["cause_id"] == "watchdog stale"
+    stale = [e for e in s["events"] if e["event"] == "bridge stale"][0]
+    assert 0.2 <= stale["detected_after_s"] < 0.2 + 0.15
     run = open_run(tmp_path / "r")
-    assert run.time.shape[0] == s["ticks_run"] > 0
+    n = run.time.shape[0]
+    k = s["trip"]["tick"]
+    assert n == s["ticks_run"] == k + 1      # the watchdog tick is the last one recorded
+    assert run.signals["u"][k] == 0.0         # the safe output (limits.safe_u) on that tick
+    assert (int(run.signals["interlock_word"][k]) >> 50) & 1
+    assert np.all(np.isfinite(run.signals["v_out"])) and np.all(run.signals["u"][:k] > 0.0)
 
 
 def _free_udp_port():
@@ -169,7 +197,7 @@ def test_udp_lockstep_with_lost_and_corrupted_datagrams_still_reproduces_sil(loc
     assert "dropped" in sim_out and "corrupted" in sim_out
 
 
-def test_frozen_simulator_over_zeromq_times_out(tmp_path, demo_path):
+def test_frozen_simulator_over_zeromq_trips_the_staleness_watchdog(tmp_path, demo_path):
     scen = _scenario(tmp_path, demo_path)
     address = f"ipc://{tmp_path}/frz.sock"
     sim = _serve(scen, address, "--freeze-after", "200")
@@ -182,7 +210,10 @@ def test_frozen_simulator_over_zeromq_times_out(tmp_path, demo_path):
         sim.communicate(timeout=60)
     assert p.returncode == 0, p.stdout + p.stderr
     s = json.loads((tmp_path / "r" / "summary.json").read_text())
-    assert s["end_event"] == "bridge timeout" and s["ticks_run"] == 201
+    # ticks 0..200 ran on samples; no reply to actuation 200 within the limit (the --timeout
+    # here), so tick 201 is the watchdog tick: stale trip, safe output, end of the run
+    assert s["end_event"] == "bridge stale" and s["ticks_run"] == 202
+    assert s["trip"]["cause_id"] == "watchdog stale" and s["trip"]["tick"] == 201
 
 
 def _free_tcp_port():
@@ -243,7 +274,7 @@ def test_remote_zeromq_needs_curve_keys():
         ReqTransport("tcp://192.0.2.1:47810", allow_remote=True)
 
 
-def test_disconnect_fault_ends_the_run_and_statistics_are_recorded(tmp_path, demo_path):
+def test_disconnect_trips_the_peer_lost_watchdog_and_statistics_are_recorded(tmp_path, demo_path):
     scen = _scenario(tmp_path, demo_path)
     address = f"ipc://{tmp_path}/dc.sock"
     sim = _serve(scen, address, "--disconnect-after", "300")
@@ -259,6 +290,64 @@ def test_disconnect_fault_ends_the_run_and_statistics_are_recorded(tmp_path, dem
     assert p.returncode == 0, p.stdout + p.stderr
     assert "disconnected at tick 300" in sim_out
     s = json.loads((tmp_path / "r" / "summary.json").read_text())
-    assert s["end_event"] == "bridge timeout" and s["ticks_run"] == 301
+    # the simulator says STOP unasked in answer to actuation 300: tick 301 is the watchdog tick
+    assert s["end_event"] == "bridge peer lost" and s["ticks_run"] == 302
+    assert s["trip"]["cause_id"] == "watchdog peer lost" and s["trip"]["tick"] == 301
+    assert "disconnecting" in [e for e in s["events"] if e["event"] == "bridge peer lost"][0]["detail"]
     run = open_run(tmp_path / "r")
     assert json.loads(run.attrs["bridge"])["frames_sent"] == s["bridge"]["frames_sent"]
+
+
+def test_freeze_on_command_trips_the_staleness_watchdog(tmp_path, demo_path):
+    """A fault typed at the stand-in simulator's standard input while it serves (here: freeze)
+    acts on the running session: the runtime's staleness watchdog trips."""
+    scen = _scenario(tmp_path, demo_path)
+    address = f"ipc://{tmp_path}/cmd.sock"
+    sim = subprocess.Popen(CLI + ["serve-sim", "--scenario", str(scen), "--bind", address,
+                                  "--sessions", "1", "--idle-timeout", "60", "--commands"],
+                           stdin=subprocess.PIPE, stdout=subprocess.PIPE, stderr=subprocess.PIPE,
+                           text=True)
+    proc = subprocess.Popen(CLI + ["run", str(scen), "--bridge", address, "--out", str(tmp_path / "r"),
+                                   "--headless", "--timeout", "30",
+                                   "--set", 'timing.duration="60 s"',
+                                   "--set", 'watchdogs.stale_limit="200 ms"'],
+                            stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
+    try:
+        deadline = time.monotonic() + 120
+        while not (tmp_path / "r" / "recording.h5").exists() and time.monotonic() < deadline:
+            time.sleep(0.2)
+        time.sleep(0.5)
+        sim.stdin.write("bogus\ndrop 0.5\nfreeze\n")
+        sim.stdin.flush()
+        out, err = proc.communicate(timeout=300)
+        sim.kill()  # frozen by design: it would wait out its idle timeout
+        sim_out, _ = sim.communicate(timeout=120)
+    finally:
+        for pr in (sim, proc):
+            if pr.poll() is None:
+                pr.kill()
+                pr.communicate(timeout=60)
+    assert proc.returncode == 0, out + err
+    s = json.loads((tmp_path / "r" / "summary.json").read_text())
+    assert s["trip"]["cause_id"] == "watchdog stale" and s["end_event"] == "bridge stale"
+    assert 0 < s["ticks_run"] < 60 / 50e-6
+    assert "unknown command 'bogus'" in sim_out
+    assert "refused: drop needs a datagram transport" in sim_out
+    assert "fault: freezing from tick" in sim_out
+
+
+@pytest.mark.parametrize("line, expect, field, value", [
+    ("freeze", "freezing from tick 42", "freeze_after", 42),
+    ("disconnect", "disconnecting at tick 42", "disconnect_after", 42),
+    ("drop 0.25", "dropping 25% of frames", "drop", 0.25),
+    ("delay 0.002", "delay 0.002 s", "delay_s", 0.002),
+    ("corrupt 7", "every 7th frame", "corrupt_every", 7),
+    ("drop 1.5", "not a fraction", "drop", 0.0),
+    ("delay x", "'x' is not a number", "delay_s", 0.0),
+    ("corrupt 0", "not a whole number", "corrupt_every", None),
+])
+def test_fault_commands_parse_and_apply(line, expect, field, value):
+    from hilrig.bridge.standin import Faults, apply_command
+    f = Faults()
+    assert expect in apply_command(f, line, 42, datagrams=True)
+    assert getattr(f, field) == value

@@ -154,7 +154,7 @@ CASES = [
      ["interlocks[0].signal = ['v_out']", "not a signal"]),
     ("interlock with both above and below",
      minimal(INTERLOCK0, INTERLOCK0 + 'below = "300 V"\n'),
-     ["interlocks[0]", "exactly one of 'above' or 'below'"]),
+     ["interlocks[0]", "exactly one of 'above', 'below'"]),
     ("interlock threshold in the wrong unit",
      minimal(INTERLOCK0, '[[interlocks]]\nsignal = "v_out"\nabove = "480 A"\n'),
      ["interlocks[0].above", "'480 A'", "expected V"]),

@@ -41,7 +41,8 @@ class Rig:
         self.table = InterlockTable.build(rows, NAMES)
         self.cnt = np.zeros(len(rows), dtype=np.int64)
         self.latch = new_latch()
-        self.pv = np.zeros(len(NAMES))
+        self.pv = np.zeros(2 * (len(NAMES) + 2))  # this tick's and the last tick's vector
+        self.dix = np.array([V_OUT, I_OUT], dtype=np.int64)
         self.safe_u = np.full(len(U_NAMES), SAFE_U)
         self.kernel = kernel
         self.tick = 0
@@ -51,8 +52,8 @@ class Rig:
         y = np.array([v_out, i_out, i_l1], dtype=np.float64)
         uu = np.array([u], dtype=np.float64)
         tb = self.table
-        word = self.kernel(self.tick, self.tick * TS, y, uu, code, tb.sig, tb.above, tb.thr, tb.deb,
-                           self.cnt, self.latch, self.pv, self.safe_u)
+        word = self.kernel(self.tick, self.tick * TS, TS, y, uu, code, self.dix, tb.sig, tb.side,
+                           tb.thr, tb.deb, self.cnt, self.latch, self.pv, self.safe_u)
         self.tick += 1
         return int(word), float(uu[0])
 
@@ -307,9 +308,9 @@ def test_shorter_debounce_never_trips_later(values, threshold, above, d1, d2):
 def test_build_resolves_rows_against_the_signal_names():
     tb = InterlockTable.build([Interlock("i_L1", 500.0, above=True, debounce=1),
                                Interlock("u", -10.0, above=False, debounce=7)], NAMES)
-    assert tb.sig.tolist() == [2, 3] and tb.above.tolist() == [1, 0]
+    assert tb.sig.tolist() == [2, 3] and tb.side.tolist() == [1, 0]
     assert tb.thr.tolist() == [500.0, -10.0] and tb.deb.tolist() == [1, 7]
-    assert (tb.sig.dtype, tb.above.dtype, tb.thr.dtype, tb.deb.dtype) == (
+    assert (tb.sig.dtype, tb.side.dtype, tb.thr.dtype, tb.deb.dtype) == (
         np.int64, np.int64, np.float64, np.int64)
     # cause 2 = row 1 + 1; these rows carry no unit, so none is printed
     assert tb.cause_text(2, len(Y_NAMES)) == "interlock u < -10 for 7 ticks"

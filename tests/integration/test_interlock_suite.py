@@ -1,0 +1,122 @@
+"""`hilrig interlock-test`: the shipped example suite passes case by case, its JUnit XML is
+well-formed, a case whose expectation is wrong fails with its reason and a non-zero exit, and a
+malformed suite is one clear error. Trip semantics (first tick beyond the limit, safe output on
+that tick, latched until a reset) are common practice, no source; JUnit XML is read with the
+standard library's xml.etree parser."""
+import json
+import subprocess
+import sys
+import xml.etree.ElementTree as ET
+from pathlib import Path
+
+import pytest
+
+ROOT = Path(__file__).resolve().parents[2]
+CLI = [sys.executable, "-m", "hilrig.runtime.cli"]
+SUITE = ROOT / "examples" / "interlock_suite.toml"
+
+
+@pytest.fixture(scope="module")
+def shipped(tmp_path_factory):
+    out = tmp_path_factory.mktemp("suite")
+    p = subprocess.run(CLI + ["interlock-test", str(SUITE), "--out", str(out / "r"),
+                              "--junit", str(out / "junit.xml"), "--headless"],
+                       capture_output=True, text=True, timeout=900)
+    return p, out
+
+
+def test_shipped_suite_passes_every_case(shipped):
+    p, out = shipped
+    assert p.returncode == 0, p.stdout[-4000:] + p.stderr[-2000:]
+    res = json.loads((out / "r" / "results.json").read_text())
+    assert res["failed"] == 0 and res["passed"] == len(res["cases"]) >= 18
+    assert "not safety-rated" in p.stdout
+
+
+def test_shipped_suite_covers_every_interlock_kind_and_watchdog(shipped):
+    _, out = shipped
+    res = json.loads((out / "r" / "results.json").read_text())
+    causes = {c["cause_id"] for c in res["cases"] if c["cause_id"]}
+    for needed in ("v_out above", "v_out below", "i_L1 above", "i_out above", "p_out above",
+                   "dv_out_dt magnitude_above", "v_out frozen", "u above", "non-finite v_out",
+                   "non-finite u", "watchdog overrun", "watchdog stale", "watchdog peer lost",
+                   "watchdog sequence gap"):
+        assert needed in causes, needed
+    assert sum(c["expect"] == "no trip" for c in res["cases"]) >= 2
+
+
+def test_latencies_are_measured_from_the_fault(shipped):
+    _, out = shipped
+    cases = {c["name"]: c for c in json.loads((out / "r" / "results.json").read_text())["cases"]}
+    # a limit on a measured value trips on the fault's own tick
+    assert cases["over-voltage: v_out sensor reads 100 V high"]["latency_ticks"] == 0
+    # three ticks of forced overrun against a 3-tick watchdog: each tick's overrun is known
+    # when it is over, so the third trips one tick after it, 3 ticks after the fault's start
+    assert cases["overrun watchdog: 200 us compute for 3 ticks against a 40 us budget"]["latency_ticks"] == 3
+    # the staleness watchdog is judged on the wall clock, from the last sample: at its limit
+    stale = cases["staleness watchdog: the simulator freezes (lockstep, ipc)"]
+    assert stale["latency_clock"] == "wall" and 0.1 <= stale["latency_s"] < 0.25
+
+
+def test_junit_xml_has_one_testcase_per_case_and_no_failures(shipped):
+    _, out = shipped
+    root = ET.parse(out / "junit.xml").getroot()
+    assert root.tag == "testsuite" and root.get("failures") == "0"
+    cases = root.findall("testcase")
+    assert len(cases) == int(root.get("tests")) >= 18
+    assert not root.findall(".//failure")
+    props = {p.get("name"): p.get("value") for p in cases[0].find("properties")}
+    assert props["expect"] == "trip" and props["outcome"] == "trip: v_out above"
+
+
+def _suite(tmp_path, body: str) -> Path:
+    base = ROOT / "examples" / "interlock_base.toml"
+    f = tmp_path / "suite.toml"
+    f.write_text(f'title = "test suite (test data)"\nscenario = "{base}"\n' + body)
+    return f
+
+
+def test_a_wrong_expectation_fails_with_its_reason_and_exit_one(tmp_path):
+    f = _suite(tmp_path, '''
+[[cases]]
+name = "expects the wrong cause"
+set = { "timing.duration" = "0.12 s" }
+faults = [{ kind = "offset", signal = "v_out", value = "100 V", start = "0.1 s" }]
+expect = "trip"
+cause = "i_L1 above"
+
+[[cases]]
+name = "expects no trip but trips"
+set = { "timing.duration" = "0.12 s" }
+faults = [{ kind = "dropout", signal = "v_out", start = "0.1 s" }]
+expect = "no trip"
+''')
+    p = subprocess.run(CLI + ["interlock-test", str(f), "--out", str(tmp_path / "r"),
+                              "--junit", str(tmp_path / "j.xml"), "--headless", "--workers", "1"],
+                       capture_output=True, text=True, timeout=600)
+    assert p.returncode == 1, p.stdout + p.stderr
+    assert "0 passed, 2 failed" in p.stdout
+    root = ET.parse(tmp_path / "j.xml").getroot()
+    fails = root.findall(".//failure")
+    assert len(fails) == 2
+    assert "first cause 'v_out above', expected 'i_L1 above'" in fails[0].get("message")
+    assert "tripped on non-finite value of v_out" in fails[1].get("message")
+
+
+@pytest.mark.parametrize("body, message", [
+    ("", "needs at least one [[cases]]"),
+    ('[[cases]]\nname = "a"\nexpect = "maybe"\n', "write \"trip\" or \"no trip\""),
+    ('[[cases]]\nname = "a"\nexpect = "trip"\nfaults = [{ kind = "ofset", signal = "v_out", start = 0.1, value = 1 }]\n',
+     "did you mean 'offset'"),
+    ('[[cases]]\nname = "a"\nexpect = "trip"\nbogus = 1\n', "unknown key 'bogus'"),
+    ('[[cases]]\nname = "a"\nexpect = "no trip"\ncause = "v_out above"\n', "no-trip case takes no cause"),
+    ('[[cases]]\nname = "a"\nexpect = "trip"\nbridge = { mode = "sideways" }\n', "bridge mode 'sideways'"),
+    ('[[cases]]\nname = "a"\nexpect = "trip"\n[[cases]]\nname = "a"\nexpect = "trip"\n', "used twice"),
+])
+def test_malformed_suite_is_one_clear_error(tmp_path, body, message):
+    f = _suite(tmp_path, body)
+    p = subprocess.run(CLI + ["interlock-test", str(f), "--out", str(tmp_path / "r"), "--headless"],
+                       capture_output=True, text=True, timeout=300)
+    assert p.returncode == 2, p.stdout + p.stderr
+    assert message in p.stdout and "Traceback" not in p.stdout + p.stderr
+    assert not (tmp_path / "r").exists()
