@@ -29,7 +29,8 @@ def _demo_path() -> Path:
 class _Progress:
     """A progress bar that appears only when the run will take longer than about a second."""
 
-    def __init__(self, console, plain: bool, unit: str = "ticks"):
+    def __init__(self, console, plain: bool, unit: str = "ticks", quiet: bool = False):
+        self.quiet = quiet
         self.unit = unit
         self.console = console
         self.plain = plain
@@ -39,6 +40,8 @@ class _Progress:
         self.last_line = float("-inf")
 
     def __call__(self, done: int, total: int) -> None:
+        if self.quiet:
+            return
         el = time.perf_counter() - self.t0
         if self.bar is None and done < total and el * total / max(done, 1) > 1.0:
             if self.plain or not self.console.is_terminal:
@@ -92,9 +95,29 @@ def _summary_table(console, s: dict, folder: Path | None) -> None:
     t.add_row(escape("loop speed [ticks/s]"), f"{tps:,.0f}  ({tm['loop_ns_per_tick']:.0f} ns per tick)" if tps else "-")
     t.add_row(escape("faster than real time [x]"), f"{tm['realtime_factor']:.1f}" if tm.get("realtime_factor") else "-")
     t.add_row(escape("compile or cache load [s]"), f"{tm['compile_or_load_s']:.2f}" + (" (compiled now)" if tm.get("compiled_now") else " (from cache)"))
+    pc = s.get("paced")
+    if pc:
+        la, co = pc["lateness_us"], pc["compute_us"]
+        t.add_row(escape("paced: lateness p50 / p99 / max [us]"), f"{la['p50']:.1f} / {la['p99']:.1f} / {la['max']:.0f}")
+        t.add_row(escape("paced: compute p50 / p99 / max [us]"), f"{co['p50']:.1f} / {co['p99']:.1f} / {co['max']:.0f}")
+        t.add_row("paced: late ticks / deadline misses", f"{pc['late_ticks']} / {pc['deadline_misses']} of {la['n']}")
     if folder is not None:
         t.add_row("run folder", str(folder))
     console.print(t)
+
+
+def _view_args(p) -> None:
+    p.add_argument("--no-view", action="store_true",
+                   help="do not start the live view (it starts by itself on a terminal)")
+    p.add_argument("--telemetry", metavar="ADDRESS",
+                   help="publish live telemetry at ADDRESS for 'hilrig watch' viewers "
+                        "(tcp://127.0.0.1:PORT or ipc:///PATH; loopback unless --allow-remote)")
+
+
+def _wants_view(args, plain: bool) -> bool:
+    """The live view starts by itself on a terminal, unless --no-view or plain output."""
+    return (not args.no_view and not plain and sys.stdout.isatty() and sys.stdin.isatty()
+            and not getattr(args, "bridge", None))
 
 
 def _check_hv_acknowledged(sc, address: str, ack_hv: bool, allow_remote: bool) -> None:
@@ -115,7 +138,8 @@ def _check_hv_acknowledged(sc, address: str, ack_hv: bool, allow_remote: bool) -
 
 def _run(console, plain, scenario_path: Path, out: str | None, overwrite: bool, sets: list[str],
          bridge: str | None = None, mode: str = "lockstep", timeout: float = 2.0,
-         allow_remote: bool = False, curve_keys: str | None = None, ack_hv: bool = False):
+         allow_remote: bool = False, curve_keys: str | None = None, ack_hv: bool = False,
+         paced: bool = False, view: bool = False, telemetry: str | None = None):
     from hilrig.runtime.plots import overview_png
     from hilrig.runtime.recording import open_run
     from hilrig.runtime.run import run_scenario
@@ -125,7 +149,22 @@ def _run(console, plain, scenario_path: Path, out: str | None, overwrite: bool, 
     _show_caution(console, sc)
     if bridge:
         _check_hv_acknowledged(sc, bridge, ack_hv, allow_remote)
-    prog = _Progress(console, plain)
+    viewer = None
+    tmpdir = None
+    if view and not telemetry:
+        import tempfile
+        tmpdir = tempfile.mkdtemp(prefix="hilrig-view-")
+        telemetry = f"ipc://{tmpdir}/telemetry"
+    if telemetry:
+        from hilrig.bridge.transport import check_address
+        check_address(telemetry, allow_remote)
+    prog = _Progress(console, plain or view)
+    if view:
+        import subprocess
+        # the viewer owns the terminal while the run lasts; this process stays quiet
+        viewer = subprocess.Popen([sys.executable, "-m", "hilrig.runtime.cli", "watch", telemetry,
+                                   "--exit-when-done"])
+        prog = _Progress(console, True, quiet=True)
     try:
         if bridge:
             from hilrig.bridge.session import run_bridge
@@ -133,11 +172,27 @@ def _run(console, plain, scenario_path: Path, out: str | None, overwrite: bool, 
                              allow_remote=allow_remote, overwrite=overwrite, progress=prog,
                              curve_keys=Path(curve_keys) if curve_keys else None,
                              notice=lambda msg: console.print(msg))
+        elif paced or sc.mode == "paced":
+            from hilrig.runtime.paced import run_paced
+            # no progress bar: its redraws would compete with the loop for this process
+            res = run_paced(sc, Path(out) if out else None, overwrite=overwrite,
+                            notice=None if view else (lambda msg: console.print(msg)),
+                            telemetry=telemetry, allow_remote=allow_remote)
         else:
             res = run_scenario(sc, Path(out) if out else None, overwrite=overwrite, progress=prog,
-                               notice=lambda msg: console.print(msg))
+                               notice=None if view else (lambda msg: console.print(msg)),
+                               telemetry=telemetry, allow_remote=allow_remote)
     finally:
         prog.close()
+        if viewer is not None:
+            try:
+                viewer.wait(timeout=30)
+            except subprocess.TimeoutExpired:
+                viewer.terminate()
+                viewer.wait(timeout=10)
+        if tmpdir:
+            import shutil
+            shutil.rmtree(tmpdir, ignore_errors=True)
     try:
         overview_png(open_run(res.folder), res.folder / "overview.png")
     except ImportError:
@@ -294,6 +349,9 @@ def main(argv: list[str] | None = None) -> int:
         "(SIL against an embedded plant model)."))
     sub = ap.add_subparsers(dest="cmd", required=True, metavar="COMMAND")
     p = sub.add_parser("demo", help="run the shipped demo scenario (invented demo data)")
+    p.add_argument("--paced", action="store_true",
+                   help="paced mode: one tick per tick period of the wall clock")
+    _view_args(p)
     p.add_argument("--out", help="run folder to write (default: runs/<time>-demo)")
     p.add_argument("--headless", action="store_true", help="plain text output, no progress bar or colours")
     p.add_argument("--overwrite", action="store_true", help="replace a recording already in --out")
@@ -312,6 +370,9 @@ def main(argv: list[str] | None = None) -> int:
     p.add_argument("--allow-remote", action="store_true",
                    help="allow a bridge address that is not on this machine (you take responsibility for the network)")
     p.add_argument("--curve-keys", metavar="DIR", help="CurveZMQ keys folder (hilrig keys DIR); required for a remote ZeroMQ peer")
+    p.add_argument("--paced", action="store_true",
+                   help="paced mode: one tick per tick period of the wall clock (timing rehearsal)")
+    _view_args(p)
     p.add_argument("--acknowledge-high-voltage", action="store_true",
                    help="required for a bridge to another machine when the scenario exceeds 60 V DC: "
                         "you confirm hardware protection, isolation and local codes are in place")
@@ -321,6 +382,15 @@ def main(argv: list[str] | None = None) -> int:
     p.add_argument("--junit", metavar="FILE", help="also write the results as JUnit XML")
     p.add_argument("--workers", type=int, help="parallel worker processes for SIL cases (default: all cores)")
     p.add_argument("--headless", action="store_true", help="plain text output")
+    p = sub.add_parser("watch", help="the live view of a run that publishes telemetry")
+    p.add_argument("address", nargs="?", default=None,
+                   help="the run's telemetry address (default tcp://127.0.0.1:47820)")
+    p.add_argument("--plain", action="store_true", help="plain lines, one a second, no screen")
+    p.add_argument("--exit-when-done", action="store_true", help="close when the run has ended")
+    p.add_argument("--give-up", type=float, metavar="S",
+                   help="close after S seconds without telemetry (default: keep waiting)")
+    p.add_argument("--allow-remote", action="store_true",
+                   help="allow an address that is not on this machine")
     p = sub.add_parser("keys", help="make CurveZMQ key pairs for a bridge between two machines")
     p.add_argument("folder", help="folder to write simulator.key[_secret] and runtime.key[_secret]")
     p = sub.add_parser("serve-sim", help="serve the stand-in simulator: the scenario's plant over the bridge protocol")
@@ -367,15 +437,19 @@ def main(argv: list[str] | None = None) -> int:
     p.add_argument("--json", action="store_true", help="print per-controller outcome counts as JSON")
     p.add_argument("--cluster", metavar="ADDRESS", help="run on a Dask distributed scheduler instead of local processes")
     p.add_argument("--workers", type=int, help="local worker processes (default: all cores)")
-    p = sub.add_parser("report", help="summarise a run folder")
+    p = sub.add_parser("report", help="write a lab report of a run folder (report.md with plots)")
     p.add_argument("run", help="run folder")
-    p.add_argument("--json", action="store_true", help="print summary.json")
+    p.add_argument("--json", action="store_true", help="print summary.json (writes nothing)")
+    p.add_argument("--out", help="report file to write (default: RUN/report.md)")
     p = sub.add_parser("plugins", help="list installed plugins with their parameters")
     p.add_argument("--json", action="store_true", help="machine-readable list")
     p = sub.add_parser("export", help="export a run's recording")
     p.add_argument("run", help="run folder")
-    p.add_argument("--csv", action="store_true", required=True, help="write recording.csv")
-    p.add_argument("--out", help="CSV file to write (default: RUN/recording.csv)")
+    fmt = p.add_mutually_exclusive_group(required=True)
+    fmt.add_argument("--csv", action="store_true", help="write recording.csv")
+    fmt.add_argument("--mf4", action="store_true",
+                     help="write recording.mf4 (ASAM MDF 4; needs the optional package asammdf)")
+    p.add_argument("--out", help="file to write (default: RUN/recording.csv or RUN/recording.mf4)")
     args = ap.parse_args(argv)
 
     plain = getattr(args, "headless", False) or getattr(args, "json", False)
@@ -389,12 +463,22 @@ def main(argv: list[str] | None = None) -> int:
     try:
         if args.cmd == "demo":
             console.print("hilrig demo: invented demo data, not measurements of real equipment.")
-            _run(console, plain, _demo_path(), args.out, args.overwrite, [])
+            _run(console, plain, _demo_path(), args.out, args.overwrite, [], paced=args.paced,
+                 view=_wants_view(args, plain), telemetry=args.telemetry)
         elif args.cmd == "run":
             _run(console, plain, Path(args.scenario), args.out, args.overwrite, args.set,
                  bridge=args.bridge, mode=args.mode, timeout=args.timeout,
                  allow_remote=args.allow_remote, curve_keys=args.curve_keys,
-                 ack_hv=args.acknowledge_high_voltage)
+                 ack_hv=args.acknowledge_high_voltage, paced=args.paced,
+                 view=_wants_view(args, plain), telemetry=args.telemetry)
+        elif args.cmd == "watch":
+            from hilrig.bridge.transport import check_address
+            from hilrig.runtime.telemetry import DEFAULT_ADDRESS
+            from hilrig.runtime.watch import watch
+            address = args.address or DEFAULT_ADDRESS
+            check_address(address, args.allow_remote)
+            return watch(address, plain=args.plain, exit_when_done=args.exit_when_done,
+                         give_up_s=args.give_up)
         elif args.cmd == "interlock-test":
             return _interlock_test(console, args)
         elif args.cmd == "keys":
@@ -435,9 +519,12 @@ def main(argv: list[str] | None = None) -> int:
             if args.json:
                 print(json.dumps(run.summary, indent=2))
             else:
+                from hilrig.runtime.report import write_report
                 _summary_table(console, run.summary, run.folder)
                 for ev in run.summary.get("events", []):
                     console.print(f"event: {ev}")
+                dest = write_report(run, Path(args.out) if args.out else None)
+                console.print(f"wrote {dest}", markup=False)
         elif args.cmd == "plugins":
             from hilrig.runtime.registry import all_plugins
             items = [p.declaration.describe() for p in all_plugins()]
@@ -448,11 +535,19 @@ def main(argv: list[str] | None = None) -> int:
         elif args.cmd == "export":
             from hilrig.runtime.recording import export_csv, open_run
             run = open_run(args.run)
-            dest = Path(args.out) if args.out else run.folder / "recording.csv"
-            if dest.exists() and dest.resolve() != (run.folder / "recording.csv").resolve():
+            ext = "mf4" if args.mf4 else "csv"
+            default = run.folder / f"recording.{ext}"
+            dest = Path(args.out) if args.out else default
+            if dest.exists() and dest.resolve() != default.resolve():
                 raise FileExistsError(f"{dest} exists; choose another --out (nothing was overwritten)")
-            export_csv(run, dest)
-            console.print(f"wrote {dest} ({run.time.shape[0]} rows, {len(run.signals) + 1} columns)")
+            if args.mf4:
+                from hilrig.runtime.report import export_mdf4
+                export_mdf4(run, dest)
+                console.print(f"wrote {dest} (ASAM MDF 4, {len(run.signals)} channels, "
+                              f"{run.time.shape[0]} samples)")
+            else:
+                export_csv(run, dest)
+                console.print(f"wrote {dest} ({run.time.shape[0]} rows, {len(run.signals) + 1} columns)")
     except (ScenarioError, PluginError, RecordingError, UnitError, InterlockConfigError,
             FileExistsError, ValueError, BridgeError) as exc:
         console.print(f"error: {exc}", markup=False, soft_wrap=True)

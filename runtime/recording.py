@@ -82,10 +82,12 @@ class RunWriter:
         self.n = end
         self.f.flush()
 
-    def close(self, attrs: dict[str, Any] | None = None) -> None:
+    def close(self, attrs: dict[str, Any] | None = None, complete: bool = True) -> None:
+        """Write the attributes and close; ``complete`` False marks a run that was cut short
+        (interrupted): its recording holds every tick up to the last chunk written."""
         for k, v in (attrs or {}).items():
             self.f.attrs[k] = v
-        self.f.attrs["complete"] = True
+        self.f.attrs["complete"] = complete
         self.f.flush()
         self.f.close()
 

@@ -194,15 +194,20 @@ def compile_loop(sc: Scenario, notice: Callable[[str], None] | None = None):
     return module.run_chunk, time.perf_counter() - t, not cached
 
 
+def chunk_args(a: dict) -> tuple:
+    """The arguments of ``run_chunk`` between ``n`` and ``rec``, in order."""
+    return (a["ts"], a["nsub"], a["v_collapse"], a["i_vout"],
+            a["pp"], a["x"], a["load_t"], a["load_v"], a["lcur"],
+            a["pc"], a["xc"], a["iyc"], a["yc"], a["u"], a["safe_u"],
+            a["pr"], a["xr"], a["iyr"], a["yr"], a["w"],
+            a["ad"], a["g1"], a["g2"], a["cr"], a["dr"], a["slew"], a["z"], a["s"], a["zt"], a["r"],
+            a["dix"], a["lim_sig"], a["lim_side"], a["lim_thr"], a["lim_deb"], a["lim_cnt"],
+            a["latch"], a["pv"],
+            *fault_args(a), *supervision_args(a), a["y"], a["d"])
+
+
 def _call(fn, k0, n, rec, a):
-    return fn(k0, n, a["ts"], a["nsub"], a["v_collapse"], a["i_vout"],
-              a["pp"], a["x"], a["load_t"], a["load_v"], a["lcur"],
-              a["pc"], a["xc"], a["iyc"], a["yc"], a["u"], a["safe_u"],
-              a["pr"], a["xr"], a["iyr"], a["yr"], a["w"],
-              a["ad"], a["g1"], a["g2"], a["cr"], a["dr"], a["slew"], a["z"], a["s"], a["zt"], a["r"],
-              a["dix"], a["lim_sig"], a["lim_side"], a["lim_thr"], a["lim_deb"], a["lim_cnt"],
-              a["latch"], a["pv"],
-              *fault_args(a), *supervision_args(a), a["y"], a["d"], rec, a["ev"])
+    return fn(k0, n, *chunk_args(a), rec, a["ev"])
 
 
 def fault_args(a: dict) -> tuple:
@@ -253,7 +258,8 @@ def check_folder(folder: Path, overwrite: bool) -> None:
 
 def run_scenario(sc: Scenario, folder: Path | None = None, *, overwrite: bool = False,
                  progress: Callable[[int, int], None] | None = None,
-                 notice: Callable[[str], None] | None = None) -> RunResult:
+                 notice: Callable[[str], None] | None = None,
+                 telemetry: str | None = None, allow_remote: bool = False) -> RunResult:
     """Run a validated scenario in SIL and write its run folder; return the summary."""
     folder = Path(folder) if folder is not None else default_folder(sc)
     check_folder(folder, overwrite)
@@ -264,16 +270,74 @@ def run_scenario(sc: Scenario, folder: Path | None = None, *, overwrite: bool = 
     t = time.perf_counter()
     _call(fn, 0, 0, np.zeros((1, len(prep.signals))), a)
     t_compile += time.perf_counter() - t
-    return execute(sc, prep, folder, lambda k0, n, rec: _call(fn, k0, n, rec, a),
-                   timing={"compile_or_load_s": t_compile, "compiled_now": compiled},
-                   progress=progress)
+    if not telemetry:
+        return execute(sc, prep, folder, lambda k0, n, rec: _call(fn, k0, n, rec, a),
+                       timing={"compile_or_load_s": t_compile, "compiled_now": compiled},
+                       progress=progress)
+    from .telemetry import Telemetry, telemetry_config
+    tel = Telemetry(**telemetry_config(sc, prep, telemetry, allow_remote))
+    live = LiveControl(tel, sc, a)
+    try:
+        res = execute(sc, prep, folder, live.wrap(lambda k0, n, rec: _call(fn, k0, n, rec, a)),
+                      timing={"compile_or_load_s": t_compile, "compiled_now": compiled},
+                      progress=progress, after_chunk=live.after_chunk)
+        live.finish(res.summary)
+        return res
+    finally:
+        tel.close()
+
+
+class LiveControl:
+    """Between chunks: publish telemetry, and act on the operator's commands. A stop runs one
+    more tick with the stop condition raised (the safe output latched and recorded), then ends
+    the run; a reset is requested for the next tick (refused while a condition holds)."""
+
+    def __init__(self, tel, sc: Scenario, a: dict):
+        self.tel, self.sc, self.a = tel, sc, a
+        self.stop = False
+
+    def take_commands(self) -> None:
+        from hilrig.safety.interlocks import L_RESET_NOW
+        for c in self.tel.commands():
+            if c == "stop":
+                self.stop = True
+            elif c == "reset":
+                self.a["latch"][L_RESET_NOW] = 1.0
+
+    def wrap(self, produce):
+        from hilrig.safety.interlocks import HOST_STOP, W_HOST_BITS
+
+        def wrapped(k0: int, n: int, rec: np.ndarray) -> int:
+            self.take_commands()
+            if not self.stop:
+                return produce(k0, n, rec)
+            wd, ev = self.a["wd"], self.a["ev"]
+            wd[W_HOST_BITS] = HOST_STOP
+            ran = produce(k0, 1, rec)
+            wd[W_HOST_BITS] = 0.0
+            if ev[0] == 0.0:
+                ev[0], ev[1] = loopgen.EV_STOPPED, k0
+            return ran
+        return wrapped
+
+    def after_chunk(self, done: int, rows: np.ndarray) -> None:
+        a = self.a
+        self.tel.add_rows(done - rows.shape[0], rows, self.sc.Ts)
+        self.tel.publish(a["latch"], a["evlog"], a["evn"])
+
+    def finish(self, summary: dict) -> None:
+        a = self.a
+        self.tel.publish(a["latch"], a["evlog"], a["evn"], force=True, ended=True,
+                         end_event=summary.get("end_event") or "completed")
 
 
 def execute(sc: Scenario, prep: Prepared, folder: Path,
             produce: Callable[[int, int, np.ndarray], int], *, timing: dict[str, Any],
             progress: Callable[[int, int], None] | None = None,
             extra: Callable[[], dict[str, Any]] | None = None,
-            end_events: Callable[[], list[dict[str, Any]]] | None = None) -> RunResult:
+            end_events: Callable[[], list[dict[str, Any]]] | None = None,
+            writer_class=RunWriter, chunk_s: float | None = None,
+            after_chunk: Callable[[int, np.ndarray], None] | None = None) -> RunResult:
     """Drive ``produce(k0, n, rec) -> ticks run`` chunk by chunk, record and summarise.
 
     ``produce`` fills rows of ``rec`` for ticks k0 .. k0+n-1 and returns how many it ran
@@ -281,50 +345,67 @@ def execute(sc: Scenario, prep: Prepared, folder: Path,
     """
     a = prep.args
     n_total = sc.n_ticks
-    chunk = max(1, min(n_total, int(round(sc.recording["chunk"] / sc.Ts))))
+    chunk = max(1, min(n_total, int(round((chunk_s or sc.recording["chunk"]) / sc.Ts))))
     ncols = len(prep.signals)
     rec = np.zeros((chunk, ncols))
     folder.mkdir(parents=True, exist_ok=True)
     (folder / SCENARIO).write_text(sc.text)
     vers = versions()
-    writer = RunWriter(folder, prep.signals, {
+    names = [s.name for s in prep.signals]
+    i_vout, i_vref, i_u = names.index("v_out"), names.index("v_ref"), names.index(prep.u_names[0])
+    i_vdc = names.index("v_dc") if "v_dc" in names else None
+    more = {}
+    if getattr(writer_class, "computes_metrics", False):
+        # a writer in another process also keeps the running metrics (nothing between ticks)
+        more = {"metric_cols": (i_vout, i_vref, i_u, -1 if i_vdc is None else i_vdc), "Ts": sc.Ts}
+    writer = writer_class(folder, prep.signals, {
         "scenario_text": sc.text, "versions": json.dumps(vers), "seed": sc.seed, "Ts": sc.Ts,
         "title": sc.title, "demo_data": sc.demo_data, "mode": sc.mode,
         "plant": sc.plant.plugin.name, "controller": sc.controller.plugin.name,
         "reference": sc.reference.plugin.name,
-    }, chunk_rows=chunk, compression=sc.recording["compression"])
-    names = [s.name for s in prep.signals]
-    i_vout, i_vref, i_u = names.index("v_out"), names.index("v_ref"), names.index(prep.u_names[0])
-    i_vdc = names.index("v_dc") if "v_dc" in names else None
+    }, chunk_rows=chunk, compression=sc.recording["compression"], **more)
+    block = getattr(writer, "block", None)
     metrics = TrackingMetrics(sc.Ts)
     t_loop = 0.0
     t_write = 0.0
     done = 0
     ran = 0
+    last_row = np.zeros(ncols)
     wall0 = time.perf_counter()
     startup = process_age_s()
     try:
         while done < n_total:
             n = min(chunk, n_total - done)
             t0 = time.perf_counter()
-            ran = produce(done, n, rec)
+            # a shared-memory writer hands out the rows to fill (no copy afterwards)
+            buf = block(n) if block else rec
+            ran = produce(done, n, buf)
             t1 = time.perf_counter()
             tt = np.arange(done, done + ran, dtype=np.int64) * sc.Ts
-            writer.append(tt, rec)
-            rows = rec[:ran]
-            metrics.update(tt, rows[:, i_vout], rows[:, i_vref], rows[:, i_u],
-                           rows[:, i_vdc] if i_vdc is not None else None)
+            rows = buf[:ran]
+            if ran:
+                last_row = rows[-1].copy()
+            if block:
+                writer.commit(tt)
+            else:
+                writer.append(tt, buf)
+            if not more:
+                metrics.update(tt, rows[:, i_vout], rows[:, i_vref], rows[:, i_u],
+                               rows[:, i_vdc] if i_vdc is not None else None)
             t2 = time.perf_counter()
             t_loop += t1 - t0
             t_write += t2 - t1
             done += ran
+            if after_chunk:
+                after_chunk(done, rows)
             if progress:
                 progress(done, n_total)
-            if ran < n:
-                break
+            if ran < n or a["ev"][0] != 0.0:
+                break  # ended early (a collapse on a chunk's last tick, too, or a stop)
     except BaseException:
         # keep what was flushed; mark the file as not complete and re-raise (e.g. Ctrl-C)
-        writer.close({"events": json.dumps([{"event": "interrupted", "tick": done}])})
+        writer.close({"events": json.dumps([{"event": "interrupted", "tick": done}])},
+                     complete=False)
         raise
     wall = time.perf_counter() - wall0
     ev = int(a["ev"][0])
@@ -332,7 +413,7 @@ def execute(sc: Scenario, prep: Prepared, folder: Path,
     if ev:
         kk = int(a["ev"][1])
         events.append({"event": loopgen.EVENT_TEXT[ev], "tick": kk, "time_s": kk * sc.Ts,
-                       "v_out_V": float(rec[max(ran - 1, 0), i_vout])})
+                       "v_out_V": float(last_row[i_vout])})
     if end_events:
         events += end_events()
     # trips and resets, in order, from the loop's event log
@@ -351,10 +432,7 @@ def execute(sc: Scenario, prep: Prepared, folder: Path,
     trips = [e for e in log_events if e["event"] == "trip"]
     trip = {k: v for k, v in trips[0].items() if k != "event"} if trips else None
     events = log_events + events
-    # per-step metrics need whole signals: read the two back from the flushed recording
-    steps = step_metrics(writer.time[()], writer.ds[i_vout][()],
-                         writer.ds[names.index("v_ref_raw")][()])
-    result = metrics.result()
+    result = writer.metrics_result() if more else metrics.result()
     result["trips"] = len(trips)
     ending = [e for e in events if e["event"] not in ("trip", "reset accepted", "reset refused",
                                                       "reset (nothing latched)", "event log full")
@@ -373,7 +451,7 @@ def execute(sc: Scenario, prep: Prepared, folder: Path,
         "watchdogs": dict(sc.watchdogs),
         "v_out_start_V": prep.v0,
         "metrics": result,
-        "steps": [st.as_dict() for st in steps],
+        "steps": [],
         "timing": {
             **timing,
             "process_start_to_first_tick_s": startup,
@@ -393,5 +471,10 @@ def execute(sc: Scenario, prep: Prepared, folder: Path,
             attrs["bridge"] = json.dumps(more["bridge"])
     # wall-clock figures of SIL runs stay out of the recording so that it is bit-identical
     writer.close(attrs)
+    # per-step metrics need whole signals: read the two back from the closed recording
+    import h5py
+    with h5py.File(folder / "recording.h5", "r") as f:
+        steps = step_metrics(f["time"][()], f["signals/v_out"][()], f["signals/v_ref_raw"][()])
+    summary["steps"] = [st.as_dict() for st in steps]
     (folder / SUMMARY).write_text(json.dumps(summary, indent=2) + "\n")
     return RunResult(folder=folder, summary=summary)

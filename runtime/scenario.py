@@ -32,8 +32,9 @@ from . import registry
 from .errors import PluginError, ScenarioError, UnitError
 from .units import parse_quantity
 
-MODES = ("sil",)
-PLANNED_MODES = ("paced", "lockstep", "free-running")
+MODES = ("sil", "paced")
+#: bridge modes are chosen on the command line (hilrig run --bridge ADDRESS --mode ...)
+PLANNED_MODES = ("lockstep", "free-running")
 
 TOP_KEYS = {"title", "description", "demo_data", "mode", "seed", "timing", "plant", "controller",
             "reference", "shaping", "load", "limits", "interlocks", "initial", "recording",
@@ -167,7 +168,8 @@ def parse_scenario(text: str, name: str = "scenario.toml", path: str = "",
     mode = _str(cx, raw, "mode", "sil")
     if mode not in MODES:
         if mode in PLANNED_MODES:
-            raise cx.fail("mode", f" = {mode!r} is not available yet; this version runs 'sil' only")
+            raise cx.fail("mode", f" = {mode!r} is a bridge mode: run with --bridge ADDRESS "
+                          f"--mode {mode} (the scenario's mode is 'sil' or 'paced')")
         close = difflib.get_close_matches(mode, MODES + PLANNED_MODES, n=2)
         hint = f"; did you mean {', '.join(repr(c) for c in close)}?" if close else ""
         raise cx.fail("mode", f" = {mode!r} is not a mode{hint} (modes: {', '.join(MODES)})")

@@ -39,9 +39,10 @@ from numba import njit
 from .errors import InterlockConfigError
 
 #: latch array layout (L_LOGGED: the trip is in the event log; L_REINIT: re-initialise the
-#: controller on the next tick, after an accepted reset)
-L_TRIPPED, L_CAUSE, L_TICK, L_TIME, L_VALUE, L_LOGGED, L_REINIT = range(7)
-LATCH_SIZE = 7
+#: controller on the next tick, after an accepted reset; L_RESET_NOW: an operator's reset
+#: request from the live view, taken on the next tick)
+L_TRIPPED, L_CAUSE, L_TICK, L_TIME, L_VALUE, L_LOGGED, L_REINIT, L_RESET_NOW = range(8)
+LATCH_SIZE = 8
 #: cause codes: 1 + row for a limit row; these offsets for plausibility causes
 CAUSE_NONFINITE = 1000   # + index into [y..., u...]
 CAUSE_CONTROLLER = 2000  # + the controller's fault code if > 0; -CAUSE_CONTROLLER + code if < 0
@@ -49,7 +50,8 @@ CAUSE_CONTROLLER = 2000  # + the controller's fault code if > 0; -CAUSE_CONTROLL
 CAUSE_WATCHDOG = 3000
 #: bits of the interlock word. The word is recorded as float64, which holds integers exactly only
 #: up to 2**53: every bit must stay below 53.
-BIT_WATCHDOG = 40        # + watchdog index: 40 overrun, 41 stale, 42 sequence gap, 43 peer lost
+BIT_WATCHDOG = 40        # + watchdog index: 40 overrun, 41 stale, 42 sequence gap, 43 peer lost,
+                         # 44 stop requested by the operator
 BIT_NONFINITE = 48
 BIT_CONTROLLER = 49
 BIT_LATCHED = 50
@@ -57,7 +59,7 @@ BIT_RESET_REQUESTED = 51
 BIT_RESET_REFUSED = 52
 MAX_ROWS = 40
 #: the bits that say a condition holds now (rows, non-finite, controller fault)
-WD_NAMES = ("overrun", "stale", "sequence gap", "peer lost")
+WD_NAMES = ("overrun", "stale", "sequence gap", "peer lost", "stop requested")
 CONDITIONS = (((1 << MAX_ROWS) - 1) | (1 << BIT_NONFINITE) | (1 << BIT_CONTROLLER)
               | (((1 << len(WD_NAMES)) - 1) << BIT_WATCHDOG))
 #: interlock sides
@@ -71,9 +73,10 @@ DERIVED = (("p_out", "W", "output power v_out * i_out"),
 #: host-measured compute time of the last tick [s], host-raised condition bits (1 stale,
 #: 2 sequence gap, 4 peer lost), the value that goes with them, forced-overrun seconds of the
 #: last tick (written by the fault stage after watch has read it)
-W_BUDGET, W_DEB, W_CNT, W_HOST_TIME, W_HOST_BITS, W_HOST_VALUE, W_FORCED = range(7)
+#: and (paced loop) this tick's work time, which becomes the next tick's W_HOST_TIME
+W_BUDGET, W_DEB, W_CNT, W_HOST_TIME, W_HOST_BITS, W_HOST_VALUE, W_FORCED, W_LAST_WORK = range(8)
 WD_SIZE = 8
-HOST_STALE, HOST_GAP, HOST_LOST = 1, 2, 4
+HOST_STALE, HOST_GAP, HOST_LOST, HOST_STOP = 1, 2, 4, 8
 #: event log: rows of (tick, kind, cause, value); kinds
 EVT_TRIP, EVT_RESET_ACCEPTED, EVT_RESET_REFUSED, EVT_RESET_IDLE = 1, 2, 3, 4
 EVENT_NAMES = {EVT_TRIP: "trip", EVT_RESET_ACCEPTED: "reset accepted",
@@ -155,7 +158,8 @@ class InterlockTable:
     def cause_text(self, cause: int, n_y: int = 0) -> str:
         """Human-readable latched cause."""
         if cause >= CAUSE_WATCHDOG:
-            return f"watchdog {WD_NAMES[cause - CAUSE_WATCHDOG]}"
+            name = WD_NAMES[cause - CAUSE_WATCHDOG]
+            return name if name == "stop requested" else f"watchdog {name}"
         if cause <= -CAUSE_CONTROLLER:
             return f"controller fault code {cause + CAUSE_CONTROLLER}"
         if cause <= 0:
@@ -171,7 +175,8 @@ class InterlockTable:
         """Short name of a cause: 'v_out above', 'non-finite v_out', 'controller fault',
         'watchdog stale', ... (the names interlock test suites expect)."""
         if cause >= CAUSE_WATCHDOG:
-            return f"watchdog {WD_NAMES[cause - CAUSE_WATCHDOG]}"
+            name = WD_NAMES[cause - CAUSE_WATCHDOG]
+            return name if name == "stop requested" else f"watchdog {name}"
         if cause <= -CAUSE_CONTROLLER or cause >= CAUSE_CONTROLLER:
             return "controller fault"
         if cause <= 0:
@@ -214,7 +219,8 @@ def _log(evlog, evn, tick, kind, cause, value):
 def supervise(tick, t, word, latch, reset_t, reset_i, evlog, evn):
     """After the protect stage: log a trip latched on this tick, and handle a reset request.
 
-    A reset (requested at a scheduled time) clears the latch only if no interlock condition
+    A reset (requested at a scheduled time, or by the operator from the live view through
+    ``latch[L_RESET_NOW]``) clears the latch only if no interlock condition
     holds on this tick; otherwise it is refused and the safe state stays (ISO 13849-1
     5.2.2.3: a stop is held until it is safe, and restarting needs a separate, intended reset).
     The output stays safe on the reset tick; the controller is re-initialised from the
@@ -225,8 +231,12 @@ def supervise(tick, t, word, latch, reset_t, reset_i, evlog, evn):
         _log(evlog, evn, tick, EVT_TRIP, latch[L_CAUSE], latch[L_VALUE])
         latch[L_LOGGED] = 1.0
     i = reset_i[0]
-    if i < reset_t.shape[0] and t >= reset_t[i]:
-        reset_i[0] = i + 1
+    due = i < reset_t.shape[0] and t >= reset_t[i]
+    live = latch[L_RESET_NOW] != 0.0
+    if due or live:
+        if due:
+            reset_i[0] = i + 1
+        latch[L_RESET_NOW] = 0.0
         word |= 1 << BIT_RESET_REQUESTED
         if latch[L_TRIPPED] == 0.0:
             _log(evlog, evn, tick, EVT_RESET_IDLE, 0.0, 0.0)
@@ -271,7 +281,7 @@ def watch(tick, t, wd, latch):
     else:
         wd[W_CNT] = 0.0
     hb = int(wd[W_HOST_BITS])
-    for b in range(3):
+    for b in range(4):
         if hb & (1 << b):
             word |= 1 << (BIT_WATCHDOG + 1 + b)
             _trip(latch, CAUSE_WATCHDOG + 1 + b, tick, t, wd[W_HOST_VALUE])
@@ -313,8 +323,13 @@ def protect(tick, t, ts, y, u, code, dix, sig, side, thr, deb, cnt, latch, pv, s
     elif iv >= 0 and abs(y[iv]) < np.inf and abs(pv[m + iv]) < np.inf:
         pv[ny + nu + 1] = (y[iv] - pv[m + iv]) / ts
     word = 0
+    # while a trip is latched the controller's command is not applied, so it is not judged:
+    # a controller whose state a bad measurement poisoned (NaN) must not block the reset that
+    # re-initialises it; after the reset it is judged again from its first tick
+    held = latch[L_TRIPPED] != 0.0
+    n_judged = ny if held else ny + nu
     # plausibility first: a non-finite value makes every limit on it meaningless
-    for j in range(ny + nu):
+    for j in range(n_judged):
         v = pv[j]
         # NaN or +-Inf; written without arithmetic because inf - inf warns when the kernel runs
         # as plain Python (NUMBA_DISABLE_JIT=1)
@@ -322,7 +337,7 @@ def protect(tick, t, ts, y, u, code, dix, sig, side, thr, deb, cnt, latch, pv, s
             word |= 1 << BIT_NONFINITE
             _trip(latch, CAUSE_NONFINITE + j, tick, t, v)
             break
-    if code != 0:
+    if code != 0 and not held:
         word |= 1 << BIT_CONTROLLER
         # a negative code (-1 is a common "failed") must not land in the non-finite cause range
         cause = CAUSE_CONTROLLER + code if code > 0 else -CAUSE_CONTROLLER + code
@@ -333,6 +348,9 @@ def protect(tick, t, ts, y, u, code, dix, sig, side, thr, deb, cnt, latch, pv, s
         if pv[ny + j] != pv[m + ny + j]:
             u_moved = True
     for k in range(sig.shape[0]):
+        if held and ny <= sig[k] < ny + nu:
+            cnt[k] = 0  # a limit on the command that is not applied
+            continue
         v = pv[sig[k]]
         sk = side[k]
         if sk == SIDE_ABOVE:

@@ -51,3 +51,38 @@ def test_sigkill_mid_run_leaves_a_readable_recording(tmp_path, demo_path):
         assert run.signals[name].shape == (n,) and np.all(np.isfinite(run.signals[name]))
     assert np.array_equal(run.time, np.arange(n, dtype=np.int64) * 50e-6)
     assert not (out / "summary.json").exists()
+
+
+def test_ctrl_c_mid_run_closes_the_recording_marked_incomplete(tmp_path, demo_path):
+    """SIGINT (Ctrl-C): the runtime closes the recording in order, marked not complete, with an
+    'interrupted' event, and exits with its interrupted code."""
+    text = Path(demo_path).read_text().replace('duration = "1.5 s"', 'duration = "600 s"')
+    text += '\n[recording]\nchunk = "50 ms"\n'
+    scen = tmp_path / "long.toml"
+    scen.write_text(text)
+    out = tmp_path / "r"
+    proc = subprocess.Popen([sys.executable, "-m", "hilrig.runtime.cli", "run", str(scen),
+                             "--out", str(out), "--headless"],
+                            stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
+    try:
+        deadline = time.monotonic() + 300
+        done = 0
+        while time.monotonic() < deadline and done < 20 * 1000:
+            ready, _, _ = select.select([proc.stdout], [], [], 1.0)
+            if ready:
+                m = re.match(r"progress: (\d+)/", proc.stdout.readline())
+                if m:
+                    done = int(m.group(1))
+        assert done >= 20 * 1000, "the run did not get going"
+        os.kill(proc.pid, signal.SIGINT)
+        stdout, _ = proc.communicate(timeout=60)
+    finally:
+        if proc.poll() is None:
+            proc.kill()
+            proc.communicate(timeout=60)
+    from hilrig.runtime.cli import EXIT_INTERRUPTED
+    assert proc.returncode == EXIT_INTERRUPTED, stdout
+    run = open_run(out)
+    assert not run.attrs["complete"]
+    assert "interrupted" in run.attrs["events"]
+    assert run.time.shape[0] >= 20 * 1000

@@ -1,0 +1,200 @@
+"""Lab reports of a run folder (report.md with PNG plots) and ASAM MDF4 export.
+
+The report is Markdown, readable as text and rendered by any Markdown viewer, ready to attach
+to a lab test record: the outcome, the metrics table, the interlock events, timing (with a
+histogram for paced runs), the plots, the scenario that ran and the versions. Runs on demo
+data say so at the top; every report carries the high-voltage caution of the project.
+"""
+from __future__ import annotations
+
+import json
+from pathlib import Path
+
+import numpy as np
+
+from .errors import RecordingError
+from .recording import Run
+
+CAUTION = ("hilrig's interlocks and watchdogs are monitoring functions of a test tool, not "
+           "safety-rated functions (IEC 61508, ISO 13849). This report documents a simulation "
+           "or rehearsal; hardware protection and isolation must stay in place, and local codes "
+           "and licensed practice govern any connection to real equipment.")
+
+
+def _fmt(v) -> str:
+    if v is None:
+        return "-"
+    if isinstance(v, float):
+        return f"{v:.6g}"
+    return str(v)
+
+
+def timing_png(run: Run, dest: Path) -> Path | None:
+    """Histograms of each tick's lateness and compute time (paced runs); None otherwise."""
+    s = run.signals
+    if "tick_lateness" not in s:
+        return None
+    import matplotlib
+    matplotlib.use("Agg")
+    import matplotlib.pyplot as plt
+    fig, axes = plt.subplots(1, 2, figsize=(9, 3.2), constrained_layout=True)
+    for ax, name, label in ((axes[0], "tick_lateness", "lateness"), (axes[1], "tick_compute", "compute time")):
+        v = s[name] * 1e6
+        hi = max(float(np.percentile(v, 99.9)), 1.0)
+        ax.hist(np.clip(v, 0, hi), bins=80, color="tab:blue")
+        ax.set_yscale("log")
+        ax.set_xlabel(f"{label} [us], clipped at p99.9 = {hi:.1f} us", fontsize=8)
+        ax.set_ylabel("ticks")
+        ax.grid(True, lw=0.3)
+    fig.suptitle("paced timing per tick", fontsize=10)
+    fig.savefig(dest, dpi=90)
+    plt.close(fig)
+    return dest
+
+
+def write_report(run: Run, dest: Path | None = None) -> Path:
+    """Write ``report.md`` (and its PNGs in ``report/``) for a finished run; return its path."""
+    from .plots import overview_png
+    if not run.summary:
+        raise RecordingError(f"{run.folder}: no summary.json (the run did not finish): no report")
+    s = run.summary
+    dest = Path(dest) if dest else run.folder / "report.md"
+    pics = dest.parent / "report"
+    pics.mkdir(parents=True, exist_ok=True)
+    over = overview_png(run, pics / "overview.png")
+    tim = timing_png(run, pics / "timing.png")
+    rel = lambda p: p.relative_to(dest.parent).as_posix()  # noqa: E731
+    L: list[str] = []
+    title = s.get("title") or run.folder.name
+    L.append(f"# Run report: {title}")
+    L.append("")
+    if s.get("demo_data"):
+        L.append("**Demo data**: an invented scenario, not measurements of real equipment.")
+        L.append("")
+    L.append(f"> **Caution.** {CAUTION}")
+    L.append("")
+    L.append("## Outcome")
+    L.append("")
+    L.append("| item | value |")
+    L.append("| --- | --- |")
+    outcome = "completed" if s.get("completed") else f"ended: {s.get('end_event') or 'interrupted'}"
+    trip = s.get("trip")
+    rows = [("run folder", str(run.folder)), ("mode", s.get("mode")),
+            ("plant / controller / reference", f"{s.get('plant')} / {s.get('controller')} / {s.get('reference')}"),
+            ("tick period", f"{s.get('Ts_s', 0) * 1e6:g} us, {s.get('substeps')} RK4 substeps"),
+            ("simulated", f"{s.get('simulated_s', 0):.6g} s ({s.get('ticks_run')} of {s.get('ticks_planned')} ticks)"),
+            ("outcome", outcome), ("seed", s.get("seed")),
+            ("first trip", "none" if not trip else
+             f"{trip['cause']} at t = {trip['time_s']:.6g} s (tick {trip['tick']}), value {trip.get('value', float('nan')):.6g}")]
+    for k, v in rows:
+        L.append(f"| {k} | {_fmt(v)} |")
+    L.append("")
+    L.append("## Tracking metrics")
+    L.append("")
+    L.append("| metric | value |")
+    L.append("| --- | --- |")
+    for k, v in (s.get("metrics") or {}).items():
+        L.append(f"| {k} | {_fmt(v)} |")
+    steps = s.get("steps") or []
+    if steps:
+        L.append("")
+        L.append("Reference steps (10-90 % rise, 2 % settling, overshoot, the definitions of "
+                 "python-control's `step_info`):")
+        L.append("")
+        keys = list(steps[0].keys())
+        L.append("| " + " | ".join(keys) + " |")
+        L.append("| " + " | ".join("---" for _ in keys) + " |")
+        for st in steps:
+            L.append("| " + " | ".join(_fmt(st[k]) for k in keys) + " |")
+    L.append("")
+    L.append("## Interlock and watchdog events")
+    L.append("")
+    evs = s.get("events") or []
+    if evs:
+        L.append("| tick | time [s] | event | cause | value |")
+        L.append("| --- | --- | --- | --- | --- |")
+        for e in evs:
+            L.append(f"| {_fmt(e.get('tick'))} | {_fmt(e.get('time_s'))} | {e.get('event')} | "
+                     f"{e.get('cause', e.get('detail', ''))} | {_fmt(e.get('value'))} |")
+    else:
+        L.append("No trips, resets or other events.")
+    if s.get("faults"):
+        L.append("")
+        L.append("Faults injected:")
+        L.append("")
+        for f in s["faults"]:
+            L.append(f"- {f['kind']}" + (f" on {f['signal']}" if f.get("signal") else "")
+                     + (f" when {f['when']}" if f.get("when") else "")
+                     + f": active from {_fmt(f['active_from_s'])} s to {_fmt(f['active_to_s'])} s")
+    L.append("")
+    L.append("## Plots")
+    L.append("")
+    L.append(f"![v_out and reference, error, command, currents, trip marker]({rel(over)})")
+    L.append("")
+    L.append("## Timing")
+    L.append("")
+    tm = s.get("timing") or {}
+    L.append("| quantity | value |")
+    L.append("| --- | --- |")
+    for k in ("compile_or_load_s", "loop_s", "write_s", "wall_s", "loop_ns_per_tick",
+              "ticks_per_s", "realtime_factor"):
+        if k in tm:
+            L.append(f"| {k} | {_fmt(tm[k])} |")
+    pc = s.get("paced")
+    if pc:
+        for k in ("late_ticks", "deadline_misses", "overruns", "wait"):
+            L.append(f"| paced {k} | {_fmt(pc.get(k))} |")
+        for k in ("lateness_us", "compute_us"):
+            d = pc[k]
+            L.append(f"| paced {k} p50 / p99 / max | {_fmt(d['p50'])} / {_fmt(d['p99'])} / {_fmt(d['max'])} |")
+    br = s.get("bridge")
+    if br:
+        for k, v in br.items():
+            if isinstance(v, (int, float, str)) or v is None:
+                L.append(f"| bridge {k} | {_fmt(v)} |")
+        rtt = br.get("rtt_us") or br.get("response_us")
+        if rtt:
+            L.append(f"| bridge round trip p50 / p99 / max [us] | {_fmt(rtt['p50'])} / {_fmt(rtt['p99'])} / {_fmt(rtt['max'])} |")
+    if tim:
+        L.append("")
+        L.append(f"![paced timing histograms]({rel(tim)})")
+    elif not pc:
+        L.append("")
+        L.append("SIL and bridge runs have no per-tick wall-clock stamps (SIL has no wall clock "
+                 "inside a tick): no timing histogram.")
+    L.append("")
+    L.append("## Versions")
+    L.append("")
+    for k, v in (s.get("versions") or {}).items():
+        L.append(f"- {k} {v}")
+    L.append("")
+    L.append("## Scenario")
+    L.append("")
+    L.append("```toml")
+    L.append(run.attrs.get("scenario_text", "").rstrip())
+    L.append("```")
+    L.append("")
+    dest.write_text("\n".join(L))
+    return dest
+
+
+def export_mdf4(run: Run, dest: Path) -> Path:
+    """Write the recording as ASAM MDF 4 (through asammdf): one channel per signal with its
+    unit and description, the run's time as the master channel."""
+    try:
+        from asammdf import MDF, Signal
+    except ImportError:
+        raise RecordingError("MDF4 export needs the optional package asammdf: "
+                             "pip install 'hilrig[mdf]' (or pip install asammdf)") from None
+    mdf = MDF(version="4.10")
+    sigs = []
+    for name, v in run.signals.items():
+        sigs.append(Signal(samples=np.asarray(v, dtype=np.float64), timestamps=run.time,
+                           name=name, unit=run.units.get(name, ""),
+                           comment=f"hilrig signal {name}"))
+    comment = json.dumps({"title": run.attrs.get("title", ""), "demo_data": bool(run.attrs.get("demo_data")),
+                          "plant": run.attrs.get("plant"), "controller": run.attrs.get("controller")})
+    mdf.append(sigs, comment=comment)
+    mdf.save(dest, overwrite=True)
+    mdf.close()
+    return dest

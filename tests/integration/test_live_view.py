@@ -1,0 +1,175 @@
+"""The live view: a paced run in tmux (a real terminal, 80 x 24) starts its viewer by itself;
+the screen shows the panels and the high-voltage caution; a reset pressed while the trip's
+cause persists is refused, one pressed after it is gone is accepted; the run ends by itself.
+And a plain-text viewer survives the runtime going away and says so.
+
+Trip and reset semantics: common practice, no source (ISO 13849-1 5.2.2.3 asks for a separate,
+intended reset, from memory). Screen contents are read with tmux capture-pane."""
+import json
+import os
+import re
+import shutil
+import signal
+import subprocess
+import sys
+import time
+from pathlib import Path
+
+import pytest
+
+CLI = [sys.executable, "-m", "hilrig.runtime.cli"]
+
+
+def _live_scenario(demo_path: str, folder: Path) -> Path:
+    """Test data: the demo's emulator into a 4 ohm resistive load for 6 s; the v_out sensor
+    drops out (NaN) from 1.0 s to 2.5 s; the safe output holds 400 V so the run goes on
+    after the trip."""
+    s = Path(demo_path).read_text().replace('duration = "1.5 s"', 'duration = "6 s"')
+    i, j = s.index("[load]"), s.index("[limits]")
+    s = s[:i] + '[load]\n[[load.points]]\nt = "0 s"\nR = "4 ohm"\n\n' + s[j:]
+    s = s.replace('v_collapse = "25 V"', 'v_collapse = "25 V"\nsafe_u = "400 V"')
+    s = s[:s.index("[[interlocks]]")]
+    s += ('[[interlocks]]\nsignal = "v_out"\nabove = "480 V"\n\n'
+          '[[faults]]\nkind = "dropout"\nsignal = "v_out"\nstart = "1 s"\nend = "2.5 s"\n')
+    f = folder / "live.toml"
+    f.write_text(s)
+    return f
+
+
+def _pane(session: str) -> str:
+    return subprocess.run(["tmux", "capture-pane", "-p", "-t", session], capture_output=True,
+                          text=True, timeout=30).stdout
+
+
+def _wait_for(session: str, pred, limit_s: float, what: str) -> str:
+    deadline = time.monotonic() + limit_s
+    while time.monotonic() < deadline:
+        text = _pane(session)
+        if pred(text):
+            return text
+        time.sleep(0.2)
+    raise AssertionError(f"timed out waiting for {what}; the screen:\n{_pane(session)}")
+
+
+def _sim_time(text: str) -> float:
+    m = re.search(r"t = ([0-9.]+) s of", text)
+    return float(m.group(1)) if m else -1.0
+
+
+@pytest.mark.skipif(shutil.which("tmux") is None, reason="tmux is not installed")
+def test_live_view_in_a_terminal_refuses_then_accepts_a_reset(tmp_path, demo_path):
+    scen = _live_scenario(demo_path, tmp_path)
+    session = f"hilrig-test-{os.getpid()}"
+    cache = os.environ["HILRIG_CACHE_DIR"]
+    cmd = (f"cd {tmp_path} && HILRIG_CACHE_DIR={cache} {' '.join(CLI)} run {scen} --paced "
+           f"--out {tmp_path / 'r'}; echo EXIT=$?; sleep 120")
+    subprocess.run(["tmux", "new-session", "-d", "-s", session, "-x", "80", "-y", "24", cmd],
+                   check=True, timeout=30)
+    try:
+        screen = _wait_for(session, lambda t: "TRIPPED" in t, 300, "the trip")
+        for panel in ("hilrig live view", "signals", "protection", "timing", "CAUTION",
+                      "not safety-rated", "keys:", "v_out (o) and reference (.)"):
+            assert panel in screen, (panel, screen)
+        assert "non-finite value of v_out" in screen
+        assert all(len(line) <= 80 for line in screen.splitlines())
+        # the sensor is still out: the reset is refused, with the reason on the screen
+        subprocess.run(["tmux", "send-keys", "-t", session, "r"], check=True, timeout=30)
+        _wait_for(session, lambda t: "reset refused" in t and "still holds" in t, 20,
+                  "the refused reset")
+        # after 2.5 s the measurement is back: the reset is accepted and the trip clears
+        _wait_for(session, lambda t: _sim_time(t) > 2.8, 60, "t > 2.8 s")
+        subprocess.run(["tmux", "send-keys", "-t", session, "r"], check=True, timeout=30)
+        _wait_for(session, lambda t: "reset accepted" in t or "armed, no trip" in t, 20,
+                  "the accepted reset")
+        # the run ends by itself; the viewer closes and the summary follows
+        _wait_for(session, lambda t: "EXIT=0" in t, 120, "the end of the run")
+    finally:
+        subprocess.run(["tmux", "kill-session", "-t", session], timeout=30)
+    s = json.loads((tmp_path / "r" / "summary.json").read_text())
+    kinds = [e["event"] for e in s["events"]]
+    assert "trip" in kinds and "reset refused" in kinds and "reset accepted" in kinds
+    assert kinds.index("reset refused") < kinds.index("reset accepted")
+    assert s["completed"] and s["mode"] == "paced"
+
+
+def test_plain_viewer_says_when_the_runtime_is_gone(tmp_path, demo_path):
+    port = _free_port()
+    address = f"tcp://127.0.0.1:{port}"
+    text = Path(demo_path).read_text().replace('duration = "1.5 s"', 'duration = "600 s"')
+    scen = tmp_path / "long.toml"
+    scen.write_text(text)
+    run = subprocess.Popen(CLI + ["run", str(scen), "--paced", "--telemetry", address,
+                                  "--out", str(tmp_path / "r"), "--headless"],
+                           stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
+    viewer = subprocess.Popen(CLI + ["watch", address, "--plain", "--give-up", "8"],
+                              stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
+    try:
+        # wait until the viewer shows frames, then kill the runtime without warning
+        deadline = time.monotonic() + 240
+        lines = []
+        while time.monotonic() < deadline:
+            line = viewer.stdout.readline()
+            lines.append(line)
+            if "protection" in line:
+                break
+        assert any("protection" in x for x in lines), lines
+        run.send_signal(signal.SIGKILL)
+        run.wait(timeout=60)
+        out, err = viewer.communicate(timeout=120)
+    finally:
+        for p in (run, viewer):
+            if p.poll() is None:
+                p.kill()
+                p.communicate(timeout=60)
+    assert "the runtime is gone" in out
+    assert "giving up" in out  # it kept waiting until its own limit, then closed in order
+    assert viewer.returncode == 0 and "Traceback" not in err
+
+
+def _free_port() -> int:
+    import socket
+    with socket.socket() as s:
+        s.bind(("127.0.0.1", 0))
+        port = s.getsockname()[1]
+    return port
+
+
+@pytest.mark.parametrize("mode", ["sil", "paced"])
+def test_stop_command_ends_the_run_in_order(tmp_path, demo_path, mode):
+    """A viewer's stop: one more tick with the safe output latched ("stop requested"), then
+    the run ends with the recording closed."""
+    import zmq
+    port = _free_port()
+    address = f"tcp://127.0.0.1:{port}"
+    text = Path(demo_path).read_text().replace('duration = "1.5 s"', 'duration = "600 s"')
+    scen = tmp_path / "long.toml"
+    scen.write_text(text)
+    args = CLI + ["run", str(scen), "--telemetry", address, "--out", str(tmp_path / "r"),
+                  "--headless"] + (["--paced"] if mode == "paced" else [])
+    run = subprocess.Popen(args, stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
+    ctx = zmq.Context.instance()
+    sub = ctx.socket(zmq.SUB)
+    sub.setsockopt(zmq.SUBSCRIBE, b"")
+    sub.connect(address)
+    push = ctx.socket(zmq.PUSH)
+    push.setsockopt(zmq.LINGER, 0)
+    push.connect(f"tcp://127.0.0.1:{port + 1}")
+    try:
+        assert sub.poll(240_000), "no telemetry"
+        sub.recv()
+        push.send(b"stop")
+        out, err = run.communicate(timeout=120)
+    finally:
+        sub.close(0)
+        push.close(0)
+        if run.poll() is None:
+            run.kill()
+            run.communicate(timeout=60)
+    assert run.returncode == 0, out + err
+    s = json.loads((tmp_path / "r" / "summary.json").read_text())
+    assert s["end_event"] == "stopped by the operator", s["events"]
+    assert s["trip"]["cause_id"] == "stop requested"
+    from hilrig.runtime.recording import open_run
+    rec = open_run(tmp_path / "r")
+    assert rec.attrs["complete"] and rec.time.shape[0] == s["ticks_run"]
+    assert rec.signals["u"][-1] == 0.0 and rec.signals["u"][-2] > 0.0
