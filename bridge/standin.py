@@ -53,15 +53,45 @@ class Faults:
 
     def active(self) -> bool:
         return bool(self.drop or self.delay_s or self.jitter_s or self.freeze_after is not None
-                    or self.corrupt_every or self.disconnect_after is not None)
+                    or self.corrupt_every or self.disconnect_after is not None or self.windows)
+
+    #: scheduled link faults from the scenario: (first tick, end tick, kind, value)
+    windows: list = []
+    #: the simulator's current tick (set by the serving loop before each send)
+    tick = 0
+
+    def schedule(self, faults, ts: float, datagrams: bool, log) -> None:
+        """Take the scenario's link faults (``link_loss``, ``link_delay``, ``link_freeze``,
+        ``link_disconnect``) on their schedule."""
+        self.windows = []
+        for f in faults:
+            k0 = int(round(f.start / ts))
+            k1 = int(round(f.end / ts)) if f.end != float("inf") else None
+            if f.kind == "link_freeze":
+                self.freeze_after = k0 if self.freeze_after is None else min(self.freeze_after, k0)
+            elif f.kind == "link_disconnect":
+                self.disconnect_after = (k0 if self.disconnect_after is None
+                                         else min(self.disconnect_after, k0))
+            elif f.kind == "link_loss" and not datagrams:
+                log("stand-in simulator: the scenario's link_loss is not applied: ZeroMQ "
+                    "request/reply cannot skip a reply (use udp://)")
+            elif f.kind in ("link_loss", "link_delay"):
+                self.windows.append((k0, k1, f.kind, f.value))
 
     def wire(self, data: bytes) -> bytes | None:
         """The bytes to send for a reply, or None to drop it."""
-        if self.drop and self.rng.random() < self.drop:
+        drop, delay = self.drop, self.delay_s
+        for k0, k1, kind, value in self.windows:
+            if k0 <= self.tick and (k1 is None or self.tick < k1):
+                if kind == "link_loss":
+                    drop = max(drop, value)
+                else:
+                    delay += value
+        if drop and self.rng.random() < drop:
             self.dropped += 1
             return None
-        if self.delay_s or self.jitter_s:
-            time.sleep(self.delay_s + self.jitter_s * self.rng.random())
+        if delay or self.jitter_s:
+            time.sleep(delay + self.jitter_s * self.rng.random())
         self.replies += 1
         if self.corrupt_every and self.replies % self.corrupt_every == 0:
             self.corrupted += 1
@@ -198,6 +228,8 @@ def serve(sc, bind: str, *, sessions: int | None = None, allow_remote: bool = Fa
         raise ValueError("--drop needs a datagram transport (udp://): ZeroMQ request/reply "
                          "cannot skip a reply; use --freeze-after to stop answering")
     sim = StandIn(sc)
+    faults.schedule([f for f in sc.faults if f.kind.startswith("link_")], sc.Ts,
+                    bind.startswith("udp://"), log)
     rep = server_for(bind, allow_remote=allow_remote, curve_keys=curve_keys)
     if commands is not None:
         start_command_reader(faults, commands, lambda: sim.k, bind.startswith("udp://"), log)
@@ -207,6 +239,7 @@ def serve(sc, bind: str, *, sessions: int | None = None, allow_remote: bool = Fa
     log(f"stand-in simulator: {sc.plant.plugin.name}, Ts = {sc.Ts:g} s, listening on {bind}")
 
     def send(data: bytes) -> None:
+        faults.tick = sim.k
         wire = faults.wire(data) if faults.active() else data
         if wire is not None:
             rep.send(wire)
@@ -294,6 +327,7 @@ def serve_free_running(sc, bind: str, *, sessions: int | None = None,
     faults = faults or Faults()
     from .transport import free_running_link
     sim = StandIn(sc)
+    faults.schedule([f for f in sc.faults if f.kind.startswith("link_")], sc.Ts, True, log)
     link = free_running_link(bind, bind=True)
     if commands is not None:
         # a free-running simulator sends its samples unasked: dropping them works on any transport
@@ -392,6 +426,7 @@ def serve_free_running(sc, bind: str, *, sessions: int | None = None,
                     reason = "frozen"
                     break
                 data = sim.sample(sim.k)
+                faults.tick = sim.k
                 wire = faults.wire(data) if faults.active() else data
                 if wire is not None:
                     link.send(wire)

@@ -16,7 +16,8 @@ import numpy as np
 
 from hilrig.plugins.base import LOAD_SIGNALS, REFERENCE_SIGNALS, BuildContext
 from hilrig.safety.faults import table as fault_table
-from hilrig.safety.interlocks import (DERIVED, EVENT_NAMES, EVT_TRIP, InterlockTable,
+from hilrig.safety.interlocks import (DERIVED, EVENT_NAMES, EVT_RESET_IDLE, EVT_TRIP,
+                                      InterlockTable,
                                       new_event_log, new_latch, new_watchdog)
 
 from . import loop as loopgen
@@ -170,7 +171,7 @@ def prepare(sc: Scenario) -> Prepared:
         dix=np.array([outputs.index(n) if n in outputs else -1 for n in ("v_out", "i_out")],
                      dtype=np.int64),
         lim_sig=table.sig, lim_side=table.side, lim_thr=table.thr, lim_deb=table.deb,
-        lim_cnt=np.zeros(len(table.rows), dtype=np.int64), latch=new_latch(),
+        lim_cnt=np.zeros(len(table.rows), dtype=np.int64), latch=_latch(table),
         pv=np.zeros(2 * (ny + nu + len(DERIVED))), y=np.zeros(ny), d=np.zeros(3),
         wd=new_watchdog(sc.watchdogs["overrun_budget"], int(sc.watchdogs["overrun_ticks"])),
         ev=np.zeros(2), seed=np.int64(sc.seed % (2**32)),
@@ -180,6 +181,13 @@ def prepare(sc: Scenario) -> Prepared:
     )
     return Prepared(sc=sc, args=args, signals=signals, table=table, y_names=outputs,
                     u_names=u_names, v0=v0)
+
+
+def _latch(table: InterlockTable) -> np.ndarray:
+    from hilrig.safety.interlocks import L_WARN_MASK
+    latch = new_latch()
+    latch[L_WARN_MASK] = float(table.warn_mask())
+    return latch
 
 
 def compile_loop(sc: Scenario, notice: Callable[[str], None] | None = None):
@@ -225,8 +233,16 @@ def supervision_args(a: dict) -> tuple:
 def _fault_times(sc: Scenario, a: dict) -> list[dict[str, Any]]:
     """Each fault with the times it was active (a conditional one: from its trigger; None if
     its condition never held)."""
+    from hilrig.safety.faults import LINK_KINDS
     out = []
-    for i, f in enumerate(sc.faults):
+    i = -1
+    for f in sc.faults:
+        if f.kind in LINK_KINDS:
+            out.append({"kind": f.kind, "applies_to": "the stand-in simulator (bridge runs)",
+                        "active_from_s": f.start,
+                        "active_to_s": f.end if f.end != float("inf") else None})
+            continue
+        i += 1
         t0, t1 = float(a["f_t0"][i]), float(a["f_t1"][i])
         e: dict[str, Any] = {"kind": f.kind}
         if f.signal:
@@ -421,7 +437,7 @@ def execute(sc: Scenario, prep: Prepared, folder: Path,
     for row in a["evlog"][:min(int(a["evn"][0]), a["evlog"].shape[0])]:
         tick_k, kind, cause, value = int(row[0]), int(row[1]), int(row[2]), float(row[3])
         e = {"event": EVENT_NAMES[kind], "tick": tick_k, "time_s": tick_k * sc.Ts}
-        if kind != 4:
+        if kind != EVT_RESET_IDLE:
             e["cause"] = prep.table.cause_text(cause, len(prep.y_names))
             e["cause_id"] = prep.table.cause_id(cause)
         if kind == EVT_TRIP:
@@ -434,8 +450,8 @@ def execute(sc: Scenario, prep: Prepared, folder: Path,
     events = log_events + events
     result = writer.metrics_result() if more else metrics.result()
     result["trips"] = len(trips)
-    ending = [e for e in events if e["event"] not in ("trip", "reset accepted", "reset refused",
-                                                      "reset (nothing latched)", "event log full")
+    result["warnings"] = sum(e["event"] == "warning" for e in log_events)
+    ending = [e for e in events if e["event"] not in set(EVENT_NAMES.values()) | {"event log full"}
               and e.get("ends_run", True)]
     end_event = ending[0]["event"] if ending else None
     summary = {

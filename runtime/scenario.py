@@ -47,7 +47,7 @@ LIMITS = {"v_collapse": ("V", 25.0, (0.0, 1e5)), "safe_u": ("V", 0.0, (-1e5, 1e5
 RECORDING = {"chunk": ("s", 1.0, (1e-4, 3600.0))}
 RECORDING_CHOICES = {"compression": ("none", "gzip")}
 LOAD_COLUMNS = {"P": "W", "R": "ohm", "I": "A"}
-INTERLOCK_KEYS = {"signal", "above", "below", "magnitude_above", "frozen", "debounce"}
+INTERLOCK_KEYS = {"signal", "above", "below", "magnitude_above", "frozen", "debounce", "action"}
 INTERLOCK_SIDES = ("above", "below", "magnitude_above", "frozen")
 #: watchdogs: overrun budget 0 = off; stale limit 0 = automatic (20 periods, at least 50 ms)
 WATCHDOGS = {"overrun_budget": ("s", 0.0, (0.0, 10.0)), "overrun_ticks": ("-", 1, (1, 1_000_000)),
@@ -419,6 +419,10 @@ def _interlocks(cx, raw, plant: PluginChoice, controller: PluginChoice) -> list[
                           "'frozen'")
         side = sides[0]
         unit = signals[sig]
+        action = it.get("action", "trip")
+        if action not in ("trip", "warn"):
+            raise cx.fail(f"{where}.action", f" = {action!r}; write \"trip\" (latch and force the "
+                          f"safe output, the default) or \"warn\" (log, never trip)")
         if side == "frozen":
             if "debounce" in it:
                 raise cx.fail(where, ": 'frozen' is itself the tick count; remove 'debounce'")
@@ -430,7 +434,7 @@ def _interlocks(cx, raw, plant: PluginChoice, controller: PluginChoice) -> list[
                 raise cx.fail(f"{where}.frozen", f" = {n!r} is not a whole number of ticks in "
                               f"[1, 1000000]")
             out.append(Interlock(signal=sig, threshold=0.0, debounce=n, unit=unit,
-                                 side=SIDE_FROZEN))
+                                 side=SIDE_FROZEN, action=action))
             continue
         lo = 0.0 if side == "magnitude_above" else -1e9
         thr = _quantity(cx, f"{where}.{side}", it[side], unit, (lo, 1e9))
@@ -439,7 +443,7 @@ def _interlocks(cx, raw, plant: PluginChoice, controller: PluginChoice) -> list[
             raise cx.fail(f"{where}.debounce", f" = {deb!r} is not a whole number of ticks in [1, 1000000]")
         code = {"above": SIDE_ABOVE, "below": SIDE_BELOW, "magnitude_above": SIDE_MAGNITUDE}[side]
         out.append(Interlock(signal=sig, threshold=thr, above=side != "below", debounce=deb,
-                             unit=unit, side=code))
+                             unit=unit, side=code, action=action))
     return out
 
 
@@ -465,6 +469,9 @@ def _faults(cx, raw, plant: PluginChoice, duration: float) -> list[Fault]:
             raise cx.fail(f"{where}.kind", f" = {kind!r} is not a fault kind{hint} "
                           f"(kinds: {', '.join(fault_kinds.KINDS)})")
         when = it.get("when")
+        if when is not None and kind in fault_kinds.LINK_KINDS:
+            raise cx.fail(f"{where}.when", f": a {kind} fault acts on the link to the simulator "
+                          f"on a schedule; give start (and end), not a condition")
         if when is not None and not isinstance(when, dict):
             raise cx.fail(f"{where}.when", f" = {when!r} is not a table such as "
                           f"{{ signal = \"v_out\", above = \"450 V\" }}")
@@ -508,8 +515,9 @@ def _faults(cx, raw, plant: PluginChoice, duration: float) -> list[Fault]:
                 raise cx.fail(f"{where}.signal", f" = {signal!r} is not a measured signal of this "
                               f"plant{hint} (signals: {', '.join(signals)})")
         elif "signal" in it:
-            raise cx.fail(f"{where}.signal", f": a {kind} fault acts on the "
-                          f"{'load' if kind in fault_kinds.LOAD_KINDS else 'controller output'}, "
+            target = ("load" if kind in fault_kinds.LOAD_KINDS else "link to the simulator"
+                      if kind in fault_kinds.LINK_KINDS else "controller output")
+            raise cx.fail(f"{where}.signal", f": a {kind} fault acts on the {target}, "
                           f"not on a signal; remove the key")
         unit = fault_kinds.VALUE_UNITS[kind]
         value = 0.0
@@ -520,10 +528,12 @@ def _faults(cx, raw, plant: PluginChoice, duration: float) -> list[Fault]:
             if "value" not in it:
                 raise cx.fail(where, f" ({kind}) needs a value")
             unit = unit or signals[signal]
-            lo, lower_open = ((0.0, True) if kind in ("short_circuit", "noise", "overrun")
-                              else (-1e9, False))
-            value = _quantity(cx, f"{where}.value", it["value"], unit, (lo, 1e9),
-                              lower_open=lower_open)
+            lo, lower_open = ((0.0, True) if kind in ("short_circuit", "noise", "overrun",
+                                                      "link_loss")
+                              else (0.0, False) if kind == "link_delay" else (-1e9, False))
+            value = _quantity(cx, f"{where}.value", it["value"], unit,
+                              (lo, 0.999 if kind == "link_loss" else 10.0 if kind == "link_delay"
+                               else 1e9), lower_open=lower_open)
         out.append(Fault(kind=kind, start=start, end=end, signal=signal, value=value, **cond))
     return out
 

@@ -125,7 +125,7 @@ class Telemetry:
         for r in evlog[max(0, min(n_ev, evlog.shape[0]) - 6):min(n_ev, evlog.shape[0])]:
             kind = int(r[1])
             text = EVENT_NAMES.get(kind, str(kind))
-            if kind in (1, 2, 3):
+            if kind in (1, 2, 3, 5, 6):
                 text += ": " + self.table.cause_text(int(r[2]))
             if kind == 3:
                 text += " still holds"

@@ -38,13 +38,17 @@ from numba import njit
 SENSOR_KINDS = ("offset", "gain", "stuck", "noise", "dropout")
 LOAD_KINDS = ("power_step", "short_circuit", "open_circuit")
 CONTROLLER_KINDS = ("nan_output", "overrun")
-KINDS = SENSOR_KINDS + LOAD_KINDS + CONTROLLER_KINDS
+#: faults of the link to an external simulator: the stand-in simulator applies them (bridge
+#: runs); the compiled loop never sees them, and a SIL run has no link
+LINK_KINDS = ("link_loss", "link_delay", "link_freeze", "link_disconnect")
+KINDS = SENSOR_KINDS + LOAD_KINDS + CONTROLLER_KINDS + LINK_KINDS
 STAGE_LOAD, STAGE_SENSOR, STAGE_CONTROLLER = 0, 1, 2
 K_OVERRUN = KINDS.index("overrun")
 #: value units by kind ("" = the signal's own unit)
 VALUE_UNITS = {"offset": "", "gain": "-", "stuck": None, "noise": "", "dropout": None,
                "power_step": "W", "short_circuit": "ohm", "open_circuit": None,
-               "nan_output": None, "overrun": "s"}
+               "nan_output": None, "overrun": "s",
+               "link_loss": "-", "link_delay": "s", "link_freeze": None, "link_disconnect": None}
 
 
 @dataclass(frozen=True)
@@ -79,6 +83,7 @@ def table(faults: list[Fault], outputs: list[str]) -> dict[str, np.ndarray]:
     """Arrays for the kernel: stage, kind code, signal index, start, end, value, stuck-hold, and
     per fault its condition row [signal index (-1: timed), 1 above / 0 below, threshold, watched
     from, duration] (a conditional fault's start and end are +inf until it triggers)."""
+    faults = [f for f in faults if f.kind not in LINK_KINDS]
     n = len(faults)
     tab = dict(f_stage=np.zeros(n, np.int64), f_kind=np.zeros(n, np.int64),
                f_sig=np.zeros(n, np.int64), f_t0=np.zeros(n), f_t1=np.zeros(n),

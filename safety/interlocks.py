@@ -42,7 +42,10 @@ from .errors import InterlockConfigError
 #: controller on the next tick, after an accepted reset; L_RESET_NOW: an operator's reset
 #: request from the live view, taken on the next tick)
 L_TRIPPED, L_CAUSE, L_TICK, L_TIME, L_VALUE, L_LOGGED, L_REINIT, L_RESET_NOW = range(8)
-LATCH_SIZE = 8
+#: the last tick's interlock word (to log conditions as they start) and the mask of the rows
+#: whose action is "warn" (they log, never trip); both fit float64 exactly (bits below 53)
+L_PREV_WORD, L_WARN_MASK = 8, 9
+LATCH_SIZE = 10
 #: cause codes: 1 + row for a limit row; these offsets for plausibility causes
 CAUSE_NONFINITE = 1000   # + index into [y..., u...]
 CAUSE_CONTROLLER = 2000  # + the controller's fault code if > 0; -CAUSE_CONTROLLER + code if < 0
@@ -64,6 +67,8 @@ CONDITIONS = (((1 << MAX_ROWS) - 1) | (1 << BIT_NONFINITE) | (1 << BIT_CONTROLLE
               | (((1 << len(WD_NAMES)) - 1) << BIT_WATCHDOG))
 #: interlock sides
 SIDE_BELOW, SIDE_ABOVE, SIDE_MAGNITUDE, SIDE_FROZEN = 0, 1, 2, 3
+#: added to a row's side code when its action is "warn"
+SIDE_WARN = 8
 SIDE_WORDS = {SIDE_BELOW: "below", SIDE_ABOVE: "above", SIDE_MAGNITUDE: "magnitude_above",
               SIDE_FROZEN: "frozen"}
 #: derived signals appended to the protect vector: name, unit, description
@@ -78,9 +83,12 @@ W_BUDGET, W_DEB, W_CNT, W_HOST_TIME, W_HOST_BITS, W_HOST_VALUE, W_FORCED, W_LAST
 WD_SIZE = 8
 HOST_STALE, HOST_GAP, HOST_LOST, HOST_STOP = 1, 2, 4, 8
 #: event log: rows of (tick, kind, cause, value); kinds
-EVT_TRIP, EVT_RESET_ACCEPTED, EVT_RESET_REFUSED, EVT_RESET_IDLE = 1, 2, 3, 4
+EVT_TRIP, EVT_RESET_ACCEPTED, EVT_RESET_REFUSED, EVT_RESET_IDLE, EVT_WARN, EVT_ALSO = range(1, 7)
 EVENT_NAMES = {EVT_TRIP: "trip", EVT_RESET_ACCEPTED: "reset accepted",
-               EVT_RESET_REFUSED: "reset refused", EVT_RESET_IDLE: "reset (nothing latched)"}
+               EVT_RESET_REFUSED: "reset refused", EVT_RESET_IDLE: "reset (nothing latched)",
+               EVT_WARN: "warning", EVT_ALSO: "also beyond while tripped"}
+#: cause code logged for "a non-finite value" when the signal is not known (a later cause)
+CAUSE_NONFINITE_ANY = CAUSE_NONFINITE + 999
 EVENT_LOG_SIZE = 256
 
 
@@ -94,6 +102,7 @@ class Interlock:
     debounce: int = 1
     unit: str = ""
     side: int = -1   # SIDE_*; -1: from ``above``
+    action: str = "trip"   # or "warn": logged when it starts, never latched
 
     def __post_init__(self):
         if self.side < 0:
@@ -146,14 +155,21 @@ class InterlockTable:
                 # a NaN limit would trip on every tick (every comparison is written so NaN trips)
                 raise InterlockConfigError(f"interlock on {r.signal}: threshold {r.threshold!r} "
                                            f"{r.unit} is not finite".replace("  ", " "))
+            if r.action not in ("trip", "warn"):
+                raise InterlockConfigError(f"interlock on {r.signal}: action {r.action!r}; "
+                                           f"actions: trip, warn")
             if r.debounce < 1:
                 raise InterlockConfigError(f"interlock on {r.signal}: debounce {r.debounce} < 1 tick")
             sig.append(names.index(r.signal))
         return cls(rows=list(rows), names=list(names),
                    sig=np.array(sig, dtype=np.int64),
-                   side=np.array([r.side_code for r in rows], dtype=np.int64),
+                   side=np.array([r.side_code + (SIDE_WARN if r.action == "warn" else 0)
+                                  for r in rows], dtype=np.int64),
                    thr=np.array([r.threshold for r in rows], dtype=np.float64),
                    deb=np.array([r.debounce for r in rows], dtype=np.int64))
+
+    def warn_mask(self) -> int:
+        return sum(1 << j for j, r in enumerate(self.rows) if r.action == "warn")
 
     def cause_text(self, cause: int, n_y: int = 0) -> str:
         """Human-readable latched cause."""
@@ -168,7 +184,7 @@ class InterlockTable:
             return "interlock " + self.rows[cause - 1].describe()
         if cause < CAUSE_CONTROLLER:
             j = cause - CAUSE_NONFINITE
-            return f"non-finite value of {self.names[j] if j < len(self.names) else j}"
+            return f"non-finite value of {self.names[j] if j < len(self.names) else 'a signal'}"
         return f"controller fault code {cause - CAUSE_CONTROLLER}"
 
     def cause_id(self, cause: int) -> str:
@@ -184,7 +200,7 @@ class InterlockTable:
         if cause < CAUSE_NONFINITE:
             return self.rows[cause - 1].cause_id()
         j = cause - CAUSE_NONFINITE
-        return f"non-finite {self.names[j] if j < len(self.names) else j}"
+        return f"non-finite {self.names[j] if j < len(self.names) else 'value'}"
 
 
 def new_watchdog(budget_s: float = 0.0, debounce: int = 1) -> np.ndarray:
@@ -227,9 +243,35 @@ def supervise(tick, t, word, latch, reset_t, reset_i, evlog, evn):
     measurements on the next tick (bumpless restart). Returns the interlock word with the reset
     bits set.
     """
+    warn_mask = int(latch[L_WARN_MASK])
+    newly = (word & ~int(latch[L_PREV_WORD])) & CONDITIONS
+    latch[L_PREV_WORD] = float(word & CONDITIONS)
     if latch[L_TRIPPED] != 0.0 and latch[L_LOGGED] == 0.0:
         _log(evlog, evn, tick, EVT_TRIP, latch[L_CAUSE], latch[L_VALUE])
         latch[L_LOGGED] = 1.0
+    if newly != 0:
+        # conditions that start now: warnings always; anything else while a trip is latched
+        # (the first cause stays latched; the later ones are logged)
+        for b in range(53):
+            if not (newly >> b) & 1:
+                continue
+            if b < MAX_ROWS:
+                cause = 1.0 + b
+            elif b == BIT_NONFINITE:
+                cause = float(CAUSE_NONFINITE_ANY)
+            elif b == BIT_CONTROLLER:
+                cause = float(CAUSE_CONTROLLER)
+            else:
+                cause = float(CAUSE_WATCHDOG + b - BIT_WATCHDOG)
+            lc = latch[L_CAUSE]
+            same = (cause == lc
+                    or (b == BIT_NONFINITE and CAUSE_NONFINITE <= lc < CAUSE_CONTROLLER)
+                    or (b == BIT_CONTROLLER and (CAUSE_CONTROLLER <= lc < CAUSE_WATCHDOG
+                                                 or lc <= -CAUSE_CONTROLLER)))
+            if b < MAX_ROWS and (warn_mask >> b) & 1:
+                _log(evlog, evn, tick, EVT_WARN, cause, 0.0)
+            elif latch[L_TRIPPED] != 0.0 and not same:
+                _log(evlog, evn, tick, EVT_ALSO, cause, 0.0)
     i = reset_i[0]
     due = i < reset_t.shape[0] and t >= reset_t[i]
     live = latch[L_RESET_NOW] != 0.0
@@ -240,7 +282,7 @@ def supervise(tick, t, word, latch, reset_t, reset_i, evlog, evn):
         word |= 1 << BIT_RESET_REQUESTED
         if latch[L_TRIPPED] == 0.0:
             _log(evlog, evn, tick, EVT_RESET_IDLE, 0.0, 0.0)
-        elif (word & CONDITIONS) != 0:
+        elif (word & CONDITIONS & ~warn_mask) != 0:
             word |= 1 << BIT_RESET_REFUSED
             _log(evlog, evn, tick, EVT_RESET_REFUSED, latch[L_CAUSE], 0.0)
         else:
@@ -353,6 +395,9 @@ def protect(tick, t, ts, y, u, code, dix, sig, side, thr, deb, cnt, latch, pv, s
             continue
         v = pv[sig[k]]
         sk = side[k]
+        warn = sk >= SIDE_WARN
+        if warn:
+            sk -= SIDE_WARN
         if sk == SIDE_ABOVE:
             beyond = not (v <= thr[k])
         elif sk == SIDE_BELOW:
@@ -364,7 +409,7 @@ def protect(tick, t, ts, y, u, code, dix, sig, side, thr, deb, cnt, latch, pv, s
         if beyond:
             word |= 1 << k
             cnt[k] += 1
-            if cnt[k] >= deb[k]:
+            if cnt[k] >= deb[k] and not warn:
                 _trip(latch, 1 + k, tick, t, v)
         else:
             cnt[k] = 0

@@ -332,8 +332,13 @@ def _run_bridge_case(case: Case, sc, folder: Path) -> tuple[dict, float | None]:
         if sock_dir:
             shutil.rmtree(sock_dir, ignore_errors=True)
     ticks = [b["simulator"][k] for k in ("freeze_after", "disconnect_after") if k in b["simulator"]]
-    fault_s = min(ticks) * sc.Ts if ticks else (0.0 if b["simulator"] else None)
-    return res.summary, fault_s
+    starts = [t * sc.Ts for t in ticks]
+    if b["simulator"] and not ticks:
+        starts.append(0.0)  # drops, delays, corruption: from the start
+    scheduled = _first_fault_s(res.summary)  # the scenario's own faults, link faults included
+    if scheduled is not None:
+        starts.append(scheduled)
+    return res.summary, (min(starts) if starts else None)
 
 
 def _wait_listening(log_path: Path, proc, limit_s: float = 120.0) -> None:

@@ -351,3 +351,25 @@ def test_fault_commands_parse_and_apply(line, expect, field, value):
     f = Faults()
     assert expect in apply_command(f, line, 42, datagrams=True)
     assert getattr(f, field) == value
+
+
+def test_scenario_link_freeze_is_applied_by_the_stand_in(tmp_path, demo_path):
+    """A link fault in the scenario's [[faults]] (timed): the stand-in simulator reads the same
+    scenario and stops answering from that tick; the runtime's staleness watchdog trips."""
+    scen = _scenario(tmp_path, demo_path)
+    scen.write_text(scen.read_text() + '\n[[faults]]\nkind = "link_freeze"\nstart = "10 ms"\n'
+                    '\n[watchdogs]\nstale_limit = "150 ms"\n')
+    address = f"ipc://{tmp_path}/lf.sock"
+    sim = _serve(scen, address)
+    try:
+        p = subprocess.run(CLI + ["run", str(scen), "--bridge", address, "--out", str(tmp_path / "r"),
+                                  "--headless"], capture_output=True, text=True, timeout=600)
+    finally:
+        sim.kill()
+        sim.communicate(timeout=60)
+    assert p.returncode == 0, p.stdout + p.stderr
+    s = json.loads((tmp_path / "r" / "summary.json").read_text())
+    # 10 ms at 50 us: the simulator answers actuations up to tick 199, then goes silent
+    assert s["trip"]["cause_id"] == "watchdog stale" and s["trip"]["tick"] == 201, s["events"]
+    link = [f for f in s["faults"] if f["kind"] == "link_freeze"][0]
+    assert link["applies_to"].startswith("the stand-in simulator") and link["active_from_s"] == 0.01
