@@ -18,8 +18,8 @@ from hilrig.runtime import loop as loopgen
 from hilrig.runtime.run import (RunResult, check_folder, default_folder, execute, fault_args,
                                 prepare, supervision_args)
 
-from hilrig.safety.interlocks import (HOST_GAP, HOST_LOST, HOST_STALE, W_FORCED, W_HOST_BITS,
-                                      W_HOST_TIME, W_HOST_VALUE)
+from hilrig.safety.interlocks import (HOST_GAP, HOST_LOST, HOST_STALE, HOST_STOP, L_RESET_NOW,
+                                      W_FORCED, W_HOST_BITS, W_HOST_TIME, W_HOST_VALUE)
 
 from . import protocol as P
 from .errors import BridgeError, PeerError, ProtocolError, TransportTimeout
@@ -66,6 +66,68 @@ def _tick_args(a: dict) -> tuple:
             a["pv"], *fault_args(a), *supervision_args(a), a["y"], a["d"])
 
 
+class _Live:
+    """The live view of a bridge session: a telemetry frame every ~50 ms of wall time from the
+    tick loop (checked every 256 ticks), and the operator's commands: a stop latches the safe
+    output on the next tick, which is then the last; a reset is requested for the next tick."""
+
+    def __init__(self, sc, prep, address: str | None, allow_remote: bool, stats: "BridgeStats"):
+        self.tel = None
+        if address:
+            from hilrig.runtime.telemetry import Telemetry, telemetry_config
+            self.tel = Telemetry(**telemetry_config(sc, prep, address, allow_remote))
+        self.a, self.ts, self.stats = prep.args, sc.Ts, stats
+        self.stop = False
+        self.from_i = 0
+        self.last = time.perf_counter()
+
+    def chunk(self) -> None:
+        self.from_i = 0
+
+    def host_bits(self) -> float:
+        return float(HOST_STOP) if self.stop else 0.0
+
+    def after_tick(self, k0: int, i: int, rec: np.ndarray) -> bool:
+        """Publish if due; True when the run must end after this tick (operator stop)."""
+        if self.stop:
+            self.a["ev"][0], self.a["ev"][1] = loopgen.EV_STOPPED, k0 + i
+            return True
+        if self.tel is None or (i & 255) != 255:
+            return False
+        now = time.perf_counter()
+        if now - self.last >= 0.05:
+            self.last = now
+            self.publish(k0, i, rec)
+        return False
+
+    def publish(self, k0: int, i: int, rec: np.ndarray, ended: bool = False,
+                end_event: str | None = None) -> None:
+        a = self.a
+        if i + 1 > self.from_i:
+            self.tel.add_rows(k0 + self.from_i, rec[self.from_i:i + 1], self.ts)
+            self.from_i = i + 1
+        for c in self.tel.commands():
+            if c == "stop":
+                self.stop = True
+            elif c == "reset":
+                a["latch"][L_RESET_NOW] = 1.0
+        st = self.stats
+        recent = np.array(st.rtt_ns[-1000:], dtype=float) / 1e3
+        link = {"frames_sent": st.sent, "frames_received": st.received, "lost": st.seq.lost,
+                "resent": getattr(st.link, "resent", 0),
+                "rtt_p99_us": float(np.percentile(recent, 99)) if recent.size else None}
+        self.tel.publish(a["latch"], a["evlog"], a["evn"], force=ended, bridge=link,
+                         ended=ended, end_event=end_event)
+
+    def close(self, summary: dict | None) -> None:
+        if self.tel is None:
+            return
+        if summary is not None:
+            self.tel.publish(self.a["latch"], self.a["evlog"], self.a["evn"], force=True,
+                             ended=True, end_event=summary.get("end_event") or "completed")
+        self.tel.close()
+
+
 class BridgeStats:
     """Frames, losses and round-trip times of one session."""
 
@@ -96,13 +158,16 @@ def run_bridge(sc, address: str, folder: Path | None = None, *, mode: str = "loc
                timeout_s: float = 2.0, allow_remote: bool = False, overwrite: bool = False,
                curve_keys: Path | None = None,
                progress: Callable[[int, int], None] | None = None,
-               notice: Callable[[str], None] | None = None) -> RunResult:
-    """Run the scenario's controller against the simulator at ``address``."""
+               notice: Callable[[str], None] | None = None,
+               telemetry: str | None = None) -> RunResult:
+    """Run the scenario's controller against the simulator at ``address`` (``telemetry``:
+    publish the live view there)."""
     if mode not in MODES:
         raise BridgeError(f"bridge mode {mode!r} is not available; modes: {', '.join(MODES)}")
     if mode == "free-running":
         return run_free_running(sc, address, folder, timeout_s=timeout_s, overwrite=overwrite,
-                                progress=progress, notice=notice)
+                                progress=progress, notice=notice, telemetry=telemetry,
+                                allow_remote=allow_remote)
     sc = dataclasses.replace(sc, mode=mode)
     folder = Path(folder) if folder is not None else default_folder(sc)
     check_folder(folder, overwrite)
@@ -180,8 +245,11 @@ def run_bridge(sc, address: str, folder: Path | None = None, *, mode: str = "loc
     state: dict[str, Any] = {"sample": current, "took": 0.0, "missing": None, "waited": 0.0}
     wd = a["wd"]
 
+    live = _Live(sc, prep, telemetry, allow_remote, stats)
+
     def produce(k0: int, n: int, rec: np.ndarray) -> int:
         targs = _tick_args(a)
+        live.chunk()
         for i in range(n):
             kk = k0 + i
             if state["missing"] is not None:
@@ -208,6 +276,7 @@ def run_bridge(sc, address: str, folder: Path | None = None, *, mode: str = "loc
             a["y"][:] = smp.meas
             a["d"][:] = np.nan  # the load lives in the simulator
             wd[W_HOST_TIME] = state["took"]
+            wd[W_HOST_BITS] = live.host_bits()
             go = tick(kk, i, sc.Ts, sc.v_collapse, a["i_vout"], *targs, rec, a["ev"])
             if wd[W_FORCED] > 0.0:
                 _spin_until(t_in + wd[W_FORCED])
@@ -226,7 +295,7 @@ def run_bridge(sc, address: str, folder: Path | None = None, *, mode: str = "loc
             except ProtocolError as exc:
                 ended.append({"event": "bridge protocol error", "tick": kk, "detail": str(exc)})
                 return i + 1
-            if not go:
+            if not go or live.after_tick(k0, i, rec):
                 return i + 1
         return n
 
@@ -239,21 +308,26 @@ def run_bridge(sc, address: str, folder: Path | None = None, *, mode: str = "loc
                 ended.append({"event": "bridge stop not acknowledged", "detail": str(exc)})
         return ended
 
+    summary = None
     try:
-        return execute(sc, prep, folder, produce,
-                       timing={"compile_or_load_s": t_compile, "compiled_now": False},
-                       progress=progress, extra=lambda: {"bridge": {
-                           "address": address, "mode": mode,
-                           "simulator": welcome.simulator_name, **stats.as_dict()}},
-                       end_events=finish)
+        res = execute(sc, prep, folder, produce,
+                      timing={"compile_or_load_s": t_compile, "compiled_now": False},
+                      progress=progress, extra=lambda: {"bridge": {
+                          "address": address, "mode": mode,
+                          "simulator": welcome.simulator_name, **stats.as_dict()}},
+                      end_events=finish)
+        summary = res.summary
+        return res
     finally:
+        live.close(summary)
         link.close()
 
 
 def run_free_running(sc, address: str, folder: Path | None = None, *, timeout_s: float = 2.0,
                      stale_s: float | None = None, overwrite: bool = False,
                      progress: Callable[[int, int], None] | None = None,
-                     notice: Callable[[str], None] | None = None) -> RunResult:
+                     notice: Callable[[str], None] | None = None,
+                     telemetry: str | None = None, allow_remote: bool = False) -> RunResult:
     """Free-running: the simulator keeps its own clock and sends a sample every period; the
     runtime answers each within the deadline of one period. A lost sample is a gap: the
     controller runs its tick on the last measurement held; more than ``watchdogs.max_gap``
@@ -353,8 +427,11 @@ def run_free_running(sc, address: str, folder: Path | None = None, *, timeout_s:
                 state["lost"] = f"the simulator stopped: {f.reason}"
                 return None
 
+    live = _Live(sc, prep, telemetry, allow_remote, stats)
+
     def produce(k0: int, n: int, rec: np.ndarray) -> int:
         targs = _tick_args(a)
+        live.chunk()
         if not state["started"]:
             # the simulator's clock starts now, with the recording open and the loop ready
             link.send(P.encode(P.Heartbeat(seq=0, t_sender_s=0.0)))
@@ -397,7 +474,7 @@ def run_free_running(sc, address: str, folder: Path | None = None, *, timeout_s:
                 else:
                     counts["held_ticks"] += 1  # sample kk was lost: hold the last measurement
             a["d"][:] = np.nan
-            wd[W_HOST_BITS] = bits
+            wd[W_HOST_BITS] = bits | int(live.host_bits())
             wd[W_HOST_VALUE] = value
             wd[W_HOST_TIME] = state["took"]
             go = tick(kk, i, sc.Ts, sc.v_collapse, a["i_vout"], *targs, rec, a["ev"])
@@ -422,7 +499,7 @@ def run_free_running(sc, address: str, folder: Path | None = None, *, timeout_s:
             if end is not None:
                 ended.append(end)
                 return i + 1
-            if not go:
+            if not go or live.after_tick(k0, i, rec):
                 return i + 1
         return n
 
@@ -456,9 +533,13 @@ def run_free_running(sc, address: str, folder: Path | None = None, *, timeout_s:
                            "simulator_late_actuations": counts["sim_late"],
                            "simulator_missing_actuations": counts["sim_missing"], **d}}
 
+    summary = None
     try:
-        return execute(sc, prep, folder, produce,
-                       timing={"compile_or_load_s": t_compile, "compiled_now": False},
-                       progress=progress, extra=extra, end_events=finish)
+        res = execute(sc, prep, folder, produce,
+                      timing={"compile_or_load_s": t_compile, "compiled_now": False},
+                      progress=progress, extra=extra, end_events=finish)
+        summary = res.summary
+        return res
     finally:
+        live.close(summary)
         link.close()

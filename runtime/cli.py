@@ -116,8 +116,7 @@ def _view_args(p) -> None:
 
 def _wants_view(args, plain: bool) -> bool:
     """The live view starts by itself on a terminal, unless --no-view or plain output."""
-    return (not args.no_view and not plain and sys.stdout.isatty() and sys.stdin.isatty()
-            and not getattr(args, "bridge", None))
+    return not args.no_view and not plain and sys.stdout.isatty() and sys.stdin.isatty()
 
 
 def _check_hv_acknowledged(sc, address: str, ack_hv: bool, allow_remote: bool) -> None:
@@ -171,7 +170,8 @@ def _run(console, plain, scenario_path: Path, out: str | None, overwrite: bool, 
             res = run_bridge(sc, bridge, Path(out) if out else None, mode=mode, timeout_s=timeout,
                              allow_remote=allow_remote, overwrite=overwrite, progress=prog,
                              curve_keys=Path(curve_keys) if curve_keys else None,
-                             notice=lambda msg: console.print(msg))
+                             notice=None if view else (lambda msg: console.print(msg)),
+                             telemetry=telemetry)
         elif paced or sc.mode == "paced":
             from hilrig.runtime.paced import run_paced
             # no progress bar: its redraws would compete with the loop for this process

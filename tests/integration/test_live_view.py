@@ -173,3 +173,84 @@ def test_stop_command_ends_the_run_in_order(tmp_path, demo_path, mode):
     rec = open_run(tmp_path / "r")
     assert rec.attrs["complete"] and rec.time.shape[0] == s["ticks_run"]
     assert rec.signals["u"][-1] == 0.0 and rec.signals["u"][-2] > 0.0
+
+
+def test_bridge_run_publishes_link_statistics_and_obeys_stop(tmp_path, demo_path):
+    """A lockstep bridge run with --telemetry: frames carry the link statistics, and a stop
+    ends the run in order (safe output on the last tick, the simulator told to stop)."""
+    import msgpack
+    import zmq
+    text = Path(demo_path).read_text().replace('duration = "1.5 s"', 'duration = "600 s"')
+    scen = tmp_path / "long.toml"
+    scen.write_text(text)
+    sim_addr = f"ipc://{tmp_path}/sim.sock"
+    sim = subprocess.Popen(CLI + ["serve-sim", "--scenario", str(scen), "--bind", sim_addr,
+                                  "--sessions", "1", "--idle-timeout", "120"],
+                           stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
+    port = _free_port()
+    address = f"tcp://127.0.0.1:{port}"
+    run = subprocess.Popen(CLI + ["run", str(scen), "--bridge", sim_addr, "--telemetry", address,
+                                  "--out", str(tmp_path / "r"), "--headless", "--timeout", "30"],
+                           stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
+    ctx = zmq.Context.instance()
+    sub = ctx.socket(zmq.SUB)
+    sub.setsockopt(zmq.SUBSCRIBE, b"")
+    sub.connect(address)
+    push = ctx.socket(zmq.PUSH)
+    push.setsockopt(zmq.LINGER, 0)
+    push.connect(f"tcp://127.0.0.1:{port + 1}")
+    try:
+        frame = None
+        deadline = time.monotonic() + 240
+        while time.monotonic() < deadline:
+            if sub.poll(1000):
+                frame = msgpack.unpackb(sub.recv(), raw=False)
+                if frame["bridge"] and frame["bridge"]["frames_sent"] > 0:
+                    break
+        assert frame and frame["bridge"]["frames_sent"] > 0, frame
+        assert frame["mode"] == "lockstep" and frame["caution"]
+        push.send(b"stop")
+        out, err = run.communicate(timeout=120)
+        sim_out, _ = sim.communicate(timeout=120)
+    finally:
+        sub.close(0)
+        push.close(0)
+        for p in (run, sim):
+            if p.poll() is None:
+                p.kill()
+                p.communicate(timeout=60)
+    assert run.returncode == 0, out + err
+    s = json.loads((tmp_path / "r" / "summary.json").read_text())
+    assert s["end_event"] == "stopped by the operator" and s["trip"]["cause_id"] == "stop requested"
+    assert "session 1 ended" in sim_out       # the simulator got its orderly STOP
+
+
+def test_view_renders_in_80_columns_and_freezes_the_trace():
+    from rich.console import Console
+
+    from hilrig.runtime.watch import View
+    v = View()
+    frame = {"v": 1, "title": "t (test data)", "mode": "sil", "demo_data": False, "caution": "x",
+             "tick": 100, "n_total": 1000, "t": 0.005, "wall": 0.1,
+             "values": {"v_out": [500.0, "V"], "v_ref": [400.0, "V"]},
+             "limits": [["v_out", "above", 480.0, "V"]], "word": (1 << 50) | (1 << 41),
+             "latched": True, "cause": "interlock v_out > 480 V", "trip_t": 0.004,
+             "events": [[80, "trip: interlock v_out > 480 V"]],
+             "trace": {"t": [0.0, 0.001, 0.002], "v_out": [400.0, 450.0, 500.0],
+                       "v_ref": [400.0, 400.0, 400.0]},
+             "timing": {"ticks_per_s": 1e6, "lateness_p99_us": None, "late_ticks": None,
+                        "compute_p99_us": None}, "bridge": None, "ended": False, "end_event": None}
+    v.frame = frame
+    console = Console(width=80, record=True, force_terminal=False)
+    console.print(v.render(80))
+    text = console.export_text()
+    assert all(len(line) <= 80 for line in text.splitlines())
+    for part in ("TRIPPED", "interlock v_out > 480 V", "watchdog: stale", "CAUTION", "##########"):
+        assert part in text, part
+    v.frozen_trace = frame["trace"]
+    frame2 = dict(frame, trace={"t": [0.0, 0.001], "v_out": [1.0, 2.0], "v_ref": [1.0, 2.0]})
+    v.frame = frame2
+    console = Console(width=80, record=True, force_terminal=False)
+    console.print(v.render(80))
+    text = console.export_text()
+    assert "FROZEN" in text and "500.0" in text  # still the frozen window's scale
