@@ -114,6 +114,24 @@ def _view_args(p) -> None:
                         "(tcp://127.0.0.1:PORT or ipc:///PATH; loopback unless --allow-remote)")
 
 
+def _catch_ctrl_c() -> None:
+    """Ctrl-C ends the run in order at the next chunk (the recording closed, marked not
+    complete); a second Ctrl-C interrupts at once."""
+    import signal
+
+    from hilrig.runtime.run import INTERRUPTED
+    INTERRUPTED.clear()
+
+    def handler(signum, frame):
+        if INTERRUPTED.is_set():
+            raise KeyboardInterrupt
+        INTERRUPTED.set()
+    try:
+        signal.signal(signal.SIGINT, handler)
+    except ValueError:  # not the main thread (e.g. called from a test harness)
+        pass
+
+
 def _wants_view(args, plain: bool) -> bool:
     """The live view starts by itself on a terminal, unless --no-view or plain output."""
     return not args.no_view and not plain and sys.stdout.isatty() and sys.stdin.isatty()
@@ -148,6 +166,7 @@ def _run(console, plain, scenario_path: Path, out: str | None, overwrite: bool, 
     _show_caution(console, sc)
     if bridge:
         _check_hv_acknowledged(sc, bridge, ack_hv, allow_remote)
+    _catch_ctrl_c()
     viewer = None
     tmpdir = None
     if view and not telemetry:

@@ -84,6 +84,8 @@ def _child(names, folder, signals, attrs, chunk_rows, compression, cap, ncols, t
     ctl = np.ndarray((CTL_SIZE,), dtype=np.int64, buffer=shm_ctl.buf)
     tel = shared = None
     import os
+    import signal
+    signal.signal(signal.SIGINT, signal.SIG_IGN)  # Ctrl-C is the runtime's to handle, in order
     parent = os.getppid()
     try:
         # stay out of the loop's way: lower priority, off the loop's (last) core

@@ -7,6 +7,7 @@ import datetime as _dt
 import json
 import platform
 import sys
+import threading
 import time
 from dataclasses import dataclass
 from pathlib import Path
@@ -26,6 +27,12 @@ from .errors import ScenarioError
 from .metrics import TrackingMetrics, step_metrics
 from .recording import SCENARIO, SUMMARY, RunWriter, SignalSpec
 from .scenario import PluginChoice, Scenario
+
+
+#: set by the command line's Ctrl-C handler; the chunk driver ends the run in order at the next
+#: chunk boundary (a KeyboardInterrupt raised wherever Python happens to be, e.g. inside a
+#: library callback, can be swallowed there)
+INTERRUPTED = threading.Event()
 
 
 @dataclass
@@ -391,6 +398,8 @@ def execute(sc: Scenario, prep: Prepared, folder: Path,
     startup = process_age_s()
     try:
         while done < n_total:
+            if INTERRUPTED.is_set():
+                raise KeyboardInterrupt
             n = min(chunk, n_total - done)
             t0 = time.perf_counter()
             # a shared-memory writer hands out the rows to fill (no copy afterwards)
