@@ -182,6 +182,8 @@ def _run(console, plain, scenario_path: Path, out: str | None, overwrite: bool, 
         # the viewer owns the terminal while the run lasts; this process stays quiet
         viewer = subprocess.Popen([sys.executable, "-m", "hilrig.runtime.cli", "watch", telemetry,
                                    "--exit-when-done"])
+        from hilrig.runtime import telemetry as _tel
+        _tel.WAIT_FOR_VIEWER_S = 10.0  # the run starts once the viewer is there (or after 10 s)
         prog = _Progress(console, True, quiet=True)
     try:
         if bridge:
@@ -205,7 +207,7 @@ def _run(console, plain, scenario_path: Path, out: str | None, overwrite: bool, 
         prog.close()
         if viewer is not None:
             try:
-                viewer.wait(timeout=30)
+                viewer.wait(timeout=10)
             except subprocess.TimeoutExpired:
                 viewer.terminate()
                 viewer.wait(timeout=10)

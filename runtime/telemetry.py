@@ -33,6 +33,10 @@ from hilrig.safety.interlocks import (EVENT_NAMES, L_CAUSE, L_TIME, L_TRIPPED, S
                                       InterlockTable)
 
 DEFAULT_ADDRESS = "tcp://127.0.0.1:47820"
+#: how long a run waits for its first viewer to subscribe before its first tick: set by the
+#: command line when it has started a viewer itself (a fast run would otherwise be over before
+#: the viewer connects: a publisher drops what nobody has subscribed to yet)
+WAIT_FOR_VIEWER_S = 0.0
 FRAME_INTERVAL_S = 0.05
 TRACE_S = 2.0
 TRACE_POINTS = 240
@@ -52,12 +56,13 @@ class Telemetry:
     out at most every ``FRAME_INTERVAL_S`` unless ``force``."""
 
     def __init__(self, address: str, *, info: dict[str, Any], names: list[str], units: list[str],
-                 table: InterlockTable, allow_remote: bool = False):
+                 table: InterlockTable, allow_remote: bool = False, wait_for_viewer_s: float = 0.0):
         from hilrig.bridge.transport import check_address
         check_address(address, allow_remote)
         self.address = address
         self.ctx = zmq.Context.instance()
-        self.pub = self.ctx.socket(zmq.PUB)
+        # XPUB: a PUB socket that also hands over subscriptions, so a run can wait for its viewer
+        self.pub = self.ctx.socket(zmq.XPUB)
         self.pub.setsockopt(zmq.SNDHWM, 10)
         self.pub.setsockopt(zmq.LINGER, 0)
         self.pub.bind(address)
@@ -83,6 +88,12 @@ class Telemetry:
         self.late_ticks = 0
         self.recent_late: list[np.ndarray] = []
         self.recent_comp: list[np.ndarray] = []
+        if wait_for_viewer_s > 0 and self.pub.poll(int(wait_for_viewer_s * 1000)):
+            self.pub.recv()  # the first subscription: a viewer is there
+
+    def _drain_subscriptions(self) -> None:
+        while self.pub.poll(0):
+            self.pub.recv()
 
     # ---- input -------------------------------------------------------------------------
     def add_rows(self, first_tick: int, rows: np.ndarray, ts: float) -> None:
@@ -161,6 +172,7 @@ class Telemetry:
         if not force and now - self.last_sent < FRAME_INTERVAL_S:
             return False
         f = self.frame(latch, evlog, evn, **kw)
+        self._drain_subscriptions()
         try:
             self.pub.send(msgpack.packb(f, use_bin_type=True), zmq.NOBLOCK)
         except zmq.Again:
@@ -201,4 +213,5 @@ def run_info(sc) -> dict[str, Any]:
 def telemetry_config(sc, prep, address: str, allow_remote: bool = False) -> dict[str, Any]:
     """Keyword arguments of :class:`Telemetry` for a prepared run."""
     return dict(address=address, info=run_info(sc), names=[s.name for s in prep.signals],
-                units=[s.unit for s in prep.signals], table=prep.table, allow_remote=allow_remote)
+                units=[s.unit for s in prep.signals], table=prep.table, allow_remote=allow_remote,
+                wait_for_viewer_s=WAIT_FOR_VIEWER_S)
