@@ -47,6 +47,10 @@ class Faults:
         self.freeze_after, self.corrupt_every = freeze_after, corrupt_every
         self.disconnect_after = disconnect_after
         self.rng = np.random.default_rng(seed)
+        #: scheduled link faults from the scenario: (first tick, end tick, kind, value)
+        self.windows: list = []
+        #: the simulator's current tick (set by the serving loop before each send)
+        self.tick = 0
         self.replies = 0
         self.dropped = 0
         self.corrupted = 0
@@ -54,11 +58,6 @@ class Faults:
     def active(self) -> bool:
         return bool(self.drop or self.delay_s or self.jitter_s or self.freeze_after is not None
                     or self.corrupt_every or self.disconnect_after is not None or self.windows)
-
-    #: scheduled link faults from the scenario: (first tick, end tick, kind, value)
-    windows: list = []
-    #: the simulator's current tick (set by the serving loop before each send)
-    tick = 0
 
     def schedule(self, faults, ts: float, datagrams: bool, log) -> None:
         """Take the scenario's link faults (``link_loss``, ``link_delay``, ``link_freeze``,

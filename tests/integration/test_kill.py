@@ -14,7 +14,10 @@ import numpy as np
 from hilrig.runtime.recording import open_run
 
 
-def test_sigkill_mid_run_leaves_a_readable_recording(tmp_path, demo_path):
+def _start_long_run(tmp_path, demo_path):
+    """A 600 s demo run with 50 ms chunks, started headless; returns (process, run folder)
+    once its progress lines say 20 000 ticks (1 s) ran (the HDF5 file is locked while it is
+    being written, so the tests do not open it before they stop the run)."""
     text = Path(demo_path).read_text().replace('duration = "1.5 s"', 'duration = "600 s"')
     text += '\n[recording]\nchunk = "50 ms"\n'
     scen = tmp_path / "long.toml"
@@ -23,19 +26,24 @@ def test_sigkill_mid_run_leaves_a_readable_recording(tmp_path, demo_path):
     proc = subprocess.Popen([sys.executable, "-m", "hilrig.runtime.cli", "run", str(scen),
                              "--out", str(out), "--headless"],
                             stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
+    deadline = time.monotonic() + 300
+    done = 0
+    while time.monotonic() < deadline and done < 20 * 1000:
+        ready, _, _ = select.select([proc.stdout], [], [], 1.0)
+        if ready:
+            m = re.match(r"progress: (\d+)/", proc.stdout.readline())
+            if m:
+                done = int(m.group(1))
+    if done < 20 * 1000:
+        proc.kill()
+        proc.communicate(timeout=60)
+    assert done >= 20 * 1000, "the run did not get going"
+    return proc, out
+
+
+def test_sigkill_mid_run_leaves_a_readable_recording(tmp_path, demo_path):
+    proc, out = _start_long_run(tmp_path, demo_path)
     try:
-        # the headless progress lines say how far the run is (the HDF5 file is locked while
-        # it is being written, so the test does not open it before the kill)
-        deadline = time.monotonic() + 300
-        done = 0
-        while time.monotonic() < deadline and done < 20 * 1000:
-            ready, _, _ = select.select([proc.stdout], [], [], 1.0)
-            if ready:
-                line = proc.stdout.readline()
-                m = re.match(r"progress: (\d+)/", line)
-                if m:
-                    done = int(m.group(1))
-        assert done >= 20 * 1000, "the run did not get going"
         os.kill(proc.pid, signal.SIGKILL)
         proc.communicate(timeout=60)
     finally:
@@ -56,24 +64,8 @@ def test_sigkill_mid_run_leaves_a_readable_recording(tmp_path, demo_path):
 def test_ctrl_c_mid_run_closes_the_recording_marked_incomplete(tmp_path, demo_path):
     """SIGINT (Ctrl-C): the runtime closes the recording in order, marked not complete, with an
     'interrupted' event, and exits with its interrupted code."""
-    text = Path(demo_path).read_text().replace('duration = "1.5 s"', 'duration = "600 s"')
-    text += '\n[recording]\nchunk = "50 ms"\n'
-    scen = tmp_path / "long.toml"
-    scen.write_text(text)
-    out = tmp_path / "r"
-    proc = subprocess.Popen([sys.executable, "-m", "hilrig.runtime.cli", "run", str(scen),
-                             "--out", str(out), "--headless"],
-                            stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
+    proc, out = _start_long_run(tmp_path, demo_path)
     try:
-        deadline = time.monotonic() + 300
-        done = 0
-        while time.monotonic() < deadline and done < 20 * 1000:
-            ready, _, _ = select.select([proc.stdout], [], [], 1.0)
-            if ready:
-                m = re.match(r"progress: (\d+)/", proc.stdout.readline())
-                if m:
-                    done = int(m.group(1))
-        assert done >= 20 * 1000, "the run did not get going"
         os.kill(proc.pid, signal.SIGINT)
         stdout, _ = proc.communicate(timeout=60)
     finally:
