@@ -96,12 +96,13 @@ def _child(names, folder, signals, attrs, chunk_rows, compression, cap, ncols, t
                 os.sched_setaffinity(0, set(cores[:-1]))
         except (AttributeError, OSError):
             pass
-        w = RunWriter(Path(folder), signals, attrs, chunk_rows=chunk_rows, compression=compression)
         if telemetry is not None:
-            # the live view's publisher lives here, not in the loop's process
+            # the live view's publisher lives here, not in the loop's process (set up before the
+            # recording file, so that a taken address leaves no file behind)
             from .telemetry import Telemetry
             shared = SharedArrays.attach(telemetry.pop("shared"))
             tel = Telemetry(**telemetry)
+        w = RunWriter(Path(folder), signals, attrs, chunk_rows=chunk_rows, compression=compression)
         stats = ([LatencyStats(limits=timing_cols[2]) for _ in range(3)]
                  if timing_cols else [])
         metrics = None

@@ -65,11 +65,18 @@ class Telemetry:
         self.pub = self.ctx.socket(zmq.XPUB)
         self.pub.setsockopt(zmq.SNDHWM, 10)
         self.pub.setsockopt(zmq.LINGER, 0)
-        self.pub.bind(address)
         self.cmd = self.ctx.socket(zmq.PULL)
         self.cmd.setsockopt(zmq.LINGER, 0)
         self.cmd.setsockopt(zmq.MAXMSGSIZE, 4096)
-        self.cmd.bind(command_address(address))
+        try:
+            self.pub.bind(address)
+            self.cmd.bind(command_address(address))
+        except zmq.ZMQError as exc:
+            self.pub.close(0)
+            self.cmd.close(0)
+            raise ValueError(f"telemetry address {address} (commands on "
+                             f"{command_address(address)}): {exc}; choose another --telemetry "
+                             f"address") from None
         self.info = info
         self.names = names
         self.units = units

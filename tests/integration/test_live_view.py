@@ -254,3 +254,23 @@ def test_view_renders_in_80_columns_and_freezes_the_trace():
     console.print(v.render(80))
     text = console.export_text()
     assert "FROZEN" in text and "500.0" in text  # still the frozen window's scale
+
+
+@pytest.mark.parametrize("mode", ["sil", "paced"])
+def test_telemetry_address_in_use_is_one_clear_error(tmp_path, demo_path, mode):
+    import zmq
+    port = _free_port()
+    ctx = zmq.Context.instance()
+    squat = ctx.socket(zmq.PUB)
+    squat.bind(f"tcp://127.0.0.1:{port}")
+    try:
+        p = subprocess.run(CLI + ["run", demo_path, "--telemetry", f"tcp://127.0.0.1:{port}",
+                                  "--out", str(tmp_path / "r"), "--headless"]
+                           + (["--paced"] if mode == "paced" else []),
+                           capture_output=True, text=True, timeout=300)
+    finally:
+        squat.close(0)
+    assert p.returncode == 2, p.stdout + p.stderr
+    assert "telemetry address" in p.stdout and "choose another" in p.stdout
+    assert "Traceback" not in p.stdout + p.stderr
+    assert not (tmp_path / "r" / "recording.h5").exists()
