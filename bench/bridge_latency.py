@@ -22,6 +22,12 @@ sizes are those of a lockstep tick. ZeroMQ: a REQ/REP pair, one frame per messag
 UDP: one datagram each way on a connected socket. Nothing is decoded or computed: the rate is what
 the transport alone allows. Ratio = lockstep ticks/s / raw round trips/s.
 
+Two raw ping-pongs are measured: with both loops in Python (pyzmq / socket calls; the peer the
+targets are stated against) and with both loops compiled (numba, the same C socket calls as the
+bridge's compiled path in ``hilrig.bridge.wire``: the practical limit of the transport with no
+interpreter in the way). The lockstep session runs its exchanges in compiled code, so it can beat
+the Python ping-pong; the ratio against the compiled ping-pong is printed beside it.
+
 Each measurement is repeated ``--reps`` times (after one warm-up session per transport, which
 also compiles or loads the kernels) and the medians are reported. The UDP rows are measured when
 the installed hilrig has the datagram transport (``UdpClient``/``UdpServer`` in
@@ -40,7 +46,8 @@ Run: python bench/bridge_latency.py [--seconds 0.5] [--reps 3]
      transport, runtime side and stand-in side, in microseconds per tick, and the pieces of a
      lockstep tick timed in this process without any transport)
 The last printed line is JSON: {"zmq_ipc": {"lockstep_ticks_per_s", "lockstep_loop_ticks_per_s",
-"raw_round_trips_per_s", "ratio", "rtt_us": {"p50", "p99", "max"}, "raw_rtt_us": {...}, ...},
+"raw_round_trips_per_s", "ratio", "rtt_us": {"p50", "p99", "max"}, "raw_rtt_us": {...},
+"raw_compiled_round_trips_per_s", "ratio_compiled", ...},
 "zmq_tcp": {...}, "udp": {...} or "unavailable", "udp_raw": {...} (only when "udp" is
 unavailable), "targets": {...}}.
 """
@@ -152,6 +159,97 @@ else:
         n += 1
     s.close()
 """
+
+
+# The same echo server with its receive/send loop compiled (numba, the C socket calls of
+# hilrig.bridge.wire): the ping-pong with no Python per message on this side either. The quit
+# message is any 4-byte request.
+COMPILED_ECHO_SERVER = r"""
+import socket, sys
+import numpy as np
+from numba import njit
+from hilrig.bridge import wire as W
+kind, address, reply, idle_s, cap = (sys.argv[1], sys.argv[2], bytes.fromhex(sys.argv[3]),
+                                     float(sys.argv[4]), int(sys.argv[5]))
+out = np.frombuffer(reply, dtype=np.uint8).copy()
+buf = np.zeros(65536, dtype=np.uint8)
+
+@njit
+def zecho(h, buf, out, cap):
+    n = 0
+    while n < cap:
+        m = W.zmq_recv(h, buf, buf.shape[0])
+        if m < 0:
+            break
+        W.zmq_send(h, out, out.shape[0])
+        n += 1
+        if m == 4:
+            break
+    return n
+
+@njit
+def uecho(fd, pfd, wait_ms, buf, out, addr, alen, cap):
+    n = 0
+    while n < cap:
+        if W.c_poll(pfd, wait_ms) <= 0:
+            break
+        alen[0] = addr.shape[0]
+        m = W.c_recvfrom(fd, buf, buf.shape[0], addr, alen)
+        if m == 4:
+            break
+        W.c_sendto(fd, out, out.shape[0], addr, alen[0])
+        n += 1
+    return n
+
+if kind == "zmq":
+    import zmq
+    ctx = zmq.Context()
+    s = ctx.socket(zmq.REP)
+    s.setsockopt(zmq.LINGER, 0)
+    s.setsockopt(zmq.RCVTIMEO, int(idle_s * 1000))
+    s.bind(address)
+    zecho(s.underlying, buf, out, 0)  # compile before saying ready
+    print("ready", flush=True)
+    zecho(s.underlying, buf, out, cap)
+    s.close(linger=0)
+    ctx.term()
+else:
+    host, port = address[len("udp://"):].rsplit(":", 1)
+    s = socket.socket(socket.AF_INET, socket.SOCK_DGRAM)
+    s.bind((host, int(port)))
+    pfd = np.array([s.fileno(), W.POLLIN], dtype=np.int32)
+    addr, alen = np.zeros(128, dtype=np.uint8), np.zeros(1, dtype=np.int32)
+    uecho(s.fileno(), pfd, 1, buf, out, addr, alen, 0)
+    print("ready", flush=True)
+    uecho(s.fileno(), pfd, int(idle_s * 1000), buf, out, addr, alen, cap)
+    s.close()
+"""
+
+
+def _compiled_series():
+    """The client's side of the compiled ping-pong: n round trips, each timed on the cycle
+    counter (compiled on first use)."""
+    from numba import njit
+
+    from hilrig.bridge import wire as W
+    from hilrig.runtime.clock import cycles
+
+    @njit
+    def series(kind, h, pfd, wait_ms, req, buf, rtt):
+        for i in range(rtt.shape[0]):
+            c0 = cycles()
+            if kind == 1:
+                W.zmq_send(h, req, req.shape[0])
+                if W.zmq_recv(h, buf, buf.shape[0]) < 0:
+                    return i
+            else:
+                W.c_send(h, req, req.shape[0])
+                if W.c_poll(pfd, wait_ms) <= 0:
+                    return i
+                W.c_recv(h, buf, buf.shape[0])
+            rtt[i] = cycles() - c0
+        return rtt.shape[0]
+    return series
 
 
 # ---------------------------------------------------------------------------------------------
@@ -334,6 +432,33 @@ class RawClient:
         us = rtt[:done] / 1e3
         return {"n": done, "round_trips_per_s": done / wall, "rtt_us": pct(us), "lost": lost}
 
+    def compiled_series(self, request: bytes, n: int) -> dict:
+        """As :meth:`series`, the loop compiled (against the compiled echo server)."""
+        from hilrig.bridge import wire as W
+        from hilrig.runtime.clock import cycle_rate
+        fn = getattr(RawClient, "_series", None) or _compiled_series()
+        RawClient._series = fn
+        req = np.frombuffer(request, dtype=np.uint8).copy()
+        buf = np.zeros(65536, dtype=np.uint8)
+        rtt = np.zeros(n, dtype=np.uint64)
+        if self.zmq:
+            kind, h, pfd = W.KIND_ZMQ, self.sock.underlying, np.zeros(2, dtype=np.int32)
+        else:
+            self.sock.settimeout(None)  # a blocking descriptor: the compiled loop polls
+            kind, h = W.KIND_UDP, self.sock.fileno()
+            pfd = np.array([h, W.POLLIN], dtype=np.int32)
+        rate = getattr(RawClient, "_rate", None) or cycle_rate(0.1)
+        RawClient._rate = rate
+        t = time.perf_counter()
+        done = fn(kind, h, pfd, int(REPLY_TIMEOUT_S * 1000), req, buf, rtt)
+        wall = time.perf_counter() - t
+        if not self.zmq:
+            self.sock.settimeout(REPLY_TIMEOUT_S)
+        if done < n:
+            raise RuntimeError(f"compiled ping-pong over {self.address}: no reply after {done}")
+        return {"n": done, "round_trips_per_s": done / wall,
+                "rtt_us": pct(rtt.astype(float) / rate * 1e6), "lost": 0}
+
     def quit(self) -> None:
         try:
             self.sock.send(b"quit")
@@ -344,10 +469,11 @@ class RawClient:
         self.sock.close()
 
 
-def start_echo(address: str, reply: bytes, cap: int, log: Path) -> subprocess.Popen:
+def start_echo(address: str, reply: bytes, cap: int, log: Path,
+               compiled: bool = False) -> subprocess.Popen:
     kind = "udp" if address.startswith("udp://") else "zmq"
-    cmd = [sys.executable, "-c", ECHO_SERVER, kind, address, reply.hex(), f"{IDLE_TIMEOUT_S:g}",
-           str(cap)]
+    cmd = [sys.executable, "-c", COMPILED_ECHO_SERVER if compiled else ECHO_SERVER, kind, address,
+           reply.hex(), f"{IDLE_TIMEOUT_S:g}", str(cap)]
     return start(cmd, log, "ready")
 
 
@@ -361,13 +487,18 @@ def measure(key: str, sc, scen: Path, tmp: Path, reps: int, frames: tuple[bytes,
     request, reply = frames
     n = sc.n_ticks
     warm = min(n, 1000)
-    sim = echo = None
-    client = None
-    out: dict = {"lockstep": [], "raw": [], "lockstep_error": None}
+    sim = echo = cecho = None
+    client = cclient = None
+    out: dict = {"lockstep": [], "raw": [], "raw_compiled": [], "lockstep_error": None}
     try:
         echo = start_echo(echo_addr, reply, cap=(reps + 1) * (n + warm) + 10, log=tmp / f"{key}-echo.log")
         client = RawClient(echo_addr)
         client.series(request, warm)  # connection set-up and first-use costs stay out
+        c_addr = addresses(key, tmp / "c")[1] if key != "zmq_ipc" else f"ipc://{tmp}/echo-c.ipc"
+        cecho = start_echo(c_addr, reply, cap=(reps + 1) * (n + warm) + 10,
+                           log=tmp / f"{key}-echo-compiled.log", compiled=True)
+        cclient = RawClient(c_addr)
+        cclient.compiled_series(request, warm)
         if lockstep_ok:
             try:
                 sim = start_standin(scen, sim_addr, reps + 1, tmp / f"{key}-sim.log")
@@ -381,10 +512,13 @@ def measure(key: str, sc, scen: Path, tmp: Path, reps: int, frames: tuple[bytes,
                 except Exception as exc:  # noqa: BLE001
                     out["lockstep_error"] = f"{type(exc).__name__}: {exc}"
             out["raw"].append(client.series(request, n))
+            out["raw_compiled"].append(cclient.compiled_series(request, n))
     finally:
-        if client is not None:
-            client.quit()
+        for c in (client, cclient):
+            if c is not None:
+                c.quit()
         stop(echo, wait_s=10)
+        stop(cecho, wait_s=10)
         stop(sim, wait_s=10 if out["lockstep_error"] is None else 0.1)
     return out
 
@@ -392,7 +526,10 @@ def measure(key: str, sc, scen: Path, tmp: Path, reps: int, frames: tuple[bytes,
 def summarise(m: dict) -> dict:
     raw = {"raw_round_trips_per_s": st.median(r["round_trips_per_s"] for r in m["raw"]),
            "raw_rtt_us": med_dict([r["rtt_us"] for r in m["raw"]]),
-           "raw_n": m["raw"][0]["n"], "raw_lost": sum(r["lost"] for r in m["raw"])}
+           "raw_n": m["raw"][0]["n"], "raw_lost": sum(r["lost"] for r in m["raw"]),
+           "raw_compiled_round_trips_per_s": st.median(r["round_trips_per_s"]
+                                                       for r in m["raw_compiled"]),
+           "raw_compiled_rtt_us": med_dict([r["rtt_us"] for r in m["raw_compiled"]])}
     if m["lockstep_error"] is not None or not m["lockstep"]:
         return {"error": m["lockstep_error"] or "no lockstep session ran", **raw}
     ls = m["lockstep"]
@@ -401,6 +538,9 @@ def summarise(m: dict) -> dict:
             "lockstep_loop_ticks_per_s": st.median(r["loop_ticks_per_s"] for r in ls),
             "raw_round_trips_per_s": raw["raw_round_trips_per_s"],
             "ratio": lock / raw["raw_round_trips_per_s"],
+            "raw_compiled_round_trips_per_s": raw["raw_compiled_round_trips_per_s"],
+            "raw_compiled_rtt_us": raw["raw_compiled_rtt_us"],
+            "ratio_compiled": lock / raw["raw_compiled_round_trips_per_s"],
             "rtt_us": med_dict([r["rtt_us"] for r in ls]),
             "raw_rtt_us": raw["raw_rtt_us"],
             "ticks": ls[0]["ticks"], "reps": len(ls),
@@ -635,6 +775,14 @@ def main():
             print(f"{label:<20} {r['lockstep_ticks_per_s']:>12,.0f} {r['lockstep_loop_ticks_per_s']:>10,.0f} "
                   f"{trip(r['rtt_us']):>22} {raw} {r['ratio']:>6.2f}")
     print()
+    print("next to the compiled ping-pong (both ends' loops in numba, no Python per message):")
+    for key, label in TRANSPORTS:
+        r = results[key]
+        if "raw_compiled_round_trips_per_s" in r:
+            ratio = f"{r['ratio_compiled']:.2f}" if "ratio_compiled" in r else "-"
+            print(f"  {label:<20} raw compiled {r['raw_compiled_round_trips_per_s']:>9,.0f} rt/s "
+                  f"({trip(r['raw_compiled_rtt_us'])} us), lockstep / raw compiled {ratio}")
+    print()
     for key, label in TRANSPORTS:
         r = results[key]
         if "error" not in r:
@@ -711,6 +859,7 @@ def main():
         else:
             out[key] = {k: r[k] for k in ("lockstep_ticks_per_s", "lockstep_loop_ticks_per_s",
                                           "raw_round_trips_per_s", "ratio", "rtt_us", "raw_rtt_us",
+                                          "raw_compiled_round_trips_per_s", "ratio_compiled",
                                           "ticks", "reps")}
     out["targets"] = targets
     print(json.dumps(out))

@@ -952,6 +952,20 @@ class SequenceTracker:
         return verdict
 
 
+    def take_run(self, first: int, count: int) -> None:
+        """``check`` each of first, first + 1, ..., first + count - 1 (a run of frames taken in
+        order, as the compiled lockstep path does)."""
+        if count <= 0:
+            return
+        self.check(first)
+        if count > 1 and self.last == first:
+            self.last = first + count - 1
+            self.accepted += count - 1
+        else:
+            for q in range(first + 1, first + count):
+                self.check(q)
+
+
 class RejectCounter:
     """Count rejected frames by reason and keep a log of the last :attr:`LOG_LENGTH`.
 

@@ -36,9 +36,75 @@ def signal_maps(sc) -> tuple[list[list[str]], list[list[str]]]:
     return meas, act
 
 
-def _bridge_kernel(sc):
+def _bridge_module(sc):
     path, _ = loopgen.generate(sc.plant.plugin, sc.controller.plugin, sc.reference.plugin)
-    return loopgen.load_module(path).bridge_tick
+    return loopgen.load_module(path)
+
+
+def _bridge_kernel(sc):
+    return _bridge_module(sc).bridge_tick
+
+
+class _Compiled:
+    """The lockstep tick loop in compiled code (``bridge_chunk``, hilrig.bridge.wire): blocks
+    of ticks, each sending its actuation and reading the next sample without Python. The
+    Python path takes over for anything out of the common case (a reply that is not the next
+    SAMPLE, a timeout, a resend, an operator's stop) and hands back afterwards."""
+
+    def __init__(self, sc, a: dict, link, n_meas: int):
+        from . import wire as W
+        from .transport import ReqTransport, UdpClient
+        from hilrig.runtime.clock import cycle_rate
+        self.W = W
+        kind = (W.KIND_ZMQ if isinstance(link, ReqTransport)
+                else W.KIND_UDP if isinstance(link, UdpClient) else 0)
+        if not kind or not W.available(kind):
+            raise LookupError("no compiled path for this transport here")
+        self.kind = kind
+        self.chunk = _bridge_module(sc).bridge_chunk
+        self.io = np.zeros(W.IO_SIZE, dtype=np.int64)
+        self.fio = np.zeros(W.F_SIZE)
+        self.meas = np.zeros(n_meas)
+        self.sbuf = np.zeros(P.MAX_FRAME_BYTES, dtype=np.uint8)
+        self.rbuf = np.zeros(P.MAX_FRAME_BYTES + 1, dtype=np.uint8)
+        self.pfd = np.zeros(2, dtype=np.int32)
+        self.rtt = np.zeros(256)
+        self.io[W.IO_KIND] = kind
+        if kind == W.KIND_ZMQ:
+            self.io[W.IO_HANDLE] = link.sock.underlying
+        else:
+            self.io[W.IO_HANDLE] = self.pfd[0] = link.sock.fileno()
+            self.pfd[1] = W.POLLIN
+        self.link = link
+        self.ts, self.v_collapse = sc.Ts, sc.v_collapse
+        self.fio[W.F_INV_F] = 1.0 / cycle_rate(0.05)
+        self.args = _tick_args(a)
+        self.a = a
+        # compile (or load) now, on no ticks
+        self.run(0, 0, np.zeros((1, 1)))
+
+    def run(self, k0: int, n: int, rec: np.ndarray) -> tuple[int, int]:
+        """Ticks k0 .. k0+n-1 into rec[0:n]; (ticks run, status)."""
+        W, a = self.W, self.a
+        if self.kind == W.KIND_UDP:
+            self.io[W.IO_WAIT_MS] = max(1, int(np.ceil(self.link.timeout_s * 1e3)))
+        done = self.chunk(k0, n, self.ts, self.v_collapse, a["i_vout"], *self.args,
+                          rec, a["ev"], self.io, self.fio, self.meas, self.sbuf,
+                          self.rbuf, self.pfd, self.rtt)
+        return int(done), int(self.io[W.IO_STATUS])
+
+    def frame(self) -> bytes:
+        """The last actuation frame sent."""
+        return self.sbuf[:int(self.io[self.W.IO_NSENT])].tobytes()
+
+    def reply(self) -> bytes:
+        """The frame that stopped the block (ST_FRAME)."""
+        return self.rbuf[:min(int(self.io[self.W.IO_NRECV]), self.rbuf.size)].tobytes()
+
+    def sample(self) -> "P.Sample":
+        W = self.W
+        return P.Sample(seq=int(self.io[W.IO_SEQ]), t_sim_s=float(self.fio[W.F_TSIM]),
+                        meas=self.meas.copy())
 
 
 def _ready_tick(sc):
@@ -134,6 +200,7 @@ class BridgeStats:
     def __init__(self):
         self.sent = 0
         self.received = 0
+        self.compiled = 0  # ticks whose exchange ran in compiled code (hilrig.bridge.wire)
         self.rtt_ns: list[int] = []
         self.seq = P.SequenceTracker()
         self.rejects = P.RejectCounter()
@@ -145,6 +212,7 @@ class BridgeStats:
         resent = getattr(self.link, "resent", 0)
         stale = getattr(self.link, "stale", 0)
         return {"frames_sent": self.sent, "frames_received": self.received,
+                "ticks_compiled": self.compiled,
                 "resent": resent, "stale_replies": stale,
                 "lost": self.seq.lost, "duplicates": self.seq.duplicates,
                 "out_of_order": self.seq.out_of_order, "late": 0,
@@ -182,21 +250,41 @@ def run_bridge(sc, address: str, folder: Path | None = None, *, mode: str = "loc
     stats = BridgeStats()
     stats.link = link
     ended: list[dict[str, Any]] = []
+    try:
+        fast = _Compiled(sc, a, link, n_meas)
+    except LookupError:
+        fast = None  # the Python path for every tick (e.g. NUMBA_DISABLE_JIT)
+    except BaseException:
+        link.close()
+        raise
 
     seen: dict[str, Any] = {}
 
-    def ask(frame, expect, want_seq=None):
+    def ask(frame, expect, want_seq=None, reply=None, resume=None):
+        """Send a frame and return the reply, decoded and checked. After the compiled path
+        (the frame already went out): ``reply``, the bytes it received; or ``resume``: "wait"
+        (keep waiting, no resend) or "resend" (the first try timed out)."""
         data = frame if isinstance(frame, bytes) else P.encode(frame)
         t0 = time.perf_counter_ns()
         seen.clear()
-        if want_seq is None or not hasattr(link, "stale"):
-            reply = link.request(data)
-        else:
+        datagrams = hasattr(link, "stale")
+        accept = None
+        if want_seq is not None and datagrams:
             # datagrams: a late copy of an earlier sample is recognised by its sequence number;
             # a datagram that does not decode is counted and treated as lost (resent)
-            reply = link.request(data, accept=lambda b: _acceptable(b, want_seq))
+            accept = lambda b: _acceptable(b, want_seq)  # noqa: E731
+        if reply is not None and accept is not None and not accept(reply):
+            link.stale += 1  # as the transport counts a datagram it drops
+            reply, resume = None, "wait"
+        if reply is None:
+            if resume is None:
+                reply = link.request(data, accept=accept) if datagrams else link.request(data)
+                stats.sent += 1
+            elif datagrams:
+                reply = link.request(data, accept=accept, resend=resume == "resend")
+            else:
+                reply = link.resume()
         stats.rtt_ns.append(time.perf_counter_ns() - t0)
-        stats.sent += 1
         stats.received += 1
         got = seen.get("frame")
         if got is None:
@@ -247,11 +335,74 @@ def run_bridge(sc, address: str, folder: Path | None = None, *, mode: str = "loc
 
     live = _Live(sc, prep, telemetry, allow_remote, stats)
 
+    def await_sample(kk: int, frame: bytes, i: int, **how) -> int:
+        """The actuation of tick kk went out: take the next sample into state, or note why
+        there is none. Returns -1 to go on, else the tick count the chunk ends with."""
+        t_sent = time.perf_counter() - how.pop("waited", 0.0)
+        try:
+            state["sample"] = ask(frame, P.Sample, want_seq=kk + 1, **how)
+        except TransportTimeout as exc:
+            state["waited"] = time.perf_counter() - t_sent
+            state["missing"] = ("stale", f"no sample within {stale_s * 1e3:g} ms: {exc}")
+        except PeerError as exc:
+            state["missing"] = ("lost", f"the simulator ended the session: {exc}")
+        except ProtocolError as exc:
+            ended.append({"event": "bridge protocol error", "tick": kk, "detail": str(exc)})
+            return i + 1
+        return -1
+
+    def compiled_block(k0: int, i: int, n: int, rec: np.ndarray) -> int:
+        """Run ticks from k0 + i in compiled code, at most to the next multiple of 256 (the
+        live view's cadence). Returns the chunk's next row, or -(rows) - 1 when it ends."""
+        W = fast.W
+        kk = k0 + i
+        m = min(n - i, 256 - (i & 255))
+        fast.meas[:] = state["sample"].meas
+        fast.fio[W.F_TOOK] = state["took"]
+        done, status = fast.run(kk, m, rec[i:])
+        state["took"] = float(fast.fio[W.F_TOOK])
+        stats.seq.take_run(kk, done)
+        stats.sent += done
+        stats.compiled += done
+        ok = done - (status not in (W.ST_OK, W.ST_END))
+        stats.received += ok
+        stats.rtt_ns.extend(fast.rtt[:ok].astype(np.int64).tolist())
+        last = kk + done - 1
+        end = -1
+        if status in (W.ST_OK, W.ST_END):
+            state["sample"] = fast.sample()
+        elif status == W.ST_FRAME:
+            end = await_sample(last, fast.frame(), i + done - 1, reply=fast.reply())
+        elif status == W.ST_TIMEOUT or (status == W.ST_SENDFAIL and fast.kind == W.KIND_ZMQ):
+            link.close()  # a ZeroMQ requester that timed out cannot be used again
+            state["waited"] = float(fast.fio[W.F_WAITED])
+            state["missing"] = ("stale", f"no sample within {stale_s * 1e3:g} ms: no reply "
+                                         f"from {address} within {stale_s * 1e3:g} ms")
+        else:  # one datagram try timed out (resend), or a wait was interrupted (keep waiting)
+            end = await_sample(last, fast.frame(), i + done - 1,
+                               resume="wait" if status == W.ST_PENDING else "resend",
+                               waited=float(fast.fio[W.F_WAITED]))
+        if end >= 0:
+            return -end - 1
+        if a["ev"][0] != 0:
+            return -(i + done) - 1  # the run ends (collapse) after this tick
+        i += done
+        if (i - 1) & 255 == 255 and live.after_tick(k0, i - 1, rec):
+            return -i - 1
+        return i
+
     def produce(k0: int, n: int, rec: np.ndarray) -> int:
         targs = _tick_args(a)
         live.chunk()
-        for i in range(n):
+        i = 0
+        while i < n:
             kk = k0 + i
+            if (fast is not None and state["missing"] is None and not live.stop
+                    and not link.closed and state["sample"].seq == kk):
+                i = compiled_block(k0, i, n, rec)
+                if i < 0:
+                    return -i - 1
+                continue
             if state["missing"] is not None:
                 # watchdog tick: no fresh sample; the controller runs on the measurement held,
                 # the trip forces the safe output, and the run ends (nobody answers any more)
@@ -283,20 +434,15 @@ def run_bridge(sc, address: str, folder: Path | None = None, *, mode: str = "loc
             enable = not bool(a["latch"][0])
             word = int(rec[i, -2])
             frame = P.encode_actuation(kk, a["u"], word, enable)
-            t_sent = time.perf_counter()
-            state["took"] = t_sent - t_in
-            try:
-                state["sample"] = ask(frame, P.Sample, want_seq=kk + 1)
-            except TransportTimeout as exc:
-                state["waited"] = time.perf_counter() - t_sent
-                state["missing"] = ("stale", f"no sample within {stale_s * 1e3:g} ms: {exc}")
-            except PeerError as exc:
-                state["missing"] = ("lost", f"the simulator ended the session: {exc}")
-            except ProtocolError as exc:
-                ended.append({"event": "bridge protocol error", "tick": kk, "detail": str(exc)})
-                return i + 1
+            state["took"] = time.perf_counter() - t_in
+            if fast is not None:
+                fast.fio[fast.W.F_TOOK] = state["took"]
+            end = await_sample(kk, frame, i)
+            if end >= 0:
+                return end
             if not go or live.after_tick(k0, i, rec):
                 return i + 1
+            i += 1
         return n
 
     def finish() -> list[dict[str, Any]]:

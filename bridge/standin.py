@@ -59,6 +59,22 @@ class Faults:
         return bool(self.drop or self.delay_s or self.jitter_s or self.freeze_after is not None
                     or self.corrupt_every or self.disconnect_after is not None or self.windows)
 
+    def quiet_until(self, k: int) -> int:
+        """The first tick from k on whose actuation a fault may concern (actuations of ticks
+        k .. result-1 are answered plainly: no drop, delay, jitter, corruption, freeze or
+        disconnect); k when a fault acts now."""
+        if self.drop or self.delay_s or self.jitter_s or self.corrupt_every:
+            return k
+        limit = k + 1_000_000_000
+        for at in (self.freeze_after, self.disconnect_after):
+            if at is not None:
+                limit = min(limit, at)
+        for k0, k1, _, _ in self.windows:
+            if k1 is None or k + 1 < k1:
+                # the actuation of tick j is answered with the sample of tick j + 1
+                limit = min(limit, max(k0 - 1, k) if k + 1 < k0 else k)
+        return max(k, limit)
+
     def schedule(self, faults, ts: float, datagrams: bool, log) -> None:
         """Take the scenario's link faults (``link_loss``, ``link_delay``, ``link_freeze``,
         ``link_disconnect``) on their schedule."""
@@ -208,6 +224,16 @@ class StandIn:
                       self.y, *self.faults)
         return P.encode_sample(k, t, self.y)
 
+    def compiled(self, rep):
+        """The compiled serving loop for this transport, or None (see hilrig.bridge.wire)."""
+        from . import wire as W
+        from .transport import RepTransport, UdpServer
+        kind = (W.KIND_ZMQ if isinstance(rep, RepTransport)
+                else W.KIND_UDP if isinstance(rep, UdpServer) else 0)
+        if not kind or not W.available(kind):
+            return None
+        return _CompiledServer(self, rep, kind)
+
     def step(self, u: np.ndarray) -> bool:
         """Apply u for one period from tick k (load held as sampled), advance to k + 1."""
         self.u[:] = u
@@ -215,6 +241,65 @@ class StandIn:
                             self.u, self.d)
         self.k += 1
         return bool(ok)
+
+
+class _CompiledServer:
+    """Lockstep actuations answered in compiled code (``sim_serve``), in blocks of at most 256
+    ticks, while no fault acts; everything else goes to the Python serving loop."""
+
+    BLOCK = 256
+    WAIT_MS = 50
+
+    def __init__(self, sim: StandIn, rep, kind: int):
+        from . import wire as W
+        self.W, self.sim, self.rep = W, sim, rep
+        self.serve_k = loopgen.load_module(loopgen.generate(
+            sim.sc.plant.plugin, sim.sc.controller.plugin, sim.sc.reference.plugin)[0]).sim_serve
+        self.io = np.zeros(W.IO_SIZE, dtype=np.int64)
+        self.rbuf = np.zeros(P.MAX_FRAME_BYTES + 1, dtype=np.uint8)
+        self.sbuf = np.zeros(P.MAX_FRAME_BYTES, dtype=np.uint8)
+        self.pfd = np.zeros(2, dtype=np.int32)
+        self.addr = np.zeros(128, dtype=np.uint8)
+        self.alen = np.zeros(1, dtype=np.int32)
+        self.io[W.IO_KIND] = kind
+        self.io[W.IO_WAIT_MS] = self.WAIT_MS
+        if kind == W.KIND_ZMQ:
+            import zmq
+            # the compiled receive returns to Python after this long without a request
+            rep.sock.setsockopt(zmq.RCVTIMEO, self.WAIT_MS)
+            self.io[W.IO_HANDLE] = rep.sock.underlying
+        else:
+            self.io[W.IO_HANDLE] = self.pfd[0] = rep.sock.fileno()
+            self.pfd[1] = W.POLLIN
+        self.block(0, 0)  # compile (or load) now, serving nothing
+
+    def block(self, k: int, limit: int) -> int:
+        """Serve ticks k .. limit-1 at most; return the status (the tick reached is sim.k)."""
+        sim = self.sim
+        k_end = self.serve_k(k, limit, sim.sc.Ts, sim.sc.substeps, sim.pp, sim.x, sim.u,
+                             sim.load_t, sim.load_v, sim.lcur, sim.d, sim.y, *sim.faults,
+                             self.io, self.rbuf, self.sbuf, self.pfd, self.addr, self.alen)
+        if k_end > k:
+            sim.k = int(k_end)
+            sim.last = self.sbuf[:int(self.io[self.W.IO_NSENT])].tobytes()
+        if self.io[self.W.IO_KIND] == self.W.KIND_UDP and self.io[self.W.IO_ADDRLEN] > 0:
+            self.rep.peer = _sockaddr(self.addr[:int(self.io[self.W.IO_ADDRLEN])].tobytes())
+        return int(self.io[self.W.IO_STATUS])
+
+    def frame(self) -> bytes:
+        return self.rbuf[:min(int(self.io[self.W.IO_NRECV]), self.rbuf.size)].tobytes()
+
+
+def _sockaddr(raw: bytes):
+    """A C struct sockaddr (IPv4 or IPv6, as recvfrom fills it on Linux) as a Python address."""
+    import socket
+    import struct
+    family = struct.unpack_from("=H", raw, 0)[0]
+    port = struct.unpack_from(">H", raw, 2)[0]
+    if family == socket.AF_INET:
+        return socket.inet_ntop(socket.AF_INET, raw[4:8]), port
+    flow, scope = struct.unpack_from("=I", raw, 4)[0], struct.unpack_from("=I", raw, 24)[0]
+    return socket.inet_ntop(socket.AF_INET6, raw[8:24]), port, flow, scope
 
 
 def serve(sc, bind: str, *, sessions: int | None = None, allow_remote: bool = False,
@@ -248,9 +333,26 @@ def serve(sc, bind: str, *, sessions: int | None = None, allow_remote: bool = Fa
         send(data)
         return data
 
+    fast = sim.compiled(rep)
+    W = fast.W if fast is not None else None
     try:
         while sessions is None or served < sessions:
-            data = rep.recv(timeout_s=idle_timeout_s)
+            data = None
+            if fast is not None and in_session and sim.last is not None:
+                limit = min(faults.quiet_until(sim.k), sim.k + fast.BLOCK)
+                if limit > sim.k:
+                    status = fast.block(sim.k, limit)
+                    if status == W.ST_NONFINITE:
+                        reply(P.Error(code=6, reason=f"the plant state became non-finite at tick {sim.k}"))
+                        in_session = False
+                        continue
+                    if status == W.ST_FRAME:
+                        data = fast.frame()
+                    elif status != W.ST_IDLE:
+                        continue  # a full block, or a failed send: go round
+                    # idle: wait in Python below, where the idle timeout counts
+            if data is None:
+                data = rep.recv(timeout_s=idle_timeout_s)
             if data is None:
                 log("stand-in simulator: idle timeout, stopping")
                 break

@@ -103,6 +103,17 @@ class ReqTransport:
                                   f"not the one in the keys folder") from None
             raise TransportTimeout(f"no reply from {self.address} within {self.timeout_ms} ms") from None
 
+    def resume(self) -> bytes:
+        """Keep waiting for the reply to a request that went out already (by the compiled
+        lockstep path, on this socket's handle)."""
+        if self.closed:
+            raise BridgeError("the bridge connection is closed")
+        try:
+            return self.sock.recv(copy=True)
+        except zmq.Again:
+            self.close()
+            raise TransportTimeout(f"no reply from {self.address} within {self.timeout_ms} ms") from None
+
     def set_timeout(self, timeout_s: float) -> None:
         """The reply timeout from now on (the session's staleness limit after the handshake)."""
         self.timeout_ms = max(1, int(round(timeout_s * 1000)))
@@ -155,7 +166,8 @@ class RepTransport:
 
     def recv(self, timeout_s: float | None = None) -> bytes | None:
         """The next request, or None when nothing came within ``timeout_s``."""
-        if timeout_s is not None and not self.sock.poll(int(timeout_s * 1000), zmq.POLLIN):
+        # poll first, also without a timeout: the compiled serving loop sets RCVTIMEO
+        if not self.sock.poll(None if timeout_s is None else int(timeout_s * 1000), zmq.POLLIN):
             return None
         return self.sock.recv(copy=True)
 
@@ -199,15 +211,24 @@ class UdpClient:
         self.stale = 0
         self.closed = False
 
-    def request(self, data: bytes, accept: Callable[[bytes], bool] | None = None) -> bytes:
-        """Send ``data`` and return the first reply that ``accept`` takes (default: any)."""
+    def request(self, data: bytes, accept: Callable[[bytes], bool] | None = None,
+                resend: bool | None = None) -> bytes:
+        """Send ``data`` and return the first reply that ``accept`` takes (default: any).
+
+        ``resend``: ``data`` went out already (by the compiled lockstep path) and its first try
+        timed out (True: go on with the second try) or was cut short (False: wait out the first
+        try again, without sending)."""
         if self.closed:
             raise BridgeError("the bridge connection is closed")
-        for attempt in range(self.retries + 1):
+        first = 1 if resend else 0
+        for attempt in range(first, self.retries + 1):
             if attempt:
                 self.resent += 1
             try:
-                self.sock.send(data)
+                if resend is False and attempt == 0:
+                    pass  # sent already: keep waiting
+                else:
+                    self.sock.send(data)
             except OSError as exc:  # e.g. ICMP port unreachable reported on a connected socket
                 if attempt == self.retries:
                     raise TransportTimeout(f"{self.address}: {exc}") from None
