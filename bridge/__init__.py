@@ -2,11 +2,11 @@
 
 - :mod:`hilrig.bridge.protocol`: the wire format (msgpack frames; docs/protocol.md is the
   authority), codec, sequence tracking and handshake checks.
-- :mod:`hilrig.bridge.transport`: ZeroMQ request/reply transports (loopback by default).
-- :mod:`hilrig.bridge.session`: the runtime's side of a lockstep session.
-- :mod:`hilrig.bridge.standin`: the stand-in simulator (``hilrig serve-sim``).
-
-Today: lockstep over ZeroMQ (tcp or ipc). Still to come: free-running mode, the datagram (UDP)
-transport, transport fault injection in the stand-in simulator, CurveZMQ keys for non-loopback
-peers.
+- :mod:`hilrig.bridge.transport`: ZeroMQ request/reply and pair transports, UDP (loopback by
+  default).
+- :mod:`hilrig.bridge.session`: the runtime's side: lockstep and free-running sessions.
+- :mod:`hilrig.bridge.standin`: the stand-in simulator (``hilrig serve-sim``) with transport
+  faults on schedule or on command.
+- :mod:`hilrig.bridge.wire`: lockstep's per-tick path in compiled code (codec, C socket calls).
+- :mod:`hilrig.bridge.keys`: CurveZMQ keys for peers on other machines.
 """
