@@ -532,7 +532,7 @@ def run_free_running(sc, address: str, folder: Path | None = None, *, timeout_s:
         notice(f"bridge: connected to {welcome.simulator_name!r} at {address} (free-running, "
                f"Ts = {sc.Ts:g} s, stale after {stale_s * 1e3:g} ms)")
     state: dict[str, Any] = {"next": None, "took": 0.0, "last_seq": -1, "t_last": None,
-                             "stale": False, "lost": None, "started": False}
+                             "stale": False, "lost": None, "started": False, "held_first": False}
     wd = a["wd"]
 
     def next_sample(kk, wait, since):
@@ -619,6 +619,11 @@ def run_free_running(sc, address: str, folder: Path | None = None, *, timeout_s:
                         bits, value = HOST_GAP, float(gap)
                 else:
                     counts["held_ticks"] += 1  # sample kk was lost: hold the last measurement
+                    if state["last_seq"] < 0 and not state["held_first"]:
+                        # lost before any sample arrived: there is nothing older to hold, so
+                        # these first ticks run on the first sample received (a later one)
+                        a["y"][:] = smp.meas
+                        state["held_first"] = True
             a["d"][:] = np.nan
             wd[W_HOST_BITS] = bits | int(live.host_bits())
             wd[W_HOST_VALUE] = value

@@ -475,7 +475,11 @@ def serve_free_running(sc, bind: str, *, sessions: int | None = None,
             pending = None
             last_heard = time.perf_counter()
             t0 = time.perf_counter()
-            send(sim.sample(0))
+            faults.tick = 0
+            first = sim.sample(0)
+            wire = faults.wire(first) if faults.active() else first
+            if wire is not None:  # the first sample can be lost too
+                link.send(wire)
             reason = "stale"
             while True:
                 deadline = t0 + (sim.k + 1) * ts

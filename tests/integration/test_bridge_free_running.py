@@ -102,6 +102,38 @@ def test_free_running_session_tracks_and_counts(tmp_path, plugin_dir, transport)
     assert np.all(np.isfinite(v))
 
 
+def test_samples_lost_before_the_first_one_do_not_leave_a_zero_measurement(tmp_path, plugin_dir):
+    """The first samples lost (UDP, 99.9 % loss for the first 3 ms): there is no older
+    measurement to hold, so the first ticks run on the first sample that arrives, not on
+    zeros (which, under a constant-power load, read as a voltage collapse at tick 0)."""
+    import socket
+    scen = _files(tmp_path, plugin_dir, duration="0.1 s")
+    scen.write_text(scen.read_text() + '\n[[faults]]\nkind = "link_loss"\nvalue = 0.999\n'
+                    'start = 0\nend = "3 ms"\n')
+    with socket.socket(socket.AF_INET, socket.SOCK_DGRAM) as so:
+        so.bind(("127.0.0.1", 0))
+        address = f"udp://127.0.0.1:{so.getsockname()[1]}"
+    sim = _serve(scen, address)
+    try:
+        time.sleep(1.0)
+        p = subprocess.run(CLI + ["run", str(scen), "--bridge", address, "--mode", "free-running",
+                                  "--out", str(tmp_path / "r"), "--headless", "--timeout", "60"],
+                           capture_output=True, text=True, timeout=600)
+        sim.communicate(timeout=120)
+    finally:
+        if sim.poll() is None:
+            sim.kill()
+            sim.communicate(timeout=60)
+    assert p.returncode == 0, p.stdout + p.stderr
+    s = json.loads((tmp_path / "r" / "summary.json").read_text())
+    assert s["bridge"]["lost"] >= 1 and s["bridge"]["held_ticks"] >= 1
+    v = open_run(tmp_path / "r").signals["v_out"]
+    # the plant starts settled at 10 V and, with no actuation yet (the simulator holds 0 V),
+    # decays with its 20 ms time constant until the runtime answers: tick 0 holds the first
+    # sample that arrived, a few ms into that decay (about 8.6 V after 3 ms), not 0 V
+    assert 10.0 * np.exp(-20e-3 / 20e-3) < v[0] < 10.0
+
+
 def test_killing_the_simulator_trips_the_staleness_watchdog(tmp_path, plugin_dir):
     """Issue requirement: killing the stand-in simulator mid-run trips the staleness watchdog
     within its limit, the safe state is applied, and the recording up to the trip is intact
