@@ -235,7 +235,7 @@ def run_bridge(sc, address: str, folder: Path | None = None, *, mode: str = "loc
     if mode == "free-running":
         return run_free_running(sc, address, folder, timeout_s=timeout_s, overwrite=overwrite,
                                 progress=progress, notice=notice, telemetry=telemetry,
-                                allow_remote=allow_remote)
+                                allow_remote=allow_remote, curve_keys=curve_keys)
     sc = dataclasses.replace(sc, mode=mode)
     folder = Path(folder) if folder is not None else default_folder(sc)
     check_folder(folder, overwrite)
@@ -473,7 +473,8 @@ def run_free_running(sc, address: str, folder: Path | None = None, *, timeout_s:
                      stale_s: float | None = None, overwrite: bool = False,
                      progress: Callable[[int, int], None] | None = None,
                      notice: Callable[[str], None] | None = None,
-                     telemetry: str | None = None, allow_remote: bool = False) -> RunResult:
+                     telemetry: str | None = None, allow_remote: bool = False,
+                     curve_keys: Path | None = None) -> RunResult:
     """Free-running: the simulator keeps its own clock and sends a sample every period; the
     runtime answers each within the deadline of one period. A lost sample is a gap: the
     controller runs its tick on the last measurement held; more than ``watchdogs.max_gap``
@@ -482,7 +483,12 @@ def run_free_running(sc, address: str, folder: Path | None = None, *, timeout_s:
     staleness watchdog: that tick runs on the measurement held, its safe output goes out, and
     the runtime waits ``watchdogs.peer_timeout`` more for the simulator; if nothing comes the
     peer-lost watchdog ends the run, with the safe state latched and the recording closed.
-    An ERROR or unasked STOP frame from the simulator trips peer lost at once."""
+    An ERROR or unasked STOP frame from the simulator trips peer lost at once.
+
+    Over ZeroMQ with ``curve_keys`` (a folder made by ``hilrig keys``) the pair is authenticated
+    and encrypted with CurveZMQ; a tcp address that is not loopback needs ``allow_remote`` and
+    the keys. A refused CurveZMQ handshake ends the wait for WELCOME at once with a
+    :class:`BridgeError` that says so."""
     from .transport import free_running_link
     mode = "free-running"
     sc = dataclasses.replace(sc, mode=mode)
@@ -496,7 +502,8 @@ def run_free_running(sc, address: str, folder: Path | None = None, *, timeout_s:
     a = prep.args
     meas_map, act_map = signal_maps(sc)
     n_meas, n_act = len(meas_map), len(act_map)
-    link = free_running_link(address, bind=False)
+    link = free_running_link(address, bind=False, allow_remote=allow_remote,
+                             curve_keys=curve_keys)
     stats = BridgeStats()
     ended: list[dict[str, Any]] = []
     counts = {"late_runtime": 0, "held_ticks": 0, "sim_late": None, "sim_missing": None}
@@ -514,10 +521,10 @@ def run_free_running(sc, address: str, folder: Path | None = None, *, timeout_s:
 
     hello = P.Hello(version=P.PROTOCOL_VERSION, tick_period_s=sc.Ts, mode=mode,
                     meas_map=meas_map, act_map=act_map, map_hash=P.map_hash(meas_map, act_map))
-    link.send(P.encode(hello))
-    stats.sent += 1
-    welcome = recv_frame(timeout_s)
     try:
+        link.send(P.encode(hello))
+        stats.sent += 1
+        welcome = recv_frame(timeout_s)  # a refused CurveZMQ handshake raises BridgeError here
         if welcome is None:
             raise BridgeError(f"no answer from {address} within {timeout_s:g} s")
         if isinstance(welcome, P.Error):
@@ -525,7 +532,7 @@ def run_free_running(sc, address: str, folder: Path | None = None, *, timeout_s:
         if not isinstance(welcome, P.Welcome):
             raise BridgeError(f"the simulator answered HELLO with {type(welcome).__name__}")
         P.handshake_check(hello, welcome)
-    except (ProtocolError, PeerError, BridgeError) as exc:
+    except (ProtocolError, PeerError, BridgeError, TransportTimeout) as exc:
         link.close()
         raise BridgeError(f"bridge handshake with {address} failed: {exc}") from None
     if notice:

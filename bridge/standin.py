@@ -416,20 +416,23 @@ def serve(sc, bind: str, *, sessions: int | None = None, allow_remote: bool = Fa
 
 def serve_free_running(sc, bind: str, *, sessions: int | None = None,
                        idle_timeout_s: float | None = None, stale_s: float = 1.0,
-                       faults: Faults | None = None, commands=None,
-                       log: Callable[[str], None] = print) -> int:
+                       faults: Faults | None = None, commands=None, allow_remote: bool = False,
+                       curve_keys=None, log: Callable[[str], None] = print) -> int:
     """Serve free-running sessions: after the handshake the simulator advances on its own clock
     every tick period, applies the actuation that answered the current sample if it came in
     time, holds the last input otherwise (a *missing* actuation), and counts actuations that
     arrive after their tick as *late*. A session ends on STOP, or when the runtime has sent
     nothing for ``stale_s``. Faults act on the samples sent: drop, delay, jitter, corrupt;
     ``freeze_after`` stops sending (and advancing) from that tick; ``disconnect_after`` sends
-    an unasked STOP at that tick and ends the session."""
+    an unasked STOP at that tick and ends the session. With ``curve_keys`` (a folder made by
+    ``hilrig keys``) the ZeroMQ pair is authenticated and encrypted with CurveZMQ and only
+    runtimes whose public key is in the folder get through; binding to an address reachable
+    from other machines needs ``allow_remote`` and the keys."""
     faults = faults or Faults()
     from .transport import free_running_link
     sim = StandIn(sc)
     faults.schedule([f for f in sc.faults if f.kind.startswith("link_")], sc.Ts, True, log)
-    link = free_running_link(bind, bind=True)
+    link = free_running_link(bind, bind=True, allow_remote=allow_remote, curve_keys=curve_keys)
     if commands is not None:
         # a free-running simulator sends its samples unasked: dropping them works on any transport
         start_command_reader(faults, commands, lambda: sim.k, True, log)

@@ -301,22 +301,58 @@ class UdpServer:
         self.sock.close()
 
 
+_HANDSHAKE_FAILED = (zmq.EVENT_HANDSHAKE_FAILED_AUTH | zmq.EVENT_HANDSHAKE_FAILED_NO_DETAIL
+                     | zmq.EVENT_HANDSHAKE_FAILED_PROTOCOL)
+
+
 class PairTransport:
     """Free-running over ZeroMQ: an exclusive pair, both sides send when they have something.
 
-    The simulator binds, the runtime connects. Loopback and ipc only in this version (no
-    CurveZMQ on this pattern yet).
+    The simulator binds, the runtime connects. A tcp address that is not loopback needs
+    ``allow_remote`` and ``curve_keys`` (a folder made by ``hilrig keys``), as in lockstep: with
+    keys the connection is authenticated and encrypted with CurveZMQ, the simulator's side
+    admits only runtimes whose public certificate is in its folder, and the runtime's side only
+    a simulator holding the secret of ``simulator.key``.
+
+    Until the first frame has arrived, the runtime's side watches the connection's handshake
+    (a ZeroMQ monitor socket): a refused CurveZMQ handshake ends the wait at once with a
+    :class:`BridgeError` that says so, instead of a silent timeout. The monitor is closed once a
+    frame has come, so the per-tick path is a plain poll and receive.
     """
 
-    def __init__(self, address: str, bind: bool):
-        self.address = check_address(address, allow_remote=False)
+    def __init__(self, address: str, bind: bool, allow_remote: bool = False, curve_keys=None):
+        self.address = check_address(address, allow_remote)
+        if curve_keys is None and not _is_loopback(address) and not address.startswith("ipc://"):
+            side = "binding the free-running pair to" if bind else "a free-running ZeroMQ peer at"
+            raise BridgeError(f"{side} {address}, reachable from other machines, needs CurveZMQ "
+                              f"keys: make them with 'hilrig keys DIR' and pass --curve-keys DIR")
         self.ctx = zmq.Context.instance()
         self.sock = self.ctx.socket(zmq.PAIR)
-        self.sock.setsockopt(zmq.LINGER, 0)
-        self.sock.setsockopt(zmq.MAXMSGSIZE, 1 << 20)
-        self.sock.setsockopt(zmq.SNDHWM, 1000)
-        (self.sock.bind if bind else self.sock.connect)(self.address)
+        self.auth = None
+        self.monitor = None
+        self.curve = curve_keys is not None
         self.closed = False
+        try:
+            if curve_keys is not None:
+                if bind:
+                    from .keys import server_keys, start_authenticator
+                    pub, sec = server_keys(curve_keys)
+                    self.auth = start_authenticator(self.ctx, curve_keys)
+                    self.sock.curve_server = True
+                    self.sock.curve_publickey, self.sock.curve_secretkey = pub, sec
+                else:
+                    from .keys import client_keys
+                    pub, sec, server_pub = client_keys(curve_keys)
+                    self.sock.curve_publickey, self.sock.curve_secretkey = pub, sec
+                    self.sock.curve_serverkey = server_pub
+                    self.monitor = self.sock.get_monitor_socket(_HANDSHAKE_FAILED)
+            self.sock.setsockopt(zmq.LINGER, 0)
+            self.sock.setsockopt(zmq.MAXMSGSIZE, 1 << 20)
+            self.sock.setsockopt(zmq.SNDHWM, 1000)
+            (self.sock.bind if bind else self.sock.connect)(self.address)
+        except BaseException:
+            self.close()
+            raise
 
     def send(self, data: bytes) -> None:
         try:
@@ -326,21 +362,73 @@ class PairTransport:
 
     def recv(self, timeout_s: float | None = None) -> bytes | None:
         ms = None if timeout_s is None else max(0, int(timeout_s * 1000))
+        if self.monitor is not None:
+            return self._first_recv(ms)
         if not self.sock.poll(ms, zmq.POLLIN):
             return None
         return self.sock.recv(copy=True)
 
+    def _first_recv(self, ms: int | None) -> bytes | None:
+        """recv() until the first frame: wait on the socket and on its handshake events."""
+        import time
+        poller = zmq.Poller()
+        poller.register(self.sock, zmq.POLLIN)
+        poller.register(self.monitor, zmq.POLLIN)
+        deadline = None if ms is None else time.monotonic() + ms / 1000.0
+        while True:
+            left = None if deadline is None else max(0, int((deadline - time.monotonic()) * 1000))
+            ready = dict(poller.poll(left))
+            if self.sock in ready:
+                self._stop_monitor()  # the handshake is done: the per-tick path needs no monitor
+                return self.sock.recv(copy=True)
+            if self.monitor in ready:
+                why = self._handshake_failure()
+                if why:
+                    self.close()
+                    if why == "handshake_failed_auth":
+                        hint = ("the simulator does not accept this runtime's key (its keys "
+                                "folder has no matching runtime.key)")
+                    else:
+                        hint = ("the simulator's key is not the simulator.key in this keys "
+                                "folder, or the simulator does not use CurveZMQ")
+                    raise BridgeError(f"{self.address} refused the CurveZMQ handshake ({why}): "
+                                      f"{hint}")
+            if deadline is not None and time.monotonic() >= deadline:
+                return None
+
+    def _handshake_failure(self) -> str | None:
+        from zmq.utils.monitor import recv_monitor_message
+        while self.monitor is not None and self.monitor.poll(0):
+            ev = recv_monitor_message(self.monitor)
+            if ev["event"] & _HANDSHAKE_FAILED:
+                return zmq.Event(ev["event"]).name.lower()
+        return None
+
+    def _stop_monitor(self) -> None:
+        if self.monitor is not None:
+            self.sock.disable_monitor()
+            self.monitor.close(linger=0)
+            self.monitor = None
+
     def close(self) -> None:
         if not self.closed:
+            self._stop_monitor()
             self.sock.close(linger=0)
+            if self.auth is not None:
+                self.auth.stop()
+                self.auth = None
             self.closed = True
 
 
-def free_running_link(address: str, bind: bool):
-    """A transport for free-running: UDP for udp://, a ZeroMQ pair otherwise."""
+def free_running_link(address: str, bind: bool, allow_remote: bool = False, curve_keys=None):
+    """A transport for free-running: UDP for udp://, a ZeroMQ pair otherwise (with CurveZMQ
+    when ``curve_keys`` is given; see :class:`PairTransport`)."""
     if address.startswith("udp://"):
-        return UdpServer(address) if bind else UdpClient(address)
-    return PairTransport(address, bind)
+        if curve_keys is not None:
+            raise BridgeError("--curve-keys applies to ZeroMQ addresses (tcp://, ipc://), not udp://")
+        return (UdpServer(address, allow_remote=allow_remote) if bind
+                else UdpClient(address, allow_remote=allow_remote))
+    return PairTransport(address, bind, allow_remote=allow_remote, curve_keys=curve_keys)
 
 
 def client_for(address: str, timeout_s: float, allow_remote: bool = False, curve_keys=None):

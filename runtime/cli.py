@@ -521,6 +521,7 @@ def main(argv: list[str] | None = None) -> int:
                 from hilrig.bridge.standin import serve_free_running
                 serve_free_running(sc, args.bind, sessions=args.sessions,
                                    idle_timeout_s=args.idle_timeout, faults=faults,
+                                   allow_remote=args.allow_remote, curve_keys=args.curve_keys,
                                    commands=sys.stdin if args.commands else None,
                                    log=lambda m: console.print(m, markup=False))
                 return 0

@@ -181,3 +181,81 @@ def test_killing_the_simulator_trips_the_staleness_watchdog(tmp_path, plugin_dir
     # the recording up to the trip: every sample finite and in order
     assert np.all(np.isfinite(rec.signals["v_out"][:k_trip]))
     assert np.array_equal(rec.time, np.arange(n) * 1e-3)
+
+
+def _free_tcp_port():
+    import socket
+    with socket.socket() as s:
+        s.bind(("127.0.0.1", 0))
+        return s.getsockname()[1]
+
+
+def test_curve_keys_on_the_free_running_pair(tmp_path, plugin_dir):
+    """CurveZMQ (ZeroMQ RFC 26) on the free-running pair, through the CLI as an operator uses
+    it: keys from 'hilrig keys'; a runtime whose key the simulator does not hold is refused
+    during the handshake with a clear message (ZAP, RFC 27) and records nothing; the right
+    keys run the session to the end and record it. Loopback tcp: the keys path is the same
+    as for a remote peer."""
+    scen = _files(tmp_path, plugin_dir, duration="0.3 s")
+    # this test is about the keys, not timing: a scheduling stall of the shared machine (seen:
+    # 14 samples in a row at 1 kHz, with and without keys) must not trip the run
+    scen.write_text(scen.read_text() + '\n[watchdogs]\nmax_gap = 200\nstale_limit = "1 s"\n')
+    good, other = tmp_path / "keys", tmp_path / "other"
+    for folder in (good, other):
+        p = subprocess.run(CLI + ["keys", str(folder)], capture_output=True, text=True, timeout=120)
+        assert p.returncode == 0, p.stdout + p.stderr
+    wrong = tmp_path / "wrong"
+    wrong.mkdir()
+    for f in ("runtime.key", "runtime.key_secret"):
+        (wrong / f).write_bytes((other / f).read_bytes())
+    (wrong / "simulator.key").write_bytes((good / "simulator.key").read_bytes())
+    address = f"tcp://127.0.0.1:{_free_tcp_port()}"
+    sim = subprocess.Popen(CLI + ["serve-sim", "--scenario", str(scen), "--bind", address,
+                                  "--mode", "free-running", "--sessions", "1",
+                                  "--idle-timeout", "120", "--curve-keys", str(good)],
+                           stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
+    run = CLI + ["run", str(scen), "--bridge", address, "--mode", "free-running", "--headless"]
+    try:
+        # --timeout 60: a refusal that were only a timeout would take a minute and say so
+        p = subprocess.run(run + ["--out", str(tmp_path / "w"), "--timeout", "60",
+                                  "--curve-keys", str(wrong)],
+                           capture_output=True, text=True, timeout=600)
+        assert p.returncode == 2, p.stdout + p.stderr
+        assert "refused the CurveZMQ handshake" in p.stdout, p.stdout
+        assert "does not accept this runtime's key" in p.stdout
+        assert "Traceback" not in p.stdout + p.stderr
+        assert not (tmp_path / "w" / "recording.h5").exists()
+        p = subprocess.run(run + ["--out", str(tmp_path / "ok"), "--timeout", "60",
+                                  "--curve-keys", str(good)],
+                           capture_output=True, text=True, timeout=600)
+        sim_out, sim_err = sim.communicate(timeout=120)
+    finally:
+        if sim.poll() is None:
+            sim.kill()
+            sim.communicate(timeout=60)
+    assert p.returncode == 0, p.stdout + p.stderr
+    assert sim.returncode == 0, sim_err
+    assert "session 1 ended (stop)" in sim_out
+    s = json.loads((tmp_path / "ok" / "summary.json").read_text())
+    assert s["mode"] == "free-running" and s["completed"], s["events"]
+    assert s["bridge"]["address"] == address
+    assert s["bridge"]["simulator_missing_actuations"] is not None
+    rec = open_run(tmp_path / "ok")
+    assert rec.time.shape[0] == s["ticks_run"] == 300
+    v = rec.signals["v_out"]
+    assert np.all(np.isfinite(v)) and abs(v[-1] - 12.0) < 0.05  # the loop closed over CURVE
+
+
+def test_remote_free_running_needs_the_flag_then_keys(tmp_path, plugin_dir):
+    """The free-running run refuses a remote ZeroMQ peer without --allow-remote, and with it
+    but without CurveZMQ keys, each with one clear line (192.0.2.1: a documentation address,
+    RFC 5737, never contacted)."""
+    scen = _files(tmp_path, plugin_dir)
+    base = CLI + ["run", str(scen), "--bridge", "tcp://192.0.2.1:47810", "--mode", "free-running",
+                  "--out", str(tmp_path / "r"), "--headless"]
+    p = subprocess.run(base, capture_output=True, text=True, timeout=300)
+    assert p.returncode == 2 and "--allow-remote" in p.stdout, p.stdout + p.stderr
+    p = subprocess.run(base + ["--allow-remote"], capture_output=True, text=True, timeout=300)
+    assert p.returncode == 2 and "needs CurveZMQ keys" in p.stdout, p.stdout + p.stderr
+    assert "Traceback" not in p.stdout + p.stderr
+    assert not (tmp_path / "r" / "recording.h5").exists()
