@@ -239,24 +239,26 @@ def run_bridge(sc, address: str, folder: Path | None = None, *, mode: str = "loc
     sc = dataclasses.replace(sc, mode=mode)
     folder = Path(folder) if folder is not None else default_folder(sc)
     check_folder(folder, overwrite)
-    tick, t_compile = _ready_tick(sc)
-    prep = prepare(sc)
-    a = prep.args
-    meas_map, act_map = signal_maps(sc)
-    n_meas, n_act = len(meas_map), len(act_map)
-    h = P.map_hash(meas_map, act_map)
+    # the link first: a refused address or missing keys are reported before any compiling
     link = client_for(address, timeout_s=timeout_s, allow_remote=allow_remote,
                       curve_keys=curve_keys)
-    stats = BridgeStats()
-    stats.link = link
-    ended: list[dict[str, Any]] = []
     try:
-        fast = _Compiled(sc, a, link, n_meas)
-    except LookupError:
-        fast = None  # the Python path for every tick (e.g. NUMBA_DISABLE_JIT)
+        tick, t_compile = _ready_tick(sc)
+        prep = prepare(sc)
+        a = prep.args
+        meas_map, act_map = signal_maps(sc)
+        n_meas, n_act = len(meas_map), len(act_map)
+        h = P.map_hash(meas_map, act_map)
+        try:
+            fast = _Compiled(sc, a, link, n_meas)
+        except LookupError:
+            fast = None  # the Python path for every tick (e.g. NUMBA_DISABLE_JIT)
     except BaseException:
         link.close()
         raise
+    stats = BridgeStats()
+    stats.link = link
+    ended: list[dict[str, Any]] = []
 
     seen: dict[str, Any] = {}
 
@@ -497,13 +499,18 @@ def run_free_running(sc, address: str, folder: Path | None = None, *, timeout_s:
     stale_s = stale_s if stale_s is not None else sc.stale_limit_s
     peer_timeout = sc.watchdogs["peer_timeout"]
     max_gap = int(sc.watchdogs["max_gap"])
-    tick, t_compile = _ready_tick(sc)
-    prep = prepare(sc)
+    # the link first: a refused address or missing keys are reported before any compiling
+    link = free_running_link(address, bind=False, allow_remote=allow_remote,
+                             curve_keys=curve_keys)
+    try:
+        tick, t_compile = _ready_tick(sc)
+        prep = prepare(sc)
+    except BaseException:
+        link.close()
+        raise
     a = prep.args
     meas_map, act_map = signal_maps(sc)
     n_meas, n_act = len(meas_map), len(act_map)
-    link = free_running_link(address, bind=False, allow_remote=allow_remote,
-                             curve_keys=curve_keys)
     stats = BridgeStats()
     ended: list[dict[str, Any]] = []
     counts = {"late_runtime": 0, "held_ticks": 0, "sim_late": None, "sim_missing": None}
