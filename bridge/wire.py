@@ -127,30 +127,34 @@ def _call(builder, name, ret, argtys, args):
     return builder.call(fn, args)
 
 
-@intrinsic
-def zmq_send(typingctx, handle, buf, n):
-    """zmq_send(socket, buf, n, 0): bytes queued, or -1."""
-    sig = types.int64(types.int64, buf, types.int64)
+def _buffer_call(c_name: str, ret, handle_is_pointer: bool, doc: str):
+    """An intrinsic f(handle, buf, n) -> int64 that calls the C function
+    ``c_name(handle, buf, n, 0)``: the handle an int (a file descriptor, passed as C int) or an
+    address (a libzmq socket, passed as void *), buf an array."""
 
-    def codegen(context, builder, signature, args):
-        r = _call(builder, "hilrig_zmq_send", _I32, [_P8, _P8, _I64, _I32],
-                  [builder.inttoptr(args[0], _P8), _ptr(context, builder, signature.args[1], args[1]),
-                   args[2], ir.Constant(_I32, 0)])
-        return builder.sext(r, _I64)
-    return sig, codegen
+    @intrinsic
+    def call(typingctx, handle, buf, n):
+        sig = types.int64(types.int64, buf, types.int64)
+
+        def codegen(context, builder, signature, args):
+            h = builder.inttoptr(args[0], _P8) if handle_is_pointer else builder.trunc(args[0], _I32)
+            r = _call(builder, c_name, ret, [h.type, _P8, _I64, _I32],
+                      [h, _ptr(context, builder, signature.args[1], args[1]), args[2],
+                       ir.Constant(_I32, 0)])
+            return builder.sext(r, _I64) if ret is _I32 else r
+        return sig, codegen
+    call.__doc__ = doc
+    return call
 
 
-@intrinsic
-def zmq_recv(typingctx, handle, buf, cap):
-    """zmq_recv(socket, buf, cap, 0): the message's size (may exceed cap: truncated), or -1."""
-    sig = types.int64(types.int64, buf, types.int64)
-
-    def codegen(context, builder, signature, args):
-        r = _call(builder, "hilrig_zmq_recv", _I32, [_P8, _P8, _I64, _I32],
-                  [builder.inttoptr(args[0], _P8), _ptr(context, builder, signature.args[1], args[1]),
-                   args[2], ir.Constant(_I32, 0)])
-        return builder.sext(r, _I64)
-    return sig, codegen
+zmq_send = _buffer_call("hilrig_zmq_send", _I32, True,
+                        "zmq_send(socket, buf, n, 0): bytes queued, or -1.")
+zmq_recv = _buffer_call("hilrig_zmq_recv", _I32, True,
+                        "zmq_recv(socket, buf, cap, 0): the message's size (may exceed cap: "
+                        "truncated), or -1.")
+c_send = _buffer_call("send", _I64, False,
+                      "send(fd, buf, n, 0) on a connected socket: bytes sent, or -1.")
+c_recv = _buffer_call("recv", _I64, False, "recv(fd, buf, cap, 0): bytes received, or -1.")
 
 
 @intrinsic
@@ -159,30 +163,6 @@ def zmq_errno(typingctx):
 
     def codegen(context, builder, signature, args):
         return builder.sext(_call(builder, "hilrig_zmq_errno", _I32, [], []), _I64)
-    return sig, codegen
-
-
-@intrinsic
-def c_send(typingctx, fd, buf, n):
-    """send(fd, buf, n, 0) on a connected socket: bytes sent, or -1."""
-    sig = types.int64(types.int64, buf, types.int64)
-
-    def codegen(context, builder, signature, args):
-        return _call(builder, "send", _I64, [_I32, _P8, _I64, _I32],
-                     [builder.trunc(args[0], _I32), _ptr(context, builder, signature.args[1], args[1]),
-                      args[2], ir.Constant(_I32, 0)])
-    return sig, codegen
-
-
-@intrinsic
-def c_recv(typingctx, fd, buf, cap):
-    """recv(fd, buf, cap, 0): bytes received, or -1."""
-    sig = types.int64(types.int64, buf, types.int64)
-
-    def codegen(context, builder, signature, args):
-        return _call(builder, "recv", _I64, [_I32, _P8, _I64, _I32],
-                     [builder.trunc(args[0], _I32), _ptr(context, builder, signature.args[1], args[1]),
-                      args[2], ir.Constant(_I32, 0)])
     return sig, codegen
 
 
