@@ -59,7 +59,7 @@ def {fname}(k0, n, ts, nsub, v_collapse, i_vout,
               reset_t, reset_i, evlog, evn, wd,
               y, d, rec, ev{paced_params}):
     """{fdoc}"""
-    for i in range(n):
+{borrow}    for i in range(n):
         kk = k0 + i
         t = kk * ts
 {paced_wait}        # 1 sample (load faults act on the load, as a real device would)
@@ -136,6 +136,7 @@ from hilrig.bridge.wire import (exchange, get_sample, read_vector, put_actuation
                                 IO_KIND, IO_HANDLE, IO_WAIT_MS, IO_STATUS, IO_NRECV, IO_NSENT,
                                 IO_SEQ, IO_ADDRLEN, F_INV_F, F_TOOK, F_TSIM, F_WAITED, KIND_ZMQ,
                                 ST_OK, ST_END, ST_FRAME, ST_SENDFAIL, ST_NONFINITE, ST_IDLE)
+from hilrig.runtime.borrow import borrowed
 {imports}
 interp_rows = _inline(_interp_rows)
 shape_step = _inline(_shape_step)
@@ -399,6 +400,25 @@ rec[i, c] = word
 rec[i, c + 1] = code"""
 
 
+#: the chunk functions' parameters that are not arrays (every other one is borrowed)
+_SCALAR_PARAMS = {"k0", "n", "ts", "nsub", "v_collapse", "i_vout", "slew", "seed",
+                  "c_ref", "k_ref", "cpt", "inv_f", "c_late", "c_comp", "base"}
+
+
+def _borrow_text(params: str) -> str:
+    """Lines that rebind each array parameter (of a parameter list ``params``) of a compiled
+    function to a borrowed view (:mod:`hilrig.runtime.borrow`): the kernels inlined into it
+    then take and release no reference counts (about half the time of a tick on the bench
+    loop, ``bench/loop_stages.py``)."""
+    names = [p.strip() for p in params.split(",") if p.strip()]
+    return "".join(f"    {p} = borrowed({p})\n" for p in names if p not in _SCALAR_PARAMS)
+
+
+def _chunk_params(paced: bool) -> str:
+    head = _CHUNK.split("def {fname}(", 1)[1].split("):", 1)[0]
+    return head.replace("{paced_params}", _PACED_PARAMS if paced else "")
+
+
 def _indent(text: str, n: int) -> str:
     return "\n".join((" " * n + line) if line else line for line in text.splitlines())
 
@@ -496,10 +516,12 @@ def generate(plant: Plugin, ctrl: Plugin, ref: Plugin) -> tuple[Path, bool]:
     parts = dict(ev_nonfinite=EV_NONFINITE, ev_collapse=EV_COLLAPSE,
                  decide_8=_indent(_DECIDE, 8), record_8=_indent(_RECORD, 8))
     sil = _CHUNK.format(fname="run_chunk", paced_params="", paced_wait="", paced_stamp="",
+                        borrow=_borrow_text(_chunk_params(False)),
                         fdoc="SIL: run ticks k0 .. k0+n-1; return how many ran (fewer if the "
                              "run ended).", **parts)
     paced = _CHUNK.format(fname="paced_chunk", paced_params=_PACED_PARAMS,
                           paced_wait=_PACED_WAIT, paced_stamp=_PACED_STAMP,
+                          borrow=_borrow_text(_chunk_params(True)),
                           fdoc="Paced: as run_chunk, each tick at its deadline on the cycle "
                                "counter (c_ref at tick k_ref, cpt counts per tick), with its "
                                "lateness and compute time [s] in rec columns c_late, c_comp; "

@@ -1,0 +1,152 @@
+"""Where a tick of the compiled SIL loop goes: the loop next to variants of itself.
+
+Builds the generated ``run_chunk`` for the scenario of ``bench/sil_throughput.py`` (two-stage LC
+plant + cascaded PI, 20 kHz, RK4 x 4, three interlocks, recording into the chunk buffer) and
+variants of its text, compiles each in this process, and times them interleaved: 1 s simulated
+per repetition, processor time of this process (less sensitive than wall time to other work on
+a shared machine), median of the repetitions. Printed per variant: ns per tick and the ratio to
+the loop as generated, measured in the same run.
+
+Variants:
+- ``owned arrays``: the chunk without the borrowed views (every array argument counted by
+  numba's reference counting, as before :mod:`hilrig.runtime.borrow`); its recording must equal
+  the generated loop's bit for bit, which is checked;
+- ``without <stage>``: one stage removed (the load table sampled once, the reference and the
+  shaping filter run once, no fault application, no watchdog/interlock/supervision stage, no
+  record, no RK4). Removing a stage changes what the others compute (without the RK4 the plant
+  stands still), so the differences are each stage's approximate cost and need not add up.
+
+Run: python bench/loop_stages.py [--reps 11] [--only generated,owned]
+The last printed line is JSON: {variant: median ns per tick}.
+"""
+from __future__ import annotations
+
+import argparse
+import importlib.util
+import json
+import os
+import re
+import statistics as st
+import sys
+import tempfile
+import time
+from pathlib import Path
+
+import numpy as np
+
+sys.path.insert(0, str(Path(__file__).resolve().parent))
+from sil_throughput import SCENARIO  # noqa: E402
+
+
+def _sub(old, new):
+    def f(text):
+        if old not in text:
+            raise RuntimeError(f"generated text changed: {old!r} not found")
+        return text.replace(old, new)
+    return f
+
+
+def _resub(pattern, repl):
+    def f(text):
+        out, n = re.subn(pattern, repl, text)
+        if n == 0:
+            raise RuntimeError(f"generated text changed: {pattern!r} not found")
+        return out
+    return f
+
+
+_ONCE = "        if i == 0:\n            {}\n"
+VARIANTS = {
+    "generated": [],
+    "owned": [_resub(r"    \w+ = borrowed\(\w+\)\n", "")],
+    "without load table": [_sub("        interp_rows(load_t, load_v, t, lcur, d)\n",
+                                _ONCE.format("interp_rows(load_t, load_v, t, lcur, d)"))],
+    "without faults": [_resub(r"        apply_faults\(.*\n", "")],
+    "without reference+shaping": [
+        _sub("        ref_step(t, ts, pr, xr, yr, w)\n", _ONCE.format("ref_step(t, ts, pr, xr, yr, w)")),
+        _sub("        shape_step(ad, g1, g2, cr, dr, slew, ts, z, s, zt, w[0], r)\n",
+             _ONCE.format("shape_step(ad, g1, g2, cr, dr, slew, ts, z, s, zt, w[0], r)"))],
+    "without protect": [
+        _sub("        wword = watch(kk, t, wd, latch)\n", "        wword = 0\n"),
+        _resub(r"        word = wword \| protect\(.*\n.*\n        word = supervise.*\n",
+               "        word = wword\n")],
+    "without record": [_resub(r"        # 7 record\n(.*\n)*?        rec\[i, c \+ 1\] = code\n",
+                              "        rec[i, 0] = word + code\n")],
+    "without RK4": [_sub("        advance(t, ts, nsub, pp, x, u, d)\n", "")],
+}
+
+
+def build(text: str, name: str, folder: Path):
+    path = folder / f"{name}.py"
+    path.write_text(text.replace("@njit(cache=True)", "@njit"))
+    spec = importlib.util.spec_from_file_location(name, path)
+    module = importlib.util.module_from_spec(spec)
+    sys.modules[name] = module
+    spec.loader.exec_module(module)
+    return module.run_chunk
+
+
+def main():
+    ap = argparse.ArgumentParser()
+    ap.add_argument("--reps", type=int, default=11)
+    ap.add_argument("--only", default="", help="comma-separated variant keys (default: all)")
+    args = ap.parse_args()
+    tmp = Path(tempfile.mkdtemp(prefix="hilrig-stages-"))
+    os.environ.setdefault("HILRIG_CACHE_DIR", str(tmp / "cache"))
+    from hilrig.runtime import loop as L
+    from hilrig.runtime import run as R
+    from hilrig.runtime.scenario import parse_scenario
+
+    sc = parse_scenario(SCENARIO, name="bench.toml")
+    path, _ = L.generate(sc.plant.plugin, sc.controller.plugin, sc.reference.plugin)
+    text = path.read_text()
+    # the SIL chunk alone (the paced chunk and the bridge functions are not timed here)
+    head, rest = text.split("@njit(cache=True)\ndef run_chunk", 1)
+    base = head + "@njit(cache=True)\ndef run_chunk" + rest.split("\n\n\n@njit", 1)[0] + "\n"
+    names = [k for k in VARIANTS if not args.only or k.split()[0] in args.only.split(",")
+             or k in args.only.split(",")]
+    if "generated" not in names:
+        names.insert(0, "generated")
+    fns = {}
+    for j, name in enumerate(names):
+        t = base
+        for f in VARIANTS[name]:
+            t = f(t)
+        fns[name] = build(t, f"hilrig_stage_variant_{j}", tmp)
+    n = sc.n_ticks
+    chunk = int(round(sc.recording["chunk"] / sc.Ts))
+    width = len(R.prepare(sc).signals)
+
+    def run(fn, rec):
+        a = R.prepare(sc).args
+        done = 0
+        while done < n:
+            done += R._call(fn, done, min(chunk, n - done), rec[done:], a)
+        return done
+
+    recs = {}
+    for name, fn in fns.items():  # compile, and keep one whole recording for the check
+        recs[name] = np.zeros((n, width))
+        run(fn, recs[name])
+    if "owned" in fns:
+        same = recs["owned"].tobytes() == recs["generated"].tobytes()
+        print(f"owned arrays: recording equal to the generated loop's bit for bit: {same}")
+        if not same:
+            raise SystemExit("borrowed views changed the results")
+    rec = np.zeros((n, width))
+    ns = {k: [] for k in fns}
+    for _ in range(args.reps):
+        for name, fn in fns.items():
+            t = time.process_time()
+            done = run(fn, rec)
+            ns[name].append((time.process_time() - t) / done * 1e9)
+    med = {k: st.median(v) for k, v in ns.items()}
+    ref = med["generated"]
+    for k, v in med.items():
+        extra = "" if k == "generated" else f"  generated minus this: {ref - v:+7.1f} ns"
+        print(f"{k:28s} {v:7.1f} ns per tick  ratio to generated {v / ref:5.2f}{extra}")
+    print(json.dumps({k: round(v, 1) for k, v in med.items()}))
+
+
+if __name__ == "__main__":
+    main()
