@@ -20,8 +20,11 @@ from numba import njit
 @njit(cache=True, inline="always")
 def load_current(v, d, v_min):
     """Current [A] drawn by the summed load at output voltage v [V]; d = [P W, G S, I A]."""
+    # G v + I first: it does not wait for the division, so on the integrator's critical path
+    # (v -> P / v -> dv/dt -> next stage's v) one addition follows the division, not two
+    rest = d[1] * v + d[2]
     if v >= v_min:
         i_p = d[0] / v
     else:
         i_p = d[0] * v / (v_min * v_min)
-    return i_p + d[1] * v + d[2]
+    return i_p + rest
