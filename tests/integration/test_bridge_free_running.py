@@ -65,30 +65,38 @@ def _serve(scen, address):
                             stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
 
 
+def _udp_address() -> str:
+    import socket
+    with socket.socket(socket.AF_INET, socket.SOCK_DGRAM) as so:
+        so.bind(("127.0.0.1", 0))
+        return f"udp://127.0.0.1:{so.getsockname()[1]}"
+
+
+def _session(scen, address, out):
+    """A free-running run against a stand-in simulator serving one session on ``address``;
+    (the run's CompletedProcess, the simulator's output)."""
+    sim = _serve(scen, address)
+    try:
+        time.sleep(1.0)  # let it bind before the first frame
+        p = subprocess.run(CLI + ["run", str(scen), "--bridge", address, "--mode", "free-running",
+                                  "--out", str(out), "--headless", "--timeout", "60"],
+                           capture_output=True, text=True, timeout=600)
+        sim_out, _ = sim.communicate(timeout=120)
+    finally:
+        if sim.poll() is None:
+            sim.kill()
+            sim.communicate(timeout=60)
+    return p, sim_out
+
+
 @pytest.mark.parametrize("transport", ["ipc", "udp"])
 def test_free_running_session_tracks_and_counts(tmp_path, plugin_dir, transport):
     scen = _files(tmp_path, plugin_dir)
     # samples passed over on a loaded machine are counted, not a trip here (the gap watchdog
     # has its own test in the interlock suite)
     scen.write_text(scen.read_text() + '\n[watchdogs]\nmax_gap = 100000\n')
-    if transport == "ipc":
-        address = f"ipc://{tmp_path}/fr.sock"
-    else:
-        import socket
-        with socket.socket(socket.AF_INET, socket.SOCK_DGRAM) as s:
-            s.bind(("127.0.0.1", 0))
-            address = f"udp://127.0.0.1:{s.getsockname()[1]}"
-    sim = _serve(scen, address)
-    try:
-        time.sleep(1.0)
-        p = subprocess.run(CLI + ["run", str(scen), "--bridge", address, "--mode", "free-running",
-                                  "--out", str(tmp_path / "r"), "--headless", "--timeout", "60"],
-                           capture_output=True, text=True, timeout=600)
-        sim_out, sim_err = sim.communicate(timeout=120)
-    finally:
-        if sim.poll() is None:
-            sim.kill()
-            sim.communicate(timeout=60)
+    address = f"ipc://{tmp_path}/fr.sock" if transport == "ipc" else _udp_address()
+    p, sim_out = _session(scen, address, tmp_path / "r")
     assert p.returncode == 0, p.stdout + p.stderr
     s = json.loads((tmp_path / "r" / "summary.json").read_text())
     assert s["mode"] == "free-running" and s["completed"], s["events"]
@@ -109,24 +117,10 @@ def test_samples_lost_before_the_first_one_do_not_leave_a_zero_measurement(tmp_p
     """The first samples lost (UDP, 99.9 % loss for the first 3 ms): there is no older
     measurement to hold, so the first ticks run on the first sample that arrives, not on
     zeros (which, under a constant-power load, read as a voltage collapse at tick 0)."""
-    import socket
     scen = _files(tmp_path, plugin_dir, duration="0.1 s")
     scen.write_text(scen.read_text() + '\n[[faults]]\nkind = "link_loss"\nvalue = 0.999\n'
                     'start = 0\nend = "3 ms"\n')
-    with socket.socket(socket.AF_INET, socket.SOCK_DGRAM) as so:
-        so.bind(("127.0.0.1", 0))
-        address = f"udp://127.0.0.1:{so.getsockname()[1]}"
-    sim = _serve(scen, address)
-    try:
-        time.sleep(1.0)
-        p = subprocess.run(CLI + ["run", str(scen), "--bridge", address, "--mode", "free-running",
-                                  "--out", str(tmp_path / "r"), "--headless", "--timeout", "60"],
-                           capture_output=True, text=True, timeout=600)
-        sim.communicate(timeout=120)
-    finally:
-        if sim.poll() is None:
-            sim.kill()
-            sim.communicate(timeout=60)
+    p, _ = _session(scen, _udp_address(), tmp_path / "r")
     assert p.returncode == 0, p.stdout + p.stderr
     s = json.loads((tmp_path / "r" / "summary.json").read_text())
     assert s["bridge"]["lost"] >= 1 and s["bridge"]["held_ticks"] >= 1
