@@ -8,6 +8,12 @@ a shared machine), median of the repetitions. Printed per variant: ns per tick a
 the loop as generated, measured in the same run.
 
 Variants:
+- ``generic RK4``: the runtime's generic RK4 stages over the plant's ``derivs`` in place of the
+  two-stage plant's own ``rk4_step`` (the same method, arithmetic in another order);
+- ``zero-divisor checks``: the chunk compiled with numba's default error model, which tests
+  every float divisor for zero so that it can raise ZeroDivisionError (the runtime compiles
+  with ``error_model="numpy"``: a division by zero gives inf or NaN, which the protect stage
+  trips on); ``before`` has both, as the loop was compiled before this change;
 - ``owned arrays``: the chunk without the borrowed views (every array argument counted by
   numba's reference counting, as before :mod:`hilrig.runtime.borrow`); its recording must equal
   the generated loop's bit for bit, which is checked;
@@ -73,12 +79,27 @@ VARIANTS = {
     "without record": [_resub(r"        # 7 record\n(.*\n)*?        rec\[i, c \+ 1\] = code\n",
                               "        rec[i, 0] = word + code\n")],
     "without RK4": [_sub("        advance(t, ts, nsub, pp, x, u, d)\n", "")],
+    "generic RK4": [lambda text: _sub("        s = plant_rk4_step(dt, pp, s, u, d)\n",
+                                      _generic_rk4() + "\n")(text)],
+    "zero-divisor checks": [_sub('@njit(cache=True, error_model="numpy")\ndef run_chunk',
+                                 "@njit(cache=True)\ndef run_chunk")],
+    "before (generic RK4 with zero-divisor checks)": [
+        lambda text: _sub("        s = plant_rk4_step(dt, pp, s, u, d)\n", _generic_rk4() + "\n")(text),
+        _sub('@njit(cache=True, error_model="numpy")\ndef run_chunk',
+             "@njit(cache=True)\ndef run_chunk")],
 }
+
+
+def _generic_rk4():
+    """The runtime's generic RK4 substep over the plant's derivs (as for a plant without its
+    own rk4_step)."""
+    from hilrig.runtime.loop import _rk4_text
+    return _rk4_text(4, False)["rk4_body"]
 
 
 def build(text: str, name: str, folder: Path):
     path = folder / f"{name}.py"
-    path.write_text(text.replace("@njit(cache=True)", "@njit"))
+    path.write_text(text.replace("@njit(cache=True, ", "@njit("))
     spec = importlib.util.spec_from_file_location(name, path)
     module = importlib.util.module_from_spec(spec)
     sys.modules[name] = module
@@ -101,8 +122,9 @@ def main():
     path, _ = L.generate(sc.plant.plugin, sc.controller.plugin, sc.reference.plugin)
     text = path.read_text()
     # the SIL chunk alone (the paced chunk and the bridge functions are not timed here)
-    head, rest = text.split("@njit(cache=True)\ndef run_chunk", 1)
-    base = head + "@njit(cache=True)\ndef run_chunk" + rest.split("\n\n\n@njit", 1)[0] + "\n"
+    jit = '@njit(cache=True, error_model="numpy")\n'
+    head, rest = text.split(jit + "def run_chunk", 1)
+    base = head + jit + "def run_chunk" + rest.split("\n\n\n@njit", 1)[0] + "\n"
     names = [k for k in VARIANTS if not args.only or k.split()[0] in args.only.split(",")
              or k in args.only.split(",")]
     if "generated" not in names:

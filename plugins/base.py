@@ -8,6 +8,10 @@ plant
     ``x[i]`` also works when a test passes an array); ``outputs(t, p, x, u, d, y)`` writes the
     measured signals, in the order of ``DECLARATION.outputs``, for the state array ``x``. ``d`` holds the load now:
     ``d[0]`` constant power [W], ``d[1]`` conductance [S], ``d[2]`` constant current [A].
+    Optional: ``rk4_step(dt, p, s, u, d) -> tuple``, one classic RK4 step of length dt from the
+    state tuple ``s`` with u and d held, written out for the plant's equations (the runtime
+    otherwise runs its generic RK4 stages over ``derivs``). It must be the same method: test it
+    against the generic step (see tests/unit/plugins/test_plants.py).
 controller
     ``init(p, xc, y, r)`` sets the controller states from the first measurement and reference
     (bumpless start); ``step(t, p, xc, y, r, u) -> int`` writes the actuation ``u`` and returns 0,
@@ -18,6 +22,10 @@ reference
 
 ``y`` handed to a controller or reference kernel holds exactly the signals the plugin declares in
 ``reads``, in that order; ``r`` holds ``[v_ref, v_ref', v_ref'', v_ref''', v_ref'''']``.
+
+The loop compiles every kernel with numba's ``error_model="numpy"``: a float division by zero
+gives inf or NaN (IEEE 754) instead of raising, and the protect stage trips on a non-finite
+command or measurement.
 
 ``p`` is built in Python before the run by ``DECLARATION.build(values, ctx)`` (default: the
 declared scalar parameters in order). Design work that is not per tick (gains from pole

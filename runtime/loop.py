@@ -48,7 +48,7 @@ EVENT_TEXT = {EV_NONE: "", EV_COLLAPSE: "voltage collapse", EV_NONFINITE: "non-f
               EV_STOPPED: "stopped by the operator"}
 
 
-_CHUNK = '''@njit(cache=True)
+_CHUNK = '''@njit(cache=True, error_model="numpy")
 def {fname}(k0, n, ts, nsub, v_collapse, i_vout,
               pp, x, load_t, load_v, lcur,
               pc, xc, iyc, yc, u, safe_u,
@@ -152,18 +152,15 @@ NX = {nx}
 
 @njit(inline="always")
 def advance(t, h, nsub, pp, x, u, d):
-    """RK4 with nsub substeps over one control period h; u and the load d held.
+    """RK4 with nsub substeps over one control period h; u and the load d held. A plant
+    that brings its own ``rk4_step`` (the same method, arranged for its equations) is stepped
+    with it; otherwise the generic stages below run over its ``derivs``.
 
     The state travels as a tuple so that it stays in registers through the substeps."""
     dt = h / nsub
     s = ({x_items},)
     for j in range(nsub):
-        ta = t + j * dt
-        k1 = plant_derivs(ta, pp, s, u, d)
-        k2 = plant_derivs(ta + 0.5 * dt, pp, ({s_k1},), u, d)
-        k3 = plant_derivs(ta + 0.5 * dt, pp, ({s_k2},), u, d)
-        k4 = plant_derivs(ta + dt, pp, ({s_k3},), u, d)
-        s = ({s_new},)
+{rk4_body}
 {store}
 
 
@@ -172,7 +169,7 @@ def advance(t, h, nsub, pp, x, u, d):
 {paced_chunk}
 
 
-@njit(cache=True)
+@njit(cache=True, error_model="numpy")
 def bridge_tick(kk, i, ts, v_collapse, i_vout,
                 pc, xc, iyc, yc, u, safe_u,
                 pr, xr, iyr, yr, w,
@@ -198,7 +195,7 @@ def bridge_tick(kk, i, ts, v_collapse, i_vout,
     return 1
 
 
-@njit(cache=True)
+@njit(cache=True, error_model="numpy")
 def bridge_chunk(k0, n, ts, v_collapse, i_vout,
                  pc, xc, iyc, yc, u, safe_u,
                  pr, xr, iyr, yr, w,
@@ -267,7 +264,7 @@ def bridge_chunk(k0, n, ts, v_collapse, i_vout,
     return n
 
 
-@njit(cache=True)
+@njit(cache=True, error_model="numpy")
 def sim_serve(k, limit, ts, nsub, pp, x, u, load_t, load_v, lcur, d, y,
               seed, f_stage, f_kind, f_sig, f_t0, f_t1, f_val, f_hold, f_cond, wd,
               io, rbuf, sbuf, pfd, addr, alen):
@@ -329,7 +326,7 @@ def sim_serve(k, limit, ts, nsub, pp, x, u, load_t, load_v, lcur, d, y,
     return k
 
 
-@njit(cache=True)
+@njit(cache=True, error_model="numpy")
 def sim_sample(kk, t, pp, x, u, load_t, load_v, lcur, d, y,
                seed, f_stage, f_kind, f_sig, f_t0, f_t1, f_val, f_hold, f_cond, wd):
     """Stand-in simulator: the plant's outputs at time t (the load sampled at t, with the
@@ -341,7 +338,7 @@ def sim_sample(kk, t, pp, x, u, load_t, load_v, lcur, d, y,
     trigger(t, y, f_t0, f_t1, f_cond)
 
 
-@njit(cache=True)
+@njit(cache=True, error_model="numpy")
 def sim_advance(t, ts, nsub, pp, x, u, d):
     """Stand-in simulator: advance the plant one period with u and the load d held."""
     advance(t, ts, nsub, pp, x, u, d)
@@ -473,9 +470,15 @@ def combination_key(plant: Plugin, ctrl: Plugin, ref: Plugin) -> str:
     return h.hexdigest()[:20]
 
 
+def has_rk4_step(plant: Plugin) -> bool:
+    """Whether the plant plugin brings its own RK4 step (optional kernel ``rk4_step``)."""
+    return getattr(plant.module, "rk4_step", None) is not None
+
+
 def _import_lines(plant: Plugin, ctrl: Plugin, ref: Plugin) -> str:
     lines = []
-    names = {"plant": ("derivs", "outputs"), "ctrl": ("init", "step"), "ref": ("init", "step")}
+    names = {"plant": ("derivs", "outputs") + (("rk4_step",) if has_rk4_step(plant) else ()),
+             "ctrl": ("init", "step"), "ref": ("init", "step")}
     for tag, p in (("plant", plant), ("ctrl", ctrl), ("ref", ref)):
         how, where = p.origin
         if how == "module":
@@ -490,18 +493,27 @@ def _import_lines(plant: Plugin, ctrl: Plugin, ref: Plugin) -> str:
     return "\n".join(lines)
 
 
-def _rk4_text(nx: int) -> dict[str, str]:
-    """The RK4 stage expressions, unrolled for nx states."""
+def _rk4_text(nx: int, own_step: bool) -> dict[str, str]:
+    """The RK4 substep, unrolled for nx states: the plant's own ``rk4_step`` if it has one,
+    else the generic stages over its ``derivs``."""
     r = range(nx)
-    return dict(
-        x_items=", ".join(f"x[{i}]" for i in r),
-        s_k1=", ".join(f"s[{i}] + 0.5 * dt * k1[{i}]" for i in r),
-        s_k2=", ".join(f"s[{i}] + 0.5 * dt * k2[{i}]" for i in r),
-        s_k3=", ".join(f"s[{i}] + dt * k3[{i}]" for i in r),
-        s_new=", ".join(f"s[{i}] + dt / 6.0 * (k1[{i}] + 2.0 * k2[{i}] + 2.0 * k3[{i}] + k4[{i}])"
-                        for i in r),
-        store="\n".join(f"    x[{i}] = s[{i}]" for i in r),
-    )
+    if own_step:
+        body = "        s = plant_rk4_step(dt, pp, s, u, d)"
+    else:
+        s_k1 = ", ".join(f"s[{i}] + 0.5 * dt * k1[{i}]" for i in r)
+        s_k2 = ", ".join(f"s[{i}] + 0.5 * dt * k2[{i}]" for i in r)
+        s_k3 = ", ".join(f"s[{i}] + dt * k3[{i}]" for i in r)
+        s_new = ", ".join(f"s[{i}] + dt / 6.0 * (k1[{i}] + 2.0 * k2[{i}] + 2.0 * k3[{i}] + "
+                          f"k4[{i}])" for i in r)
+        body = "\n".join([
+            "        ta = t + j * dt",
+            "        k1 = plant_derivs(ta, pp, s, u, d)",
+            f"        k2 = plant_derivs(ta + 0.5 * dt, pp, ({s_k1},), u, d)",
+            f"        k3 = plant_derivs(ta + 0.5 * dt, pp, ({s_k2},), u, d)",
+            f"        k4 = plant_derivs(ta + dt, pp, ({s_k3},), u, d)",
+            f"        s = ({s_new},)"])
+    return dict(x_items=", ".join(f"x[{i}]" for i in r), rk4_body=body,
+                store="\n".join(f"    x[{i}] = s[{i}]" for i in r))
 
 
 def generate(plant: Plugin, ctrl: Plugin, ref: Plugin) -> tuple[Path, bool]:
@@ -533,7 +545,7 @@ def generate(plant: Plugin, ctrl: Plugin, ref: Plugin) -> tuple[Path, bool]:
                             ev_nonfinite=EV_NONFINITE, ev_collapse=EV_COLLAPSE,
                             nx=nx, decide_4=_indent(_DECIDE, 4), record_4=_indent(_RECORD, 4),
                             decide_8=parts["decide_8"], record_8=parts["record_8"],
-                            run_chunk=sil, paced_chunk=paced, **_rk4_text(nx))
+                            run_chunk=sil, paced_chunk=paced, **_rk4_text(nx, has_rk4_step(plant)))
     # write then rename: concurrent workers never import a half-written file, and an existing
     # file is never rewritten (a new mtime would invalidate numba's cache of it)
     fd, tmp = tempfile.mkstemp(dir=folder, suffix=".tmp")

@@ -94,6 +94,22 @@ def shape_init(w0, z, s):
     s[0] = w0
 
 
+@njit(cache=True, inline="always")
+def _advance(ad, g1, g2, z, zt, s_prev, ds, n):
+    """z <- ad z + g1 s_prev + g2 ds for the first n states."""
+    for i in range(n):
+        acc = g1[i] * s_prev + g2[i] * ds
+        for j in range(n):
+            acc += ad[i, j] * z[j]
+        zt[i] = acc
+    for i in range(n):
+        # After a transient the derivative states decay towards zero and would enter the
+        # subnormal range (below ~2e-308) within ~0.1 s; subnormal arithmetic is ~100x slower
+        # on x86. Values this small are zero for any physical purpose.
+        v = zt[i]
+        z[i] = v if not (-1e-200 < v < 1e-200) else 0.0
+
+
 @njit(cache=True)
 def shape_step(ad, g1, g2, cr, dr, slew, ts, z, s, zt, w_raw, r):
     """Advance the shaping filter from the previous tick to this one and write r (5 values).
@@ -111,17 +127,16 @@ def shape_step(ad, g1, g2, cr, dr, slew, ts, z, s, zt, w_raw, r):
         ds = 0.0
     s_now = s_prev + ds
     n = z.shape[0]
-    for i in range(n):
-        acc = g1[i] * s_prev + g2[i] * ds
-        for j in range(n):
-            acc += ad[i, j] * z[j]
-        zt[i] = acc
-    for i in range(n):
-        # After a transient the derivative states decay towards zero and would enter the
-        # subnormal range (below ~2e-308) within ~0.1 s; subnormal arithmetic is ~100x slower
-        # on x86. Values this small are zero for any physical purpose.
-        v = zt[i]
-        z[i] = v if not (-1e-200 < v < 1e-200) else 0.0
+    # the default order and its neighbours with the order as a literal, so that the compiler
+    # unrolls the matrix-vector product (the same operations in the same order: same bits)
+    if n == 5:
+        _advance(ad, g1, g2, z, zt, s_prev, ds, 5)
+    elif n == 4:
+        _advance(ad, g1, g2, z, zt, s_prev, ds, 4)
+    elif n == 6:
+        _advance(ad, g1, g2, z, zt, s_prev, ds, 6)
+    else:
+        _advance(ad, g1, g2, z, zt, s_prev, ds, n)
     s[0] = s_now
     if n >= 5:
         # the first five states are the value and its four derivatives (cr = [I 0], dr = 0)

@@ -67,6 +67,12 @@ CONDITIONS = (((1 << MAX_ROWS) - 1) | (1 << BIT_NONFINITE) | (1 << BIT_CONTROLLE
               | (((1 << len(WD_NAMES)) - 1) << BIT_WATCHDOG))
 #: interlock sides
 SIDE_BELOW, SIDE_ABOVE, SIDE_MAGNITUDE, SIDE_FROZEN = 0, 1, 2, 3
+
+#: the frozen check counts a tick only while a controller output changes by more than this
+#: fraction of its magnitude since the last tick: well above rounding (about 1e-16 per
+#: operation, accumulated over a controller's arithmetic) and far below any change a sensor
+#: could show (1e-9 of 400 V is 0.4 uV)
+U_MOVED_REL = 1e-9
 #: added to a row's side code when its action is "warn"
 SIDE_WARN = 8
 SIDE_WORDS = {SIDE_BELOW: "below", SIDE_ABOVE: "above", SIDE_MAGNITUDE: "magnitude_above",
@@ -384,10 +390,18 @@ def protect(tick, t, ts, y, u, code, dix, sig, side, thr, deb, cnt, latch, pv, s
         # a negative code (-1 is a common "failed") must not land in the non-finite cause range
         cause = CAUSE_CONTROLLER + code if code > 0 else -CAUSE_CONTROLLER + code
         _trip(latch, cause, tick, t, float(code))
-    # did any controller output change since the last tick (for the frozen check)?
+    # did any controller output change since the last tick (for the frozen check)? A change
+    # of rounding size is not a change: at a settled operating point an integrator moves the
+    # command by a few units in the last place while the plant's output stays exactly put,
+    # which is no sign of a stuck sensor (see U_MOVED_REL)
     u_moved = False
     for j in range(nu):
-        if pv[ny + j] != pv[m + ny + j]:
+        a = pv[ny + j]
+        b = pv[m + ny + j]
+        if abs(a) < np.inf and abs(b) < np.inf:
+            if abs(a - b) > U_MOVED_REL * abs(a):
+                u_moved = True
+        elif a != b:
             u_moved = True
     for k in range(sig.shape[0]):
         if held and ny <= sig[k] < ny + nu:

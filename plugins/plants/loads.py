@@ -28,3 +28,14 @@ def load_current(v, d, v_min):
     else:
         i_p = d[0] * v / (v_min * v_min)
     return i_p + rest
+
+
+@njit(cache=True, inline="always")
+def power_current_scaled(k, v, d, v_min):
+    """k times the constant-power part of the load current at v [V], k P / v (below v_min its
+    resistive stand-in k P v / v_min^2). k P is formed before v is known, so the division is the
+    only operation between v and the result (the integrator's critical path)."""
+    kp = k * d[0]
+    if v >= v_min:
+        return kp / v
+    return kp * v / (v_min * v_min)

@@ -37,3 +37,20 @@ def test_second_process_does_not_recompile(tmp_path, demo_path):
     # the generated module is keyed by the hash of its sources: exactly one file for one combination
     mods = sorted(p.name for p in (cache / "loops").glob("loop_*.py"))
     assert len(mods) == 1
+
+
+def test_plant_own_rk4_step_is_used_when_present(tmp_path, monkeypatch):
+    """A plant module with ``rk4_step`` (two_stage_lc) is integrated with it; one without
+    (single_lc) with the runtime's generic stages over ``derivs``; both compile into the loop."""
+    from hilrig.runtime import loop as L
+    from hilrig.runtime.registry import load as find
+
+    monkeypatch.setenv("HILRIG_CACHE_DIR", str(tmp_path / "cache"))
+    ctrl, ref = find("controller", "cascaded_pi"), find("reference", "profile")
+    own, _ = L.generate(find("plant", "two_stage_lc"), ctrl, ref)
+    generic, _ = L.generate(find("plant", "single_lc"), ctrl, ref)
+    own_text, generic_text = own.read_text(), generic.read_text()
+    assert "s = plant_rk4_step(dt, pp, s, u, d)" in own_text
+    assert "k4 = plant_derivs(" not in own_text
+    assert "plant_rk4_step" not in generic_text
+    assert "k4 = plant_derivs(ta + dt, pp, (s[0] + dt * k3[0], s[1] + dt * k3[1],), u, d)" in generic_text

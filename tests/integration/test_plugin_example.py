@@ -2,6 +2,8 @@
 import re
 from pathlib import Path
 
+import numpy as np
+
 from hilrig.runtime.recording import open_run
 from hilrig.runtime.run import run_scenario
 from hilrig.runtime.scenario import load_scenario
@@ -32,3 +34,31 @@ def test_docs_worked_example_runs(tmp_path):
     assert abs(v[t < 0.01] - 400.0).max() < 0.5
     # after the 400 -> 420 V step the integral action removes the error (end of the run)
     assert abs(v[-1] - 420.0) < 0.05
+
+
+def test_division_by_zero_in_a_plugin_trips_instead_of_raising(tmp_path):
+    """A controller that divides by zero mid-run: the compiled loop follows IEEE 754 (0/0 is
+    NaN, x/0 is inf; IEEE 754-2019 sec. 7.3) instead of raising, and the protect stage trips on
+    the non-finite command on that tick, with the safe output; the run ends in order with its
+    recording. (Under numba's default error model the compiled chunk would raise
+    ZeroDivisionError instead.)"""
+    files = example_files()
+    body = files["voltage_pi.py"].replace(
+        "        xc[0] += p[KI] * p[TS] * e  # integrate only when not clamped (anti-windup)\n",
+        "        xc[0] += p[KI] * p[TS] * e  # integrate only when not clamped (anti-windup)\n"
+        "    if t >= 0.01:\n"
+        "        u[0] = u[0] * 0.0 / (t - t)  # a plugin bug: 0 / 0\n")
+    assert body != files["voltage_pi.py"]
+    (tmp_path / "voltage_pi.py").write_text(body)
+    (tmp_path / "example.toml").write_text(files["example.toml"])
+    sc = load_scenario(tmp_path / "example.toml")
+    res = run_scenario(sc, tmp_path / "run")
+    s = res.summary
+    run = open_run(res.folder)
+    k = int(np.searchsorted(run.time, 0.01 - 1e-12))
+    assert s["trip"]["tick"] == k and s["trip"]["cause"] == "non-finite value of u"
+    assert np.all(run.signals["u"][k:] == 0.0)  # the safe output, held
+    assert np.all(np.isfinite(run.signals["u"][:k]))
+    # with 0 V applied the constant-power load then collapses the output: the run ends on
+    # that event, in order (summary, events and recording written)
+    assert s["end_event"] == "voltage collapse" and s["ticks_run"] == len(run.time) > k

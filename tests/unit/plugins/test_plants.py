@@ -127,6 +127,20 @@ def _rk4_periods(derivs, p, x0, schedule, nsub=NSUB):
     return np.array(out)
 
 
+def _own_step_periods(step, p, x0, schedule, nsub=NSUB):
+    """As _rk4_periods, with the plant's own RK4 step (``rk4_step``) for each substep."""
+    s = tuple(float(v) for v in x0)
+    h = TS / nsub
+    out = [np.array(s)]
+    for u_v, d in schedule:
+        u = _vec(u_v)
+        d = np.asarray(d, dtype=np.float64)
+        for _ in range(nsub):
+            s = step(h, p, s, u, d)
+        out.append(np.array(s))
+    return np.array(out)
+
+
 def _radau_periods(rhs, c, x0, schedule):
     """Reference: solve_ivp Radau period by period (restarted at each period boundary, where u
     or the load may jump, so that the solver never steps across a discontinuity)."""
@@ -227,6 +241,62 @@ def test_two_stage_trajectory_matches_radau():
     got8 = _rk4_periods(two_stage_lc.derivs, p, x0, sched, nsub=2 * NSUB)
     err8 = np.max(np.abs(got8 - ref), axis=0)
     assert np.all(err8 <= err / 8.0), f"errors {err} -> {err8} with half the step"
+
+
+def test_two_stage_own_step_matches_radau():
+    """The plant's own RK4 step (the runtime integrates with it) against solve_ivp Radau, with
+    the same bound as the generic RK4 above, and the same fourth-order convergence."""
+    c = TWO
+    p = _pack(two_stage_lc, c)
+    i0 = _i_load_ref(V0, *_D0, c["v_load_min"])
+    x0 = [i0, V0 + c["R2"] * i0, i0, V0]
+    sched = _schedule(V0 + (c["R1"] + c["R2"]) * i0)
+    ref = _radau_periods(_two_stage_rhs, c, x0, sched)
+    got = _own_step_periods(two_stage_lc.rk4_step, p, x0, sched)
+    eigs = np.concatenate([np.linalg.eigvals(_two_stage_jac(c, V0, P, G)) for P, G, _ in (_D0, _D1)])
+    tol = _rk4_global_tolerance(eigs, len(sched) * NSUB, np.ptp(ref, axis=0))
+    err = np.max(np.abs(got - ref), axis=0)
+    assert np.all(err <= tol), f"max |error| per state {err} exceeds RK4 bound {tol}"
+    np.testing.assert_allclose(got[4], x0, rtol=1e-12, atol=1e-9)
+    got8 = _own_step_periods(two_stage_lc.rk4_step, p, x0, sched, nsub=2 * NSUB)
+    err8 = np.max(np.abs(got8 - ref), axis=0)
+    assert np.all(err8 <= err / 8.0), f"errors {err} -> {err8} with half the step"
+
+
+def test_two_stage_own_step_is_classic_rk4():
+    """``rk4_step`` is the classic RK4 step over ``derivs`` (the textbook Butcher tableau, as
+    in _rk4_periods) with its arithmetic in another order: over random states, loads (both
+    signs of P, the resistive stand-in below v_load_min) and commands (inside and beyond both
+    clamps), the two agree to rounding. The bound is 1e-13 of the state's and the step's
+    magnitudes; a wrong weight or stage width is off by far more (checked below)."""
+    p = _pack(two_stage_lc, TWO)
+    rng = np.random.default_rng(20261202)  # demo data: arbitrary test points
+    h = TS / NSUB
+    worst = 0.0
+    for _ in range(400):
+        x = np.array([rng.uniform(-400, 400), rng.uniform(0, 800), rng.uniform(-400, 400),
+                      rng.choice([rng.uniform(0.5, 10.0), rng.uniform(10.0, 800.0)])])
+        d = _vec(rng.uniform(-1.5e5, 1.5e5), rng.uniform(0.0, 2.0), rng.uniform(-200, 200))
+        u = _vec(rng.uniform(-100.0, 900.0))
+        generic = _rk4_periods_one(two_stage_lc.derivs, p, x, u, d, h)
+        own = np.array(two_stage_lc.rk4_step(h, p, tuple(x), u, d))
+        scale = np.abs(x) + np.abs(generic - x) + 1.0
+        worst = max(worst, float(np.max(np.abs(own - generic) / scale)))
+    assert worst <= 1e-13, worst
+    # the check has teeth: the same comparison for a step of 1.001 h fails by orders of magnitude
+    x, u, d = _vec(120.0, 401.0, 118.0, 399.0), _vec(405.0), _vec(50e3, 0.0, 0.0)
+    off = np.array(two_stage_lc.rk4_step(1.001 * h, p, tuple(x), u, d))
+    generic = _rk4_periods_one(two_stage_lc.derivs, p, x, u, d, h)
+    assert np.max(np.abs(off - generic) / (np.abs(x) + np.abs(generic - x) + 1.0)) > 1e-7
+
+
+def _rk4_periods_one(derivs, p, x, u, d, h):
+    """One classic RK4 step of length h over derivs (the stages of _rk4_periods)."""
+    k1 = np.array(derivs(0.0, p, x, u, d))
+    k2 = np.array(derivs(0.0, p, x + 0.5 * h * k1, u, d))
+    k3 = np.array(derivs(0.0, p, x + 0.5 * h * k2, u, d))
+    k4 = np.array(derivs(0.0, p, x + h * k3, u, d))
+    return x + h / 6.0 * (k1 + 2.0 * k2 + 2.0 * k3 + k4)
 
 
 def test_single_stage_trajectory_matches_radau():

@@ -278,6 +278,24 @@ def test_frozen_does_not_trip_while_u_is_constant(jit):
 
 
 @KERNELS
+def test_frozen_ignores_command_changes_of_rounding_size(jit):
+    # At a settled operating point an integrator moves the command by a few units in the last
+    # place while the plant's output stays exactly put (seen with the demo plant at its start
+    # equilibrium): no stuck sensor. A change of 1e-6 of the command, far below anything a
+    # sensor resolves but far above rounding, does count. (Rounding: IEEE 754 double, unit
+    # roundoff 2^-53, common practice, no source.)
+    ulps = [U_CMD, np.nextafter(U_CMD, np.inf), np.nextafter(np.nextafter(U_CMD, np.inf), np.inf)]
+    rig = Rig([frozen("i_L1", 2)], jit)
+    for k in range(30):
+        word, u = rig.step(i_l1=104.0, u=ulps[k % 3])
+        assert word == 0
+    assert not rig.tripped
+    u_small = [U_CMD * (1.0 + 1e-6 * k) for k in range(10)]
+    rig = Rig([frozen("i_L1", 2)], jit)
+    assert run_until_trip(rig, i_l1=[104.0] * 10, u=u_small) == 2
+
+
+@KERNELS
 def test_a_single_changed_sample_resets_the_frozen_count(jit):
     n = 4
     # unchanged on ticks 1..3 (n - 1 ticks), changed on tick 4, unchanged from tick 5: the n-th
