@@ -127,51 +127,40 @@ def rk4_step(dt, p, s, u, d):
     (a few units in the last place per step; the tests bound it).
     """
     uc = _clamp_u(p, u)
-    a, b, c, e = p[INV_L1], p[INV_C1], p[INV_L2], p[INV_C2]
-    r1, r2, vmin = p[R1], p[R2], p[V_LOAD_MIN]
-    g, ic = d[1], d[2]
     h2 = 0.5 * dt
     w = dt / 6.0
+    e = p[INV_C2]
     i1, v1, i2, vo = s[0], s[1], s[2], s[3]
-    # stage 1 (at s) -> stage 2's state
-    f1 = (uc - r1 * i1 - v1) * a
-    g1 = (i1 - i2) * b
-    m1 = (v1 - r2 * i2 - vo) * c
-    n1 = i2 - (g * vo + ic)  # C2 dv_out/dt without the constant-power part
-    q1 = power_current_scaled(h2 * e, vo, d, vmin)
-    i1b = i1 + h2 * f1
-    v1b = v1 + h2 * g1
-    i2b = i2 + h2 * m1
-    vob = (vo + h2 * e * n1) - q1
-    # stage 2 -> stage 3's state
-    f2 = (uc - r1 * i1b - v1b) * a
-    g2 = (i1b - i2b) * b
-    m2 = (v1b - r2 * i2b - vob) * c
-    n2 = i2b - (g * vob + ic)
-    q2 = power_current_scaled(h2 * e, vob, d, vmin)
-    i1c = i1 + h2 * f2
-    v1c = v1 + h2 * g2
-    i2c = i2 + h2 * m2
-    voc = (vo + h2 * e * n2) - q2
-    # stage 3 -> stage 4's state
-    f3 = (uc - r1 * i1c - v1c) * a
-    g3 = (i1c - i2c) * b
-    m3 = (v1c - r2 * i2c - voc) * c
-    n3 = i2c - (g * voc + ic)
-    q3 = power_current_scaled(dt * e, voc, d, vmin)
-    i1d = i1 + dt * f3
-    v1d = v1 + dt * g3
-    i2d = i2 + dt * m3
-    vod = (vo + dt * e * n3) - q3
-    # stage 4, and s + dt/6 (k1 + 2 k2 + 2 k3 + k4); the constant-power parts of stages 1-3
-    # enter with weights dt/6, dt/3, dt/3, which are 1/3, 2/3 and 1/3 of their stage widths
-    f4 = (uc - r1 * i1d - v1d) * a
-    g4 = (i1d - i2d) * b
-    m4 = (v1d - r2 * i2d - vod) * c
-    n4 = i2d - (g * vod + ic)
-    q4 = power_current_scaled(w * e, vod, d, vmin)
+    # stage 1 at s; stages 2 and 3 at s + dt/2 k; stage 4 at s + dt k
+    f1, g1, m1, n1, q1 = _rates(p, uc, d, h2 * e, i1, v1, i2, vo)
+    i1b, v1b, i2b, vob = _move(h2, h2 * e, i1, v1, i2, vo, f1, g1, m1, n1, q1)
+    f2, g2, m2, n2, q2 = _rates(p, uc, d, h2 * e, i1b, v1b, i2b, vob)
+    i1c, v1c, i2c, voc = _move(h2, h2 * e, i1, v1, i2, vo, f2, g2, m2, n2, q2)
+    f3, g3, m3, n3, q3 = _rates(p, uc, d, dt * e, i1c, v1c, i2c, voc)
+    i1d, v1d, i2d, vod = _move(dt, dt * e, i1, v1, i2, vo, f3, g3, m3, n3, q3)
+    f4, g4, m4, n4, q4 = _rates(p, uc, d, w * e, i1d, v1d, i2d, vod)
+    # s + dt/6 (k1 + 2 k2 + 2 k3 + k4); the constant-power parts of stages 1-3 enter with
+    # weights dt/6, dt/3, dt/3, which are 1/3, 2/3 and 1/3 of the widths they were scaled by
     q123 = (q1 + 2.0 * q2 + q3) / 3.0
     return (i1 + w * (f1 + 2.0 * f2 + 2.0 * f3 + f4),
             v1 + w * (g1 + 2.0 * g2 + 2.0 * g3 + g4),
             i2 + w * (m1 + 2.0 * m2 + 2.0 * m3 + m4),
             ((vo + w * e * (n1 + 2.0 * n2 + 2.0 * n3 + n4)) - q123) - q4)
+
+
+@njit(cache=True, inline="always")
+def _rates(p, uc, d, he, i1, v1, i2, vo):
+    """One RK4 stage's rates: dx/dt of the first three states, C2 dv_out/dt without the
+    constant-power part (n), and that part scaled for the stage, he P / v_out (q)."""
+    return ((uc - p[R1] * i1 - v1) * p[INV_L1],
+            (i1 - i2) * p[INV_C1],
+            (v1 - p[R2] * i2 - vo) * p[INV_L2],
+            i2 - (d[1] * vo + d[2]),
+            power_current_scaled(he, vo, d, p[V_LOAD_MIN]))
+
+
+@njit(cache=True, inline="always")
+def _move(h, he, i1, v1, i2, vo, f, g, m, n, q):
+    """The next stage's state s + h k, with v_out's part (v_out0 + h/C2 n) - q: only the
+    subtraction of q waits for the division."""
+    return i1 + h * f, v1 + h * g, i2 + h * m, (vo + he * n) - q

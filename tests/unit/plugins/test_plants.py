@@ -216,7 +216,18 @@ def _schedule(u0):
             + [(1000.0, _D1)] * 4 + [(-50.0, _D1)] * 4 + [(u0 + 20.0, _D1)] * 8)
 
 
-def test_two_stage_trajectory_matches_radau():
+def _generic(p, x0, sched, nsub=NSUB):
+    return _rk4_periods(two_stage_lc.derivs, p, x0, sched, nsub)
+
+
+def _own(p, x0, sched, nsub=NSUB):
+    return _own_step_periods(two_stage_lc.rk4_step, p, x0, sched, nsub)
+
+
+@pytest.mark.parametrize("integrate", [_generic, _own], ids=["generic_rk4", "own_rk4_step"])
+def test_two_stage_trajectory_matches_radau(integrate):
+    """The generic RK4 over ``derivs``, and the plant's own ``rk4_step`` (the runtime
+    integrates with it), against solve_ivp Radau."""
     c = TWO
     p = _pack(two_stage_lc, c)
     # equilibrium at 400 V written out (CHECKS.md: i1 = i2 = i_load, v1 = v2 + R2 i, u = v1 + R1 i)
@@ -227,7 +238,7 @@ def test_two_stage_trajectory_matches_radau():
     assert max(u for u, _ in sched) > c["V_dc"] and min(u for u, _ in sched) < 0.0
 
     ref = _radau_periods(_two_stage_rhs, c, x0, sched)
-    got = _rk4_periods(two_stage_lc.derivs, p, x0, sched)
+    got = integrate(p, x0, sched)
 
     eigs = np.concatenate([np.linalg.eigvals(_two_stage_jac(c, V0, P, G)) for P, G, _ in (_D0, _D1)])
     tol = _rk4_global_tolerance(eigs, len(sched) * NSUB, np.ptp(ref, axis=0))
@@ -238,27 +249,7 @@ def test_two_stage_trajectory_matches_radau():
 
     # The difference is RK4 truncation, not a model mismatch: halving h shrinks it by ~2^4.
     # (A model error would not shrink with h.) Require at least a factor 8.
-    got8 = _rk4_periods(two_stage_lc.derivs, p, x0, sched, nsub=2 * NSUB)
-    err8 = np.max(np.abs(got8 - ref), axis=0)
-    assert np.all(err8 <= err / 8.0), f"errors {err} -> {err8} with half the step"
-
-
-def test_two_stage_own_step_matches_radau():
-    """The plant's own RK4 step (the runtime integrates with it) against solve_ivp Radau, with
-    the same bound as the generic RK4 above, and the same fourth-order convergence."""
-    c = TWO
-    p = _pack(two_stage_lc, c)
-    i0 = _i_load_ref(V0, *_D0, c["v_load_min"])
-    x0 = [i0, V0 + c["R2"] * i0, i0, V0]
-    sched = _schedule(V0 + (c["R1"] + c["R2"]) * i0)
-    ref = _radau_periods(_two_stage_rhs, c, x0, sched)
-    got = _own_step_periods(two_stage_lc.rk4_step, p, x0, sched)
-    eigs = np.concatenate([np.linalg.eigvals(_two_stage_jac(c, V0, P, G)) for P, G, _ in (_D0, _D1)])
-    tol = _rk4_global_tolerance(eigs, len(sched) * NSUB, np.ptp(ref, axis=0))
-    err = np.max(np.abs(got - ref), axis=0)
-    assert np.all(err <= tol), f"max |error| per state {err} exceeds RK4 bound {tol}"
-    np.testing.assert_allclose(got[4], x0, rtol=1e-12, atol=1e-9)
-    got8 = _own_step_periods(two_stage_lc.rk4_step, p, x0, sched, nsub=2 * NSUB)
+    got8 = integrate(p, x0, sched, nsub=2 * NSUB)
     err8 = np.max(np.abs(got8 - ref), axis=0)
     assert np.all(err8 <= err / 8.0), f"errors {err} -> {err8} with half the step"
 
