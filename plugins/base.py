@@ -10,7 +10,8 @@ plant
     ``d[0]`` constant power [W], ``d[1]`` conductance [S], ``d[2]`` constant current [A].
     Optional: ``rk4_step(dt, p, s, u, d) -> tuple``, one classic RK4 step of length dt from the
     state tuple ``s`` with u and d held, written out for the plant's equations (the runtime
-    otherwise runs its generic RK4 stages over ``derivs``). It must be the same method: test it
+    otherwise runs its generic RK4 stages over ``derivs``). It takes no time argument: only for
+    equations that do not depend on t explicitly. It must be the same method: test it
     against the generic step (see tests/unit/plugins/test_plants.py).
 controller
     ``init(p, xc, y, r)`` sets the controller states from the first measurement and reference
@@ -24,8 +25,9 @@ reference
 ``reads``, in that order; ``r`` holds ``[v_ref, v_ref', v_ref'', v_ref''', v_ref'''']``.
 
 The loop compiles every kernel with numba's ``error_model="numpy"``: a float division by zero
-gives inf or NaN (IEEE 754) instead of raising, and the protect stage trips on a non-finite
-command or measurement.
+gives inf or NaN (IEEE 754) instead of raising, and the loop trips on a non-finite command,
+measurement or controller state. An integer ``//`` or ``%`` by zero gives 0 without any trip:
+guard integer divisors in kernels.
 
 ``p`` is built in Python before the run by ``DECLARATION.build(values, ctx)`` (default: the
 declared scalar parameters in order). Design work that is not per tick (gains from pole

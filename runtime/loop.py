@@ -127,7 +127,7 @@ from hilrig.plugins.tables import interp_rows as _interp_rows
 from hilrig.runtime.loop import inline as _inline
 from hilrig.runtime.shaping import shape_init, shape_step as _shape_step
 from hilrig.safety.interlocks import (protect as _protect, supervise as _supervise,
-                                      watch as _watch, L_REINIT)
+                                      watch as _watch, state_code as _state_code, L_REINIT)
 from hilrig.safety.faults import apply as _apply_faults, trigger as _trigger
 from hilrig.runtime.clock import cycles, store_fence
 from hilrig.safety.interlocks import W_HOST_TIME, W_HOST_BITS, W_FORCED
@@ -144,6 +144,7 @@ protect = _inline(_protect)
 watch = _inline(_watch)
 trigger = _inline(_trigger)
 supervise = _inline(_supervise)
+state_code = _inline(_state_code)
 apply_faults = _inline(_apply_faults)
 
 #: plant state count, a literal so that the compiler unrolls the state loops
@@ -371,6 +372,7 @@ if kk == 0 or latch[L_REINIT] != 0.0:
 # controller faults of this tick overwrite the forced overrun they read
 wword = watch(kk, t, wd, latch)
 code = ctrl_step(t, pc, xc, yc, r, u)
+code = state_code(code, xc)
 apply_faults(2, kk, t, seed, f_stage, f_kind, f_sig, f_t0, f_t1, f_val, f_hold, f_cond, wd, y, u, d)
 # 5 protect
 word = wword | protect(kk, t, ts, y, u, code, dix, lim_sig, lim_side, lim_thr, lim_deb,

@@ -49,6 +49,9 @@ LATCH_SIZE = 10
 #: cause codes: 1 + row for a limit row; these offsets for plausibility causes
 CAUSE_NONFINITE = 1000   # + index into [y..., u...]
 CAUSE_CONTROLLER = 2000  # + the controller's fault code if > 0; -CAUSE_CONTROLLER + code if < 0
+#: the fault code the loop substitutes when a controller returns 0 with a non-finite state (a
+#: NaN in an integrator that a clamp keeps out of the command)
+CODE_NONFINITE_STATE = -999
 #: + watchdog index (WD_NAMES)
 CAUSE_WATCHDOG = 3000
 #: bits of the interlock word. The word is recorded as float64, which holds integers exactly only
@@ -71,7 +74,9 @@ SIDE_BELOW, SIDE_ABOVE, SIDE_MAGNITUDE, SIDE_FROZEN = 0, 1, 2, 3
 #: the frozen check counts a tick only while a controller output changes by more than this
 #: fraction of its magnitude since the last tick: well above rounding (about 1e-16 per
 #: operation, accumulated over a controller's arithmetic) and far below any change a sensor
-#: could show (1e-9 of 400 V is 0.4 uV)
+#: could show (1e-9 of 400 V is 0.4 uV). Per tick: a command drifting by less than this each
+#: tick (8 mV/s at 400 V and 20 kHz) does not count; a command near 0 whose rounding comes
+#: from operands far larger than itself can still count as moving.
 U_MOVED_REL = 1e-9
 #: added to a row's side code when its action is "warn"
 SIDE_WARN = 8
@@ -182,6 +187,8 @@ class InterlockTable:
         if cause >= CAUSE_WATCHDOG:
             name = WD_NAMES[cause - CAUSE_WATCHDOG]
             return name if name == "stop requested" else f"watchdog {name}"
+        if cause == -CAUSE_CONTROLLER + CODE_NONFINITE_STATE:
+            return "non-finite controller state"
         if cause <= -CAUSE_CONTROLLER:
             return f"controller fault code {cause + CAUSE_CONTROLLER}"
         if cause <= 0:
@@ -199,6 +206,8 @@ class InterlockTable:
         if cause >= CAUSE_WATCHDOG:
             name = WD_NAMES[cause - CAUSE_WATCHDOG]
             return name if name == "stop requested" else f"watchdog {name}"
+        if cause == -CAUSE_CONTROLLER + CODE_NONFINITE_STATE:
+            return "non-finite controller state"
         if cause <= -CAUSE_CONTROLLER or cause >= CAUSE_CONTROLLER:
             return "controller fault"
         if cause <= 0:
@@ -337,6 +346,18 @@ def watch(tick, t, wd, latch):
 
 
 @njit(cache=True)
+def state_code(code, xc):
+    """The controller's fault code; CODE_NONFINITE_STATE if it returned 0 with a non-finite
+    state. A NaN in a controller state need not reach the command (a clamp written with min and
+    max turns it into a rail value), but the controller is broken from then on."""
+    if code == 0:
+        for j in range(xc.shape[0]):
+            if not (abs(xc[j]) < np.inf):
+                return CODE_NONFINITE_STATE
+    return code
+
+
+@njit(cache=True)
 def protect(tick, t, ts, y, u, code, dix, sig, side, thr, deb, cnt, latch, pv, safe_u):
     """Evaluate every interlock on [y, u, derived]; latch the first cause; force the safe output.
 
@@ -399,7 +420,8 @@ def protect(tick, t, ts, y, u, code, dix, sig, side, thr, deb, cnt, latch, pv, s
         a = pv[ny + j]
         b = pv[m + ny + j]
         if abs(a) < np.inf and abs(b) < np.inf:
-            if abs(a - b) > U_MOVED_REL * abs(a):
+            # halves: a - b itself could overflow (and warn, run as plain Python)
+            if abs(0.5 * a - 0.5 * b) > 0.5 * U_MOVED_REL * abs(a):
                 u_moved = True
         elif a != b:
             u_moved = True

@@ -3,6 +3,7 @@ import re
 from pathlib import Path
 
 import numpy as np
+import pytest
 
 from hilrig.runtime.recording import open_run
 from hilrig.runtime.run import run_scenario
@@ -36,18 +37,28 @@ def test_docs_worked_example_runs(tmp_path):
     assert abs(v[-1] - 420.0) < 0.05
 
 
-def test_division_by_zero_in_a_plugin_trips_instead_of_raising(tmp_path):
-    """A controller that divides by zero mid-run: the compiled loop follows IEEE 754 (0/0 is
-    NaN, x/0 is inf; IEEE 754-2019 sec. 7.3) instead of raising, and the protect stage trips on
-    the non-finite command on that tick, with the safe output; the run ends in order with its
-    recording. (Under numba's default error model the compiled chunk would raise
-    ZeroDivisionError instead.)"""
+_INTEGRATE = "        xc[0] += p[KI] * p[TS] * e  # integrate only when not clamped (anti-windup)\n"
+#: plugin bugs placed after the integration (the controller then returns 0): 0 / 0 into the
+#: command; 0 / 0 into the integrator while the command stays finite, as a clamp written with
+#: min and max would keep it
+_BUGS = {
+    "command": ("    if t >= 0.01:\n        u[0] = u[0] * 0.0 / (t - t)\n",
+                "non-finite value of u"),
+    "state": ("    if t >= 0.01:\n        xc[0] = xc[0] * 0.0 / (t - t)\n        u[0] = 400.0\n",
+              "non-finite controller state"),
+}
+
+
+@pytest.mark.parametrize("where", sorted(_BUGS))
+def test_division_by_zero_in_a_plugin_trips_instead_of_raising(tmp_path, where):
+    """A controller that divides 0 by 0 mid-run: the compiled loop follows IEEE 754 (0/0 is
+    NaN; IEEE 754-2019 sec. 7.2, from memory) instead of raising, and the loop trips on that tick, with the
+    safe output, whether the NaN reaches the command or stays in the controller's state; the
+    run ends in order with its recording. (Under numba's default error model the compiled
+    chunk would raise ZeroDivisionError instead.)"""
     files = example_files()
-    body = files["voltage_pi.py"].replace(
-        "        xc[0] += p[KI] * p[TS] * e  # integrate only when not clamped (anti-windup)\n",
-        "        xc[0] += p[KI] * p[TS] * e  # integrate only when not clamped (anti-windup)\n"
-        "    if t >= 0.01:\n"
-        "        u[0] = u[0] * 0.0 / (t - t)  # a plugin bug: 0 / 0\n")
+    bug, cause = _BUGS[where]
+    body = files["voltage_pi.py"].replace(_INTEGRATE, _INTEGRATE + bug)
     assert body != files["voltage_pi.py"]
     (tmp_path / "voltage_pi.py").write_text(body)
     (tmp_path / "example.toml").write_text(files["example.toml"])
@@ -56,7 +67,7 @@ def test_division_by_zero_in_a_plugin_trips_instead_of_raising(tmp_path):
     s = res.summary
     run = open_run(res.folder)
     k = int(np.searchsorted(run.time, 0.01 - 1e-12))
-    assert s["trip"]["tick"] == k and s["trip"]["cause"] == "non-finite value of u"
+    assert s["trip"]["tick"] == k and s["trip"]["cause"] == cause
     assert np.all(run.signals["u"][k:] == 0.0)  # the safe output, held
     assert np.all(np.isfinite(run.signals["u"][:k]))
     # with 0 V applied the constant-power load then collapses the output: the run ends on

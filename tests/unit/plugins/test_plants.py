@@ -255,11 +255,14 @@ def test_two_stage_trajectory_matches_radau(integrate):
 
 
 def test_two_stage_own_step_is_classic_rk4():
-    """``rk4_step`` is the classic RK4 step over ``derivs`` (the textbook Butcher tableau, as
-    in _rk4_periods) with its arithmetic in another order: over random states, loads (both
-    signs of P, the resistive stand-in below v_load_min) and commands (inside and beyond both
-    clamps), the two agree to rounding. The bound is 1e-13 of the state's and the step's
-    magnitudes; a wrong weight or stage width is off by far more (checked below)."""
+    """``rk4_step`` is the classic RK4 step over ``derivs`` (the classic fourth-order tableau,
+    Hairer, Norsett & Wanner, *Solving Ordinary Differential Equations I*, 2nd ed., 1993,
+    sec. II.1, from memory; written out in _rk4_periods_one) with its arithmetic in another
+    order: over random states, loads (both signs of P, the resistive stand-in below
+    v_load_min) and commands (inside and beyond both clamps), the two agree to rounding. The
+    bound, 1e-13 of the state's and the step's magnitudes, is a few hundred units of double
+    rounding (common practice, no source); a wrong weight or stage width is off by far more
+    (checked below)."""
     p = _pack(two_stage_lc, TWO)
     rng = np.random.default_rng(20261202)  # demo data: arbitrary test points
     h = TS / NSUB

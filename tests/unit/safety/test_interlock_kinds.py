@@ -706,3 +706,12 @@ def test_p_out_needs_a_plant_that_measures_i_out(tmp_path):
                        "dv_out_dt", path=path)
     signals = msg.split("(signals: ")[1]
     assert "p_out" not in signals
+
+
+@KERNELS
+def test_frozen_command_comparison_does_not_overflow(jit):
+    # commands of opposite sign near the largest double: their difference overflows, so the
+    # comparison works on halves (plain Python would warn, and warnings are errors here)
+    big = np.finfo(np.float64).max
+    rig = Rig([frozen("i_L1", 2)], jit)
+    assert run_until_trip(rig, i_l1=[104.0] * 4, u=[big, -big, big, -big]) == 2
