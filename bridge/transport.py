@@ -358,6 +358,12 @@ class PairTransport:
         try:
             self.sock.send(data, flags=zmq.NOBLOCK)
         except zmq.Again:
+            if self.monitor is not None:
+                # before the first frame: a refused handshake also drops the connection, and
+                # on a loaded machine the send can fail before the monitor's event is read
+                why = self._handshake_failure(wait_ms=1000)
+                if why:
+                    self._refused(why)
             raise TransportTimeout(f"{self.address}: the peer is not taking frames") from None
 
     def recv(self, timeout_s: float | None = None) -> bytes | None:
@@ -384,20 +390,27 @@ class PairTransport:
             if self.monitor in ready:
                 why = self._handshake_failure()
                 if why:
-                    self.close()
-                    if why == "handshake_failed_auth":
-                        hint = ("the simulator does not accept this runtime's key (its keys "
-                                "folder has no matching runtime.key)")
-                    else:
-                        hint = ("the simulator's key is not the simulator.key in this keys "
-                                "folder, or the simulator does not use CurveZMQ")
-                    raise BridgeError(f"{self.address} refused the CurveZMQ handshake ({why}): "
-                                      f"{hint}")
+                    self._refused(why)
             if deadline is not None and time.monotonic() >= deadline:
                 return None
 
-    def _handshake_failure(self) -> str | None:
+    def _refused(self, why: str):
+        """Close, and raise the BridgeError that names a refused handshake's cause."""
+        self.close()
+        if why == "handshake_failed_auth":
+            hint = ("the simulator does not accept this runtime's key (its keys folder has no "
+                    "matching runtime.key)")
+        else:
+            hint = ("the simulator's key is not the simulator.key in this keys folder, or the "
+                    "simulator does not use CurveZMQ")
+        raise BridgeError(f"{self.address} refused the CurveZMQ handshake ({why}): {hint}")
+
+    def _handshake_failure(self, wait_ms: int = 0) -> str | None:
+        """The name of a handshake failure the monitor reported, or None; waits up to wait_ms
+        for the first event."""
         from zmq.utils.monitor import recv_monitor_message
+        if self.monitor is not None and wait_ms:
+            self.monitor.poll(wait_ms)
         while self.monitor is not None and self.monitor.poll(0):
             ev = recv_monitor_message(self.monitor)
             if ev["event"] & _HANDSHAKE_FAILED:
