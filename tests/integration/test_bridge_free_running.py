@@ -4,7 +4,6 @@ within a period; late and missing actuations are counted; a silent simulator is 
 stale. Loopback and ipc only; every wait is bounded."""
 import json
 import subprocess
-import sys
 import time
 from pathlib import Path
 
@@ -12,9 +11,10 @@ import numpy as np
 import pytest
 
 from hilrig.runtime.recording import open_run
+from tests.integration.standin import (CLI, free_tcp_port, reaped, serve, udp_address,
+                                       wait_listening)
 from tests.integration.test_protocol_example import CONTROLLER, PLANT
 
-CLI = [sys.executable, "-m", "hilrig.runtime.cli"]
 
 SCENARIO = '''
 title = "free-running test (test data)"
@@ -59,33 +59,19 @@ def _files(tmp_path, plugin_dir, duration="0.4 s"):
 
 
 def _serve(scen, address):
-    return subprocess.Popen(CLI + ["serve-sim", "--scenario", str(scen), "--bind", address,
-                                   "--mode", "free-running", "--sessions", "1",
-                                   "--idle-timeout", "120"],
-                            stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
-
-
-def _udp_address() -> str:
-    import socket
-    with socket.socket(socket.AF_INET, socket.SOCK_DGRAM) as so:
-        so.bind(("127.0.0.1", 0))
-        return f"udp://127.0.0.1:{so.getsockname()[1]}"
+    return serve(scen, address, "--mode", "free-running")
 
 
 def _session(scen, address, out):
     """A free-running run against a stand-in simulator serving one session on ``address``;
     (the run's CompletedProcess, the simulator's output)."""
     sim = _serve(scen, address)
-    try:
-        time.sleep(1.0)  # let it bind before the first frame
+    with reaped(sim):
+        wait_listening(sim)  # bound before the first frame
         p = subprocess.run(CLI + ["run", str(scen), "--bridge", address, "--mode", "free-running",
                                   "--out", str(out), "--headless", "--timeout", "60"],
                            capture_output=True, text=True, timeout=600)
         sim_out, _ = sim.communicate(timeout=120)
-    finally:
-        if sim.poll() is None:
-            sim.kill()
-            sim.communicate(timeout=60)
     return p, sim_out
 
 
@@ -95,7 +81,7 @@ def test_free_running_session_tracks_and_counts(tmp_path, plugin_dir, transport)
     # samples passed over on a loaded machine are counted, not a trip here (the gap watchdog
     # has its own test in the interlock suite)
     scen.write_text(scen.read_text() + '\n[watchdogs]\nmax_gap = 100000\n')
-    address = f"ipc://{tmp_path}/fr.sock" if transport == "ipc" else _udp_address()
+    address = f"ipc://{tmp_path}/fr.sock" if transport == "ipc" else udp_address()
     p, sim_out = _session(scen, address, tmp_path / "r")
     assert p.returncode == 0, p.stdout + p.stderr
     s = json.loads((tmp_path / "r" / "summary.json").read_text())
@@ -120,7 +106,7 @@ def test_samples_lost_before_the_first_one_do_not_leave_a_zero_measurement(tmp_p
     scen = _files(tmp_path, plugin_dir, duration="0.1 s")
     scen.write_text(scen.read_text() + '\n[[faults]]\nkind = "link_loss"\nvalue = 0.999\n'
                     'start = 0\nend = "3 ms"\n')
-    p, _ = _session(scen, _udp_address(), tmp_path / "r")
+    p, _ = _session(scen, udp_address(), tmp_path / "r")
     assert p.returncode == 0, p.stdout + p.stderr
     s = json.loads((tmp_path / "r" / "summary.json").read_text())
     assert s["bridge"]["lost"] >= 1 and s["bridge"]["held_ticks"] >= 1
@@ -145,7 +131,7 @@ def test_killing_the_simulator_trips_the_staleness_watchdog(tmp_path, plugin_dir
     run = subprocess.Popen(CLI + ["run", str(scen), "--bridge", address, "--mode", "free-running",
                                   "--out", str(tmp_path / "r"), "--headless", "--timeout", "60"],
                            stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
-    try:
+    with reaped(sim, run):
         deadline = time.monotonic() + 120
         while not (tmp_path / "r" / "recording.h5").exists() and time.monotonic() < deadline:
             time.sleep(0.2)
@@ -153,11 +139,6 @@ def test_killing_the_simulator_trips_the_staleness_watchdog(tmp_path, plugin_dir
         sim.kill()
         sim.communicate(timeout=60)
         out, err = run.communicate(timeout=300)
-    finally:
-        for pr in (sim, run):
-            if pr.poll() is None:
-                pr.kill()
-                pr.communicate(timeout=60)
     assert run.returncode == 0, out + err
     s = json.loads((tmp_path / "r" / "summary.json").read_text())
     # the run ends because the peer is gone; the trip before that is the staleness watchdog
@@ -182,13 +163,6 @@ def test_killing_the_simulator_trips_the_staleness_watchdog(tmp_path, plugin_dir
     assert np.array_equal(rec.time, np.arange(n) * 1e-3)
 
 
-def _free_tcp_port():
-    import socket
-    with socket.socket() as s:
-        s.bind(("127.0.0.1", 0))
-        return s.getsockname()[1]
-
-
 def test_curve_keys_on_the_free_running_pair(tmp_path, plugin_dir):
     """CurveZMQ (ZeroMQ RFC 26) on the free-running pair, through the CLI as an operator uses
     it: keys from 'hilrig keys'; a runtime whose key the simulator does not hold is refused
@@ -208,13 +182,11 @@ def test_curve_keys_on_the_free_running_pair(tmp_path, plugin_dir):
     for f in ("runtime.key", "runtime.key_secret"):
         (wrong / f).write_bytes((other / f).read_bytes())
     (wrong / "simulator.key").write_bytes((good / "simulator.key").read_bytes())
-    address = f"tcp://127.0.0.1:{_free_tcp_port()}"
-    sim = subprocess.Popen(CLI + ["serve-sim", "--scenario", str(scen), "--bind", address,
-                                  "--mode", "free-running", "--sessions", "1",
-                                  "--idle-timeout", "120", "--curve-keys", str(good)],
-                           stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
+    address = f"tcp://127.0.0.1:{free_tcp_port()}"
+    sim = serve(scen, address, "--mode", "free-running", "--curve-keys", str(good))
     run = CLI + ["run", str(scen), "--bridge", address, "--mode", "free-running", "--headless"]
-    try:
+    with reaped(sim):
+        wait_listening(sim)
         # --timeout 60: a refusal that were only a timeout would take a minute and say so
         p = subprocess.run(run + ["--out", str(tmp_path / "w"), "--timeout", "60",
                                   "--curve-keys", str(wrong)],
@@ -228,10 +200,6 @@ def test_curve_keys_on_the_free_running_pair(tmp_path, plugin_dir):
                                   "--curve-keys", str(good)],
                            capture_output=True, text=True, timeout=600)
         sim_out, sim_err = sim.communicate(timeout=120)
-    finally:
-        if sim.poll() is None:
-            sim.kill()
-            sim.communicate(timeout=60)
     assert p.returncode == 0, p.stdout + p.stderr
     assert sim.returncode == 0, sim_err
     assert "session 1 ended (stop)" in sim_out

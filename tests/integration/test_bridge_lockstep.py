@@ -4,7 +4,6 @@ bounded)."""
 import json
 import os
 import subprocess
-import sys
 import time
 from pathlib import Path
 
@@ -14,9 +13,10 @@ import pytest
 from hilrig.runtime.recording import open_run
 from hilrig.runtime.run import run_scenario
 from hilrig.runtime.scenario import load_scenario
+from tests.integration.standin import (CLI, free_tcp_port, reaped, serve, udp_address,
+                                       wait_listening)
 
 ROOT = Path(__file__).resolve().parents[2]
-CLI = [sys.executable, "-m", "hilrig.runtime.cli"]
 
 
 def _scenario(tmp_path, demo_path):
@@ -26,26 +26,17 @@ def _scenario(tmp_path, demo_path):
     return path
 
 
-def _serve(scen, address, *extra):
-    return subprocess.Popen(CLI + ["serve-sim", "--scenario", str(scen), "--bind", address,
-                                   "--sessions", "1", "--idle-timeout", "120", *extra],
-                            stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
-
-
 @pytest.fixture(scope="module")
 def lockstep_run(tmp_path_factory, demo_path):
     tmp = tmp_path_factory.mktemp("bridge")
     scen = _scenario(tmp, demo_path)
     address = f"ipc://{tmp}/sim.sock"
-    sim = _serve(scen, address)
-    try:
+    sim = serve(scen, address)
+    with reaped(sim):
         p = subprocess.run(CLI + ["run", str(scen), "--bridge", address, "--out", str(tmp / "hil"),
                                   "--headless", "--timeout", "60"],
                            capture_output=True, text=True, timeout=600)
         sim_out, sim_err = sim.communicate(timeout=120)
-    finally:
-        if sim.poll() is None:
-            sim.kill()
     assert p.returncode == 0, p.stdout + p.stderr
     assert sim.returncode == 0, sim_err
     sil = run_scenario(load_scenario(scen), tmp / "sil")
@@ -86,14 +77,11 @@ def test_wrong_signal_map_is_refused_with_a_clear_message(tmp_path, demo_path):
     other.write_text(scen.read_text().replace('plugin = "two_stage_lc"', 'plugin = "single_lc"')
                      .replace('L1 = "150 uH"\nR1 = "5 mohm"\nC1 = "220 uF"\nL2 = "100 uH"\nR2 = "3 mohm"\nC2 = "680 uF"\n', ""))
     address = f"ipc://{tmp_path}/sim2.sock"
-    sim = _serve(other, address)
-    try:
+    sim = serve(other, address)
+    with reaped(sim):
         p = subprocess.run(CLI + ["run", str(scen), "--bridge", address, "--out", str(tmp_path / "r"),
                                   "--headless", "--timeout", "60"],
                            capture_output=True, text=True, timeout=600)
-    finally:
-        sim.kill()
-        sim.communicate(timeout=60)
     assert p.returncode == 2, p.stdout + p.stderr
     assert "handshake" in p.stdout and "map" in p.stdout
     assert "Traceback" not in p.stdout + p.stderr
@@ -131,13 +119,13 @@ def test_killing_the_simulator_trips_the_staleness_watchdog(tmp_path, demo_path)
     recording intact (trip semantics: common practice, no source)."""
     scen = _scenario(tmp_path, demo_path)
     address = f"ipc://{tmp_path}/sim3.sock"
-    sim = _serve(scen, address)
+    sim = serve(scen, address)
     proc = subprocess.Popen(CLI + ["run", str(scen), "--bridge", address, "--out", str(tmp_path / "r"),
                                    "--headless", "--timeout", "30",
                                    "--set", 'timing.duration="20 s"',
                                    "--set", 'watchdogs.stale_limit="200 ms"'],
                             stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
-    try:
+    with reaped(sim, proc):
         # let the session run, then kill the simulator mid-run
         deadline = time.monotonic() + 120
         while not (tmp_path / "r" / "recording.h5").exists() and time.monotonic() < deadline:
@@ -146,11 +134,6 @@ def test_killing_the_simulator_trips_the_staleness_watchdog(tmp_path, demo_path)
         sim.kill()
         sim.communicate(timeout=60)
         out, err = proc.communicate(timeout=300)
-    finally:
-        for pr in (sim, proc):
-            if pr.poll() is None:
-                pr.kill()
-                pr.communicate(timeout=60)
     assert proc.returncode == 0, out + err
     s = json.loads((tmp_path / "r" / "summary.json").read_text())
     assert not s["completed"] and s["end_event"] == "bridge stale", s["events"]
@@ -166,30 +149,19 @@ def test_killing_the_simulator_trips_the_staleness_watchdog(tmp_path, demo_path)
     assert np.all(np.isfinite(run.signals["v_out"])) and np.all(run.signals["u"][:k] > 0.0)
 
 
-def _free_udp_port():
-    import socket
-    with socket.socket(socket.AF_INET, socket.SOCK_DGRAM) as s:
-        s.bind(("127.0.0.1", 0))
-        return s.getsockname()[1]
-
-
 def test_udp_lockstep_with_lost_and_corrupted_datagrams_still_reproduces_sil(lockstep_run):
     """Loss and corruption are the protocol's business: the runtime resends its actuation, the
     simulator answers a repeated actuation with its last sample without advancing, and a
     datagram that does not decode is counted and treated as lost."""
     tmp, scen, sil, _ = lockstep_run
-    address = f"udp://127.0.0.1:{_free_udp_port()}"
-    sim = _serve(scen, address, "--drop", "0.05", "--corrupt-every", "97", "--fault-seed", "7")
-    try:
-        time.sleep(1.0)  # let it bind before the first datagram
+    address = udp_address()
+    sim = serve(scen, address, "--drop", "0.05", "--corrupt-every", "97", "--fault-seed", "7")
+    with reaped(sim):
+        wait_listening(sim)  # bound before the first datagram
         p = subprocess.run(CLI + ["run", str(scen), "--bridge", address, "--out", str(tmp / "udp"),
                                   "--headless", "--timeout", "60"],
                            capture_output=True, text=True, timeout=600)
         sim_out, sim_err = sim.communicate(timeout=120)
-    finally:
-        if sim.poll() is None:
-            sim.kill()
-            sim.communicate(timeout=60)
     assert p.returncode == 0, p.stdout + p.stderr
     a, b = open_run(tmp / "udp"), open_run(sil.folder)
     for name in ("v_out", "i_L1", "u"):
@@ -211,18 +183,12 @@ def test_python_path_alone_also_reproduces_sil(lockstep_run):
     tmp, scen, sil, _ = lockstep_run
     address = f"ipc://{tmp}/py.sock"
     env = dict(os.environ, HILRIG_BRIDGE_PYTHON="1")
-    sim = subprocess.Popen(CLI + ["serve-sim", "--scenario", str(scen), "--bind", address,
-                                  "--sessions", "1", "--idle-timeout", "120"],
-                           stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True, env=env)
-    try:
+    sim = serve(scen, address, env=env)
+    with reaped(sim):
         p = subprocess.run(CLI + ["run", str(scen), "--bridge", address, "--out", str(tmp / "py"),
                                   "--headless", "--timeout", "60"],
                            capture_output=True, text=True, timeout=600, env=env)
         sim.communicate(timeout=120)
-    finally:
-        if sim.poll() is None:
-            sim.kill()
-            sim.communicate(timeout=60)
     assert p.returncode == 0, p.stdout + p.stderr
     a, b = open_run(tmp / "py"), open_run(sil.folder)
     for name in ("v_out", "i_L1", "u", "v_ref"):
@@ -234,27 +200,17 @@ def test_python_path_alone_also_reproduces_sil(lockstep_run):
 def test_frozen_simulator_over_zeromq_trips_the_staleness_watchdog(tmp_path, demo_path):
     scen = _scenario(tmp_path, demo_path)
     address = f"ipc://{tmp_path}/frz.sock"
-    sim = _serve(scen, address, "--freeze-after", "200")
-    try:
+    sim = serve(scen, address, "--freeze-after", "200")
+    with reaped(sim):
         p = subprocess.run(CLI + ["run", str(scen), "--bridge", address, "--out", str(tmp_path / "r"),
                                   "--headless", "--timeout", "3"],
                            capture_output=True, text=True, timeout=600)
-    finally:
-        sim.kill()
-        sim.communicate(timeout=60)
     assert p.returncode == 0, p.stdout + p.stderr
     s = json.loads((tmp_path / "r" / "summary.json").read_text())
     # ticks 0..200 ran on samples; no reply to actuation 200 within the limit (the --timeout
     # here), so tick 201 is the watchdog tick: stale trip, safe output, end of the run
     assert s["end_event"] == "bridge stale" and s["ticks_run"] == 202
     assert s["trip"]["cause_id"] == "watchdog stale" and s["trip"]["tick"] == 201
-
-
-def _free_tcp_port():
-    import socket
-    with socket.socket() as s:
-        s.bind(("127.0.0.1", 0))
-        return s.getsockname()[1]
 
 
 def test_curve_keys_authenticate_and_a_wrong_key_is_refused(tmp_path, demo_path):
@@ -269,11 +225,9 @@ def test_curve_keys_authenticate_and_a_wrong_key_is_refused(tmp_path, demo_path)
     before = (good / "runtime.key_secret").read_bytes()
     p = subprocess.run(CLI + ["keys", str(good)], capture_output=True, text=True, timeout=120)
     assert p.returncode == 2 and (good / "runtime.key_secret").read_bytes() == before
-    address = f"tcp://127.0.0.1:{_free_tcp_port()}"
-    sim = subprocess.Popen(CLI + ["serve-sim", "--scenario", str(scen), "--bind", address,
-                                  "--sessions", "1", "--idle-timeout", "60", "--curve-keys", str(good)],
-                           stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
-    try:
+    address = f"tcp://127.0.0.1:{free_tcp_port()}"
+    sim = serve(scen, address, "--idle-timeout", "60", "--curve-keys", str(good))
+    with reaped(sim):
         # a runtime with keys from another folder: refused during the handshake, clearly
         wrong = tmp_path / "wrong"
         wrong.mkdir()
@@ -291,10 +245,6 @@ def test_curve_keys_authenticate_and_a_wrong_key_is_refused(tmp_path, demo_path)
                            capture_output=True, text=True, timeout=600)
         assert p.returncode == 0, p.stdout + p.stderr
         sim.communicate(timeout=120)
-    finally:
-        if sim.poll() is None:
-            sim.kill()
-            sim.communicate(timeout=60)
     assert json.loads((tmp_path / "ok" / "summary.json").read_text())["completed"]
 
 
@@ -311,16 +261,12 @@ def test_remote_zeromq_needs_curve_keys():
 def test_disconnect_trips_the_peer_lost_watchdog_and_statistics_are_recorded(tmp_path, demo_path):
     scen = _scenario(tmp_path, demo_path)
     address = f"ipc://{tmp_path}/dc.sock"
-    sim = _serve(scen, address, "--disconnect-after", "300")
-    try:
+    sim = serve(scen, address, "--disconnect-after", "300")
+    with reaped(sim):
         p = subprocess.run(CLI + ["run", str(scen), "--bridge", address, "--out", str(tmp_path / "r"),
                                   "--headless", "--timeout", "2"],
                            capture_output=True, text=True, timeout=600)
         sim_out, _ = sim.communicate(timeout=60)
-    finally:
-        if sim.poll() is None:
-            sim.kill()
-            sim.communicate(timeout=60)
     assert p.returncode == 0, p.stdout + p.stderr
     assert "disconnected at tick 300" in sim_out
     s = json.loads((tmp_path / "r" / "summary.json").read_text())
@@ -346,7 +292,7 @@ def test_freeze_on_command_trips_the_staleness_watchdog(tmp_path, demo_path):
                                    "--set", 'timing.duration="60 s"',
                                    "--set", 'watchdogs.stale_limit="200 ms"'],
                             stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
-    try:
+    with reaped(sim, proc):
         deadline = time.monotonic() + 120
         while not (tmp_path / "r" / "recording.h5").exists() and time.monotonic() < deadline:
             time.sleep(0.2)
@@ -356,11 +302,6 @@ def test_freeze_on_command_trips_the_staleness_watchdog(tmp_path, demo_path):
         out, err = proc.communicate(timeout=300)
         sim.kill()  # frozen by design: it would wait out its idle timeout
         sim_out, _ = sim.communicate(timeout=120)
-    finally:
-        for pr in (sim, proc):
-            if pr.poll() is None:
-                pr.kill()
-                pr.communicate(timeout=60)
     assert proc.returncode == 0, out + err
     s = json.loads((tmp_path / "r" / "summary.json").read_text())
     assert s["trip"]["cause_id"] == "watchdog stale" and s["end_event"] == "bridge stale"
@@ -394,13 +335,10 @@ def test_scenario_link_freeze_is_applied_by_the_stand_in(tmp_path, demo_path):
     scen.write_text(scen.read_text() + '\n[[faults]]\nkind = "link_freeze"\nstart = "10 ms"\n'
                     '\n[watchdogs]\nstale_limit = "150 ms"\n')
     address = f"ipc://{tmp_path}/lf.sock"
-    sim = _serve(scen, address)
-    try:
+    sim = serve(scen, address)
+    with reaped(sim):
         p = subprocess.run(CLI + ["run", str(scen), "--bridge", address, "--out", str(tmp_path / "r"),
                                   "--headless"], capture_output=True, text=True, timeout=600)
-    finally:
-        sim.kill()
-        sim.communicate(timeout=60)
     assert p.returncode == 0, p.stdout + p.stderr
     s = json.loads((tmp_path / "r" / "summary.json").read_text())
     # 10 ms at 50 us: the simulator answers actuations up to tick 199, then goes silent
