@@ -140,6 +140,24 @@ class ReqTransport:
             self.closed = True
 
 
+def _context(own: bool) -> zmq.Context:
+    """A context of the transport's own for a CurveZMQ side, else the process-wide one.
+
+    Why a CurveZMQ side owns one: ZeroMQ frees an inproc name only some time after the socket
+    that bound it is closed, so with a shared context a new authenticator, started right after
+    an old one stopped, found "inproc://zeromq.zap.01" still taken (seen in CI; in a loop of
+    300 start/stop pairs about half failed), and two authenticated servers could not live in
+    one process at all. A context of its own starts with no names taken; :func:`_release`
+    ends it on close.
+    """
+    return zmq.Context() if own else zmq.Context.instance()
+
+
+def _release(ctx: zmq.Context, own: bool) -> None:
+    if own and not ctx.closed:
+        ctx.destroy(linger=0)
+
+
 class RepTransport:
     """The simulator's side: receive a request, send exactly one reply.
 
@@ -151,18 +169,23 @@ class RepTransport:
         if curve_keys is None and not _is_loopback(address) and not address.startswith("ipc://"):
             raise BridgeError(f"binding ZeroMQ to {address}, reachable from other machines, needs "
                               f"CurveZMQ keys: make them with 'hilrig keys DIR' and pass --curve-keys DIR")
-        self.ctx = zmq.Context.instance()
+        self.own_ctx = curve_keys is not None
+        self.ctx = _context(self.own_ctx)
         self.auth = None
         self.sock = self.ctx.socket(zmq.REP)
-        if curve_keys is not None:
-            from .keys import server_keys, start_authenticator
-            pub, sec = server_keys(curve_keys)
-            self.auth = start_authenticator(self.ctx, curve_keys)
-            self.sock.curve_server = True
-            self.sock.curve_publickey, self.sock.curve_secretkey = pub, sec
-        self.sock.setsockopt(zmq.LINGER, 0)
-        self.sock.setsockopt(zmq.MAXMSGSIZE, 1 << 20)
-        self.sock.bind(self.address)
+        try:
+            if curve_keys is not None:
+                from .keys import server_keys, start_authenticator
+                pub, sec = server_keys(curve_keys)
+                self.auth = start_authenticator(self.ctx, curve_keys)
+                self.sock.curve_server = True
+                self.sock.curve_publickey, self.sock.curve_secretkey = pub, sec
+            self.sock.setsockopt(zmq.LINGER, 0)
+            self.sock.setsockopt(zmq.MAXMSGSIZE, 1 << 20)
+            self.sock.bind(self.address)
+        except BaseException:
+            self.close()
+            raise
 
     def recv(self, timeout_s: float | None = None) -> bytes | None:
         """The next request, or None when nothing came within ``timeout_s``."""
@@ -178,6 +201,8 @@ class RepTransport:
         self.sock.close(linger=0)
         if self.auth is not None:
             self.auth.stop()
+            self.auth = None
+        _release(self.ctx, self.own_ctx)
 
 
 def _udp_endpoint(address: str) -> tuple[int, tuple]:
@@ -326,7 +351,8 @@ class PairTransport:
             side = "binding the free-running pair to" if bind else "a free-running ZeroMQ peer at"
             raise BridgeError(f"{side} {address}, reachable from other machines, needs CurveZMQ "
                               f"keys: make them with 'hilrig keys DIR' and pass --curve-keys DIR")
-        self.ctx = zmq.Context.instance()
+        self.own_ctx = curve_keys is not None  # also for the monitor's inproc name
+        self.ctx = _context(self.own_ctx)
         self.sock = self.ctx.socket(zmq.PAIR)
         self.auth = None
         self.monitor = None
@@ -430,6 +456,7 @@ class PairTransport:
             if self.auth is not None:
                 self.auth.stop()
                 self.auth = None
+            _release(self.ctx, self.own_ctx)
             self.closed = True
 
 

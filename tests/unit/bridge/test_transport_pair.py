@@ -184,3 +184,26 @@ def test_a_missing_key_file_is_a_clear_error_and_nothing_is_left_open(tmp_path, 
         PairTransport(f"tcp://127.0.0.1:{port}", bind=False, curve_keys=empty)
     # the port is still free: the failed attempt bound nothing
     PairTransport(f"tcp://127.0.0.1:{port}", bind=True).close()
+
+
+def test_authenticated_servers_start_right_after_each_other_and_side_by_side(keys):
+    """Seen in CI: a CurveZMQ server started right after another one closed failed with
+    "Address already in use (addr='inproc://zeromq.zap.01')". The ZAP handler binds that fixed
+    inproc name, and ZeroMQ frees an inproc name only some time after its socket closes, so a
+    shared context held it. Before the fix about half of 300 start/stop pairs in a loop failed,
+    and two authenticated servers in one process always did. Each CurveZMQ side now owns its
+    context, and closing it leaves nothing behind (a second close is harmless)."""
+    from hilrig.bridge.transport import RepTransport
+    for _ in range(40):
+        PairTransport(f"tcp://127.0.0.1:{_port()}", bind=True, curve_keys=keys["good"]).close()
+        RepTransport(f"tcp://127.0.0.1:{_port()}", curve_keys=keys["good"]).close()
+    rep = RepTransport(f"tcp://127.0.0.1:{_port()}", curve_keys=keys["good"])
+    pair = PairTransport(f"tcp://127.0.0.1:{_port()}", bind=True, curve_keys=keys["good"])
+    try:
+        assert rep.ctx is not pair.ctx and not rep.ctx.closed
+    finally:
+        pair.close()
+        rep.close()
+    assert rep.ctx.closed and pair.ctx.closed and rep.auth is None and pair.auth is None
+    rep.close()
+    pair.close()
