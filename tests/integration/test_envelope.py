@@ -35,8 +35,11 @@ def test_pool_results_are_identical_run_to_run_and_to_one_process(small_tasks):
 
 def test_dask_backend_gives_the_same_map(small_tasks):
     distributed = pytest.importorskip("distributed")
+    # ":0": the scheduler's HTTP server always starts (None means its default port, 8787,
+    # which a second run on the same machine already held: seen as "Port 8787 is already in
+    # use" raised through the warnings-as-errors setting); a free port avoids the clash
     with distributed.LocalCluster(n_workers=2, threads_per_worker=1, processes=True,
-                                  dashboard_address=None) as cluster:
+                                  dashboard_address=":0") as cluster:
         via_dask = env.run_envelope(small_tasks, cluster=cluster.scheduler_address)
     assert via_dask == env.run_envelope(small_tasks, workers=2)
 
