@@ -56,6 +56,25 @@ def _is_loopback(address: str) -> bool:
         return False
 
 
+def _context(own: bool) -> zmq.Context:
+    """A context of the transport's own for a CurveZMQ side, else the process-wide one.
+
+    Why a CurveZMQ side owns one: ZeroMQ frees an inproc name only some time after the socket
+    that bound it is closed, so with a shared context a new authenticator, started right after
+    an old one stopped, found "inproc://zeromq.zap.01" still taken (seen in CI; in a loop of
+    300 start/stop pairs about half failed), and two authenticated servers could not live in
+    one process at all. The handshake monitor of a CurveZMQ client binds an inproc name made
+    from its socket's file descriptor, which the system hands out again after a close. A
+    context of its own starts with no names taken; :func:`_release` ends it on close.
+    """
+    return zmq.Context() if own else zmq.Context.instance()
+
+
+def _release(ctx: zmq.Context, own: bool) -> None:
+    if own and not ctx.closed:
+        ctx.destroy(linger=0)
+
+
 class ReqTransport:
     """The runtime's side: send a frame, wait for the reply frame (with a timeout).
 
@@ -70,7 +89,8 @@ class ReqTransport:
             raise BridgeError(f"a ZeroMQ peer that is not on this machine ({address}) needs "
                               f"CurveZMQ keys: make them with 'hilrig keys DIR' and pass --curve-keys DIR")
         self.timeout_ms = max(1, int(round(timeout_s * 1000)))
-        self.ctx = zmq.Context.instance()
+        self.own_ctx = curve_keys is not None  # the monitor's inproc name: see _context
+        self.ctx = _context(self.own_ctx)
         self.sock = self.ctx.socket(zmq.REQ)
         self.monitor = None
         if curve_keys is not None:
@@ -137,25 +157,8 @@ class ReqTransport:
                 self.sock.disable_monitor()
                 self.monitor.close(linger=0)
             self.sock.close(linger=0)
+            _release(self.ctx, self.own_ctx)
             self.closed = True
-
-
-def _context(own: bool) -> zmq.Context:
-    """A context of the transport's own for a CurveZMQ side, else the process-wide one.
-
-    Why a CurveZMQ side owns one: ZeroMQ frees an inproc name only some time after the socket
-    that bound it is closed, so with a shared context a new authenticator, started right after
-    an old one stopped, found "inproc://zeromq.zap.01" still taken (seen in CI; in a loop of
-    300 start/stop pairs about half failed), and two authenticated servers could not live in
-    one process at all. A context of its own starts with no names taken; :func:`_release`
-    ends it on close.
-    """
-    return zmq.Context() if own else zmq.Context.instance()
-
-
-def _release(ctx: zmq.Context, own: bool) -> None:
-    if own and not ctx.closed:
-        ctx.destroy(linger=0)
 
 
 class RepTransport:

@@ -192,11 +192,15 @@ def test_authenticated_servers_start_right_after_each_other_and_side_by_side(key
     inproc name, and ZeroMQ frees an inproc name only some time after its socket closes, so a
     shared context held it. Before the fix about half of 300 start/stop pairs in a loop failed,
     and two authenticated servers in one process always did. Each CurveZMQ side now owns its
-    context, and closing it leaves nothing behind (a second close is harmless)."""
-    from hilrig.bridge.transport import RepTransport
+    context (also the connecting ones, whose handshake monitors bind inproc names), and closing
+    it leaves nothing behind (a second close is harmless)."""
+    from hilrig.bridge.transport import RepTransport, ReqTransport
     for _ in range(40):
         PairTransport(f"tcp://127.0.0.1:{_port()}", bind=True, curve_keys=keys["good"]).close()
         RepTransport(f"tcp://127.0.0.1:{_port()}", curve_keys=keys["good"]).close()
+        # the connecting sides' handshake monitors bind inproc names too
+        PairTransport(f"tcp://127.0.0.1:{_port()}", bind=False, curve_keys=keys["good"]).close()
+        ReqTransport(f"tcp://127.0.0.1:{_port()}", curve_keys=keys["good"]).close()
     rep = RepTransport(f"tcp://127.0.0.1:{_port()}", curve_keys=keys["good"])
     pair = PairTransport(f"tcp://127.0.0.1:{_port()}", bind=True, curve_keys=keys["good"])
     try:
