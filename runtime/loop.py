@@ -31,6 +31,7 @@ version, because numba only checks the cached function's own file for changes.
 """
 from __future__ import annotations
 
+import functools
 import hashlib
 import importlib.util
 import os
@@ -440,7 +441,10 @@ def cache_dir() -> Path:
     return base / "loops"
 
 
+@functools.lru_cache(maxsize=1)
 def _version() -> str:
+    """hilrig's installed version (read once per process: the metadata lookup parses the
+    package's METADATA file, a few ms, and a version does not change under a running process)."""
     try:
         from importlib.metadata import version
         return version("hilrig")

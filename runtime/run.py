@@ -70,12 +70,7 @@ def process_age_s() -> float | None:
 def versions() -> dict[str, str]:
     import h5py
     import numba
-    from importlib.metadata import version
-    try:
-        hv = version("hilrig")
-    except Exception:
-        hv = "0+unknown"
-    return {"hilrig": hv, "numba": numba.__version__, "numpy": np.__version__,
+    return {"hilrig": loopgen._version(), "numba": numba.__version__, "numpy": np.__version__,
             "h5py": h5py.__version__, "python": platform.python_version()}
 
 
