@@ -56,6 +56,10 @@ def _is_loopback(address: str) -> bool:
         return False
 
 
+_HANDSHAKE_FAILED = (zmq.EVENT_HANDSHAKE_FAILED_AUTH | zmq.EVENT_HANDSHAKE_FAILED_NO_DETAIL
+                     | zmq.EVENT_HANDSHAKE_FAILED_PROTOCOL)
+
+
 def _context(own: bool) -> zmq.Context:
     """A context of the transport's own for a CurveZMQ side, else the process-wide one.
 
@@ -93,20 +97,22 @@ class ReqTransport:
         self.ctx = _context(self.own_ctx)
         self.sock = self.ctx.socket(zmq.REQ)
         self.monitor = None
-        if curve_keys is not None:
-            from .keys import client_keys
-            pub, sec, server_pub = client_keys(curve_keys)
-            self.sock.curve_publickey, self.sock.curve_secretkey = pub, sec
-            self.sock.curve_serverkey = server_pub
-            self.monitor = self.sock.get_monitor_socket(zmq.EVENT_HANDSHAKE_FAILED_AUTH
-                                                        | zmq.EVENT_HANDSHAKE_FAILED_NO_DETAIL
-                                                        | zmq.EVENT_HANDSHAKE_FAILED_PROTOCOL)
-        self.sock.setsockopt(zmq.LINGER, 0)
-        self.sock.setsockopt(zmq.RCVTIMEO, self.timeout_ms)
-        self.sock.setsockopt(zmq.SNDTIMEO, self.timeout_ms)
-        self.sock.setsockopt(zmq.MAXMSGSIZE, 1 << 20)
-        self.sock.connect(self.address)
         self.closed = False
+        try:
+            if curve_keys is not None:
+                from .keys import client_keys
+                pub, sec, server_pub = client_keys(curve_keys)
+                self.sock.curve_publickey, self.sock.curve_secretkey = pub, sec
+                self.sock.curve_serverkey = server_pub
+                self.monitor = self.sock.get_monitor_socket(_HANDSHAKE_FAILED)
+            self.sock.setsockopt(zmq.LINGER, 0)
+            self.sock.setsockopt(zmq.RCVTIMEO, self.timeout_ms)
+            self.sock.setsockopt(zmq.SNDTIMEO, self.timeout_ms)
+            self.sock.setsockopt(zmq.MAXMSGSIZE, 1 << 20)
+            self.sock.connect(self.address)
+        except BaseException:
+            self.close()
+            raise
 
     def request(self, data: bytes) -> bytes:
         if self.closed:
@@ -146,8 +152,7 @@ class ReqTransport:
         from zmq.utils.monitor import recv_monitor_message
         while self.monitor.poll(0):
             ev = recv_monitor_message(self.monitor)
-            if ev["event"] & (zmq.EVENT_HANDSHAKE_FAILED_AUTH | zmq.EVENT_HANDSHAKE_FAILED_NO_DETAIL
-                              | zmq.EVENT_HANDSHAKE_FAILED_PROTOCOL):
+            if ev["event"] & _HANDSHAKE_FAILED:
                 return zmq.Event(ev["event"]).name.lower()
         return None
 
@@ -327,10 +332,6 @@ class UdpServer:
 
     def close(self) -> None:
         self.sock.close()
-
-
-_HANDSHAKE_FAILED = (zmq.EVENT_HANDSHAKE_FAILED_AUTH | zmq.EVENT_HANDSHAKE_FAILED_NO_DETAIL
-                     | zmq.EVENT_HANDSHAKE_FAILED_PROTOCOL)
 
 
 class PairTransport:

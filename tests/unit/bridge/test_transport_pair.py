@@ -182,6 +182,12 @@ def test_a_missing_key_file_is_a_clear_error_and_nothing_is_left_open(tmp_path, 
         PairTransport(f"tcp://127.0.0.1:{port}", bind=True, curve_keys=empty)
     with pytest.raises(BridgeError, match="runtime.key_secret is missing"):
         PairTransport(f"tcp://127.0.0.1:{port}", bind=False, curve_keys=empty)
+    # lockstep's sides, the same way
+    from hilrig.bridge.transport import RepTransport, ReqTransport
+    with pytest.raises(BridgeError, match="simulator.key_secret is missing"):
+        RepTransport(f"tcp://127.0.0.1:{port}", curve_keys=empty)
+    with pytest.raises(BridgeError, match="runtime.key_secret is missing"):
+        ReqTransport(f"tcp://127.0.0.1:{port}", curve_keys=empty)
     # the port is still free: the failed attempt bound nothing
     PairTransport(f"tcp://127.0.0.1:{port}", bind=True).close()
 
