@@ -51,8 +51,8 @@ def compare(scenario: Path, candidates: list[str], out: Path, *, overwrite: bool
         scenarios[name] = load_scenario(scenario, overrides=ov)
         folder = out / folder_name(name)
         if (folder / "recording.h5").exists() and not overwrite:
-            raise FileExistsError(f"{folder} already holds a recording; choose another --out "
-                                  f"(nothing was overwritten)")
+            raise FileExistsError(f"{folder} already holds a recording; choose another --out, "
+                                  f"or pass --overwrite to replace it (nothing was overwritten)")
     results: dict[str, dict[str, Any]] = {}
     for name, sc in scenarios.items():
         if on_run:

@@ -4,11 +4,15 @@ Contract (other tools rely on it):
 
 - ``recording.h5``: dataset ``time`` [s] and group ``signals/`` with one 1-D float64 dataset per
   signal, each with a ``unit`` attribute (and a ``description``); file attributes
-  ``scenario_text`` (the exact scenario file), ``versions`` (JSON), ``seed``, ``Ts`` [s],
+  ``scenario_text`` (the exact scenario that ran: the file's text, or with overrides the
+  file with them applied, see ``scenario.parse_scenario``), ``versions`` (JSON), ``seed``, ``Ts`` [s],
   ``hilrig_format`` (this contract's version) and, once the run ends, ``events`` (JSON) and
   ``complete`` (true).
 - ``summary.json``: metrics and timing of the run.
-- ``scenario.toml``: the exact scenario text.
+- ``scenario.toml``: the same text as ``scenario_text``; running it repeats the run.
+
+A run written over a folder (``--overwrite``) removes the files derived from the old recording
+(:data:`DERIVED_FILES`) and leaves other files.
 
 Every chunk is written and flushed before the loop goes on, so a killed run leaves a file
 readable up to its last flushed chunk. Compression: none (default) or gzip level 1 with shuffle,
@@ -30,6 +34,32 @@ FORMAT_VERSION = 1
 RECORDING = "recording.h5"
 SUMMARY = "summary.json"
 SCENARIO = "scenario.toml"
+
+
+# files hilrig derives from a run folder's recording (the overview plot, 'hilrig report',
+# 'hilrig export' at its default paths): a run written over the folder removes them, so that
+# none describes the recording it replaced
+DERIVED_FILES = ("overview.png", "report.md", "report", "recording.csv", "recording.mf4")
+
+
+def clear_derived(folder: Path) -> list[str]:
+    """Before a run is written over ``folder`` (``--overwrite``): remove the files derived from
+    its old recording; other files stay. Returns the names removed."""
+    import shutil
+    folder = Path(folder)
+    if not (folder / RECORDING).exists():
+        return []
+    gone = []
+    for name in DERIVED_FILES:
+        path = folder / name
+        if path.is_dir() and name == "report":
+            shutil.rmtree(path)
+        elif path.is_file():
+            path.unlink()
+        else:
+            continue
+        gone.append(name)
+    return gone
 
 
 @dataclass(frozen=True)

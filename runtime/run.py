@@ -25,7 +25,7 @@ from . import loop as loopgen
 from . import shaping
 from .errors import ScenarioError
 from .metrics import TrackingMetrics, step_metrics
-from .recording import SCENARIO, SUMMARY, RunWriter, SignalSpec
+from .recording import SCENARIO, SUMMARY, RunWriter, SignalSpec, clear_derived
 from .scenario import PluginChoice, Scenario
 
 
@@ -271,7 +271,7 @@ def default_folder(sc: Scenario, base: Path = Path("runs")) -> Path:
 def check_folder(folder: Path, overwrite: bool) -> None:
     if (folder / "recording.h5").exists() and not overwrite:
         raise FileExistsError(f"{folder} already holds a recording; choose another --out "
-                              f"folder (nothing was overwritten)")
+                              f"folder, or pass --overwrite to replace it (nothing was overwritten)")
 
 
 def run_scenario(sc: Scenario, folder: Path | None = None, *, overwrite: bool = False,
@@ -367,6 +367,7 @@ def execute(sc: Scenario, prep: Prepared, folder: Path,
     ncols = len(prep.signals)
     rec = np.zeros((chunk, ncols))
     folder.mkdir(parents=True, exist_ok=True)
+    clear_derived(folder)  # a run written over an old one (--overwrite): no stale report
     (folder / SCENARIO).write_text(sc.text)
     vers = versions()
     names = [s.name for s in prep.signals]

@@ -10,6 +10,7 @@ its unit, what was expected and, for unknown names, the closest known ones.
 from __future__ import annotations
 
 import difflib
+import json
 import math
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -148,7 +149,11 @@ def load_scenario(path: str | Path, overrides: dict[str, Any] | None = None) -> 
 
 def parse_scenario(text: str, name: str = "scenario.toml", path: str = "",
                    overrides: dict[str, Any] | None = None) -> Scenario:
-    """Validate scenario text; ``overrides`` replaces top-level sections' keys (dotted names)."""
+    """Validate scenario text; ``overrides`` replaces top-level sections' keys (dotted names).
+
+    With overrides, the returned scenario's ``text`` is the scenario that runs (the file with
+    them applied, headed by a comment listing them), so that a run folder records it.
+    """
     cx = _Ctx(name, Path(path).parent if path else Path("."))
     try:
         raw = tomllib.loads(text)
@@ -156,6 +161,10 @@ def parse_scenario(text: str, name: str = "scenario.toml", path: str = "",
         raise ScenarioError(f"{name}: not valid TOML: {exc}") from None
     for dotted, value in (overrides or {}).items():
         _set_dotted(cx, raw, dotted, value)
+    if overrides:
+        # what runs is the file with the overrides: the run folder's scenario.toml and the
+        # recording's scenario_text hold that, so running them again repeats this run
+        text = _effective_text(cx, raw, overrides)
     for k in raw:
         if k not in TOP_KEYS:
             raise cx.unknown("", k, TOP_KEYS)
@@ -213,6 +222,36 @@ def parse_scenario(text: str, name: str = "scenario.toml", path: str = "",
                     load_t=load_t, load_v=load_v, v_collapse=limits["v_collapse"],
                     safe_u=limits["safe_u"], interlocks=interlocks, v_out0=v_out0,
                     recording=recording, faults=faults, resets=resets, watchdogs=watchdogs)
+
+
+def _effective_text(cx, raw: dict, overrides: dict[str, Any]) -> str:
+    """The scenario with overrides applied, as TOML text that parses to ``raw``.
+
+    The file's comments and layout are not kept (the text is written from the parsed values);
+    a header names the file and the overrides.
+    """
+    import tomli_w
+    try:
+        body = tomli_w.dumps(raw)
+        given = "\n".join(f"#   {k} = {_inline(v)}" for k, v in overrides.items())
+    except (TypeError, ValueError) as exc:
+        raise ScenarioError(f"{cx.name}: an override cannot be written as TOML: {exc}") from None
+    return (f"# {cx.name} with these overrides applied (the scenario that ran; written by "
+            f"hilrig from the\n# parsed values, so the file's comments and layout are not "
+            f"kept):\n{given}\n\n{body}")
+
+
+def _inline(v: Any) -> str:
+    """A value on one line in TOML's notation (for the header of an overridden scenario)."""
+    if isinstance(v, dict):
+        return "{" + ", ".join(f"{k} = {_inline(x)}" for k, x in v.items()) + "}"
+    if isinstance(v, list):
+        return "[" + ", ".join(_inline(x) for x in v) + "]"
+    if isinstance(v, bool):
+        return "true" if v else "false"
+    if isinstance(v, str):
+        return json.dumps(v)
+    return repr(v)
 
 
 def _set_dotted(cx, raw: dict, dotted: str, value: Any) -> None:

@@ -6,6 +6,11 @@ from pathlib import Path
 
 import pytest
 
+try:
+    import tomllib
+except ModuleNotFoundError:  # Python 3.10
+    import tomli as tomllib
+
 from hilrig.runtime.compare import JSON_KEYS, compare, folder_name
 
 ROOT = Path(__file__).resolve().parents[2]
@@ -30,6 +35,11 @@ def test_compare_cli_json_folders_and_plots(tmp_path):
         assert m["rise_time_s"] < 1e-3
     for png in ("compare_v_out.png", "compare_error.png", "compare_u.png"):
         assert (out / png).stat().st_size > 1000
+        # each folder's scenario.toml is the scenario that ran: its controller, the override
+        ran = tomllib.loads((out / name / "scenario.toml").read_text())
+        assert ran["controller"]["plugin"] == name
+        assert ran["timing"]["duration"] == "25 ms"
+        assert json.loads((out / name / "summary.json").read_text())["controller"] == name
     saved = json.loads((out / "comparison.json").read_text())
     assert saved["flatness"]["rise_time_s"] == res["flatness"]["rise_time_s"]
 

@@ -4,6 +4,7 @@ Reference values here are facts of the trade or physical invariants, each marked
 """
 import json
 import math
+from pathlib import Path
 
 import h5py
 import numpy as np
@@ -81,12 +82,49 @@ def test_bit_identical_recordings(demo_run, tmp_path):
         assert a.attrs[key] == b.attrs[key]
 
 
+def test_the_run_folder_holds_the_scenario_that_ran(demo_run, demo_path, tmp_path):
+    """Overrides (--set; here the duration) are part of what ran: the folder's scenario.toml
+    (also the recording's scenario_text) names them and runs again to the same recording, bit
+    for bit. Without overrides the text is the file's, byte for byte."""
+    sc, res = demo_run
+    text = (res.folder / "scenario.toml").read_text()
+    assert '#   timing.duration = "0.4 s"' in text
+    again = run_scenario(load_scenario(res.folder / "scenario.toml"), tmp_path / "again")
+    a, b = open_run(res.folder), open_run(again.folder)
+    assert a.time.tobytes() == b.time.tobytes()
+    for name in a.signals:
+        assert a.signals[name].tobytes() == b.signals[name].tobytes(), name
+    assert load_scenario(demo_path).text == Path(demo_path).read_text(encoding="utf-8")
+
+
 def test_refuses_to_overwrite(demo_run):
     sc, res = demo_run
     before = (res.folder / "recording.h5").read_bytes()
     with pytest.raises(FileExistsError, match="nothing was overwritten"):
         run_scenario(sc, res.folder)
     assert (res.folder / "recording.h5").read_bytes() == before
+
+
+def test_overwrite_removes_what_described_the_old_recording(demo_path, tmp_path):
+    """--overwrite: the report, exports and overview plot of the replaced recording go (they
+    would describe a run that is no longer there); the user's own files stay."""
+    from hilrig.runtime.recording import DERIVED_FILES
+    sc = load_scenario(demo_path, overrides={"timing.duration": "0.05 s"})
+    folder = tmp_path / "run"
+    run_scenario(sc, folder)
+    for name in DERIVED_FILES:
+        if name == "report":
+            (folder / name).mkdir()
+            (folder / name / "overview.png").write_bytes(b"old")
+        else:
+            (folder / name).write_text("old")
+    (folder / "notes.txt").write_text("mine")
+    short = load_scenario(demo_path, overrides={"timing.duration": "0.02 s"})
+    run_scenario(short, folder, overwrite=True)
+    assert sorted(p.name for p in folder.iterdir()) == sorted(
+        ["notes.txt", "recording.h5", "scenario.toml", "summary.json"])
+    assert (folder / "notes.txt").read_text() == "mine"
+    assert open_run(folder).time.shape == (short.n_ticks,)
 
 
 COLLAPSE = """
