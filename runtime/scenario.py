@@ -417,6 +417,11 @@ def _load(cx, raw):
                 cur["G"] = 1.0 / r
         times.append(t)
         rows.append((cur["P"], cur["G"], cur["I"]))
+    if times[0] > 0.0:
+        # before the first point there is no load (the columns' start values), as documented;
+        # the table's first row would otherwise be held back to t = 0
+        times.insert(0, 0.0)
+        rows.insert(0, (0.0, 0.0, 0.0))
     if interp == "step":
         # a step at t_j: hold the previous row up to t_j, then the new one (equal breakpoints)
         tt, vv = [times[0]], [rows[0]]

@@ -315,6 +315,19 @@ def test_unit_strings_become_exact_si_values():
                                   [0.0, 0.0, 0.0, 0.0, 25.0]]
 
 
+def test_a_load_profile_that_starts_later_has_no_load_before_it():
+    """docs/scenarios.md: before the first point's t there is no load (P = 0, R open, I = 0);
+    the first row is not held back to t = 0. With linear interpolation the load ramps from zero."""
+    later = minimal(LOAD0, '[[load.points]]\nt = "5 ms"\nP = "50 kW"\n')
+    sc = parse_scenario(later, name=NAME)
+    assert sc.load_t.tolist() == [0.0, 5e-3, 5e-3]
+    assert sc.load_v.tolist() == [[0.0, 0.0, 5e4], [0.0, 0.0, 0.0], [0.0, 0.0, 0.0]]
+    lin = parse_scenario(minimal(LOAD0, '[load]\ninterpolation = "linear"\n[[load.points]]\n'
+                                        't = "5 ms"\nP = "50 kW"\n'), name=NAME)
+    assert lin.load_t.tolist() == [0.0, 5e-3]
+    assert lin.load_v.tolist() == [[0.0, 5e4], [0.0, 0.0], [0.0, 0.0]]
+
+
 def test_defaults_fill_in_and_text_is_kept():
     text = "# nothing but a comment\n"
     sc = parse_scenario(text, name=NAME)
