@@ -105,9 +105,9 @@ def _base(task: Task):
         profile = _profile_plugin()
         # a call with zero ticks compiles (or loads) the loop now, so that forked workers
         # inherit the machine code instead of each loading it again
-        from .run import _call, prepare
+        from .run import _call, first_call, prepare
         prep = prepare(sc)
-        _call(fn, 0, 0, np.empty((1, len(prep.signals))), prep.args)
+        first_call(sc, lambda: _call(fn, 0, 0, np.empty((1, len(prep.signals))), prep.args))
         _CACHE[key] = (sc, fn, profile)
     return _CACHE[key]
 

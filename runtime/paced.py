@@ -31,7 +31,7 @@ from . import loop as loopgen
 from .pacedwrite import LatencyStats, ProcessWriter
 from .recording import SignalSpec
 from .run import (RunResult, _call, check_folder, chunk_args, compile_loop, default_folder,
-                  execute, prepare)
+                  execute, first_call, prepare)
 
 #: sleep until this long before a deadline, then spin
 SPIN_S = 300e-6
@@ -99,7 +99,7 @@ def run_paced(sc, folder: Path | None = None, *, overwrite: bool = False,
     fn, t_compile, compiled = compile_loop(sc, notice)
     a = prep.args
     t = time.perf_counter()
-    _call(fn, 0, 0, np.zeros((1, len(prep.signals) + 2)), a)
+    first_call(sc, lambda: _call(fn, 0, 0, np.zeros((1, len(prep.signals) + 2)), a))
     t_compile += time.perf_counter() - t
     prep.signals = list(prep.signals) + [
         SignalSpec("tick_lateness", "s", "start of the tick after its scheduled time (paced)"),

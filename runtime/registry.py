@@ -22,6 +22,16 @@ from .errors import PluginError
 
 KERNELS = {"plant": ("derivs", "outputs"), "controller": ("init", "step"),
            "reference": ("init", "step")}
+#: each kernel's arguments, in order, as the loop calls it (docs/plugins.md)
+KERNEL_ARGS = {
+    ("plant", "derivs"): ("t", "p", "x", "u", "d"),
+    ("plant", "outputs"): ("t", "p", "x", "u", "d", "y"),
+    ("plant", "rk4_step"): ("dt", "p", "s", "u", "d"),
+    ("controller", "init"): ("p", "xc", "y", "r"),
+    ("controller", "step"): ("t", "p", "xc", "y", "r", "u"),
+    ("reference", "init"): ("p", "xr", "y"),
+    ("reference", "step"): ("t", "dt", "p", "xr", "y", "w"),
+}
 
 
 @dataclass(frozen=True)
@@ -108,9 +118,28 @@ def check(kind: str, module: ModuleType) -> Declaration:
         compiled = hasattr(fn, "py_func") or (numba.config.DISABLE_JIT and callable(fn))
         if fn is None or not compiled:
             raise PluginError(f"{where}: kernel {k!r} missing or not compiled with numba's @njit")
+    for (knd, k), args in KERNEL_ARGS.items():
+        fn = getattr(module, k, None) if knd == kind else None
+        if fn is not None:
+            _check_arguments(where, k, getattr(fn, "py_func", fn), args)
     if kind == "plant" and decl.equilibrium is None:
         raise PluginError(f"{where}: a plant declares equilibrium(values, v_out, d)")
     return decl
+
+
+def _check_arguments(where: str, name: str, fn, args: tuple[str, ...]) -> None:
+    """A kernel must take exactly the loop's arguments (names are free, the count is not): a
+    wrong count would otherwise surface as a long numba typing error in the generated loop."""
+    import inspect
+    try:
+        params = list(inspect.signature(fn).parameters.values())
+    except (TypeError, ValueError):
+        return
+    plain = [q for q in params if q.kind in (q.POSITIONAL_ONLY, q.POSITIONAL_OR_KEYWORD)]
+    if len(plain) != len(params) or len(plain) != len(args):
+        got = ", ".join(q.name for q in params)
+        raise PluginError(f"{where}: kernel {name}({got}) takes {len(params)} argument(s); the "
+                          f"loop calls {name}({', '.join(args)}) (see docs/plugins.md)")
 
 
 def all_plugins() -> list[Plugin]:

@@ -23,7 +23,7 @@ from hilrig.safety.interlocks import (DERIVED, EVENT_NAMES, EVT_RESET_IDLE, EVT_
 
 from . import loop as loopgen
 from . import shaping
-from .errors import ScenarioError
+from .errors import PluginError, ScenarioError
 from .metrics import TrackingMetrics, step_metrics
 from .recording import SCENARIO, SUMMARY, RunWriter, SignalSpec, clear_derived
 from .scenario import PluginChoice, Scenario
@@ -204,6 +204,48 @@ def compile_loop(sc: Scenario, notice: Callable[[str], None] | None = None):
     return module.run_chunk, time.perf_counter() - t, not cached
 
 
+def first_call(sc: Scenario, call: Callable[[], Any]) -> Any:
+    """Run the loop's first call (where numba compiles it); a plugin that numba cannot compile
+    becomes one PluginError naming the line and what numba could not type, in place of
+    numba's long report."""
+    from numba.core.errors import NumbaError
+    try:
+        return call()
+    except NumbaError as exc:
+        raise PluginError(compile_error_text(sc, str(exc))) from None
+
+
+def compile_error_text(sc: Scenario, report: str) -> str:
+    """The essentials of numba's typing report: what it could not type, and where."""
+    import re
+    lines = [ln.rstrip() for ln in report.splitlines()]
+    body = [ln.strip() for ln in lines[1:] if ln.strip()] if lines and lines[0].startswith(
+        "Failed in") else [ln.strip() for ln in lines if ln.strip()]
+    what = body[0] if body else report.strip()[:200]
+    sig = next((ln for ln in body if ln.startswith(">>>")), "")
+    if sig and sig not in what:
+        what = f"{what} {sig}"
+    where = ""
+    for i, ln in enumerate(lines):
+        m = re.match(r'File "(.+)", line (\d+):', ln.strip())
+        if m:
+            after = lines[i + 1:i + 12]
+            # numba marks the line it could not type with a caret on the line below it
+            caret = next((j for j, c in enumerate(after) if c.strip() == "^"), None)
+            src = after[caret - 1].strip() if caret else ""
+            where = f"{m.group(1)}, line {m.group(2)}" + (f": {src}" if src else "")
+    names = (f"{sc.plant.plugin.name} + {sc.controller.plugin.name} + "
+             f"{sc.reference.plugin.name}")
+    hint = ""
+    if ("none" in sig.lower() or "optional" in sig.lower()) and "interlocks.py" in where:
+        # the status code reaches the protect stage first: None there is a missing return
+        hint = (" The controller's step seems to return nothing on some path: a step kernel "
+                "returns an int status on every path (0 when all is well).")
+    return (f"numba could not compile the loop for {names}: {what}"
+            + (f" (at {where})." if where else ".") + hint
+            + " Run with NUMBA_DISABLE_JIT=1 for a plain-Python traceback of the plugin.")
+
+
 def chunk_args(a: dict) -> tuple:
     """The arguments of ``run_chunk`` between ``n`` and ``rec``, in order."""
     return (a["ts"], a["nsub"], a["v_collapse"], a["i_vout"],
@@ -286,7 +328,7 @@ def run_scenario(sc: Scenario, folder: Path | None = None, *, overwrite: bool = 
     a = prep.args
     # first call with zero ticks: compiles (or loads from the cache) outside the timed loop
     t = time.perf_counter()
-    _call(fn, 0, 0, np.zeros((1, len(prep.signals))), a)
+    first_call(sc, lambda: _call(fn, 0, 0, np.zeros((1, len(prep.signals))), a))
     t_compile += time.perf_counter() - t
     if not telemetry:
         return execute(sc, prep, folder, lambda k0, n, rec: _call(fn, k0, n, rec, a),

@@ -460,7 +460,7 @@ def run_suite(suite: Suite, out: Path, *, workers: int | None = None,
 def _warm_up(cases: list[Case]) -> None:
     """Compile (or load) each plugin combination once in this process: forked workers inherit
     it, and workers never compile the same loop side by side."""
-    from hilrig.runtime.run import _call, compile_loop, prepare
+    from hilrig.runtime.run import _call, compile_loop, first_call, prepare
     seen = set()
     for c in cases:
         sc = _scenario(c)
@@ -470,7 +470,7 @@ def _warm_up(cases: list[Case]) -> None:
         seen.add(key)
         fn, _, _ = compile_loop(sc)
         prep = prepare(sc)
-        _call(fn, 0, 0, np.zeros((1, len(prep.signals))), prep.args)
+        first_call(sc, lambda: _call(fn, 0, 0, np.zeros((1, len(prep.signals))), prep.args))
 
 
 def junit_xml(suite: Suite, results: list[CaseResult]) -> str:

@@ -73,3 +73,41 @@ def test_division_by_zero_in_a_plugin_trips_instead_of_raising(tmp_path, where):
     # with 0 V applied the constant-power load then collapses the output: the run ends on
     # that event, in order (summary, events and recording written)
     assert s["end_event"] == "voltage collapse" and s["ticks_run"] == len(run.time) > k
+
+
+#: mistakes a plugin author makes, each one edit of the worked example, and what the one-line
+#: error must say instead of numba's long report (common practice, no source)
+_MISTAKES = {
+    "argument count": (("def step(t, p, xc, y, r, u):", "def step(t, p, xc, y, r):"),
+                       ["kernel step(t, p, xc, y, r) takes 5 argument(s)",
+                        "the loop calls step(t, p, xc, y, r, u)"]),
+    "type": (("    e = r[0] - y[Y_VOUT]\n", '    e = r[0] - y[Y_VOUT]\n    e = "x" + 1\n'),
+             ["numba could not compile the loop for single_lc + voltage_pi + profile",
+              'voltage_pi.py, line', 'e = "x" + 1', "NUMBA_DISABLE_JIT=1"]),
+    "no status": (("        xc[0] += p[KI] * p[TS] * e  # integrate only when not clamped "
+                   "(anti-windup)\n    return 0\n",
+                   "        xc[0] += p[KI] * p[TS] * e  # integrate only when not clamped "
+                   "(anti-windup)\n"),
+                  ["step seems to return nothing on some path", "returns an int status"]),
+}
+
+
+@pytest.mark.parametrize("mistake", sorted(_MISTAKES))
+def test_a_plugin_mistake_is_one_clear_error(tmp_path, mistake):
+    """A kernel with the wrong arguments is refused when the plugin loads; one that numba cannot
+    type is refused at the loop's first call with the line and what numba could not type (a
+    PluginError, which the command line prints as one message with exit code 2)."""
+    from hilrig.runtime.errors import PluginError
+    files = example_files()
+    (old, new), says = _MISTAKES[mistake]
+    body = files["voltage_pi.py"].replace(old, new)
+    assert body != files["voltage_pi.py"]
+    (tmp_path / "voltage_pi.py").write_text(body)
+    (tmp_path / "example.toml").write_text(files["example.toml"])
+    with pytest.raises((PluginError, ValueError)) as info:
+        run_scenario(load_scenario(tmp_path / "example.toml"), tmp_path / "run")
+    text = str(info.value)
+    for part in says:
+        assert part in text, text
+    assert "\n" not in text and len(text) < 600
+    assert not (tmp_path / "run" / "recording.h5").exists()
