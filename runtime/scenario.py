@@ -207,12 +207,9 @@ def parse_scenario(text: str, name: str = "scenario.toml", path: str = "",
     limits = _section(cx, raw, "limits", LIMITS)
     interlocks = _interlocks(cx, raw, plant, controller)
     v_out0 = _initial(cx, raw)
-    faults = _faults(cx, raw, plant, duration)
+    faults = _faults(cx, raw, plant, duration, Ts)
     _check_short_circuits(cx, faults, plant, Ts, substeps)
-    resets_raw = raw.get("resets", [])
-    if not isinstance(resets_raw, list):
-        raise cx.fail("resets", f" = {resets_raw!r} is not a list of times, e.g. [\"0.3 s\"]")
-    resets = sorted(_quantity(cx, f"resets[{i}]", v, "s", (0.0, 1e9)) for i, v in enumerate(resets_raw))
+    resets = _resets(cx, raw, Ts, duration)
     recording = _section(cx, raw, "recording", RECORDING, choices=RECORDING_CHOICES)
     recording.setdefault("compression", "none")
     watchdogs = _section(cx, raw, "watchdogs", WATCHDOGS)
@@ -495,7 +492,37 @@ FAULT_KEYS = {"kind", "signal", "start", "end", "value", "when", "duration"}
 WHEN_KEYS = {"signal", "above", "below"}
 
 
-def _faults(cx, raw, plant: PluginChoice, duration: float) -> list[Fault]:
+def _check_in_run(cx, key: str, t: float, Ts: float, duration: float, what: str) -> None:
+    """Refuse a fault's or a reset's time that no tick of the run reaches: the loop's ticks
+    are at t = k Ts for k = 0 .. n - 1 (n = duration / Ts), and a fault or reset acts on the
+    first tick at or after its time, so one after the last tick would never act, while the
+    run's summary would still list the fault with its start (common practice, no source: a
+    run used as proof that an interlock did or did not trip must not carry a fault that never
+    happened). The stand-in simulator rounds a link fault's time to the nearest tick; the same
+    rule refuses one in the last half period too. Profile and load points beyond the end stay
+    allowed: they are a curve the run is a part of."""
+    n = int(round(duration / Ts))
+    last = (n - 1) * Ts  # the same product the loop computes for its last tick
+    if not t <= last:
+        raise cx.fail(key, f" = {t:g} s is after the run's last tick at {last:g} s "
+                      f"(timing.duration = {duration:g} s at Ts = {Ts:g} s): {what}; move it into "
+                      f"the run or lengthen timing.duration")
+
+
+def _resets(cx, raw, Ts: float, duration: float) -> list[float]:
+    """The requested reset times [s], sorted; each one inside the run."""
+    resets_raw = raw.get("resets", [])
+    if not isinstance(resets_raw, list):
+        raise cx.fail("resets", f" = {resets_raw!r} is not a list of times, e.g. [\"0.3 s\"]")
+    out = []
+    for i, v in enumerate(resets_raw):
+        t = _quantity(cx, f"resets[{i}]", v, "s", (0.0, 1e9))
+        _check_in_run(cx, f"resets[{i}]", t, Ts, duration, "the reset would never be requested")
+        out.append(t)
+    return sorted(out)
+
+
+def _faults(cx, raw, plant: PluginChoice, duration: float, Ts: float) -> list[Fault]:
     items = raw.get("faults", [])
     if not isinstance(items, list) or not all(isinstance(x, dict) for x in items):
         raise cx.fail("faults", " must be an array of tables [[faults]]")
@@ -522,6 +549,9 @@ def _faults(cx, raw, plant: PluginChoice, duration: float) -> list[Fault]:
         if "start" not in it and when is None:
             raise cx.fail(where, " has no start time [s] (or a 'when' condition)")
         start = _quantity(cx, f"{where}.start", it.get("start", 0.0), "s", (0.0, 1e9))
+        _check_in_run(cx, f"{where}.start", start, Ts, duration,
+                      "the fault would never act" if when is None
+                      else "the fault's condition would never be watched")
         end = math.inf
         cond = {}
         if when is not None:

@@ -1,12 +1,38 @@
 """High-voltage caution notices.
 
-A caution is shown whenever any configured voltage, limit or plant rating exceeds 60 V DC, the
-limit of voltage class A for road-vehicle electric circuits (above it: class B, hazardous;
-ISO 6469-3, and UN ECE / EU Regulation 2015/208 Annex XXIV).
+A caution is shown whenever a voltage that can be present on the equipment a scenario describes
+exceeds 60 V DC, the limit of voltage class A for road-vehicle electric circuits (above it:
+class B, hazardous; ISO 6469-3, and UN ECE / EU Regulation 2015/208 Annex XXIV).
+
+Which configured values count (:func:`scenario_voltages`; the choice is common practice, no
+source):
+
+- every plant parameter in volts, defaults included: the DC link ``V_dc`` and the like are what
+  the modelled (or, through a bridge, the real) power stage carries, and a plant left at its
+  default DC link still has it;
+- the reference's range, defaults included, since the output is driven towards it: every
+  voltage parameter and every volt column of its tables (the profile's points), and for a
+  battery model its pack voltage, ``n_series`` times the largest cell voltage of its tables
+  (``n_series * max OCV``);
+- ``[initial] v_out`` and the ``[limits]`` voltages (``safe_u`` is applied on a trip);
+- interlock thresholds in volts: the scenario states them, so they say what its author expects;
+- the controller's voltage parameters only where the scenario sets them: in its text, or at a
+  value other than the plugin's default (a ``--set`` override, an interlock-suite case). A
+  controller's defaults in volts are tuning values such as the cascaded PI's command clamp
+  ``u_max = 10 kV``, which the controller itself limits to the plant's ``V_dc``; a clamp above
+  what the plant can produce is not a voltage present on equipment.
+
+When in doubt a value counts: the caution must never be missing for a scenario that has more
+than 60 V anywhere.
 """
 from __future__ import annotations
 
 from typing import Iterable
+
+try:
+    import tomllib
+except ModuleNotFoundError:  # Python 3.10
+    import tomli as tomllib
 
 from hilrig.plugins.base import Param, TableParam
 
@@ -24,8 +50,9 @@ CAUTION_TEXT = (
 
 
 def hazardous_voltages(items: Iterable[tuple[str, float]]) -> list[tuple[str, float]]:
-    """The (name, voltage [V]) pairs whose magnitude exceeds 60 V DC, in the order given."""
-    return [(n, float(v)) for n, v in items if abs(float(v)) > CLASS_B_DC_V]
+    """The (name, voltage [V]) pairs whose magnitude exceeds 60 V DC, in the order given (NaN
+    counts: it cannot be shown to be at most 60 V)."""
+    return [(n, float(v)) for n, v in items if not abs(float(v)) <= CLASS_B_DC_V]
 
 
 def caution_text(items: Iterable[tuple[str, float]]) -> str | None:
@@ -37,20 +64,68 @@ def caution_text(items: Iterable[tuple[str, float]]) -> str | None:
     return CAUTION_TEXT.format(vmax=abs(v), where=name)
 
 
-def scenario_voltages(sc) -> list[tuple[str, float]]:
-    """Every voltage a scenario configures: plant ratings, voltage limits, references."""
+def _volt_values(key: str, choice, names=None) -> list[tuple[str, float]]:
+    """Every parameter of a plugin choice in volts (``names``: only these), as (name, value);
+    a table contributes its largest magnitude of each volt column."""
     out = []
-    for choice, key in ((sc.plant, "plant"), (sc.controller, "controller"), (sc.reference, "reference")):
-        decl = choice.plugin.declaration
-        for p in decl.params:
-            if isinstance(p, Param) and p.unit == "V":
-                out.append((f"{key}.{p.name}", choice.values[p.name]))
-            elif isinstance(p, TableParam):  # any column in volts
-                for j, (col, cu) in enumerate(p.columns):
-                    if cu == "V":
-                        vals = [row[j] for row in choice.values[p.name]]
-                        if vals:
-                            out.append((f"{key}.{p.name}", max(vals, key=abs)))
+    for p in choice.plugin.declaration.params:
+        if names is not None and p.name not in names:
+            continue
+        if isinstance(p, Param) and p.unit == "V":
+            out.append((f"{key}.{p.name}", choice.values[p.name]))
+        elif isinstance(p, TableParam):
+            for j, (col, cu) in enumerate(p.columns):
+                if cu == "V":
+                    vals = [row[j] for row in choice.values[p.name]]
+                    if vals:
+                        out.append((f"{key}.{p.name}", max(vals, key=abs)))
+    return out
+
+
+def _pack_voltages(choice) -> list[tuple[str, float]]:
+    """A battery model's pack voltage: cells in series (``n_series``) times the largest cell
+    voltage of its tables (the OCV at full charge)."""
+    n = choice.values.get("n_series")
+    if isinstance(n, bool) or not isinstance(n, (int, float)):
+        return []
+    out = []
+    for p in choice.plugin.declaration.params:
+        if isinstance(p, TableParam):
+            for name, v in _volt_values("reference", choice, {p.name}):
+                out.append((f"reference pack voltage (n_series {n:g} x max {name})", n * v))
+    return out
+
+
+def _set_in_text(sc, key: str) -> set[str]:
+    """The parameter names the scenario's text sets in its ``[key]`` table (empty when the
+    text cannot be read)."""
+    try:
+        tab = tomllib.loads(sc.text or "").get(key, {})
+    except (tomllib.TOMLDecodeError, TypeError):
+        return set()
+    return set(tab) if isinstance(tab, dict) else set()
+
+
+def _explicit(sc, key: str, choice) -> set[str]:
+    """Parameters the scenario sets: named in its text, or at a value other than the default."""
+    names = _set_in_text(sc, key)
+    for p in choice.plugin.declaration.params:
+        if choice.values.get(p.name) != p.default:
+            names.add(p.name)
+    return names
+
+
+def scenario_voltages(sc) -> list[tuple[str, float]]:
+    """The voltages that can be present on the equipment a scenario describes (see the module
+    docstring): plant ratings, the reference's range, the start voltage, the voltage limits,
+    interlock thresholds and the controller's voltage parameters the scenario sets."""
+    out = _volt_values("plant", sc.plant)
+    out += _volt_values("reference", sc.reference) + _pack_voltages(sc.reference)
+    if sc.v_out0 is not None:
+        out.append(("initial.v_out", sc.v_out0))
+    out.append(("limits.safe_u", sc.safe_u))
+    out.append(("limits.v_collapse", sc.v_collapse))
+    out += _volt_values("controller", sc.controller, _explicit(sc, "controller", sc.controller))
     for it in sc.interlocks:
         if it.unit == "V":
             out.append((f"interlock on {it.signal}", it.threshold))

@@ -97,6 +97,62 @@ def test_bad_scenario_is_one_message_no_traceback(tmp_path):
     assert not (tmp_path / "r").exists()
 
 
+#: a 48 V-class scenario (test data: 48 V DC link, 24 V output, nothing above 60 V DC)
+LOW_48V = """\
+title = "48 V DC link, 24 V output (test data)"
+[timing]
+Ts = "50 us"
+duration = "40 ms"
+[plant]
+plugin = "two_stage_lc"
+V_dc = "48 V"
+[controller]
+plugin = "cascaded_pi"
+[reference]
+plugin = "profile"
+points = [[0, "24 V"]]
+[limits]
+v_collapse = "5 V"
+"""
+
+
+@pytest.mark.parametrize("extra, key", [
+    ('[[faults]]\nkind = "nan_output"\nstart = "2 s"\n', "faults[0].start = 2 s"),
+    ('resets = ["0.3 s"]\n', "resets[0] = 0.3 s"),
+], ids=["fault", "reset"])
+def test_a_fault_or_reset_after_the_end_of_the_run_is_a_scenario_error(tmp_path, extra, key):
+    # it would never act, yet summary.json would list the fault as active from its start
+    bad = tmp_path / "late.toml"
+    bad.write_text(extra + LOW_48V if extra.startswith("resets") else LOW_48V + extra)
+    p = run_cli("run", bad, "--out", tmp_path / "r", "--headless")
+    assert p.returncode == 2, p.stdout + p.stderr
+    assert "Traceback" not in p.stdout + p.stderr
+    msg = " ".join(p.stdout.split())
+    assert (f"late.toml: {key} is after the run's last tick at 0.03995 s "
+            f"(timing.duration = 0.04 s at Ts = 5e-05 s)") in msg
+    assert not (tmp_path / "r").exists()
+
+
+def test_a_48_v_scenario_has_no_caution_and_its_remote_bridge_no_high_voltage_refusal(tmp_path):
+    """60 V DC: the top of voltage class A (ISO 6469-3, from memory). The cascaded PI's default
+    command clamp (10 kV) is not a voltage on any equipment; a value the scenario sets is."""
+    low = tmp_path / "low.toml"
+    low.write_text(LOW_48V)
+    remote = ["--bridge", "tcp://192.0.2.1:47810", "--allow-remote", "--out", tmp_path / "r",
+              "--headless"]
+    p = run_cli("run", low, *remote)
+    # refused only by the next check: a remote ZeroMQ peer needs CurveZMQ keys
+    assert p.returncode == 2 and "needs CurveZMQ keys" in p.stdout, p.stdout + p.stderr
+    assert "CAUTION" not in p.stdout and "--acknowledge-high-voltage" not in p.stdout
+    high = tmp_path / "high.toml"
+    high.write_text(LOW_48V.replace('plugin = "cascaded_pi"\n', 'plugin = "cascaded_pi"\nu_max = "100 V"\n'))
+    p = run_cli("run", high, *remote)
+    assert p.returncode == 2 and "--acknowledge-high-voltage" in p.stdout, p.stdout + p.stderr
+    assert "CAUTION: HAZARDOUS VOLTAGE" in p.stdout
+    assert "controller.u_max = 100 V" in " ".join(p.stdout.split())
+    assert not (tmp_path / "r").exists()
+
+
 def test_missing_files_are_clear(tmp_path):
     p = run_cli("run", tmp_path / "nope.toml", "--headless")
     assert p.returncode == 2 and "does not exist" in p.stdout and "Traceback" not in p.stderr

@@ -112,6 +112,10 @@ expect = "no trip"
     ('[[cases]]\nname = "a"\nexpect = "no trip"\ncause = "v_out above"\n', "no-trip case takes no cause"),
     ('[[cases]]\nname = "a"\nexpect = "trip"\nbridge = { mode = "sideways" }\n', "bridge mode 'sideways'"),
     ('[[cases]]\nname = "a"\nexpect = "trip"\n[[cases]]\nname = "a"\nexpect = "trip"\n', "used twice"),
+    # a no-trip case whose fault starts after its (shortened) run would pass without any fault
+    ('[[cases]]\nname = "a"\nexpect = "no trip"\nset = { "timing.duration" = "0.1 s" }\n'
+     'faults = [{ kind = "power_step", value = "60 kW", start = "0.15 s" }]\n',
+     "faults[0].start = 0.15 s is after the run's last tick"),
 ])
 def test_malformed_suite_is_one_clear_error(tmp_path, body, message):
     f = _suite(tmp_path, body)

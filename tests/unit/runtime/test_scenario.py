@@ -180,6 +180,36 @@ CASES = [
     ("unknown recording compression",
      MINIMAL + '[recording]\ncompression = "zip"\n',
      ["recording.compression = 'zip'", "'none', 'gzip'"]),
+    # faults and resets after the run's last tick would never act (ticks at t = k Ts, k = 0 ..
+    # n - 1: the last one of 10 ms at 50 us is at 9.95 ms); the summary would still list them
+    ("fault starting long after the end of the run",
+     MINIMAL + '[[faults]]\nkind = "nan_output"\nstart = "2 s"\n',
+     ["faults[0].start = 2 s", "after the run's last tick at 0.00995 s",
+      "timing.duration = 0.01 s", "would never act", "lengthen timing.duration"]),
+    ("fault starting exactly at the end of the run",
+     MINIMAL + '[[faults]]\nkind = "offset"\nsignal = "v_out"\nvalue = "5 V"\nstart = "10 ms"\n',
+     ["faults[0].start = 0.01 s", "last tick at 0.00995 s", "timing.duration = 0.01 s"]),
+    ("fault starting within the last period, after the last tick",
+     MINIMAL + '[[faults]]\nkind = "open_circuit"\nstart = "9.99 ms"\n',
+     ["faults[0].start = 0.00999 s", "last tick at 0.00995 s", "timing.duration = 0.01 s"]),
+    ("second fault starting after the end of the run",
+     MINIMAL + ('[[faults]]\nkind = "nan_output"\nstart = "5 ms"\n'
+                '[[faults]]\nkind = "power_step"\nvalue = "5 kW"\nstart = "40 ms"\nend = "50 ms"\n'),
+     ["faults[1].start = 0.04 s", "timing.duration = 0.01 s", "would never act"]),
+    ("conditional fault watched only after the end of the run",
+     MINIMAL + ('[[faults]]\nkind = "dropout"\nsignal = "v_out"\nstart = "0.3 s"\n'
+                'when = { signal = "i_out", above = "150 A" }\n'),
+     ["faults[0].start = 0.3 s", "timing.duration = 0.01 s", "condition would never be watched"]),
+    ("link fault after the end of the run",
+     MINIMAL + '[[faults]]\nkind = "link_disconnect"\nstart = "1 s"\n',
+     ["faults[0].start = 1 s", "timing.duration = 0.01 s", "would never act"]),
+    ("reset after the end of the run",
+     minimal("seed = 3", 'seed = 3\nresets = ["5 ms", "0.3 s"]'),
+     ["resets[1] = 0.3 s", "after the run's last tick at 0.00995 s", "timing.duration = 0.01 s",
+      "reset would never be requested"]),
+    ("reset exactly at the end of the run",
+     minimal("seed = 3", 'seed = 3\nresets = ["10 ms"]'),
+     ["resets[0] = 0.01 s", "timing.duration = 0.01 s"]),
 ]
 
 
@@ -192,6 +222,26 @@ def test_the_bases_of_the_malformed_cases_are_valid():
     # without this, a case could fail for a reason other than its one edit
     assert isinstance(parse_scenario(MINIMAL, name=NAME), Scenario)
     assert isinstance(parse_scenario(DEMO, name=NAME), Scenario)
+
+
+def test_faults_and_resets_up_to_the_last_tick_and_curves_beyond_the_end_are_accepted():
+    # the last tick of 10 ms at 50 us is at 9.95 ms: a fault or reset there acts on it; an end,
+    # a conditional duration, reference and load points may lie beyond the run
+    text = (minimal("seed = 3", 'seed = 3\nresets = ["9.95 ms", "2 ms"]')
+            .replace('plugin = "profile"\n',
+                     'plugin = "profile"\npoints = [[0, "400 V"], ["2 s", "400 V"], ["2 s", "420 V"]]\n')
+            + '[[load.points]]\nt = "5 s"\nP = "20 kW"\n'
+            + '[[faults]]\nkind = "offset"\nsignal = "v_out"\nvalue = "5 V"\nstart = "9.95 ms"\nend = "2 s"\n'
+            + '[[faults]]\nkind = "dropout"\nsignal = "v_out"\nduration = "1 s"\n'
+            + 'when = { signal = "i_out", above = "150 A" }\n')
+    sc = parse_scenario(text, name=NAME)
+    assert sc.resets == [0.002, 0.00995]
+    assert [f.start for f in sc.faults] == [0.00995, 0.0] and sc.faults[0].end == 2.0
+    assert sc.reference.values["points"][-1] == (2.0, 420.0) and sc.load_t[-1] == 5.0
+    # the same scenario one period longer also takes a fault at its new last tick
+    longer = parse_scenario(text.replace('duration = "10 ms"', 'duration = "10.05 ms"')
+                            .replace('start = "9.95 ms"', 'start = "10 ms"'), name=NAME)
+    assert longer.faults[0].start == 0.01
 
 
 def test_negative_inductance_names_the_si_value_and_the_range():
