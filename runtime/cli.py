@@ -6,7 +6,6 @@ value and exit with status 2; they never print a traceback. Nothing recorded is 
 from __future__ import annotations
 
 import argparse
-import json
 import math
 import sys
 import time
@@ -73,6 +72,23 @@ def _show_caution(console, sc) -> None:
         console.print(Panel(escape(text), title=CAUTION_TITLE, border_style="bold yellow", expand=False, width=min(console.width, 100)))
 
 
+def _json_text(obj) -> str:
+    """What a --json option prints: strict JSON, a non-finite number as null (the run folder's
+    contract, hilrig.runtime.recording)."""
+    from hilrig.runtime.recording import dumps_json  # h5py: only when needed
+    return dumps_json(obj, indent=2)
+
+
+def _finite(v) -> bool:
+    return isinstance(v, (int, float)) and math.isfinite(v)
+
+
+def _num(v, spec: str) -> str:
+    """A number for a table cell; "n/a" for one that has no finite value (null in summary.json,
+    NaN or inf in a summary still in memory)."""
+    return format(v, spec) if _finite(v) else "n/a"
+
+
 def _summary_table(console, s: dict, folder: Path | None) -> None:
     from rich.markup import escape
     from rich.table import Table
@@ -85,12 +101,16 @@ def _summary_table(console, s: dict, folder: Path | None) -> None:
     t.add_row("plant / controller / reference", f"{s['plant']} / {s['controller']} / {s['reference']}")
     t.add_row(escape("simulated [s]"), f"{s['simulated_s']:.4g} of {s['ticks_planned'] * s['Ts_s']:.4g}  ({s['ticks_run']} ticks at {s['Ts_s'] * 1e6:.4g} us)")
     t.add_row("outcome", "completed" if s["completed"] else f"ended: {s['end_event'] or 'interrupted'}")
-    t.add_row("trip", "none" if not s["trip"] else f"{s['trip']['cause']} at t = {s['trip']['time_s']:.6g} s (tick {s['trip']['tick']}), value {s['trip']['value']:.6g}")
-    t.add_row(escape("RMS tracking error [V]"), f"{m['rms_error_V']:.4g}")
-    t.add_row(escape("max |v_ref - v_out| [V]"), f"{m['max_abs_error_V']:.4g} at t = {m['time_of_max_abs_error_s']:.6g} s")
-    t.add_row(escape("IAE [V s]"), f"{m['iae_Vs']:.4g}")
-    t.add_row(escape("v_out range [V]"), f"{m['v_out_min_V']:.5g} .. {m['v_out_max_V']:.5g}")
-    t.add_row(escape("time in saturation [s]"), f"{m['saturation_time_s']:.4g}")
+    tr = s["trip"]
+    t.add_row("trip", "none" if not tr else f"{tr['cause']} at t = {tr['time_s']:.6g} s (tick {tr['tick']}), value {_num(tr.get('value'), '.6g')}")
+    t.add_row(escape("RMS tracking error [V]"), _num(m["rms_error_V"], ".4g"))
+    t.add_row(escape("max |v_ref - v_out| [V]"), _num(m["max_abs_error_V"], ".4g") + (
+        f" at t = {_num(m['time_of_max_abs_error_s'], '.6g')} s" if _finite(m["max_abs_error_V"]) else ""))
+    t.add_row(escape("IAE [V s]"), _num(m["iae_Vs"], ".4g"))
+    t.add_row(escape("v_out range [V]"), f"{_num(m['v_out_min_V'], '.5g')} .. {_num(m['v_out_max_V'], '.5g')}")
+    t.add_row(escape("time in saturation [s]"), _num(m["saturation_time_s"], ".4g"))
+    if m.get("nonfinite_samples"):
+        t.add_row("non-finite samples", f"{m['nonfinite_samples']} ticks (left out of the metrics above)")
     tps = tm.get("ticks_per_s")
     t.add_row(escape("loop speed [ticks/s]"), f"{tps:,.0f}  ({tm['loop_ns_per_tick']:.0f} ns per tick)" if tps else "-")
     t.add_row(escape("faster than real time [x]"), f"{tm['realtime_factor']:.1f}" if tm.get("realtime_factor") else "-")
@@ -251,7 +271,7 @@ def _compare(console, args) -> None:
                       notice=None if args.json else (lambda m: console.print(m)),
                       on_run=None if args.json else (lambda n: console.print(f"running {n} ...")))
     if args.json:
-        print(json.dumps(json_view(results), indent=2))
+        print(_json_text(json_view(results)))
         return
 
     def f(v, scale=1.0, fmt="{:.3g}"):
@@ -342,7 +362,7 @@ def _envelope(console, args, plain: bool) -> None:
         pass
     cnt = env.counts(rows)
     if args.json:
-        print(json.dumps(cnt, indent=2))
+        print(_json_text(cnt))
         return
     for c in names:
         console.print(f"[bold]{escape(c)}[/bold]  " + "  ".join(f"{o} {n}" for o, n in cnt[c].items()))
@@ -539,7 +559,7 @@ def main(argv: list[str] | None = None) -> int:
             if not run.summary:
                 raise RecordingError(f"{args.run}: no summary.json (the run did not finish)")
             if args.json:
-                print(json.dumps(run.summary, indent=2))
+                print(_json_text(run.summary))
             else:
                 from hilrig.runtime.report import write_report
                 _summary_table(console, run.summary, run.folder)
@@ -551,7 +571,7 @@ def main(argv: list[str] | None = None) -> int:
             from hilrig.runtime.registry import all_plugins
             items = [p.declaration.describe() for p in all_plugins()]
             if args.json:
-                print(json.dumps(items, indent=2))
+                print(_json_text(items))
             else:
                 _plugins_table(console, items)
         elif args.cmd == "export":

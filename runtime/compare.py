@@ -8,14 +8,13 @@ time per tick, and draws one figure per quantity with every candidate overlaid.
 """
 from __future__ import annotations
 
-import json
 import math
 import re
 from pathlib import Path
 from typing import Any, Callable
 
 from .metrics import StepMetrics, largest_step
-from .recording import open_run
+from .recording import dumps_json, finite_or_none, open_run
 from .run import run_scenario
 from .scenario import load_scenario
 
@@ -75,7 +74,7 @@ def compare(scenario: Path, candidates: list[str], out: Path, *, overwrite: bool
             "step": big.as_dict() if big else None,
             "folder": str(res.folder),
         }
-    (out / "comparison.json").write_text(json.dumps(results, indent=2) + "\n")
+    (out / "comparison.json").write_text(dumps_json(results, indent=2) + "\n")
     try:
         plot_comparison(out, results)
     except ImportError:
@@ -85,9 +84,7 @@ def compare(scenario: Path, candidates: list[str], out: Path, *, overwrite: bool
 
 def json_view(results: dict[str, dict[str, Any]]) -> dict[str, dict[str, Any]]:
     """The documented ``--json`` shape: only the metric keys, NaN as null."""
-    def clean(v):
-        return None if isinstance(v, float) and not math.isfinite(v) else v
-    return {k: {key: clean(r[key]) for key in JSON_KEYS} for k, r in results.items()}
+    return finite_or_none({k: {key: r[key] for key in JSON_KEYS} for k, r in results.items()})
 
 
 def plot_comparison(out: Path, results: dict[str, dict[str, Any]]) -> list[Path]:

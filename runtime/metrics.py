@@ -7,6 +7,9 @@ Tracking error e = v_ref - v_out [V] against the shaped reference:
 - time in saturation [s]: ticks where the command u is at or beyond the converter's range
   [0, v_dc] (the converter cannot follow it).
 
+A tick whose error is not finite (NaN or inf, e.g. a sensor dropout) is left out of these
+sums and counted as a non-finite sample; the v_out range covers the finite samples only.
+
 Per reference step (a jump of the raw reference larger than a threshold within one tick), on
 the output measured from the step's start value, over the window up to the next step or the end
 of the run, with the same definitions as python-control's ``step_info`` on recorded data:
@@ -113,11 +116,19 @@ def largest_step(steps: list[StepMetrics]) -> StepMetrics | None:
 
 
 class TrackingMetrics:
-    """Running tracking and saturation metrics over chunks of a run."""
+    """Running tracking and saturation metrics over chunks of a run.
+
+    A tick whose error v_ref - v_out is not finite (a sensor dropout, a diverged plant) is left
+    out of IAE, ISE, RMS and max error and counted in ``nonfinite_samples``; the v_out range
+    covers the finite v_out samples. The metrics then describe the finite part of the run, and
+    a metric with no finite sample to describe is NaN (null in summary.json). A run whose
+    samples are all finite takes the same arithmetic, in the same order, as without the check.
+    """
 
     def __init__(self, ts: float, settle_skip_s: float = 0.0):
         self.ts = ts
         self.n = 0
+        self.nonfinite = 0
         self.sum_abs = 0.0
         self.sum_sq = 0.0
         self.max_abs = 0.0
@@ -130,29 +141,47 @@ class TrackingMetrics:
                v_dc: np.ndarray | None) -> None:
         if t.shape[0] == 0:
             return
-        e = v_ref - v_out
-        a = np.abs(e)
-        self.n += e.shape[0]
-        self.sum_abs += float(a.sum())
-        self.sum_sq += float((e * e).sum())
-        j = int(np.argmax(a)) if np.all(np.isfinite(a)) else int(np.argmax(~np.isfinite(a)))
-        if not (a[j] <= self.max_abs):
-            self.max_abs = float(a[j])
-            self.t_max_abs = float(t[j])
         hi = v_dc if v_dc is not None else np.inf
+        # saturation is judged on every tick (a non-finite command is at no rail)
         self.sat_ticks += int(np.count_nonzero((u <= 0.0) | (u >= hi)))
-        self.max_v_out = max(self.max_v_out, float(np.max(v_out)))
-        self.min_v_out = min(self.min_v_out, float(np.min(v_out)))
+        e = v_ref - v_out
+        ok = np.isfinite(e)
+        if not ok.all():
+            self.nonfinite += int(e.shape[0] - np.count_nonzero(ok))
+            e, t = e[ok], t[ok]
+        if e.shape[0]:
+            a = np.abs(e)
+            self.n += e.shape[0]
+            self.sum_abs += float(a.sum())
+            self.sum_sq += float((e * e).sum())
+            j = int(np.argmax(a))
+            if not (a[j] <= self.max_abs):
+                self.max_abs = float(a[j])
+                self.t_max_abs = float(t[j])
+        fin = np.isfinite(v_out)
+        v = v_out if fin.all() else v_out[fin]
+        if v.shape[0]:
+            self.max_v_out = max(self.max_v_out, float(np.max(v)))
+            self.min_v_out = min(self.min_v_out, float(np.min(v)))
 
     def result(self) -> dict[str, float]:
-        n = max(self.n, 1)
+        if self.n == 0:
+            # nothing finite to describe (or no tick at all)
+            err = dict.fromkeys(("iae_Vs", "ise_V2s", "rms_error_V", "max_abs_error_V",
+                                 "time_of_max_abs_error_s"), math.nan)
+        else:
+            err = {
+                "iae_Vs": self.sum_abs * self.ts,
+                "ise_V2s": self.sum_sq * self.ts,
+                "rms_error_V": math.sqrt(self.sum_sq / self.n),
+                "max_abs_error_V": self.max_abs,
+                "time_of_max_abs_error_s": self.t_max_abs,
+            }
+        seen = self.min_v_out <= self.max_v_out
         return {
-            "iae_Vs": self.sum_abs * self.ts,
-            "ise_V2s": self.sum_sq * self.ts,
-            "rms_error_V": math.sqrt(self.sum_sq / n),
-            "max_abs_error_V": self.max_abs,
-            "time_of_max_abs_error_s": self.t_max_abs,
+            **err,
             "saturation_time_s": self.sat_ticks * self.ts,
-            "v_out_min_V": self.min_v_out,
-            "v_out_max_V": self.max_v_out,
+            "v_out_min_V": self.min_v_out if seen else math.nan,
+            "v_out_max_V": self.max_v_out if seen else math.nan,
+            "nonfinite_samples": self.nonfinite,
         }

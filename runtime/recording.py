@@ -8,11 +8,18 @@ Contract (other tools rely on it):
   file with them applied, see ``scenario.parse_scenario``), ``versions`` (JSON), ``seed``, ``Ts`` [s],
   ``hilrig_format`` (this contract's version) and, once the run ends, ``events`` (JSON) and
   ``complete`` (true).
-- ``summary.json``: metrics and timing of the run.
+- ``summary.json``: metrics and timing of the run. The tracking metrics leave out the ticks
+  whose error is not finite and count them (``nonfinite_samples``).
 - ``scenario.toml``: the same text as ``scenario_text``; running it repeats the run.
 
 A run written over a folder (``--overwrite``) removes the files derived from the old recording
 (:data:`DERIVED_FILES`) and leaves other files.
+
+Every JSON text hilrig writes for a run or a suite (``summary.json``, the ``events`` and
+``bridge`` attributes, ``comparison.json``, ``results.json``, the ``--json`` outputs) is strict
+JSON (RFC 8259, which has no NaN or Infinity): a number that has no finite value (a metric
+over no finite sample, the value of a non-finite measurement that tripped) is ``null``. Write
+such text with :func:`dumps_json`.
 
 Every chunk is written and flushed before the loop goes on, so a killed run leaves a file
 readable up to its last flushed chunk. Compression: none (default) or gzip level 1 with shuffle,
@@ -21,6 +28,7 @@ which any HDF5 reader can open.
 from __future__ import annotations
 
 import json
+import math
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
@@ -60,6 +68,25 @@ def clear_derived(folder: Path) -> list[str]:
             continue
         gone.append(name)
     return gone
+
+
+def finite_or_none(obj: Any) -> Any:
+    """``obj`` with every non-finite float (NaN, +-inf) replaced by None, through dicts, lists
+    and tuples (tuples become lists, as JSON has them)."""
+    if isinstance(obj, float):  # numpy's float64 too (a subclass)
+        return obj if math.isfinite(obj) else None
+    if isinstance(obj, dict):
+        return {k: finite_or_none(v) for k, v in obj.items()}
+    if isinstance(obj, (list, tuple)):
+        return [finite_or_none(v) for v in obj]
+    return obj
+
+
+def dumps_json(obj: Any, **kw: Any) -> str:
+    """Strict JSON text of ``obj``: non-finite floats as null (see the module docstring).
+    ``allow_nan=False`` is the guard: should a non-finite number ever get past the conversion,
+    writing fails instead of leaving a NaN token that strict readers refuse."""
+    return json.dumps(finite_or_none(obj), allow_nan=False, **kw)
 
 
 @dataclass(frozen=True)

@@ -8,6 +8,7 @@ data say so at the top; every report carries the high-voltage caution of the pro
 from __future__ import annotations
 
 import json
+import math
 from pathlib import Path
 
 import numpy as np
@@ -27,6 +28,13 @@ def _fmt(v) -> str:
     if isinstance(v, float):
         return f"{v:.6g}"
     return str(v)
+
+
+def _metric(v) -> str:
+    """A metric's cell: "n/a" when it has no finite value (null in summary.json)."""
+    if v is None or (isinstance(v, float) and not math.isfinite(v)):
+        return "n/a"
+    return _fmt(v)
 
 
 def timing_png(run: Run, dest: Path) -> Path | None:
@@ -85,7 +93,7 @@ def write_report(run: Run, dest: Path | None = None) -> Path:
             ("simulated", f"{s.get('simulated_s', 0):.6g} s ({s.get('ticks_run')} of {s.get('ticks_planned')} ticks)"),
             ("outcome", outcome), ("seed", s.get("seed")),
             ("first trip", "none" if not trip else
-             f"{trip['cause']} at t = {trip['time_s']:.6g} s (tick {trip['tick']}), value {trip.get('value', float('nan')):.6g}")]
+             f"{trip['cause']} at t = {trip['time_s']:.6g} s (tick {trip['tick']}), value {_metric(trip.get('value'))}")]
     for k, v in rows:
         L.append(f"| {k} | {_fmt(v)} |")
     L.append("")
@@ -94,7 +102,7 @@ def write_report(run: Run, dest: Path | None = None) -> Path:
     L.append("| metric | value |")
     L.append("| --- | --- |")
     for k, v in (s.get("metrics") or {}).items():
-        L.append(f"| {k} | {_fmt(v)} |")
+        L.append(f"| {k} | {_metric(v)} |")
     steps = s.get("steps") or []
     if steps:
         L.append("")
@@ -105,7 +113,7 @@ def write_report(run: Run, dest: Path | None = None) -> Path:
         L.append("| " + " | ".join(keys) + " |")
         L.append("| " + " | ".join("---" for _ in keys) + " |")
         for st in steps:
-            L.append("| " + " | ".join(_fmt(st[k]) for k in keys) + " |")
+            L.append("| " + " | ".join(_metric(st[k]) for k in keys) + " |")
     L.append("")
     L.append("## Interlock and watchdog events")
     L.append("")
@@ -115,7 +123,8 @@ def write_report(run: Run, dest: Path | None = None) -> Path:
         L.append("| --- | --- | --- | --- | --- |")
         for e in evs:
             L.append(f"| {_fmt(e.get('tick'))} | {_fmt(e.get('time_s'))} | {e.get('event')} | "
-                     f"{e.get('cause', e.get('detail', ''))} | {_fmt(e.get('value'))} |")
+                     f"{e.get('cause', e.get('detail', ''))} | "
+                     f"{_metric(e['value']) if 'value' in e else '-'} |")
     else:
         L.append("No trips, resets or other events.")
     if s.get("faults"):

@@ -4,7 +4,6 @@ by chunk, record every tick and summarise. Python runs only between chunks.
 from __future__ import annotations
 
 import datetime as _dt
-import json
 import platform
 import sys
 import threading
@@ -25,7 +24,7 @@ from . import loop as loopgen
 from . import shaping
 from .errors import PluginError, ScenarioError
 from .metrics import TrackingMetrics, step_metrics
-from .recording import SCENARIO, SUMMARY, RunWriter, SignalSpec, clear_derived
+from .recording import SCENARIO, SUMMARY, RunWriter, SignalSpec, clear_derived, dumps_json
 from .scenario import PluginChoice, Scenario
 
 
@@ -420,7 +419,7 @@ def execute(sc: Scenario, prep: Prepared, folder: Path,
         # a writer in another process also keeps the running metrics (nothing between ticks)
         more = {"metric_cols": (i_vout, i_vref, i_u, -1 if i_vdc is None else i_vdc), "Ts": sc.Ts}
     writer = writer_class(folder, prep.signals, {
-        "scenario_text": sc.text, "versions": json.dumps(vers), "seed": sc.seed, "Ts": sc.Ts,
+        "scenario_text": sc.text, "versions": dumps_json(vers), "seed": sc.seed, "Ts": sc.Ts,
         "title": sc.title, "demo_data": sc.demo_data, "mode": sc.mode,
         "plant": sc.plant.plugin.name, "controller": sc.controller.plugin.name,
         "reference": sc.reference.plugin.name,
@@ -467,7 +466,7 @@ def execute(sc: Scenario, prep: Prepared, folder: Path,
                 break  # ended early (a collapse on a chunk's last tick, too, or a stop)
     except BaseException:
         # keep what was flushed; mark the file as not complete and re-raise (e.g. Ctrl-C)
-        writer.close({"events": json.dumps([{"event": "interrupted", "tick": done}])},
+        writer.close({"events": dumps_json([{"event": "interrupted", "tick": done}])},
                      complete=False)
         raise
     wall = time.perf_counter() - wall0
@@ -526,12 +525,12 @@ def execute(sc: Scenario, prep: Prepared, folder: Path,
         "versions": vers,
         "recording": "recording.h5",
     }
-    attrs = {"events": json.dumps(events)}
+    attrs = {"events": dumps_json(events)}
     if extra:
         more = extra()
         summary.update(more)
         if "bridge" in more:  # link statistics of a bridge run go into the recording too
-            attrs["bridge"] = json.dumps(more["bridge"])
+            attrs["bridge"] = dumps_json(more["bridge"])
     # wall-clock figures of SIL runs stay out of the recording so that it is bit-identical
     writer.close(attrs)
     # per-step metrics need whole signals: read the two back from the closed recording
@@ -539,5 +538,5 @@ def execute(sc: Scenario, prep: Prepared, folder: Path,
     with h5py.File(folder / "recording.h5", "r") as f:
         steps = step_metrics(f["time"][()], f["signals/v_out"][()], f["signals/v_ref_raw"][()])
     summary["steps"] = [st.as_dict() for st in steps]
-    (folder / SUMMARY).write_text(json.dumps(summary, indent=2) + "\n")
+    (folder / SUMMARY).write_text(dumps_json(summary, indent=2) + "\n")
     return RunResult(folder=folder, summary=summary)

@@ -45,7 +45,10 @@ L_TRIPPED, L_CAUSE, L_TICK, L_TIME, L_VALUE, L_LOGGED, L_REINIT, L_RESET_NOW = r
 #: the last tick's interlock word (to log conditions as they start) and the mask of the rows
 #: whose action is "warn" (they log, never trip); both fit float64 exactly (bits below 53)
 L_PREV_WORD, L_WARN_MASK = 8, 9
-LATCH_SIZE = 10
+#: the controller's last non-zero fault code (as judged by protect), so that a controller fault
+#: that starts while another cause is latched is logged with its own code
+L_CODE = 10
+LATCH_SIZE = 11
 #: cause codes: 1 + row for a limit row; these offsets for plausibility causes
 CAUSE_NONFINITE = 1000   # + index into [y..., u...]
 CAUSE_CONTROLLER = 2000  # + the controller's fault code if > 0; -CAUSE_CONTROLLER + code if < 0
@@ -275,7 +278,9 @@ def supervise(tick, t, word, latch, reset_t, reset_i, evlog, evn):
             elif b == BIT_NONFINITE:
                 cause = float(CAUSE_NONFINITE_ANY)
             elif b == BIT_CONTROLLER:
-                cause = float(CAUSE_CONTROLLER)
+                # the code protect saw on this tick: a non-finite controller state, or the code
+                # the controller returned (never "code 0": the bit is set only for a non-zero one)
+                cause = float(controller_cause(int(latch[L_CODE])))
             else:
                 cause = float(CAUSE_WATCHDOG + b - BIT_WATCHDOG)
             lc = latch[L_CAUSE]
@@ -309,6 +314,13 @@ def supervise(tick, t, word, latch, reset_t, reset_i, evlog, evn):
             # output is still the safe one)
             word &= ~(1 << BIT_LATCHED)
     return word
+
+
+@njit(cache=True)
+def controller_cause(code):
+    """The cause code of a non-zero controller fault code. A negative code (-1 is a common
+    "failed") must not land in the non-finite cause range."""
+    return CAUSE_CONTROLLER + code if code > 0 else -CAUSE_CONTROLLER + code
 
 
 @njit(cache=True)
@@ -408,9 +420,8 @@ def protect(tick, t, ts, y, u, code, dix, sig, side, thr, deb, cnt, latch, pv, s
             break
     if code != 0 and not held:
         word |= 1 << BIT_CONTROLLER
-        # a negative code (-1 is a common "failed") must not land in the non-finite cause range
-        cause = CAUSE_CONTROLLER + code if code > 0 else -CAUSE_CONTROLLER + code
-        _trip(latch, cause, tick, t, float(code))
+        latch[L_CODE] = code
+        _trip(latch, controller_cause(code), tick, t, float(code))
     # did any controller output change since the last tick (for the frozen check)? A change
     # of rounding size is not a change: at a settled operating point an integrator moves the
     # command by a few units in the last place while the plant's output stays exactly put,

@@ -45,6 +45,7 @@ except ModuleNotFoundError:  # Python < 3.11
     import tomli as tomllib
 
 from hilrig.runtime.errors import ScenarioError
+from hilrig.runtime.recording import dumps_json
 from hilrig.runtime.units import parse_quantity
 
 from .interlocks import BIT_LATCHED
@@ -450,7 +451,7 @@ def run_suite(suite: Suite, out: Path, *, workers: int | None = None,
     for c in bridged:
         done(run_case(c, folders[c.name]))
     ordered = [results[c.name] for c in suite.cases]
-    (out / "results.json").write_text(json.dumps({
+    (out / "results.json").write_text(dumps_json({
         "suite": str(suite.path), "title": suite.title, "demo_data": suite.demo_data,
         "passed": sum(r.passed for r in ordered), "failed": sum(not r.passed for r in ordered),
         "cases": [asdict(r) for r in ordered]}, indent=2) + "\n")

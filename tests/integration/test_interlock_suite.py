@@ -69,6 +69,31 @@ def test_junit_xml_has_one_testcase_per_case_and_no_failures(shipped):
     assert props["expect"] == "trip" and props["outcome"] == "trip: v_out above"
 
 
+def _strict_loads(text: str):
+    # RFC 8259, section 6: JSON numbers have no NaN or Infinity
+    def refuse(token):
+        raise ValueError(f"not JSON (RFC 8259, sec. 6): {token}")
+    return json.loads(text, parse_constant=refuse)
+
+
+def test_results_and_every_case_summary_are_strict_json(shipped):
+    """The dropout and non-finite-command cases trip on a NaN: their summaries hold null there,
+    and no case's summary, events or the suite's results.json has a NaN or Infinity token."""
+    import h5py
+    _, out = shipped
+    res = _strict_loads((out / "r" / "results.json").read_text())
+    folders = [Path(c["folder"]) for c in res["cases"]]
+    assert len(folders) == len(res["cases"]) >= 18
+    nulls = 0
+    for folder in folders:
+        run = folder / "run"
+        s = _strict_loads((run / "summary.json").read_text())
+        with h5py.File(run / "recording.h5", "r") as f:
+            _strict_loads(f.attrs["events"])
+        nulls += bool(s["trip"]) and s["trip"].get("value", 0.0) is None
+    assert nulls >= 3          # the two dropout cases and the non-finite command
+
+
 def _suite(tmp_path, body: str) -> Path:
     base = ROOT / "examples" / "interlock_base.toml"
     f = tmp_path / "suite.toml"

@@ -87,3 +87,50 @@ def test_mf4_export_without_asammdf_says_how_to_get_it(tripped_run, tmp_path, mo
     with pytest.raises(RecordingError, match=r"pip install 'hilrig\[mdf\]'"):
         export_mdf4(open_run(tripped_run), tmp_path / "x.mf4")
     assert not (tmp_path / "x.mf4").exists()
+
+
+@pytest.fixture(scope="module")
+def dropout_run(demo_path, tmp_path_factory):
+    """The demo with a v_out sensor dropout (NaN) at 0.2 s: the trip's value has no finite value."""
+    text = Path(demo_path).read_text().replace('duration = "1.5 s"', 'duration = "0.3 s"')
+    text += '\n[[faults]]\nkind = "dropout"\nsignal = "v_out"\nstart = "0.2 s"\n'
+    res = run_scenario(parse_scenario(text, name="dropout.toml"), tmp_path_factory.mktemp("drop") / "r")
+    return res.folder
+
+
+def _strict_loads(text: str):
+    # RFC 8259, section 6: no NaN or Infinity in JSON
+    import json
+
+    def refuse(token):
+        raise ValueError(f"not JSON (RFC 8259, sec. 6): {token}")
+    return json.loads(text, parse_constant=refuse)
+
+
+def test_report_and_report_json_of_a_run_with_null_values(dropout_run, tmp_path):
+    """summary.json has null where a value is not finite (the trip's NaN, and here a metric set
+    to null as a run with no finite sample would have it): the report, its summary table and
+    --json all still work, showing n/a."""
+    import json
+    import shutil
+    folder = tmp_path / "r"
+    shutil.copytree(dropout_run, folder)
+    s = _strict_loads((folder / "summary.json").read_text())
+    assert s["trip"]["value"] is None
+    for k in ("rms_error_V", "max_abs_error_V", "time_of_max_abs_error_s", "v_out_min_V"):
+        s["metrics"][k] = None
+    (folder / "summary.json").write_text(json.dumps(s, indent=2))
+    import os
+    wide = {**os.environ, "COLUMNS": "200"}       # rich: one table row per line
+    p = subprocess.run(CLI + ["report", str(folder)], capture_output=True, text=True,
+                       timeout=300, env=wide)
+    assert p.returncode == 0, p.stdout + p.stderr
+    assert "value n/a" in p.stdout and "n/a .. " in p.stdout
+    md = (folder / "report.md").read_text()
+    assert "non-finite value of v_out at t = 0.2 s (tick 4000), value n/a" in md
+    assert "| rms_error_V | n/a |" in md
+    assert "| 4000 | 0.2 | trip | non-finite value of v_out | n/a |" in md
+    p = subprocess.run(CLI + ["report", str(folder), "--json"], capture_output=True, text=True,
+                       timeout=300)
+    assert p.returncode == 0, p.stdout + p.stderr
+    assert _strict_loads(p.stdout)["metrics"]["rms_error_V"] is None

@@ -163,3 +163,61 @@ def test_voltage_collapse_ends_run_and_keeps_recording(tmp_path):
     for name, x in run.signals.items():
         assert np.all(np.isfinite(x)), name
     assert json.loads(run.attrs["events"])[-1]["event"] == "voltage collapse"
+
+
+DROPOUT = '\n[[faults]]\nkind = "dropout"\nsignal = "v_out"\nstart = "0.1 s"\n'
+
+
+def _strict_loads(text: str):
+    # RFC 8259, section 6: JSON numbers have no NaN or Infinity; refuse the tokens Python's
+    # json module would otherwise write and read
+    def refuse(token):
+        raise ValueError(f"not JSON (RFC 8259, sec. 6): {token}")
+    return json.loads(text, parse_constant=refuse)
+
+
+@pytest.fixture(scope="module")
+def dropout_run(tmp_path_factory, demo_path):
+    """The demo with its v_out sensor dropping out (NaN) at 0.1 s: the non-finite check trips
+    on that tick; the run goes on with the safe output until the output collapses."""
+    from pathlib import Path
+    text = Path(demo_path).read_text().replace('duration = "1.5 s"', 'duration = "0.15 s"')
+    res = run_scenario(parse_scenario(text + DROPOUT, name="dropout.toml"),
+                       tmp_path_factory.mktemp("dropout") / "run")
+    return res
+
+
+def test_summary_of_a_run_with_non_finite_values_is_strict_json(dropout_run):
+    folder = dropout_run.folder
+    s = _strict_loads((folder / "summary.json").read_text())
+    assert s["trip"]["cause_id"] == "non-finite v_out" and s["trip"]["tick"] == 2000
+    assert s["trip"]["value"] is None            # the NaN that tripped: no finite value
+    run = open_run(folder)
+    _strict_loads(run.attrs["events"])           # the recording's copy of the events too
+    assert run.summary == s                      # open_run reads the nulls back
+    # the metrics describe the finite part of the run and count the rest
+    # (IAE = sum |e| Ts, Astrom & Hagglund, Advanced PID Control, 2006, sec. 4.2, from memory)
+    e = run.signals["v_ref"] - run.signals["v_out"]
+    ok = np.isfinite(e)
+    m = s["metrics"]
+    assert m["nonfinite_samples"] == np.count_nonzero(~ok) > 0
+    assert m["iae_Vs"] == pytest.approx(np.abs(e[ok]).sum() * s["Ts_s"], rel=1e-12)
+    assert m["rms_error_V"] == pytest.approx(np.sqrt(np.mean(e[ok] ** 2)), rel=1e-12)
+    assert m["max_abs_error_V"] == np.abs(e[ok]).max()
+    v = run.signals["v_out"][np.isfinite(run.signals["v_out"])]
+    assert (m["v_out_min_V"], m["v_out_max_V"]) == (v.min(), v.max())
+
+
+def test_a_controller_cause_after_a_dropout_says_what_the_controller_did(dropout_run):
+    """Fed the NaN measurement on the trip tick, the cascaded PI's integrators turn NaN: the
+    loop substitutes the non-finite-state code for the controller's 0 (recorded in ctrl_code),
+    and the later cause in the event log says so, not "controller fault code 0"."""
+    from hilrig.safety.interlocks import CODE_NONFINITE_STATE
+    s = dropout_run.summary
+    also = [e for e in s["events"] if e["event"] == "also beyond while tripped"]
+    ctrl = [e for e in also if "controller" in e["cause"]]
+    assert [(e["cause"], e["cause_id"]) for e in ctrl] == [
+        ("non-finite controller state", "non-finite controller state")], also
+    run = open_run(dropout_run.folder)
+    assert run.signals["ctrl_code"][ctrl[0]["tick"]] == CODE_NONFINITE_STATE
+    assert not any("code 0" in e.get("cause", "") for e in s["events"])

@@ -107,3 +107,96 @@ def test_tracking_metrics_over_chunks_equal_whole_run():
         assert m["rms_error_V"] == pytest.approx(np.sqrt(np.mean(e * e)), rel=1e-12)
         assert m["max_abs_error_V"] == pytest.approx(np.abs(e).max(), rel=1e-15)
         assert m["saturation_time_s"] == pytest.approx(np.count_nonzero((u <= 0) | (u >= 800)) * ts)
+
+
+# Integral criteria IAE = sum |e| Ts, ISE = sum e^2 Ts, RMS = sqrt(mean e^2) (rectangle rule;
+# Astrom & Hagglund, Advanced PID Control, 2006, sec. 4.2, from memory). Leaving non-finite
+# samples out of them and counting them apart: common practice, no source.
+CHUNKS = ((0, 333), (333, 700), (700, 1000))
+
+
+def _demo_signals(seed=5, n=1000, ts=1e-4):
+    # demo data: a 400 V output around a noisy reference, a command that sometimes saturates
+    rng = np.random.default_rng(seed)
+    t = np.arange(n) * ts
+    vref = 400.0 + rng.normal(0, 1, n)
+    vout = 400.0 + rng.normal(0, 1, n)
+    u = rng.uniform(-10, 810, n)
+    return t, vout, vref, u, np.full(n, 800.0)
+
+
+def _chunked(ts, t, vout, vref, u, vdc):
+    m = TrackingMetrics(ts)
+    for a, b in CHUNKS:
+        m.update(t[a:b], vout[a:b], vref[a:b], u[a:b], vdc[a:b])
+    return m.result()
+
+
+def test_all_finite_metrics_are_the_plain_numpy_sums_to_the_bit():
+    """All-finite runs keep the arithmetic they had before non-finite samples were handled:
+    the running sums are numpy's sums per chunk added in chunk order, compared exactly."""
+    ts = 1e-4
+    t, vout, vref, u, vdc = _demo_signals(ts=ts)
+    e = vref - vout
+    one = TrackingMetrics(ts)
+    one.update(t, vout, vref, u, vdc)
+    r1 = one.result()
+    # one chunk: exactly numpy on the whole arrays
+    assert r1["iae_Vs"] == float(np.abs(e).sum()) * ts
+    assert r1["ise_V2s"] == float((e * e).sum()) * ts
+    assert r1["rms_error_V"] == math.sqrt(float((e * e).sum()) / e.size)
+    assert r1["max_abs_error_V"] == float(np.abs(e).max())
+    assert r1["time_of_max_abs_error_s"] == float(t[np.argmax(np.abs(e))])
+    assert r1["v_out_min_V"] == float(vout.min()) and r1["v_out_max_V"] == float(vout.max())
+    assert r1["saturation_time_s"] == np.count_nonzero((u <= 0) | (u >= 800)) * ts
+    assert r1["nonfinite_samples"] == 0
+    # chunks: the per-chunk numpy sums, added in order
+    s_abs = s_sq = 0.0
+    for a, b in CHUNKS:
+        s_abs += float(np.abs(e[a:b]).sum())
+        s_sq += float((e[a:b] * e[a:b]).sum())
+    r3 = _chunked(ts, t, vout, vref, u, vdc)
+    assert r3["iae_Vs"] == s_abs * ts and r3["ise_V2s"] == s_sq * ts
+    assert r3["rms_error_V"] == math.sqrt(s_sq / e.size)
+    assert r3["max_abs_error_V"] == r1["max_abs_error_V"]
+    assert list(r3) == ["iae_Vs", "ise_V2s", "rms_error_V", "max_abs_error_V",
+                        "time_of_max_abs_error_s", "saturation_time_s", "v_out_min_V",
+                        "v_out_max_V", "nonfinite_samples"]
+
+
+@pytest.mark.parametrize("bad", [math.nan, math.inf, -math.inf])
+def test_non_finite_samples_are_left_out_and_counted(bad):
+    ts = 1e-4
+    t, vout, vref, u, vdc = _demo_signals(seed=8, ts=ts)
+    hit = np.array([0, 1, 332, 333, 500, 999])   # chunk edges included
+    vout = vout.copy()
+    vout[hit] = bad
+    vref = vref.copy()
+    vref[650] = math.nan                          # a non-finite reference spoils that tick too
+    r = _chunked(ts, t, vout, vref, u, vdc)
+    e = vref - vout
+    ok = np.isfinite(e)
+    assert r["nonfinite_samples"] == hit.size + 1 == np.count_nonzero(~ok)
+    ef = e[ok]
+    assert r["iae_Vs"] == pytest.approx(np.abs(ef).sum() * ts, rel=1e-12)
+    assert r["ise_V2s"] == pytest.approx((ef * ef).sum() * ts, rel=1e-12)
+    assert r["rms_error_V"] == pytest.approx(np.sqrt(np.mean(ef * ef)), rel=1e-12)
+    assert r["max_abs_error_V"] == float(np.abs(ef).max())
+    assert r["time_of_max_abs_error_s"] == float(t[ok][np.argmax(np.abs(ef))])
+    vf = vout[np.isfinite(vout)]                  # the range: every finite v_out sample
+    assert (r["v_out_min_V"], r["v_out_max_V"]) == (float(vf.min()), float(vf.max()))
+    assert r["saturation_time_s"] == np.count_nonzero((u <= 0) | (u >= 800)) * ts
+    assert all(math.isfinite(v) for v in r.values())
+
+
+def test_no_finite_sample_gives_no_value_not_a_number_from_nothing():
+    ts = 1e-4
+    t = np.arange(10) * ts
+    m = TrackingMetrics(ts)
+    m.update(t, np.full(10, math.nan), np.full(10, 400.0), np.full(10, 300.0), None)
+    r = m.result()
+    assert r["nonfinite_samples"] == 10
+    for k in ("iae_Vs", "ise_V2s", "rms_error_V", "max_abs_error_V", "time_of_max_abs_error_s",
+              "v_out_min_V", "v_out_max_V"):
+        assert math.isnan(r[k]), k
+    assert r["saturation_time_s"] == 0.0

@@ -276,12 +276,18 @@ def _metric_rows(rng, n):
     return r
 
 
-@pytest.mark.parametrize("i_dc", [-1, I_VDC], ids=["no-v_dc", "with-v_dc"])
-def test_child_metrics_and_timing_equal_in_process_ones(tmp_path, i_dc):
+@pytest.mark.parametrize("i_dc, dropout", [(-1, False), (I_VDC, False), (I_VDC, True)],
+                         ids=["no-v_dc", "with-v_dc", "with-nan-v_out"])
+def test_child_metrics_and_timing_equal_in_process_ones(tmp_path, i_dc, dropout):
     rng = np.random.default_rng(11)
     sizes = [120, 200, 57, 200, 199, 1, 143]
     n_all = sum(sizes)
     rows = _metric_rows(rng, n_all)
+    if dropout:
+        # a sensor dropout (NaN) across a chunk edge and an overflowed sample: both processes
+        # leave them out of the tracking metrics and count them the same way
+        rows[315:330, I_VOUT] = np.nan
+        rows[700, I_VOUT] = np.inf
     (tmp_path / "run").mkdir()
     w = ProcessWriter(tmp_path / "run", MSIG, ATTRS, chunk_rows=100, ring_chunks=2,
                       timing_cols=(C_LATE, C_COMP, (LIMIT,)),
@@ -305,6 +311,8 @@ def test_child_metrics_and_timing_equal_in_process_ones(tmp_path, i_dc):
         w.close(CLOSE_ATTRS)
     assert got == ref.result()
     assert ref.result()["saturation_time_s"] > 0       # the demo data does saturate
+    assert got["nonfinite_samples"] == (16 if dropout else 0)
+    assert all(np.isfinite(v) for v in got.values())   # the finite part described
 
     la, co = rows[:, C_LATE], rows[:, C_COMP]
     assert len(timing) == 3

@@ -7,16 +7,17 @@ import pytest
 
 from hilrig.runtime.errors import ScenarioError
 from hilrig.runtime.scenario import parse_scenario
-from hilrig.safety.interlocks import (EVT_ALSO, EVT_RESET_ACCEPTED, EVT_TRIP, EVT_WARN,
-                                      L_RESET_NOW, L_TRIPPED, L_WARN_MASK, Interlock,
-                                      InterlockTable, new_event_log, new_latch, protect, supervise)
+from hilrig.safety.interlocks import (CODE_NONFINITE_STATE, EVT_ALSO, EVT_RESET_ACCEPTED,
+                                      EVT_TRIP, EVT_WARN, L_RESET_NOW, L_TRIPPED, L_WARN_MASK,
+                                      Interlock, InterlockTable, new_event_log, new_latch,
+                                      protect, supervise)
 
 NAMES = ["v_out", "i_out", "u"]
 TS = 50e-6
 
 
 class Rig:
-    def __init__(self, rows):
+    def __init__(self, rows, jit=True):
         self.tb = InterlockTable.build(rows, NAMES + ["p_out", "dv_out_dt"])
         self.latch = new_latch()
         self.latch[L_WARN_MASK] = float(self.tb.warn_mask())
@@ -24,17 +25,20 @@ class Rig:
         self.pv = np.zeros(2 * (len(NAMES) + 2))
         self.evlog, self.evn = new_event_log()
         self.k = 0
+        # compiled, or as plain Python (for a Python traceback on failure)
+        self.protect = protect if jit else protect.py_func
+        self.supervise = supervise if jit else supervise.py_func
 
-    def step(self, v=400.0, i=100.0, u=350.0, reset=False):
+    def step(self, v=400.0, i=100.0, u=350.0, reset=False, code=0):
         y = np.array([v, i])
         uu = np.array([u])
         tb = self.tb
-        w = protect(self.k, self.k * TS, TS, y, uu, 0, np.array([0, 1]), tb.sig, tb.side, tb.thr,
-                    tb.deb, self.cnt, self.latch, self.pv, np.zeros(1))
+        w = self.protect(self.k, self.k * TS, TS, y, uu, code, np.array([0, 1]), tb.sig, tb.side,
+                         tb.thr, tb.deb, self.cnt, self.latch, self.pv, np.zeros(1))
         if reset:
             self.latch[L_RESET_NOW] = 1.0
-        supervise(self.k, self.k * TS, w, self.latch, np.zeros(0), np.zeros(1, np.int64),
-                  self.evlog, self.evn)
+        self.supervise(self.k, self.k * TS, w, self.latch, np.zeros(0), np.zeros(1, np.int64),
+                       self.evlog, self.evn)
         self.k += 1
         return float(uu[0])
 
@@ -70,6 +74,28 @@ def test_later_causes_are_logged_while_the_first_stays_latched():
     assert ev[2][1] == EVT_ALSO and rig.tb.cause_text(ev[2][2]) == "non-finite value of a signal"
     assert len(ev) == 3
     assert rig.latch[1] == 1.0                   # L_CAUSE: still the first
+
+
+@pytest.mark.parametrize("jit", [True, False], ids=["njit", "python"])
+@pytest.mark.parametrize("code, text, cause_id", [
+    (CODE_NONFINITE_STATE, "non-finite controller state", "non-finite controller state"),
+    (7, "controller fault code 7", "controller fault"),
+    (-3, "controller fault code -3", "controller fault"),
+])
+def test_a_later_controller_fault_is_logged_with_what_the_controller_did(jit, code, text, cause_id):
+    """A dropout (NaN v_out) latches first; the controller, fed the NaN on the same tick, ends
+    with a non-finite state (or returns a fault code): the later cause names that, never
+    "code 0" (the controller bit is set only for a non-zero code)."""
+    rig = Rig([Interlock("v_out", 480.0, above=True)], jit=jit)
+    rig.step()
+    rig.step(v=float("nan"), code=code)
+    ev = rig.events()
+    assert ev[0][:2] == (1, EVT_TRIP) and rig.tb.cause_id(ev[0][2]) == "non-finite v_out"
+    also = [e for e in ev if e[1] == EVT_ALSO]
+    texts = [rig.tb.cause_text(e[2]) for e in also]
+    assert text in texts, texts
+    assert cause_id in [rig.tb.cause_id(e[2]) for e in also]
+    assert not any("code 0" in t for t in texts)
 
 
 def _demo(extra: str) -> str:
