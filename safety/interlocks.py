@@ -57,6 +57,9 @@ CAUSE_CONTROLLER = 2000  # + the controller's fault code if > 0; -CAUSE_CONTROLL
 CODE_NONFINITE_STATE = -999
 #: + watchdog index (WD_NAMES)
 CAUSE_WATCHDOG = 3000
+#: the largest positive controller code with a cause of its own (CAUSE_CONTROLLER + code
+#: stays below CAUSE_WATCHDOG)
+CONTROLLER_CODE_MAX = CAUSE_WATCHDOG - CAUSE_CONTROLLER - 1
 #: bits of the interlock word. The word is recorded as float64, which holds integers exactly only
 #: up to 2**53: every bit must stay below 53.
 BIT_WATCHDOG = 40        # + watchdog index: 40 overrun, 41 stale, 42 sequence gap, 43 peer lost,
@@ -201,7 +204,9 @@ class InterlockTable:
         if cause < CAUSE_CONTROLLER:
             j = cause - CAUSE_NONFINITE
             return f"non-finite value of {self.names[j] if j < len(self.names) else 'a signal'}"
-        return f"controller fault code {cause - CAUSE_CONTROLLER}"
+        code = cause - CAUSE_CONTROLLER
+        more = " or above (the trip's value holds the code)" if code == CONTROLLER_CODE_MAX else ""
+        return f"controller fault code {code}{more}"
 
     def cause_id(self, cause: int) -> str:
         """Short name of a cause: 'v_out above', 'non-finite v_out', 'controller fault',
@@ -319,8 +324,9 @@ def supervise(tick, t, word, latch, reset_t, reset_i, evlog, evn):
 @njit(cache=True)
 def controller_cause(code):
     """The cause code of a non-zero controller fault code. A negative code (-1 is a common
-    "failed") must not land in the non-finite cause range."""
-    return CAUSE_CONTROLLER + code if code > 0 else -CAUSE_CONTROLLER + code
+    "failed") must not land in the non-finite cause range, nor a code of 1000 or more in the
+    watchdog range: those share the cause of code 999 (the trip's value keeps the code)."""
+    return CAUSE_CONTROLLER + min(code, CONTROLLER_CODE_MAX) if code > 0 else -CAUSE_CONTROLLER + code
 
 
 @njit(cache=True)

@@ -81,6 +81,9 @@ def test_later_causes_are_logged_while_the_first_stays_latched():
     (CODE_NONFINITE_STATE, "non-finite controller state", "non-finite controller state"),
     (7, "controller fault code 7", "controller fault"),
     (-3, "controller fault code -3", "controller fault"),
+    # codes of 1000 and more stay controller faults (they once landed in the watchdog range)
+    (1000, "controller fault code 999 or above (the trip's value holds the code)", "controller fault"),
+    (1003, "controller fault code 999 or above (the trip's value holds the code)", "controller fault"),
 ])
 def test_a_later_controller_fault_is_logged_with_what_the_controller_did(jit, code, text, cause_id):
     """A dropout (NaN v_out) latches first; the controller, fed the NaN on the same tick, ends
