@@ -126,12 +126,22 @@ def _summary_table(console, s: dict, folder: Path | None) -> None:
     console.print(t)
 
 
-def _view_args(p) -> None:
+def _view_args(p, remote: bool = True) -> None:
     p.add_argument("--no-view", action="store_true",
                    help="do not start the live view (it starts by itself on a terminal)")
+    where = "loopback unless --allow-remote" if remote else "loopback only"
     p.add_argument("--telemetry", metavar="ADDRESS",
                    help="publish live telemetry at ADDRESS for 'hilrig watch' viewers "
-                        "(tcp://127.0.0.1:PORT or ipc:///PATH; loopback unless --allow-remote)")
+                        f"(tcp://127.0.0.1:PORT or ipc:///PATH; {where})")
+
+
+def _installed_version() -> str:
+    from importlib.metadata import PackageNotFoundError, version
+    try:
+        return version("hilrig")
+    except PackageNotFoundError:
+        return "0+unknown"
+
 
 
 def _catch_ctrl_c() -> None:
@@ -386,13 +396,15 @@ def _literal(text: str):
 
 def main(argv: list[str] | None = None) -> int:
     ap = argparse.ArgumentParser(prog="hilrig", description=(
-        "Trial battery-emulator voltage controllers in a deterministic fixed-step loop "
-        "(SIL against an embedded plant model)."))
+        "Trial battery-emulator voltage controllers in a deterministic fixed-step loop: SIL "
+        "against an embedded plant model, soft-HIL against an external simulator over a "
+        "socket (--bridge), paced timing rehearsals, interlock test suites."))
+    ap.add_argument("--version", action="version", version=f"hilrig {_installed_version()}")
     sub = ap.add_subparsers(dest="cmd", required=True, metavar="COMMAND")
     p = sub.add_parser("demo", help="run the shipped demo scenario (invented demo data)")
     p.add_argument("--paced", action="store_true",
                    help="paced mode: one tick per tick period of the wall clock")
-    _view_args(p)
+    _view_args(p, remote=False)
     p.add_argument("--out", help="run folder to write (default: runs/<time>-demo)")
     p.add_argument("--headless", action="store_true", help="plain text output, no progress bar or colours")
     p.add_argument("--overwrite", action="store_true", help="replace a recording already in --out")
@@ -404,7 +416,7 @@ def main(argv: list[str] | None = None) -> int:
     p.add_argument("--set", action="append", default=[], metavar="KEY=VALUE",
                    help="override a scenario value, e.g. --set 'timing.duration=\"0.2 s\"' (repeatable)")
     p.add_argument("--bridge", metavar="ADDRESS",
-                   help="run against an external simulator at ADDRESS (tcp://127.0.0.1:PORT or ipc:///PATH) instead of the embedded plant")
+                   help="run against an external simulator at ADDRESS (tcp://127.0.0.1:PORT, ipc:///PATH or udp://HOST:PORT) instead of the embedded plant")
     p.add_argument("--mode", default="lockstep", choices=["lockstep", "free-running"],
                    help="bridge mode (default lockstep)")
     p.add_argument("--timeout", type=float, default=2.0, metavar="S", help="bridge reply timeout [s] (default 2)")

@@ -26,6 +26,9 @@ def test_console_script_is_installed():
     assert p.returncode == 0
     for cmd in ("demo", "run", "report", "plugins", "export"):
         assert cmd in p.stdout
+    from importlib.metadata import version
+    p = subprocess.run([str(script), "--version"], capture_output=True, text=True, timeout=120)
+    assert p.returncode == 0 and p.stdout.strip() == f"hilrig {version('hilrig')}"
 
 
 @pytest.fixture(scope="module")
