@@ -64,7 +64,10 @@ class _Progress:
 
 
 def _show_caution(console, sc) -> None:
-    from hilrig.safety.caution import CAUTION_TITLE, caution_text, scenario_voltages
+    from hilrig.safety.caution import (CAUTION_TITLE, caution_text, scenario_voltages,
+                                       unreachable_voltages)
+    for note in unreachable_voltages(sc):
+        console.print(f"notice: {note}", markup=False, soft_wrap=True)
     text = caution_text(scenario_voltages(sc))
     if text:
         from rich.markup import escape

@@ -130,3 +130,34 @@ def scenario_voltages(sc) -> list[tuple[str, float]]:
         if it.unit == "V":
             out.append((f"interlock on {it.signal}", it.threshold))
     return out
+
+
+def unreachable_voltages(sc) -> list[str]:
+    """Notices for what a scenario asks of the output that its plant cannot give: a reference
+    (or start voltage) above the DC link ``V_dc`` (an averaged buck stage holds its converter
+    voltage in [0, V_dc]; common practice, no source), or below 0 V. Not an error: driving a
+    controller into that limit is a legitimate trial, but it should not pass unnoticed."""
+    vdc = sc.plant.values.get("V_dc")
+    if not isinstance(vdc, (int, float)) or isinstance(vdc, bool):
+        return []
+    asks = _volt_values("reference", sc.reference) + _pack_voltages(sc.reference)
+    if sc.v_out0 is not None:
+        asks.append(("initial.v_out", sc.v_out0))
+    # a table contributes its largest magnitude above; for "below 0 V" every row counts
+    for q in sc.reference.plugin.declaration.params:
+        if isinstance(q, TableParam):
+            for j, (_, cu) in enumerate(q.columns):
+                rows = sc.reference.values[q.name]
+                if cu == "V" and rows:
+                    asks.append((f"reference.{q.name}", min(row[j] for row in rows)))
+    notes = []
+    high = [(n, v) for n, v in asks if v > vdc]
+    if high:
+        n, v = max(high, key=lambda nv: nv[1])
+        notes.append(f"{n} = {v:g} V is above plant.V_dc = {vdc:g} V: the output stage cannot "
+                     f"reach it, and the command will sit at its limit")
+    low = [(n, v) for n, v in asks if v < 0.0]
+    if low:
+        n, v = min(low, key=lambda nv: nv[1])
+        notes.append(f"{n} = {v:g} V is below 0 V: the output stage cannot reach it")
+    return notes

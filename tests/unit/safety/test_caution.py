@@ -141,3 +141,23 @@ def test_60_v_itself_is_class_a_and_nan_counts_as_hazardous():
     assert hazardous_voltages([("a", 60.0), ("b", -60.0)]) == []
     assert hazardous_voltages([("a", 60.000001)]) == [("a", 60.000001)]
     assert [n for n, _ in hazardous_voltages([("x", float("nan"))])] == ["x"]
+
+
+def test_a_reference_the_output_stage_cannot_reach_is_noticed():
+    """An averaged buck output stage holds its converter voltage in [0, V_dc] (common practice,
+    no source), so a reference above V_dc or below 0 V cannot be followed: a notice, not an
+    error (driving a controller into that limit is a legitimate trial)."""
+    from hilrig.safety.caution import unreachable_voltages
+    assert unreachable_voltages(parse_scenario(LOW_48V, name=NAME)) == []
+    high = parse_scenario(edit(LOW_48V, '"28 V"]]', '"28 V"], ["20 ms", "50 V"]]'), name=NAME)
+    assert unreachable_voltages(high) == [
+        "reference.points = 50 V is above plant.V_dc = 48 V: the output stage cannot reach it, "
+        "and the command will sit at its limit"]
+    low = parse_scenario(edit(LOW_48V, '"28 V"]]', '"28 V"], ["20 ms", "-5 V"]]'), name=NAME)
+    assert unreachable_voltages(low) == [
+        "reference.points = -5 V is below 0 V: the output stage cannot reach it"]
+    start = parse_scenario(LOW_48V + '\n[initial]\nv_out = "49 V"\n', name=NAME)
+    assert [n.split(" =")[0] for n in unreachable_voltages(start)] == ["initial.v_out"]
+    # the shipped demo asks nothing its plant cannot give
+    demo = load_scenario(ROOT / "runtime" / "data" / "demo.toml")
+    assert unreachable_voltages(demo) == []
