@@ -38,7 +38,10 @@ import numpy as np
 
 from .errors import RecordingError
 
-FORMAT_VERSION = 1
+#: the run-folder contract's version: 2 made every JSON text strict (null for a non-finite
+#: number, where 1 wrote NaN/Infinity), added the metrics' ``nonfinite_samples`` and made
+#: ``scenario_text`` the scenario with its overrides applied
+FORMAT_VERSION = 2
 RECORDING = "recording.h5"
 SUMMARY = "summary.json"
 SCENARIO = "scenario.toml"

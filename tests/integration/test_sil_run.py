@@ -39,6 +39,8 @@ def test_recording_contract(demo_run):
             assert d.shape == f["time"].shape
         assert f.attrs["scenario_text"] == sc.text
         assert f.attrs["seed"] == sc.seed
+        # the contract's version (runtime/recording.py): 2 since JSON texts are strict
+        assert f.attrs["hilrig_format"] == 2
         assert bool(f.attrs["complete"]) is True
         vers = json.loads(f.attrs["versions"])
         assert {"hilrig", "numba", "numpy", "h5py", "python"} <= set(vers)
