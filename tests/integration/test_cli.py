@@ -10,6 +10,7 @@ import numpy as np
 import pytest
 
 from hilrig.runtime.recording import open_run
+from tests.unit.safety.test_caution import LOW_48V  # a 48 V-class scenario (test data)
 
 HILRIG = [sys.executable, "-m", "hilrig.runtime.cli"]
 
@@ -98,25 +99,6 @@ def test_bad_scenario_is_one_message_no_traceback(tmp_path):
     assert "Traceback" not in p.stdout + p.stderr
     assert "bad.toml: plant.L1 = -0.0002 H is outside (0, 1] H" in p.stdout
     assert not (tmp_path / "r").exists()
-
-
-#: a 48 V-class scenario (test data: 48 V DC link, 24 V output, nothing above 60 V DC)
-LOW_48V = """\
-title = "48 V DC link, 24 V output (test data)"
-[timing]
-Ts = "50 us"
-duration = "40 ms"
-[plant]
-plugin = "two_stage_lc"
-V_dc = "48 V"
-[controller]
-plugin = "cascaded_pi"
-[reference]
-plugin = "profile"
-points = [[0, "24 V"]]
-[limits]
-v_collapse = "5 V"
-"""
 
 
 @pytest.mark.parametrize("extra, key", [

@@ -19,12 +19,18 @@ CLI = [sys.executable, "-m", "hilrig.runtime.cli"]
 PNG_MAGIC = b"\x89PNG\r\n\x1a\n"
 
 
+def _demo_with_fault(demo_path, tmp_path_factory, fault: str, name: str) -> Path:
+    """The demo shortened to 0.3 s with one [[faults]] entry (``fault``: its keys); its folder."""
+    text = Path(demo_path).read_text().replace('duration = "1.5 s"', 'duration = "0.3 s"')
+    text += f'\n[[faults]]\n{fault}start = "0.2 s"\n'
+    sc = parse_scenario(text, name=f"{name}.toml")
+    return run_scenario(sc, tmp_path_factory.mktemp(name) / "r").folder
+
+
 @pytest.fixture(scope="module")
 def tripped_run(demo_path, tmp_path_factory):
-    text = Path(demo_path).read_text().replace('duration = "1.5 s"', 'duration = "0.3 s"')
-    text += '\n[[faults]]\nkind = "offset"\nsignal = "v_out"\nvalue = "100 V"\nstart = "0.2 s"\n'
-    res = run_scenario(parse_scenario(text, name="report.toml"), tmp_path_factory.mktemp("rep") / "r")
-    return res.folder
+    return _demo_with_fault(demo_path, tmp_path_factory,
+                            'kind = "offset"\nsignal = "v_out"\nvalue = "100 V"\n', "report")
 
 
 def test_report_md_has_outcome_metrics_events_plots_scenario(tripped_run):
@@ -92,10 +98,8 @@ def test_mf4_export_without_asammdf_says_how_to_get_it(tripped_run, tmp_path, mo
 @pytest.fixture(scope="module")
 def dropout_run(demo_path, tmp_path_factory):
     """The demo with a v_out sensor dropout (NaN) at 0.2 s: the trip's value has no finite value."""
-    text = Path(demo_path).read_text().replace('duration = "1.5 s"', 'duration = "0.3 s"')
-    text += '\n[[faults]]\nkind = "dropout"\nsignal = "v_out"\nstart = "0.2 s"\n'
-    res = run_scenario(parse_scenario(text, name="dropout.toml"), tmp_path_factory.mktemp("drop") / "r")
-    return res.folder
+    return _demo_with_fault(demo_path, tmp_path_factory, 'kind = "dropout"\nsignal = "v_out"\n',
+                            "dropout")
 
 
 def _strict_loads(text: str):
