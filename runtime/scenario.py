@@ -509,6 +509,29 @@ def _check_in_run(cx, key: str, t: float, Ts: float, duration: float, what: str)
                       f"the run or lengthen timing.duration")
 
 
+def _first_tick_at_or_after(t: float, Ts: float) -> int:
+    """The smallest k with k * Ts >= t, computed with the loop's own product k * Ts."""
+    k = max(0, int(math.ceil(t / Ts)))
+    while k > 0 and (k - 1) * Ts >= t:
+        k -= 1
+    while k * Ts < t:
+        k += 1
+    return k
+
+
+def _check_window(cx, where: str, start: float, end: float, Ts: float) -> None:
+    """Refuse a timed fault whose window [start, end) holds no tick: the loop applies a fault
+    on the ticks with start <= k Ts < end, so a window inside one period never acts, while the
+    summary would list the fault (the rule of :func:`_check_in_run`; common practice, no
+    source). The stand-in simulator times link faults by rounding, so those are not checked."""
+    k = _first_tick_at_or_after(start, Ts)
+    if not k * Ts < end:
+        raise cx.fail(f"{where}.end", f" = {end:g} s: the fault's window from {start:g} s holds "
+                      f"no tick (ticks at k Ts, Ts = {Ts:g} s; the first at or after the start "
+                      f"is at {k * Ts:g} s), so the fault would never act; widen it to at "
+                      f"least one tick")
+
+
 def _resets(cx, raw, Ts: float, duration: float) -> list[float]:
     """The requested reset times [s], sorted; each one inside the run."""
     resets_raw = raw.get("resets", [])
@@ -581,6 +604,8 @@ def _faults(cx, raw, plant: PluginChoice, duration: float, Ts: float) -> list[Fa
             end = _quantity(cx, f"{where}.end", it["end"], "s", (0.0, 1e9))
             if not end > start:
                 raise cx.fail(f"{where}.end", f" = {end:g} s is not after start = {start:g} s")
+            if kind not in fault_kinds.LINK_KINDS:
+                _check_window(cx, where, start, end, Ts)
         signal = it.get("signal", "")
         if kind in fault_kinds.SENSOR_KINDS:
             if signal not in signals:

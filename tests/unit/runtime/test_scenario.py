@@ -203,6 +203,12 @@ CASES = [
     ("link fault after the end of the run",
      MINIMAL + '[[faults]]\nkind = "link_disconnect"\nstart = "1 s"\n',
      ["faults[0].start = 1 s", "timing.duration = 0.01 s", "would never act"]),
+    # a window inside one period holds no tick (ticks at 0.1 ms and 0.15 ms; Ts = 50 us)
+    ("timed fault whose window holds no tick",
+     MINIMAL + ('[[faults]]\nkind = "offset"\nsignal = "v_out"\nvalue = "5 V"\n'
+                'start = "0.10001 ms"\nend = "0.14 ms"\n'),
+     ["faults[0].end = 0.00014 s", "window from 0.00010001 s holds no tick",
+      "first at or after the start is at 0.00015 s", "would never act"]),
     ("reset after the end of the run",
      minimal("seed = 3", 'seed = 3\nresets = ["5 ms", "0.3 s"]'),
      ["resets[1] = 0.3 s", "after the run's last tick at 0.00995 s", "timing.duration = 0.01 s",
@@ -238,6 +244,10 @@ def test_faults_and_resets_up_to_the_last_tick_and_curves_beyond_the_end_are_acc
     assert sc.resets == [0.002, 0.00995]
     assert [f.start for f in sc.faults] == [0.00995, 0.0] and sc.faults[0].end == 2.0
     assert sc.reference.values["points"][-1] == (2.0, 420.0) and sc.load_t[-1] == 5.0
+    # a window of one tick is enough: [0.1 ms, 0.10001 ms) holds the tick at 0.1 ms
+    one = parse_scenario(MINIMAL + '[[faults]]\nkind = "offset"\nsignal = "v_out"\nvalue = "5 V"\n'
+                         'start = "0.1 ms"\nend = "0.10001 ms"\n', name=NAME)
+    assert one.faults[0].end == 1.0001e-4
     # the same scenario one period longer also takes a fault at its new last tick
     longer = parse_scenario(text.replace('duration = "10 ms"', 'duration = "10.05 ms"')
                             .replace('start = "9.95 ms"', 'start = "10 ms"'), name=NAME)
