@@ -12,6 +12,8 @@ import time
 from importlib.resources import files
 from pathlib import Path
 
+from hilrig.runtime.version import installed as installed_version
+
 EXIT_USAGE = 2
 EXIT_INTERRUPTED = 130
 
@@ -136,15 +138,6 @@ def _view_args(p, remote: bool = True) -> None:
     p.add_argument("--telemetry", metavar="ADDRESS",
                    help="publish live telemetry at ADDRESS for 'hilrig watch' viewers "
                         f"(tcp://127.0.0.1:PORT or ipc:///PATH; {where})")
-
-
-def _installed_version() -> str:
-    from importlib.metadata import PackageNotFoundError, version
-    try:
-        return version("hilrig")
-    except PackageNotFoundError:
-        return "0+unknown"
-
 
 
 def _catch_ctrl_c() -> None:
@@ -402,7 +395,7 @@ def main(argv: list[str] | None = None) -> int:
         "Trial battery-emulator voltage controllers in a deterministic fixed-step loop: SIL "
         "against an embedded plant model, soft-HIL against an external simulator over a "
         "socket (--bridge), paced timing rehearsals, interlock test suites."))
-    ap.add_argument("--version", action="version", version=f"hilrig {_installed_version()}")
+    ap.add_argument("--version", action="version", version=f"hilrig {installed_version()}")
     sub = ap.add_subparsers(dest="cmd", required=True, metavar="COMMAND")
     p = sub.add_parser("demo", help="run the shipped demo scenario (invented demo data)")
     p.add_argument("--paced", action="store_true",

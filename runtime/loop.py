@@ -31,7 +31,6 @@ version, because numba only checks the cached function's own file for changes.
 """
 from __future__ import annotations
 
-import functools
 import hashlib
 import importlib.util
 import os
@@ -42,6 +41,7 @@ from pathlib import Path
 import numba
 
 from .registry import Plugin
+from .version import installed as installed_version
 
 #: event codes written to ev[0]
 EV_NONE, EV_COLLAPSE, EV_NONFINITE, EV_STOPPED = 0, 1, 2, 3
@@ -441,17 +441,6 @@ def cache_dir() -> Path:
     return base / "loops"
 
 
-@functools.lru_cache(maxsize=1)
-def _version() -> str:
-    """hilrig's installed version (read once per process: the metadata lookup parses the
-    package's METADATA file, a few ms, and a version does not change under a running process)."""
-    try:
-        from importlib.metadata import version
-        return version("hilrig")
-    except Exception:
-        return "0+unknown"
-
-
 def _sources(plugins: list[Plugin]) -> list[Path]:
     import hilrig.plugins
     import hilrig.runtime
@@ -467,7 +456,7 @@ def _sources(plugins: list[Plugin]) -> list[Path]:
 def combination_key(plant: Plugin, ctrl: Plugin, ref: Plugin) -> str:
     """Hash of the hilrig and numba versions and every source file the loop depends on."""
     h = hashlib.sha256()
-    h.update(f"hilrig {_version()} numba {numba.__version__} py {sys.version_info[:2]}".encode())
+    h.update(f"hilrig {installed_version()} numba {numba.__version__} py {sys.version_info[:2]}".encode())
     for kind, p in (("plant", plant), ("controller", ctrl), ("reference", ref)):
         h.update(f"{kind}={p.origin}".encode())
     for f in _sources([plant, ctrl, ref]):
@@ -546,7 +535,7 @@ def generate(plant: Plugin, ctrl: Plugin, ref: Plugin) -> tuple[Path, bool]:
                                "after each tick ctl[0] = base + rows done (rec is a block of "
                                "the recording ring in shared memory).",
                           **parts)
-    text = _TEMPLATE.format(version=_version(), plant=plant.name, ctrl=ctrl.name, ref=ref.name,
+    text = _TEMPLATE.format(version=installed_version(), plant=plant.name, ctrl=ctrl.name, ref=ref.name,
                             key=key, imports=_import_lines(plant, ctrl, ref),
                             ev_nonfinite=EV_NONFINITE, ev_collapse=EV_COLLAPSE,
                             nx=nx, decide_4=_indent(_DECIDE, 4), record_4=_indent(_RECORD, 4),

@@ -119,8 +119,8 @@ def check(kind: str, module: ModuleType) -> Declaration:
         if fn is None or not compiled:
             raise PluginError(f"{where}: kernel {k!r} missing or not compiled with numba's @njit")
     for (knd, k), args in KERNEL_ARGS.items():
-        fn = getattr(module, k, None) if knd == kind else None
-        if fn is not None:
+        fn = getattr(module, k, None)
+        if knd == kind and fn is not None:
             _check_arguments(where, k, getattr(fn, "py_func", fn), args)
     if kind == "plant" and decl.equilibrium is None:
         raise PluginError(f"{where}: a plant declares equilibrium(values, v_out, d)")

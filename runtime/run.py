@@ -26,6 +26,7 @@ from .errors import PluginError, ScenarioError
 from .metrics import TrackingMetrics, step_metrics
 from .recording import SCENARIO, SUMMARY, RunWriter, SignalSpec, clear_derived, dumps_json
 from .scenario import PluginChoice, Scenario
+from .version import installed as installed_version
 
 
 #: set by the command line's Ctrl-C handler; the chunk driver ends the run in order at the next
@@ -69,7 +70,7 @@ def process_age_s() -> float | None:
 def versions() -> dict[str, str]:
     import h5py
     import numba
-    return {"hilrig": loopgen._version(), "numba": numba.__version__, "numpy": np.__version__,
+    return {"hilrig": installed_version(), "numba": numba.__version__, "numpy": np.__version__,
             "h5py": h5py.__version__, "python": platform.python_version()}
 
 
