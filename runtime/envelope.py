@@ -101,14 +101,20 @@ def _base(task: Task):
     if key not in _CACHE:
         sc = parse_scenario(task.scenario_text, name=task.scenario_name,
                             overrides=_controller_override(task.scenario_text, task.controller))
-        fn, _, _ = compile_loop(sc)
         profile = _profile_plugin()
+        # every point runs with a profile reference (see point_scenario), whatever reference
+        # the scenario names: the loop must be the one compiled for that reference. (It was
+        # compiled for the scenario's own; with the demo's battery model that kernel then read
+        # the profile's arrays out of bounds and crashed the workers.)
+        v_start = _start_voltage(sc)
+        probe = point_scenario(sc, profile, v_start, v_start, 0.0, 0.0)
+        fn, _, _ = compile_loop(probe)
         # a call with zero ticks compiles (or loads) the loop now, so that forked workers
         # inherit the machine code instead of each loading it again
         from .run import _call, first_call, prepare
-        prep = prepare(sc)
-        first_call(sc, lambda: _call(fn, 0, 0, np.empty((1, len(prep.signals))), prep.args))
-        _CACHE[key] = (sc, fn, profile)
+        prep = prepare(probe)
+        first_call(probe, lambda: _call(fn, 0, 0, np.empty((1, len(prep.signals))), prep.args))
+        _CACHE[key] = (sc, fn, profile, v_start)
     return _CACHE[key]
 
 
@@ -158,11 +164,11 @@ def classify(n_planned: int, ran: int, event: int, tripped: bool, v_out, v_ref, 
 def run_row(task: Task) -> list[str]:
     """Outcomes of one grid row (one voltage, every power). Runs in any worker process."""
     from .run import _call, prepare
-    sc, fn, profile = _base(task)
+    sc, fn, profile, v_scenario = _base(task)
     n = sc.n_ticks
     t_step = task.t_step if task.t_step is not None else min(5e-3, 0.1 * sc.duration)
     # the same for every point of the row (and a whole prepare() for a battery reference)
-    v_start = task.v_start if task.v_start is not None else _start_voltage(sc)
+    v_start = task.v_start if task.v_start is not None else v_scenario
     out = []
     for p_load in task.p:
         spt = point_scenario(sc, profile, v_start, task.v, p_load, t_step)

@@ -108,3 +108,22 @@ def test_far_from_the_design_point_linear_fails_flatness_tracks():
     assert out["flatness"] == "tracks"
     assert out["state_feedback"] != "tracks"
     assert out["cascaded_pi"] != "tracks"
+
+
+def test_envelope_of_a_scenario_with_a_battery_model_reference_runs(demo_path, tmp_path):
+    """The demo's own scenario (battery-model reference): every map point runs with a profile
+    reference, so the loop must be compiled for it. It was compiled for the battery model, whose
+    kernel then read the profile's arrays out of bounds ("double free or corruption", a
+    segmentation fault or BrokenProcessPool). A subprocess, so that a crash fails the test
+    instead of the test session."""
+    out = tmp_path / "env"
+    p = subprocess.run([sys.executable, "-m", "hilrig.runtime.cli", "envelope", demo_path,
+                        "--controllers", "cascaded_pi", "--grid", "2x2", "--v-range", "380:420",
+                        "--p-range", "0:20e3", "--workers", "1", "--out", str(out), "--json"],
+                       capture_output=True, text=True, timeout=600)
+    assert p.returncode == 0, p.stdout + p.stderr
+    with open(out / "envelope.csv", newline="") as fh:
+        rows = list(csv.DictReader(fh))
+    assert len(rows) == 4
+    # near the demo's own operating point (about 400 V) and light load, the baseline tracks
+    assert all(r["outcome"] == "tracks" for r in rows), rows
