@@ -15,8 +15,8 @@ from typing import Any, Callable
 import numpy as np
 
 from hilrig.runtime import loop as loopgen
-from hilrig.runtime.run import (RunResult, check_folder, default_folder, execute, fault_args,
-                                prepare, supervision_args)
+from hilrig.runtime.run import (RunResult, bind, check_folder, default_folder, execute,
+                                fault_args, prepare, supervision_args)
 
 from hilrig.safety.interlocks import (HOST_GAP, HOST_LOST, HOST_STALE, HOST_STOP, L_RESET_NOW,
                                       W_FORCED, W_HOST_BITS, W_HOST_TIME, W_HOST_VALUE)
@@ -37,8 +37,7 @@ def signal_maps(sc) -> tuple[list[list[str]], list[list[str]]]:
 
 
 def _bridge_module(sc):
-    path, _ = loopgen.generate(sc.plant.plugin, sc.controller.plugin, sc.reference.plugin)
-    return loopgen.load_module(path)
+    return loopgen.module_for(sc.plant.plugin, sc.controller.plugin, sc.reference.plugin)
 
 
 def _bridge_kernel(sc):
@@ -245,6 +244,7 @@ def run_bridge(sc, address: str, folder: Path | None = None, *, mode: str = "loc
     try:
         tick, t_compile = _ready_tick(sc)
         prep = prepare(sc)
+        bind(tick, prep.args, len(prep.signals))
         a = prep.args
         meas_map, act_map = signal_maps(sc)
         n_meas, n_act = len(meas_map), len(act_map)
@@ -505,6 +505,7 @@ def run_free_running(sc, address: str, folder: Path | None = None, *, timeout_s:
     try:
         tick, t_compile = _ready_tick(sc)
         prep = prepare(sc)
+        bind(tick, prep.args, len(prep.signals))
     except BaseException:
         link.close()
         raise

@@ -188,8 +188,7 @@ class StandIn:
 
     def __init__(self, sc):
         self.sc = sc
-        path, _ = loopgen.generate(sc.plant.plugin, sc.controller.plugin, sc.reference.plugin)
-        mod = loopgen.load_module(path)
+        mod = loopgen.module_for(sc.plant.plugin, sc.controller.plugin, sc.reference.plugin)
         self.sample_k, self.advance_k = mod.sim_sample, mod.sim_advance
         self.meas_map, self.act_map = signal_maps(sc)
         self.hash = P.map_hash(self.meas_map, self.act_map)
@@ -253,8 +252,8 @@ class _CompiledServer:
     def __init__(self, sim: StandIn, rep, kind: int):
         from . import wire as W
         self.W, self.sim, self.rep = W, sim, rep
-        self.serve_k = loopgen.load_module(loopgen.generate(
-            sim.sc.plant.plugin, sim.sc.controller.plugin, sim.sc.reference.plugin)[0]).sim_serve
+        self.serve_k = loopgen.module_for(
+            sim.sc.plant.plugin, sim.sc.controller.plugin, sim.sc.reference.plugin).sim_serve
         self.io = np.zeros(W.IO_SIZE, dtype=np.int64)
         self.rbuf = np.zeros(P.MAX_FRAME_BYTES + 1, dtype=np.uint8)
         self.sbuf = np.zeros(P.MAX_FRAME_BYTES, dtype=np.uint8)

@@ -499,7 +499,16 @@ def main(argv: list[str] | None = None) -> int:
     fmt.add_argument("--mf4", action="store_true",
                      help="write recording.mf4 (ASAM MDF 4; needs the optional package asammdf)")
     p.add_argument("--out", help="file to write (default: RUN/recording.csv or RUN/recording.mf4)")
+    for name in ("demo", "run", "interlock-test", "serve-sim", "compare", "envelope"):
+        sub.choices[name].add_argument(
+            "--checked", action="store_true",
+            help="bounds-checked build of the compiled loop (slower, cached apart): an index "
+                 "out of range in a plugin kernel stops the run with an error naming the kernel "
+                 "(also HILRIG_CHECKED=1)")
     args = ap.parse_args(argv)
+    from hilrig.runtime import checked
+    if getattr(args, "checked", False) or checked.requested():
+        checked.enable()  # before numba loads; child processes inherit it
 
     plain = getattr(args, "headless", False) or getattr(args, "json", False)
     console = _console(plain)

@@ -150,6 +150,10 @@ apply_faults = _inline(_apply_faults)
 
 #: plant state count, a literal so that the compiler unrolls the state loops
 NX = {nx}
+#: the plugins (kind, origin) this module was generated for: run.bind refuses any other's arrays
+PLUGINS = {plugins!r}
+#: compiled with bounds checks (the --checked build)
+CHECKED = {checked!r}
 
 
 @njit(inline="always")
@@ -511,12 +515,24 @@ def _rk4_text(nx: int, own_step: bool) -> dict[str, str]:
                 store="\n".join(f"    x[{i}] = s[{i}]" for i in r))
 
 
-def generate(plant: Plugin, ctrl: Plugin, ref: Plugin) -> tuple[Path, bool]:
-    """Write (if absent) the loop module for this combination; return (path, was_new)."""
+def plugin_ids(plant: Plugin, ctrl: Plugin, ref: Plugin) -> tuple:
+    """What identifies the plugins of a loop: (kind, name, origin) of each."""
+    return tuple((kind, p.name, tuple(p.origin))
+                 for kind, p in (("plant", plant), ("controller", ctrl), ("reference", ref)))
+
+
+def generate(plant: Plugin, ctrl: Plugin, ref: Plugin,
+             checked: bool | None = None) -> tuple[Path, bool]:
+    """Write (if absent) the loop module for this combination; return (path, was_new).
+
+    ``checked`` (default: :func:`hilrig.runtime.checked.requested`) writes the bounds-checked
+    variant, a module of its own name (cached apart)."""
+    if checked is None:
+        checked = checked_build()
     key = combination_key(plant, ctrl, ref)
     folder = cache_dir()
     folder.mkdir(parents=True, exist_ok=True)
-    path = folder / f"loop_{key}.py"
+    path = folder / (f"loop_{key}_checked.py" if checked else f"loop_{key}.py")
     if path.exists():
         return path, False
     nx = len(plant.declaration.states)
@@ -540,7 +556,11 @@ def generate(plant: Plugin, ctrl: Plugin, ref: Plugin) -> tuple[Path, bool]:
                             ev_nonfinite=EV_NONFINITE, ev_collapse=EV_COLLAPSE,
                             nx=nx, decide_4=_indent(_DECIDE, 4), record_4=_indent(_RECORD, 4),
                             decide_8=parts["decide_8"], record_8=parts["record_8"],
-                            run_chunk=sil, paced_chunk=paced, **_rk4_text(nx, has_rk4_step(plant)))
+                            run_chunk=sil, paced_chunk=paced,
+                            plugins=plugin_ids(plant, ctrl, ref), checked=bool(checked),
+                            **_rk4_text(nx, has_rk4_step(plant)))
+    if checked:
+        text = checked_text(text)
     # write then rename: concurrent workers never import a half-written file, and an existing
     # file is never rewritten (a new mtime would invalidate numba's cache of it)
     fd, tmp = tempfile.mkstemp(dir=folder, suffix=".tmp")
@@ -548,6 +568,88 @@ def generate(plant: Plugin, ctrl: Plugin, ref: Plugin) -> tuple[Path, bool]:
         fh.write(text)
     os.replace(tmp, path)
     return path, True
+
+
+def checked_build() -> bool:
+    """Whether this process uses the bounds-checked loop (``--checked``, ``HILRIG_CHECKED=1``
+    or ``NUMBA_BOUNDSCHECK=1``; :mod:`hilrig.runtime.checked`)."""
+    from .checked import requested
+    return requested()
+
+
+def module_for(plant: Plugin, ctrl: Plugin, ref: Plugin):
+    """The loaded loop module for this combination (generated first if needed), in the build
+    this process uses (normal or bounds-checked)."""
+    return load_module(generate(plant, ctrl, ref)[0])
+
+
+#: stages of the loop, as the bounds-checked build marks them in ev[EV_STAGE] before each one:
+#: (the call or comment that starts the stage, stage code, who owns the code that runs there)
+_STAGES = (
+    ("# 3 reference", 1, "hilrig: the reference plugin's inputs (iyr)"),
+    ("ref_init(", 2, "reference {ref}: kernel init"),
+    ("ref_step(", 3, "reference {ref}: kernel step"),
+    ("shape_init(", 4, "hilrig: the shaping filter"),
+    ("shape_step(", 4, "hilrig: the shaping filter"),
+    ("# 4 control", 5, "hilrig: the controller's inputs (iyc)"),
+    ("ctrl_init(", 6, "controller {ctrl}: kernel init"),
+    ("ctrl_step(", 7, "controller {ctrl}: kernel step"),
+    ("watch(", 8, "hilrig: watchdogs"),
+    ("state_code(", 9, "hilrig: the controller state check"),
+    ("apply_faults(", 10, "hilrig: fault injection"),
+    ("protect(", 11, "hilrig: interlocks"),
+    ("supervise(", 12, "hilrig: trip latch and resets"),
+    ("interp_rows(", 13, "hilrig: the load profile"),
+    ("plant_outputs(", 14, "plant {plant}: kernel outputs"),
+    ("advance(", 15, "plant {plant}: kernel derivs or rk4_step (the RK4 stage)"),
+    ("# 7 record", 16, "hilrig: the recording row"),
+    ("put_actuation(", 17, "hilrig: the bridge's frame codec"),
+    ("get_sample(", 17, "hilrig: the bridge's frame codec"),
+    ("read_vector(", 17, "hilrig: the bridge's frame codec"),
+    ("for j in range(n_meas):", 17, "hilrig: the bridge's frame codec"),
+)
+#: slots of the event array ev: [event code, its tick, stage (checked build), tick (checked)]
+EV_STAGE, EV_STAGE_TICK = 2, 3
+EV_SIZE = 4
+#: functions of the generated module that receive ev (the others run on the simulator's side)
+_MARKED = ("run_chunk", "paced_chunk", "bridge_tick", "bridge_chunk")
+
+
+def checked_text(text: str) -> str:
+    """The bounds-checked variant of a generated module: every compiled function with
+    ``boundscheck=True`` (numba applies the caller's flag to the kernels inlined into it), and
+    in the functions that receive ``ev`` a line before each stage that writes the stage's code
+    and the tick into it, so that an ``IndexError`` can be traced to a kernel."""
+    text = text.replace('@njit(cache=True, error_model="numpy")',
+                        '@njit(cache=True, error_model="numpy", boundscheck=True)')
+    text = text.replace('@njit(inline="always")', '@njit(inline="always", boundscheck=True)')
+    out = []
+    func = None
+    for line in text.splitlines():
+        stripped = line.strip()
+        if line.startswith("def "):
+            func = line[4:].split("(", 1)[0]
+        if func in _MARKED:
+            for start, code, _ in _STAGES:
+                if start in stripped and not stripped.startswith("def "):
+                    indent = line[:len(line) - len(line.lstrip())]
+                    out.append(f"{indent}ev[{EV_STAGE}] = {code}.0")
+                    break
+        out.append(line)
+        if func in _MARKED and stripped == "t = kk * ts":
+            indent = line[:len(line) - len(line.lstrip())]
+            out.append(f"{indent}ev[{EV_STAGE_TICK}] = kk")
+    return "\n".join(out) + "\n"
+
+
+def stage_text(ev, plant: str, ctrl: str, ref: str) -> str:
+    """Where the bounds-checked loop was when it stopped: the stage's owner and the tick."""
+    code = int(ev[EV_STAGE]) if len(ev) > EV_STAGE else 0
+    names = {c: w for _, c, w in _STAGES}
+    if code not in names:
+        return "at an unknown stage"
+    return (names[code].format(plant=repr(plant), ctrl=repr(ctrl), ref=repr(ref))
+            + f", tick {int(ev[EV_STAGE_TICK])}")
 
 
 def compiled_is_cached(path: Path) -> bool:

@@ -79,8 +79,7 @@ def _jit_disabled() -> bool:
 
 
 def _paced_kernel(sc):
-    path, _ = loopgen.generate(sc.plant.plugin, sc.controller.plugin, sc.reference.plugin)
-    return loopgen.load_module(path).paced_chunk
+    return loopgen.module_for(sc.plant.plugin, sc.controller.plugin, sc.reference.plugin).paced_chunk
 
 
 def run_paced(sc, folder: Path | None = None, *, overwrite: bool = False,
@@ -115,7 +114,7 @@ def run_paced(sc, folder: Path | None = None, *, overwrite: bool = False,
         from .pacedwrite import SharedArrays
         from .telemetry import telemetry_config
         shared = SharedArrays([("latch", (LATCH_SIZE,), "f8"), ("evlog", (EVENT_LOG_SIZE, 4), "f8"),
-                               ("evn", (1,), "i8"), ("ev", (2,), "f8")])
+                               ("evn", (1,), "i8"), ("ev", (loopgen.EV_SIZE,), "f8")])
         for key, arr in shared.arrays.items():
             arr[...] = a[key]
             a[key] = arr

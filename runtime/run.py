@@ -15,7 +15,7 @@ from typing import Any, Callable
 import numpy as np
 
 from hilrig.plugins.base import LOAD_SIGNALS, REFERENCE_SIGNALS, BuildContext
-from hilrig.safety.faults import table as fault_table
+from hilrig.safety.faults import LINK_KINDS, table as fault_table
 from hilrig.safety.interlocks import (DERIVED, EVENT_NAMES, EVT_RESET_IDLE, EVT_TRIP,
                                       InterlockTable,
                                       new_event_log, new_latch, new_watchdog)
@@ -176,11 +176,20 @@ def prepare(sc: Scenario) -> Prepared:
         lim_cnt=np.zeros(len(table.rows), dtype=np.int64), latch=_latch(table),
         pv=np.zeros(2 * (ny + nu + len(DERIVED))), y=np.zeros(ny), d=np.zeros(3),
         wd=new_watchdog(sc.watchdogs["overrun_budget"], int(sc.watchdogs["overrun_ticks"])),
-        ev=np.zeros(2), seed=np.int64(sc.seed % (2**32)),
+        ev=np.zeros(loopgen.EV_SIZE), seed=np.int64(sc.seed % (2**32)),
         reset_t=np.array(sorted(sc.resets), dtype=np.float64), reset_i=np.zeros(1, dtype=np.int64),
         evlog=new_event_log()[0], evn=new_event_log()[1],
         **fault_table(sc.faults, outputs),
     )
+    # what bind() checks the arrays against (kept beside them, never passed to the loop)
+    args["_expect"] = dict(
+        plugins=loopgen.plugin_ids(plant.plugin, ctrl.plugin, ref.plugin),
+        names={"plant": pdecl.name, "controller": ctrl.plugin.name, "reference": ref.plugin.name},
+        nx=len(pdecl.states), ny=ny, nu=nu, n_xc=n_xc, n_xr=n_xr,
+        n_iyc=len(ctrl.plugin.declaration.reads), n_iyr=len(ref.plugin.declaration.reads),
+        n_sig=ny + nu + len(DERIVED), n_rows=len(table.rows), n_faults=len(
+            [f for f in sc.faults if f.kind not in LINK_KINDS]),
+        rec_cols=len(signals))
     return Prepared(sc=sc, args=args, signals=signals, table=table, y_names=outputs,
                     u_names=u_names, v0=v0)
 
@@ -196,9 +205,11 @@ def compile_loop(sc: Scenario, notice: Callable[[str], None] | None = None):
     """Return (run_chunk, seconds spent compiling or loading, whether it was compiled anew)."""
     path, _ = loopgen.generate(sc.plant.plugin, sc.controller.plugin, sc.reference.plugin)
     cached = loopgen.compiled_is_cached(path)
+    checked = " bounds-checked" if loopgen.checked_build() else ""
     if not cached and notice:
-        notice(f"Compiling the loop for {sc.plant.plugin.name} + {sc.controller.plugin.name} + "
-               f"{sc.reference.plugin.name} (first run of this combination; cached afterwards) ...")
+        notice(f"Compiling the{checked} loop for {sc.plant.plugin.name} + "
+               f"{sc.controller.plugin.name} + {sc.reference.plugin.name} (first run of this "
+               f"combination; cached afterwards) ...")
     t = time.perf_counter()
     module = loopgen.load_module(path)
     return module.run_chunk, time.perf_counter() - t, not cached
@@ -259,7 +270,153 @@ def chunk_args(a: dict) -> tuple:
 
 
 def _call(fn, k0, n, rec, a):
-    return fn(k0, n, *chunk_args(a), rec, a["ev"])
+    if a.get("_bound") is not fn:
+        bind(fn, a, rec.shape[1])
+    if not (0 <= n <= rec.shape[0] and k0 >= 0):
+        raise ValueError(f"loop call for ticks {k0} .. {k0 + n - 1} into a buffer of "
+                         f"{rec.shape[0]} rows")
+    try:
+        return fn(k0, n, *chunk_args(a), rec, a["ev"])
+    except IndexError:
+        raise PluginError(index_error_text(a)) from None
+
+
+def index_error_text(a: dict) -> str:
+    """One line for an IndexError of the bounds-checked loop: which kernel, which tick."""
+    names = a["_expect"]["names"]
+    where = loopgen.stage_text(a["ev"], names["plant"], names["controller"], names["reference"])
+    return (f"index out of range in {where}: the bounds-checked loop stopped there (an index "
+            f"beyond an array's size; in the normal build it would read or write memory that "
+            f"is not the array's). Run the kernel as plain Python with NUMBA_DISABLE_JIT=1 "
+            f"to see the line.")
+
+
+def bind(fn, a: dict, rec_cols: int) -> None:
+    """Check, once per run, that the arrays of ``a`` are what the compiled loop ``fn`` indexes
+    (the same plugins it was generated for; every array size, dtype and index table), so that
+    no index of the generated loop can leave an array; raise PluginError naming the plugin and
+    the array otherwise. Kernels' own indices into their parameter and state arrays are the
+    plugin's business: the bounds-checked build (``--checked``) tests those."""
+    import sys
+    e = a["_expect"]
+    module = sys.modules.get(getattr(getattr(fn, "py_func", fn), "__module__", ""), None)
+    have = getattr(module, "PLUGINS", None)
+    if have is not None and tuple(have) != tuple(e["plugins"]):
+        def names(ids):
+            return " + ".join(f"{k} {n!r}" for k, n, _ in ids)
+        raise PluginError(f"the compiled loop was generated for {names(have)}, but the run's "
+                          f"arrays were prepared for {names(e['plugins'])}: refused (its kernels "
+                          f"would index arrays of another plugin)")
+    nm = e["names"]
+    problems = []
+
+    def need(key, owner, shape, dtype=np.float64):
+        arr = a[key]
+        if not isinstance(arr, np.ndarray):
+            problems.append(f"{owner}: array {key} is a {type(arr).__name__}, not an array")
+            return
+        if arr.dtype != dtype:
+            problems.append(f"{owner}: array {key} has dtype {arr.dtype}, the loop needs {np.dtype(dtype)}")
+        if not arr.flags.c_contiguous:
+            problems.append(f"{owner}: array {key} is not contiguous")
+        if len(shape) != arr.ndim:
+            problems.append(f"{owner}: array {key} has {arr.ndim} dimensions, the loop needs {len(shape)}")
+            return
+        for got, want in zip(arr.shape, shape):
+            if isinstance(want, tuple):  # (min, max) inclusive, max None: open
+                lo, hi = want
+                if got < lo or (hi is not None and got > hi):
+                    problems.append(f"{owner}: array {key} has {got} elements, the loop needs "
+                                    f"{lo} or more" if hi is None else
+                                    f"{owner}: array {key} has {got} elements, the loop needs "
+                                    f"{lo} .. {hi}")
+            elif got != want:
+                problems.append(f"{owner}: array {key} has shape {arr.shape}, the loop needs "
+                                f"{tuple(s if not isinstance(s, tuple) else s[0] for s in shape)}")
+                return
+
+    def index_table(key, owner, lo, hi):
+        arr = a[key]
+        if arr.size and not (int(arr.min()) >= lo and int(arr.max()) < hi):
+            problems.append(f"{owner}: index table {key} holds {arr.tolist()}, outside "
+                            f"[{lo}, {hi})")
+
+    plant = f"plant {nm['plant']!r}"
+    ctrl = f"controller {nm['controller']!r}"
+    ref = f"reference {nm['reference']!r}"
+    ny, nu = e["ny"], e["nu"]
+    # parameters: non-empty vectors (their content is the plugin's)
+    need("pp", plant, ((1, None),))
+    need("pc", ctrl, ((1, None),))
+    need("pr", ref, ((1, None),))
+    # states
+    need("x", plant, (e["nx"],))
+    need("xc", ctrl, ((e["n_xc"], None),))
+    need("xr", ref, ((e["n_xr"], None),))
+    # signals and the reads of each plugin
+    need("y", plant, (ny,))
+    need("u", plant, (nu,))
+    need("safe_u", plant, (nu,))
+    need("iyc", ctrl, (e["n_iyc"],), np.int64)
+    need("yc", ctrl, ((max(e["n_iyc"], 1), None),))
+    need("iyr", ref, (e["n_iyr"],), np.int64)
+    need("yr", ref, ((max(e["n_iyr"], 1), None),))
+    index_table("iyc", ctrl, 0, ny)
+    index_table("iyr", ref, 0, ny)
+    need("w", ref, ((1, None),))
+    need("d", plant, (3,))
+    need("dix", "hilrig (derived signals)", (2,), np.int64)
+    index_table("dix", "hilrig (derived signals)", -1, ny)
+    # the load profile
+    nl = a["load_t"].shape[0] if isinstance(a["load_t"], np.ndarray) else 0
+    need("load_t", "scenario [load]", ((1, None),))
+    need("load_v", "scenario [load]", (3, nl))
+    need("lcur", "scenario [load]", (1,), np.int64)
+    # the shaping filter
+    m = a["ad"].shape[0] if isinstance(a["ad"], np.ndarray) and a["ad"].ndim == 2 else 0
+    need("ad", "hilrig (shaping filter)", (m, m))
+    for key in ("g1", "g2", "z", "zt"):
+        need(key, "hilrig (shaping filter)", (m,))
+    need("cr", "hilrig (shaping filter)", (5, m))
+    need("dr", "hilrig (shaping filter)", (5,))
+    need("s", "hilrig (shaping filter)", ((1, None),))
+    need("r", "hilrig (shaping filter)", (5,))
+    # interlocks, latch, watchdogs, event log
+    from hilrig.safety.interlocks import EVENT_LOG_SIZE, LATCH_SIZE, WD_SIZE
+    nr = e["n_rows"]
+    need("lim_sig", "scenario [[interlocks]]", (nr,), np.int64)
+    index_table("lim_sig", "scenario [[interlocks]]", 0, e["n_sig"])
+    for key, dt in (("lim_side", np.int64), ("lim_thr", np.float64), ("lim_deb", np.int64),
+                    ("lim_cnt", np.int64)):
+        need(key, "scenario [[interlocks]]", (nr,), dt)
+    need("latch", "hilrig (trip latch)", (LATCH_SIZE,))
+    need("pv", "hilrig (interlocks)", (2 * e["n_sig"],))
+    need("wd", "hilrig (watchdogs)", (WD_SIZE,))
+    need("evlog", "hilrig (event log)", (EVENT_LOG_SIZE, 4))
+    need("evn", "hilrig (event log)", (1,), np.int64)
+    need("ev", "hilrig (run events)", (loopgen.EV_SIZE,))
+    need("reset_t", "scenario resets", ((0, None),))
+    need("reset_i", "scenario resets", (1,), np.int64)
+    # faults
+    nf = e["n_faults"]
+    for key, dt in (("f_stage", np.int64), ("f_kind", np.int64), ("f_sig", np.int64),
+                    ("f_t0", np.float64), ("f_t1", np.float64), ("f_val", np.float64),
+                    ("f_hold", np.float64)):
+        need(key, "scenario [[faults]]", (nf,), dt)
+    index_table("f_sig", "scenario [[faults]]", -1, ny)
+    need("f_cond", "scenario [[faults]]", (max(nf, 1), 5))
+    if nf and isinstance(a["f_cond"], np.ndarray) and a["f_cond"].ndim == 2:
+        j = a["f_cond"][:nf, 0]
+        if not (np.all(j >= -1) and np.all(j < ny)):
+            problems.append(f"scenario [[faults]]: condition signals {j.tolist()} outside [-1, {ny})")
+    # the recording buffer: at least the recorded columns
+    if rec_cols < e["rec_cols"]:
+        problems.append(f"hilrig (recording): the buffer has {rec_cols} columns, the loop "
+                        f"writes {e['rec_cols']}")
+    if problems:
+        raise PluginError("the run's arrays do not fit the compiled loop, refused before the "
+                          "first tick: " + "; ".join(problems))
+    a["_bound"] = fn
 
 
 def fault_args(a: dict) -> tuple:
@@ -442,7 +599,10 @@ def execute(sc: Scenario, prep: Prepared, folder: Path,
             t0 = time.perf_counter()
             # a shared-memory writer hands out the rows to fill (no copy afterwards)
             buf = block(n) if block else rec
-            ran = produce(done, n, buf)
+            try:
+                ran = produce(done, n, buf)
+            except IndexError:  # the bounds-checked build (paced and bridge ticks)
+                raise PluginError(index_error_text(a)) from None
             t1 = time.perf_counter()
             tt = np.arange(done, done + ran, dtype=np.int64) * sc.Ts
             rows = buf[:ran]
@@ -465,10 +625,12 @@ def execute(sc: Scenario, prep: Prepared, folder: Path,
                 progress(done, n_total)
             if ran < n or a["ev"][0] != 0.0:
                 break  # ended early (a collapse on a chunk's last tick, too, or a stop)
-    except BaseException:
-        # keep what was flushed; mark the file as not complete and re-raise (e.g. Ctrl-C)
-        writer.close({"events": dumps_json([{"event": "interrupted", "tick": done}])},
-                     complete=False)
+    except BaseException as exc:
+        # keep what was flushed; mark the file as not complete and re-raise (e.g. Ctrl-C, or
+        # an index out of range in the bounds-checked build)
+        end = ({"event": "plugin error", "tick": done, "text": str(exc)}
+               if isinstance(exc, PluginError) else {"event": "interrupted", "tick": done})
+        writer.close({"events": dumps_json([end])}, complete=False)
         raise
     wall = time.perf_counter() - wall0
     ev = int(a["ev"][0])

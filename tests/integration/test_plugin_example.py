@@ -111,3 +111,63 @@ def test_a_plugin_mistake_is_one_clear_error(tmp_path, mistake):
         assert part in text, text
     assert "\n" not in text and len(text) < 600
     assert not (tmp_path / "run" / "recording.h5").exists()
+
+
+#: an index past the controller's state array (the worked example keeps one state): written
+#: from 10 ms on, so that the run has started and the tick is known
+_OUT_OF_RANGE = "    if t >= 0.01:\n        xc[7] = 1.0\n"
+
+
+def test_an_index_out_of_range_in_a_kernel_is_named_by_the_checked_build(tmp_path):
+    """--checked: the loop compiled with bounds checks stops at the bad index with one message
+    naming the plugin, the kernel and the tick (exit code 2), and keeps the recording up to its
+    last flushed chunk. (The normal build writes past the array, silently or with a crash.)"""
+    import os
+    import subprocess
+    import sys
+    files = example_files()
+    body = files["voltage_pi.py"].replace(_INTEGRATE, _INTEGRATE + _OUT_OF_RANGE)
+    assert body != files["voltage_pi.py"]
+    (tmp_path / "voltage_pi.py").write_text(body)
+    (tmp_path / "example.toml").write_text(files["example.toml"])
+    env = {k: v for k, v in os.environ.items() if k not in ("HILRIG_CHECKED", "NUMBA_BOUNDSCHECK")}
+    p = subprocess.run([sys.executable, "-m", "hilrig.runtime.cli", "run", "example.toml",
+                        "--checked", "--headless", "--out", "run"], cwd=tmp_path,
+                       capture_output=True, text=True, timeout=600, env=env)
+    assert p.returncode == 2, p.stdout + p.stderr
+    err = [ln for ln in p.stdout.splitlines() if ln.startswith("error:")]
+    assert len(err) == 1, p.stdout
+    Ts = 50e-6  # the worked example's control period
+    k = int(round(0.01 / Ts))
+    assert f"controller 'voltage_pi': kernel step, tick {k}" in err[0], err[0]
+    assert "Traceback" not in p.stdout + p.stderr
+
+
+def test_arrays_of_another_plugin_combination_are_refused_before_the_first_tick(tmp_path):
+    """The compiled loop is bound to the plugins it was generated for: arrays prepared for
+    another combination (what crashed the envelope of a battery-model scenario) are refused with
+    a message naming both, and a wrong array size names the plugin and the array."""
+    from hilrig.runtime.errors import PluginError
+    from hilrig.runtime.run import _call, compile_loop, prepare
+    files = example_files()
+    for name, body in files.items():
+        (tmp_path / name).write_text(body)
+    sc = load_scenario(tmp_path / "example.toml")
+    fn, _, _ = compile_loop(sc)
+    other = load_scenario(tmp_path / "example.toml", overrides={"reference": {
+        "plugin": "battery_ecm", "n_series": 100}, "initial": {"v_out": "400 V"}})
+    prep = prepare(other)
+    with pytest.raises(PluginError) as info:
+        _call(fn, 0, 0, np.zeros((1, len(prep.signals))), prep.args)
+    text = str(info.value)
+    assert "reference 'profile'" in text and "reference 'battery_ecm'" in text, text
+    # the right plugins, one array too small: named with its owner
+    prep = prepare(sc)
+    prep.args["xc"] = np.zeros(0)
+    with pytest.raises(PluginError) as info:
+        _call(fn, 0, 0, np.zeros((1, len(prep.signals))), prep.args)
+    assert "controller 'voltage_pi': array xc has 0 elements" in str(info.value), info.value
+    prep = prepare(sc)
+    with pytest.raises(PluginError) as info:
+        _call(fn, 0, 0, np.zeros((1, len(prep.signals) - 1)), prep.args)
+    assert "hilrig (recording)" in str(info.value)
