@@ -97,6 +97,8 @@ def _num(v, spec: str) -> str:
 def _summary_table(console, s: dict, folder: Path | None) -> None:
     from rich.markup import escape
     from rich.table import Table
+
+    from hilrig.runtime.outcome import coverage_text, judge
     m = s["metrics"]
     tm = s["timing"]
     t = Table(title=escape((s.get("title") or "run") + ("  [demo data]" if s.get("demo_data") else "")),
@@ -105,7 +107,10 @@ def _summary_table(console, s: dict, folder: Path | None) -> None:
     t.add_column("value", justify="right")
     t.add_row("plant / controller / reference", f"{s['plant']} / {s['controller']} / {s['reference']}")
     t.add_row(escape("simulated [s]"), f"{s['simulated_s']:.4g} of {s['ticks_planned'] * s['Ts_s']:.4g}  ({s['ticks_run']} ticks at {s['Ts_s'] * 1e6:.4g} us)")
-    t.add_row("outcome", "completed" if s["completed"] else f"ended: {s['end_event'] or 'interrupted'}")
+    oc = judge(s)
+    t.add_row("outcome", escape(oc["text"]))
+    if coverage_text(oc):
+        t.add_row("metrics cover", f"only the run {coverage_text(oc)} (it ended early)")
     tr = s["trip"]
     t.add_row("trip", "none" if not tr else f"{tr['cause']} at t = {tr['time_s']:.6g} s (tick {tr['tick']}), value {_num(tr.get('value'), '.6g')}")
     t.add_row(escape("RMS tracking error [V]"), _num(m["rms_error_V"], ".4g"))
