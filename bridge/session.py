@@ -15,6 +15,7 @@ from typing import Any, Callable
 import numpy as np
 
 from hilrig.runtime import loop as loopgen
+from hilrig.runtime.outcome import judge
 from hilrig.runtime.run import (RunResult, bind, check_folder, default_folder, execute,
                                 fault_args, prepare, supervision_args)
 
@@ -189,7 +190,7 @@ class _Live:
             return
         if summary is not None:
             self.tel.publish(self.a["latch"], self.a["evlog"], self.a["evn"], force=True,
-                             ended=True, end_event=summary.get("end_event") or "completed")
+                             ended=True, end_event=judge(summary)["text"])
         self.tel.close()
 
 

@@ -97,6 +97,8 @@ def _num(v, spec: str) -> str:
 def _summary_table(console, s: dict, folder: Path | None) -> None:
     from rich.markup import escape
     from rich.table import Table
+
+    from hilrig.runtime.outcome import coverage_text, judge
     m = s["metrics"]
     tm = s["timing"]
     t = Table(title=escape((s.get("title") or "run") + ("  [demo data]" if s.get("demo_data") else "")),
@@ -105,7 +107,10 @@ def _summary_table(console, s: dict, folder: Path | None) -> None:
     t.add_column("value", justify="right")
     t.add_row("plant / controller / reference", f"{s['plant']} / {s['controller']} / {s['reference']}")
     t.add_row(escape("simulated [s]"), f"{s['simulated_s']:.4g} of {s['ticks_planned'] * s['Ts_s']:.4g}  ({s['ticks_run']} ticks at {s['Ts_s'] * 1e6:.4g} us)")
-    t.add_row("outcome", "completed" if s["completed"] else f"ended: {s['end_event'] or 'interrupted'}")
+    oc = judge(s)
+    t.add_row("outcome", escape(oc["text"]))
+    if coverage_text(oc):
+        t.add_row("metrics cover", f"only the run {coverage_text(oc)} (it ended early)")
     tr = s["trip"]
     t.add_row("trip", "none" if not tr else f"{tr['cause']} at t = {tr['time_s']:.6g} s (tick {tr['tick']}), value {_num(tr.get('value'), '.6g')}")
     t.add_row(escape("RMS tracking error [V]"), _num(m["rms_error_V"], ".4g"))
@@ -289,32 +294,60 @@ def _compare(console, args) -> None:
             ("IAE [V s]", "iae_Vs", 1.0, "{:.3g}"), ("RMS e [V]", "rms_error_V", 1.0, "{:.3g}"),
             ("max |e| [V]", "max_abs_error_V", 1.0, "{:.3g}"), ("saturated [ms]", "saturation_time_s", 1e3, "{:.3g}"),
             ("trips", "trips", 1.0, "{:.0f}"), ("loop [ns/tick]", "compute_ns_per_tick", 1.0, "{:.0f}")]
-    from hilrig.runtime.compare import folder_name
+    from hilrig.runtime.compare import RANK_RULE, folder_name
+    from hilrig.runtime.outcome import time_text
     labels = {name: folder_name(name) for name in results}
+    # a metric of a run that ended early covers only the part it ran: marked with *
+    partial = {name: not r["outcome"]["whole_run"] for name, r in results.items()}
+
+    def cell(name, k, sc, fm):
+        v = f(results[name][k], sc, fm)
+        return v + "*" if partial[name] and k not in ("trips", "compute_ns_per_tick") and v != "-" else v
+
+    def covers(r):
+        oc = r["outcome"]
+        if oc["whole_run"]:
+            return f(oc["end_time_s"], 1e3, "{:.4g}")
+        return f"{f(oc['end_time_s'], 1e3, '{:.4g}')} of {f(oc['planned_s'], 1e3, '{:.4g}')}"
 
     def outcome(r):
-        return "ok" if r["outcome"] == "completed" else r["outcome"]
+        oc = r["outcome"]
+        if oc["completed"]:
+            return "completed"
+        return oc["status"] + (f" at {time_text(oc['first_cause_time_s'])}"
+                               if oc["first_cause_time_s"] is not None else "")
 
     title = escape(f"controller comparison: {args.scenario}")
     if console.width >= 110:  # rows: controllers
         t = Table(title=title, title_justify="left", header_style="bold", box=box.SIMPLE_HEAD)
+        t.add_column("#", justify="right")
         t.add_column("controller", no_wrap=True)
         for head, *_ in cols:
             t.add_column(escape(head.replace(" [", "\n[")), justify="right")
+        t.add_column(escape("covers\n[ms]"), justify="right")
         t.add_column("outcome")
         for name, r in results.items():
-            t.add_row(escape(labels[name]), *[f(r[k], sc, fm) for _, k, sc, fm in cols], escape(outcome(r)))
+            t.add_row(str(r["rank"]), escape(labels[name]),
+                      *[cell(name, k, sc, fm) for _, k, sc, fm in cols], covers(r),
+                      escape(outcome(r)))
     else:  # narrow terminal: rows are the metrics, one column per controller
         t = Table(title=title, title_justify="left", header_style="bold", box=box.SIMPLE_HEAD)
         t.add_column("metric", no_wrap=True)
         for name in results:
             t.add_column(escape(labels[name]), justify="right")
+        t.add_row("rank", *[str(results[n]["rank"]) for n in results])
         for head, k, sc, fm in cols:
-            t.add_row(escape(head), *[f(results[n][k], sc, fm) for n in results])
+            t.add_row(escape(head), *[cell(n, k, sc, fm) for n in results])
+        t.add_row(escape("covers [ms]"), *[covers(results[n]) for n in results])
         t.add_row("outcome", *[escape(outcome(results[n])) for n in results])
     console.print(t)
-    console.print("rise, settle, overshoot and ss error: of the largest reference step of the run "
-                  "(10-90 % rise, 2 % settling band). Plots and run folders: " + escape(str(out)))
+    for name, r in results.items():
+        if not r["outcome"]["completed"]:
+            console.print(f"{r['rank']}. {escape(labels[name])}: {escape(r['outcome']['text'])}")
+    console.print(escape(RANK_RULE) + ". * covers only the part of the run before it ended "
+                  "(column covers). rise, settle, overshoot and ss error: of the largest "
+                  "reference step of the run (10-90 % rise, 2 % settling band). Plots and run "
+                  "folders: " + escape(str(out)))
 
 
 def _envelope(console, args, plain: bool) -> None:

@@ -2,9 +2,15 @@
 
 Each candidate runs the same scenario (same plant, load, reference, interlocks, seed) with only
 the controller replaced; each gets its own run folder ``OUT/<controller>/``. The comparison
-reports, per candidate, the characteristics of the largest reference step (see
-:mod:`hilrig.runtime.metrics`), the whole-run tracking metrics, trips and the loop's compute
-time per tick, and draws one figure per quantity with every candidate overlaid.
+reports, per candidate, its outcome (:mod:`hilrig.runtime.outcome`), the characteristics of the
+largest reference step (see :mod:`hilrig.runtime.metrics`), the tracking metrics over the time
+the run lasted, trips and the loop's compute time per tick, and draws one figure per quantity
+with every candidate overlaid.
+
+Candidates are ranked by :func:`hilrig.runtime.outcome.rank_key`: every run that completed
+before every run that did not, whatever their metrics (a run that ended early has metrics of
+only the part it ran, often the best looking ones), then by IAE. Results, the table, the JSON
+and the plots' legends are in rank order.
 """
 from __future__ import annotations
 
@@ -14,12 +20,21 @@ from pathlib import Path
 from typing import Any, Callable
 
 from .metrics import StepMetrics, largest_step
+from .outcome import coverage_text, judge, rank_key, time_text
 from .recording import dumps_json, finite_or_none, open_run
 from .run import run_scenario
 from .scenario import load_scenario
 
 JSON_KEYS = ("rise_time_s", "settling_time_s", "overshoot_pct", "steady_state_error_V", "iae_Vs",
              "rms_error_V", "max_abs_error_V", "saturation_time_s", "trips", "compute_ns_per_tick")
+#: what ``--json`` gives per candidate besides the metrics
+JSON_FIELDS = ("rank", "outcome", "covers_s") + JSON_KEYS
+#: the metric that orders candidates of the same outcome class (smaller first)
+RANK_METRIC = "iae_Vs"
+#: the ranking rule in words, for the table's footer and the docs
+RANK_RULE = ("ranked: runs that completed first, by IAE (smaller first); then runs that did "
+             "not complete, whatever their metrics (those that reached the planned end first, "
+             "then the longest)")
 
 
 def folder_name(candidate: str) -> str:
@@ -32,7 +47,9 @@ def compare(scenario: Path, candidates: list[str], out: Path, *, overwrite: bool
             overrides: dict[str, Any] | None = None,
             notice: Callable[[str], None] | None = None,
             on_run: Callable[[str], None] | None = None) -> dict[str, dict[str, Any]]:
-    """Run every candidate; return {controller: metrics} and write plots and comparison.json."""
+    """Run every candidate; return {controller: results} in rank order (each with ``rank``,
+    ``outcome``, ``covers_s``, the metrics, ``step`` and ``folder``) and write plots and
+    comparison.json."""
     if not candidates:
         raise ValueError("--controllers: name at least one controller, e.g. cascaded_pi,flatness")
     if len(set(candidates)) != len(candidates):
@@ -61,7 +78,12 @@ def compare(scenario: Path, candidates: list[str], out: Path, *, overwrite: bool
         steps = [StepMetrics(**d) for d in s["steps"]]
         big = largest_step(steps)
         m = s["metrics"]
+        oc = judge(s)
         results[name] = {
+            "rank": None,
+            "outcome": oc,
+            # the metrics describe the run up to here (the whole run when it reached its end)
+            "covers_s": oc["end_time_s"],
             "rise_time_s": big.rise_time_s if big else math.nan,
             "settling_time_s": big.settling_time_s if big else math.nan,
             "overshoot_pct": big.overshoot_pct if big else math.nan,
@@ -70,10 +92,10 @@ def compare(scenario: Path, candidates: list[str], out: Path, *, overwrite: bool
             "max_abs_error_V": m["max_abs_error_V"], "saturation_time_s": m["saturation_time_s"],
             "trips": m["trips"],
             "compute_ns_per_tick": s["timing"]["loop_ns_per_tick"],
-            "outcome": "completed" if s["completed"] else (s["end_event"] or "interrupted"),
             "step": big.as_dict() if big else None,
             "folder": str(res.folder),
         }
+    results = ranked(results)
     (out / "comparison.json").write_text(dumps_json(results, indent=2) + "\n")
     try:
         plot_comparison(out, results)
@@ -82,9 +104,29 @@ def compare(scenario: Path, candidates: list[str], out: Path, *, overwrite: bool
     return results
 
 
+def ranked(results: dict[str, dict[str, Any]]) -> dict[str, dict[str, Any]]:
+    """The results in rank order, each with its ``rank`` (1 = best) set: see
+    :func:`hilrig.runtime.outcome.rank_key` (ties keep the candidates' given order)."""
+    order = sorted(results, key=lambda n: rank_key(results[n]["outcome"],
+                                                   results[n][RANK_METRIC]))
+    return {n: {**results[n], "rank": i} for i, n in enumerate(order, 1)}
+
+
 def json_view(results: dict[str, dict[str, Any]]) -> dict[str, dict[str, Any]]:
-    """The documented ``--json`` shape: only the metric keys, NaN as null."""
-    return finite_or_none({k: {key: r[key] for key in JSON_KEYS} for k, r in results.items()})
+    """The documented ``--json`` shape, in rank order: rank, outcome, covers_s and the metric
+    keys; NaN as null."""
+    return finite_or_none({k: {key: r[key] for key in JSON_FIELDS} for k, r in results.items()})
+
+
+def curve_style(name: str, r: dict[str, Any]) -> tuple[str, str]:
+    """(legend label, line style) of a candidate in the overlaid plots: the label carries the
+    outcome, and a run that did not complete is drawn dashed."""
+    oc = r["outcome"]
+    if oc["completed"]:
+        return f"{r['rank']}. {name} (completed)", "-"
+    when = f" at {time_text(oc['first_cause_time_s'])}" if oc["first_cause_time_s"] is not None else ""
+    cover = coverage_text(oc)
+    return f"{r['rank']}. {name} ({oc['status']}{when}{'; ran ' + cover if cover else ''})", "--"
 
 
 def plot_comparison(out: Path, results: dict[str, dict[str, Any]]) -> list[Path]:
@@ -112,7 +154,8 @@ def plot_comparison(out: Path, results: dict[str, dict[str, Any]]) -> list[Path]
                 r0 = next(iter(runs.values()))
                 ax.plot(r0.time, r0.signals["v_ref"], color="0.6", lw=2.0, label="v_ref")
             for name, run in runs.items():
-                ax.plot(run.time, get(run), lw=0.9, label=name)
+                label, ls = curve_style(name, results[name])
+                ax.plot(run.time, get(run), lw=0.9, ls=ls, label=label)
             if win:
                 ax.set_xlim(*win)
                 ax.set_title("around the largest reference step", fontsize=9)

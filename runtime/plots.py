@@ -66,6 +66,11 @@ def overview_png(run: Run, dest: Path) -> Path:
     title = run.attrs.get("title", "") or run.folder.name
     if run.attrs.get("demo_data"):
         title += "  [demo data]"
+    if run.summary:
+        import textwrap
+
+        from .outcome import judge
+        title += "\n" + textwrap.fill(judge(run.summary)["text"], 110)
     fig.suptitle(title, fontsize=10)
     for a in ax:
         a.grid(True, lw=0.3)

@@ -14,6 +14,7 @@ from pathlib import Path
 import numpy as np
 
 from .errors import RecordingError
+from .outcome import coverage_text, judge
 from .recording import Run
 
 CAUTION = ("hilrig's interlocks and watchdogs are monitoring functions of a test tool, not "
@@ -85,13 +86,14 @@ def write_report(run: Run, dest: Path | None = None) -> Path:
     L.append("")
     L.append("| item | value |")
     L.append("| --- | --- |")
-    outcome = "completed" if s.get("completed") else f"ended: {s.get('end_event') or 'interrupted'}"
+    oc = judge(s)
+    outcome = oc["text"]
     trip = s.get("trip")
     rows = [("run folder", str(run.folder)), ("mode", s.get("mode")),
             ("plant / controller / reference", f"{s.get('plant')} / {s.get('controller')} / {s.get('reference')}"),
             ("tick period", f"{s.get('Ts_s', 0) * 1e6:g} us, {s.get('substeps')} RK4 substeps"),
             ("simulated", f"{s.get('simulated_s', 0):.6g} s ({s.get('ticks_run')} of {s.get('ticks_planned')} ticks)"),
-            ("outcome", outcome), ("seed", s.get("seed")),
+            ("outcome", outcome), ("status", oc["status"]), ("seed", s.get("seed")),
             ("first trip", "none" if not trip else
              f"{trip['cause']} at t = {trip['time_s']:.6g} s (tick {trip['tick']}), value {_metric(trip.get('value'))}")]
     for k, v in rows:
@@ -99,6 +101,10 @@ def write_report(run: Run, dest: Path | None = None) -> Path:
     L.append("")
     L.append("## Tracking metrics")
     L.append("")
+    if coverage_text(oc):
+        L.append(f"The run ended early ({oc['status']}): these metrics cover only the run "
+                 f"{coverage_text(oc)}.")
+        L.append("")
     L.append("| metric | value |")
     L.append("| --- | --- |")
     for k, v in (s.get("metrics") or {}).items():

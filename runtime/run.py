@@ -24,6 +24,7 @@ from . import loop as loopgen
 from . import shaping
 from .errors import PluginError, ScenarioError
 from .metrics import TrackingMetrics, step_metrics
+from .outcome import judge
 from .recording import SCENARIO, SUMMARY, RunWriter, SignalSpec, clear_derived, dumps_json
 from .scenario import PluginChoice, Scenario
 from .version import installed as installed_version
@@ -545,7 +546,7 @@ class LiveControl:
     def finish(self, summary: dict) -> None:
         a = self.a
         self.tel.publish(a["latch"], a["evlog"], a["evn"], force=True, ended=True,
-                         end_event=summary.get("end_event") or "completed")
+                         end_event=judge(summary)["text"])
 
 
 def execute(sc: Scenario, prep: Prepared, folder: Path,
@@ -701,5 +702,8 @@ def execute(sc: Scenario, prep: Prepared, folder: Path,
     with h5py.File(folder / "recording.h5", "r") as f:
         steps = step_metrics(f["time"][()], f["signals/v_out"][()], f["signals/v_ref_raw"][()])
     summary["steps"] = [st.as_dict() for st in steps]
+    # the verdict every table, report and comparison shows (completed/end_event stay for
+    # the code that reads them)
+    summary["outcome"] = judge(summary)
     (folder / SUMMARY).write_text(dumps_json(summary, indent=2) + "\n")
     return RunResult(folder=folder, summary=summary)

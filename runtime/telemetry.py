@@ -17,7 +17,8 @@ Frame (every key always present; values in SI units unless the key says otherwis
 ``latched``, ``cause`` (text or None), ``trip_t``, ``events`` (the last 6: [tick, text]),
 ``trace`` {"t", "v_out", "v_ref"} (the last ``TRACE_S`` simulated seconds, at most 240 points),
 ``timing`` {"ticks_per_s", "lateness_p99_us", "late_ticks", "compute_p99_us"} (None where the
-mode has no such figure), ``bridge`` (link statistics or None), ``ended``, ``end_event``.
+mode has no such figure), ``bridge`` (link statistics or None), ``ended``, ``end_event`` (once
+ended: how, the outcome's one-line text of runtime/outcome.py in SIL and bridge runs).
 """
 from __future__ import annotations
 

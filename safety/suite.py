@@ -45,6 +45,7 @@ except ModuleNotFoundError:  # Python < 3.11
     import tomli as tomllib
 
 from hilrig.runtime.errors import ScenarioError
+from hilrig.runtime.outcome import judge as judge_outcome
 from hilrig.runtime.recording import dumps_json
 from hilrig.runtime.units import parse_quantity
 
@@ -363,11 +364,11 @@ def judge(case: Case, sc, summary: dict, run_folder: Path, fault_s: float | None
         if trip:
             why.append(f"tripped on {trip['cause']} at t = {trip['time_s']:.6g} s")
         elif not summary.get("completed"):
-            why.append(f"no trip, but the run ended early: {summary.get('end_event')}")
+            why.append(f"no trip, but the run ended early: {judge_outcome(summary)['text']}")
         res.passed = not why
         return res
     if not trip:
-        why.append(f"no trip (run {'completed' if summary.get('completed') else 'ended: ' + str(summary.get('end_event'))})")
+        why.append(f"no trip (run {judge_outcome(summary)['text']})")
         res.passed = False
         return res
     res.cause_id = trip["cause_id"]

@@ -274,6 +274,11 @@ def test_disconnect_trips_the_peer_lost_watchdog_and_statistics_are_recorded(tmp
     assert s["end_event"] == "bridge peer lost" and s["ticks_run"] == 302
     assert s["trip"]["cause_id"] == "watchdog peer lost" and s["trip"]["tick"] == 301
     assert "disconnecting" in [e for e in s["events"] if e["event"] == "bridge peer lost"][0]["detail"]
+    # the watchdog tripped (the first cause), the bridge's end came with it
+    oc = s["outcome"]
+    assert oc["status"] == "tripped" and oc["first_cause"].startswith("watchdog peer lost")
+    assert oc["first_cause_time_s"] == s["trip"]["time_s"] and "bridge peer lost" in oc["then"]
+    assert not oc["whole_run"] and oc["end_time_s"] == pytest.approx(302 * s["Ts_s"])
     run = open_run(tmp_path / "r")
     assert json.loads(run.attrs["bridge"])["frames_sent"] == s["bridge"]["frames_sent"]
 

@@ -169,6 +169,8 @@ def test_stop_command_ends_the_run_in_order(tmp_path, demo_path, mode):
     s = json.loads((tmp_path / "r" / "summary.json").read_text())
     assert s["end_event"] == "stopped by the operator", s["events"]
     assert s["trip"]["cause_id"] == "stop requested"
+    # the stop's own trip is the operator's, not a fault
+    assert s["outcome"]["status"] == "stopped" and s["outcome"]["first_cause"] == "stopped by the operator"
     from hilrig.runtime.recording import open_run
     rec = open_run(tmp_path / "r")
     assert rec.attrs["complete"] and rec.time.shape[0] == s["ticks_run"]

@@ -42,6 +42,7 @@ def test_report_md_has_outcome_metrics_events_plots_scenario(tripped_run):
                  "## Timing", "## Versions", "## Scenario", "```toml"):
         assert part in md, part
     assert "interlock v_out > 480 V at t = 0.2 s" in md
+    assert "| status | tripped |" in md and "| outcome | tripped at 200 ms: interlock v_out > 480 V, value " in md
     assert "| 4000 | 0.2 | trip | interlock v_out > 480 V |" in md
     assert "offset on v_out: active from 0.2 s" in md
     png = tripped_run / "report" / "overview.png"
