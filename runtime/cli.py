@@ -65,10 +65,12 @@ class _Progress:
             self.bar.stop()
 
 
-def _show_caution(console, sc) -> None:
+def _show_caution(console, sc, notes: list[str] | None = None) -> None:
+    """The notices of voltages the plant cannot reach (``notes``, or the scenario's own) and
+    the high-voltage caution."""
     from hilrig.safety.caution import (CAUTION_TITLE, caution_text, scenario_voltages,
                                        unreachable_voltages)
-    for note in unreachable_voltages(sc):
+    for note in unreachable_voltages(sc) if notes is None else notes:
         console.print(f"notice: {note}", markup=False, soft_wrap=True)
     text = caution_text(scenario_voltages(sc))
     if text:
@@ -359,38 +361,49 @@ def _envelope(console, args, plain: bool) -> None:
     from hilrig.runtime.scenario import load_scenario
     from hilrig.runtime.units import parse_quantity
 
-    names = [c.strip() for c in args.controllers.split(",") if c.strip()]
+    names = [c.strip() for c in (args.controllers or "").split(",") if c.strip()]
+    if args.cell is not None:
+        return _envelope_cell(console, args, plain, names)
     if not names:
         raise ValueError("--controllers: name at least one controller")
     grid = env.Grid.parse(args.v_range, args.p_range, args.grid)
     if not 0.0 < args.tolerance < 100.0:
         raise ValueError(f"--tolerance {args.tolerance:g} %: expected a value in (0, 100)")
     path = Path(args.scenario)
-    sc = load_scenario(path)  # validates the file once, with its own messages
-    for c in names:  # and every candidate before anything runs
-        load_scenario(path, overrides=env._controller_override(sc.text, c))
+    overrides = _overrides(args.set)
+    # validates the file and the --set overrides once, with run's messages, and every
+    # candidate before anything runs
+    sc = load_scenario(path, overrides=overrides)
+    for c in names:
+        load_scenario(path, overrides={**overrides, **env._controller_override(sc.text, c)})
     v_start = parse_quantity(args.v_start, "V", "--v-start") if args.v_start else None
     out = Path(args.out) if args.out else Path("runs") / (
         _dt.datetime.now().strftime("%Y%m%d-%H%M%S") + "-envelope")
     if (out / "envelope.csv").exists():
         raise FileExistsError(f"{out / 'envelope.csv'} exists; choose another --out (nothing was overwritten)")
-    if not args.json:
-        _show_caution(console, sc)
+    notes = env.grid_notices(sc, grid, v_start)
+    if args.json:  # standard output holds the JSON alone
+        for note in notes:
+            print(f"notice: {note}", file=sys.stderr)
+    else:
+        _show_caution(console, sc, notes)
         console.print(f"{len(names)} controller(s) x {len(grid.v)} x {len(grid.p)} operating points"
                       + (f" on the Dask cluster at {args.cluster}" if args.cluster else " on local processes"))
+    # the scenario's text with the overrides applied: what every candidate runs
     tasks = env.tasks_for(sc.text, path.name, names, grid, tol_pct=args.tolerance, v_start=v_start)
+    t0 = time.perf_counter()
     if not args.cluster:
         if not args.json:
             console.print("preparing the compiled loops (a first compile takes a few seconds per controller) ...")
         env.warm_up(tasks)
-    prog = None if args.json else _Progress(console, plain, unit="grid rows")
-    t0 = time.perf_counter()
+    t_warm = time.perf_counter() - t0
+    prog = None if args.json else _Progress(console, plain, unit="operating points")
     try:
         results = env.run_envelope(tasks, cluster=args.cluster, workers=args.workers, progress=prog)
     finally:
         if prog:
             prog.close()
-    wall = time.perf_counter() - t0
+    t_map = time.perf_counter() - t0 - t_warm
     rows = env.table(tasks, results)
     out.mkdir(parents=True, exist_ok=True)
     env.write_csv(rows, out / "envelope.csv")
@@ -399,17 +412,98 @@ def _envelope(console, args, plain: bool) -> None:
                          f"{args.tolerance:g} % (SIL, {sc.plant.plugin.name})")
     except ImportError:
         pass
-    cnt = env.counts(rows)
+    wall = time.perf_counter() - t0
+    cnt, why = env.counts(rows), env.cause_counts(rows)
+    worst = {}
+    for c in names:
+        w = env.worst_cell(rows, c)
+        worst[c] = None if w is None else {**w, "command": env.run_command(
+            args.scenario, args.set, env.cell_overrides(sc, c, w["v_ref_V"], w["p_load_W"], v_start))}
     if args.json:
-        print(_json_text(cnt))
+        print(_json_text({c: {"outcomes": cnt[c], "trip_causes": why[c], "worst": worst[c]}
+                          for c in names}))
         return
+    order = env.causes(rows)
     for c in names:
         console.print(f"[bold]{escape(c)}[/bold]  " + "  ".join(f"{o} {n}" for o, n in cnt[c].items()))
-        for line in env.text_map(rows, c):
+        for line in env.text_map(rows, c, order):
             console.print(escape(line), highlight=False)
-    console.print("map: " + "  ".join(f"{sym} {o}" for o, sym in env.SYMBOLS.items()))
-    console.print(f"{len(rows)} points in {wall:.1f} s; wrote {escape(str(out / 'envelope.csv'))} "
+    # a cell that trips shows the letter of its first cause (the key below), else T
+    console.print("map: " + "  ".join(f"{sym} {o}" for o, sym in env.SYMBOLS.items()
+                                      if o != "trips" or not order))
+    for line in env.cause_key(rows):
+        console.print("     " + line, markup=False, soft_wrap=True)
+    for c in names:
+        w = worst[c]
+        if w is None:
+            continue
+        what = w["outcome"]
+        if w["first_cause"]:
+            what += f": {w['first_cause']} at {w['first_cause_time_s'] * 1e3:.3g} ms"
+        elif w["end_event"]:
+            what += f": {w['end_event']} at {w['end_event_time_s'] * 1e3:.3g} ms"
+        console.print(f"worst cell of {c}: {w['v_ref_V']:g} V, {w['p_load_W'] / 1e3:g} kW ({what}); "
+                      f"run it with its recording (or: hilrig envelope ... --cell V,P --controller NAME):",
+                      markup=False, soft_wrap=True)
+        console.print("  " + w["command"], markup=False, soft_wrap=True)
+    console.print(f"{len(rows)} points in {wall:.1f} s (loops compiled or loaded in {t_warm:.1f} s, "
+                  f"map {t_map:.1f} s); wrote {escape(str(out / 'envelope.csv'))} "
                   f"and {escape(str(out / 'envelope.png'))}")
+
+
+def _envelope_cell(console, args, plain: bool, names: list[str]) -> None:
+    """--cell V,P: one map cell as a normal run (run folder, recording, summary), then its
+    outcome classified as the map classifies it."""
+    import datetime as _dt
+
+    from hilrig.runtime import envelope as env
+    from hilrig.runtime.scenario import load_scenario
+    from hilrig.runtime.units import parse_quantity
+
+    parts = args.cell.split(",")
+    if len(parts) != 2:
+        raise ValueError(f"--cell {args.cell!r}: write V,P (target voltage, load power), e.g. "
+                         f"--cell '150 V,50 kW' or --cell 150,50e3")
+    v = parse_quantity(parts[0].strip(), "V", "--cell V")
+    p = parse_quantity(parts[1].strip(), "W", "--cell P")
+    if not v > 0.0:
+        raise ValueError(f"--cell {args.cell!r}: the voltage must be above 0 V (a constant-power "
+                         f"load is singular at 0 V)")
+    if args.controller:
+        ctrl = args.controller
+    elif len(names) == 1:
+        ctrl = names[0]
+    else:
+        raise ValueError("--cell: name its controller with --controller NAME")
+    if args.json:
+        raise ValueError("--cell runs one cell as a normal run: leave out --json (the run "
+                         "folder's summary.json holds the result)")
+    if not 0.0 < args.tolerance < 100.0:
+        raise ValueError(f"--tolerance {args.tolerance:g} %: expected a value in (0, 100)")
+    path = Path(args.scenario)
+    sc = load_scenario(path, overrides=_overrides(args.set))
+    v_start = parse_quantity(args.v_start, "V", "--v-start") if args.v_start else None
+    cell_ov = env.cell_overrides(sc, ctrl, v, p, v_start)
+    out = Path(args.out) if args.out else Path("runs") / (
+        _dt.datetime.now().strftime("%Y%m%d-%H%M%S") + f"-{path.stem}-cell")
+    if (out / "recording.h5").exists():
+        raise FileExistsError(f"{out} already holds a recording; choose another --out "
+                              f"(nothing was overwritten)")
+    console.print(f"cell {v:g} V, {p / 1e3:g} kW with {ctrl} as a normal run, the same as", markup=False)
+    import shlex
+    console.print("  " + env.run_command(args.scenario, args.set, cell_ov) + " --out "
+                  + shlex.quote(str(out)),
+                  markup=False, soft_wrap=True)
+    res = _run(console, plain, path, str(out), False, list(args.set) + env.set_items(cell_ov))
+    cell = env.cell_of_run(res.folder, v, args.tolerance)
+    details = []
+    if cell.first_cause:
+        details.append(f"{cell.first_cause} at {cell.first_cause_time_s * 1e3:.3g} ms")
+    if cell.end_event:
+        details.append(f"{cell.end_event} at {cell.end_event_time_s * 1e3:.3g} ms")
+    what = cell.outcome + (": " + "; ".join(details) if details else "")
+    console.print(f"cell outcome (the map's rules, tracking within {args.tolerance:g} %): {what}",
+                  markup=False, soft_wrap=True)
 
 
 def _literal(text: str):
@@ -507,7 +601,7 @@ def main(argv: list[str] | None = None) -> int:
                    help="override a scenario value for every candidate (repeatable)")
     p = sub.add_parser("envelope", help="map where each controller keeps tracking (voltage x load power)")
     p.add_argument("scenario", help="scenario TOML file (plant, controller settings, shaping, interlocks, timing)")
-    p.add_argument("--controllers", required=True, metavar="A,B,...",
+    p.add_argument("--controllers", metavar="A,B,...",
                    help="comma-separated controller plugin names or .py paths")
     p.add_argument("--v-range", default="50:600", metavar="LOW:HIGH", help="target voltages [V] (default 50:600)")
     p.add_argument("--p-range", default="0:150e3", metavar="LOW:HIGH", help="constant load powers [W] (default 0:150e3)")
@@ -515,10 +609,19 @@ def main(argv: list[str] | None = None) -> int:
     p.add_argument("--tolerance", type=float, default=2.0, metavar="PCT",
                    help="tracking band in %% of the target voltage (default 2)")
     p.add_argument("--v-start", metavar="V", help="start voltage (default: the scenario's start)")
-    p.add_argument("--out", help="folder for envelope.csv and the heat map (default: runs/<time>-envelope)")
-    p.add_argument("--json", action="store_true", help="print per-controller outcome counts as JSON")
+    p.add_argument("--out", help="folder for envelope.csv and the heat map (default: runs/<time>-envelope); "
+                   "with --cell, the run folder (default: runs/<time>-<scenario>-cell)")
+    p.add_argument("--json", action="store_true", help="print per controller: outcome counts, first trip causes and the worst cell "
+                        "with its run command, as JSON")
     p.add_argument("--cluster", metavar="ADDRESS", help="run on a Dask distributed scheduler instead of local processes")
     p.add_argument("--workers", type=int, help="local worker processes (default: all cores)")
+    p.add_argument("--headless", action="store_true", help="plain text output, no progress bar or colours")
+    p.add_argument("--set", action="append", default=[], metavar="KEY=VALUE",
+                   help="override a scenario value for every candidate (repeatable)")
+    p.add_argument("--cell", metavar="V,P",
+                   help="run one cell (target voltage, load power) as a normal run into a run "
+                        "folder (--out) with its recording, instead of the map")
+    p.add_argument("--controller", metavar="NAME", help="the controller of --cell")
     p = sub.add_parser("report", help="write a lab report of a run folder (report.md with plots)")
     p.add_argument("run", help="run folder")
     p.add_argument("--json", action="store_true", help="print summary.json (writes nothing)")

@@ -10,17 +10,26 @@ run in SIL with its plant, controller, shaping, interlocks and timing, but with
 
 and the run is classified from its final part (the last 30 % of the run):
 
-``trips``      an interlock latched (whatever followed: the safe output may let a
-               constant-power load collapse the voltage afterwards);
+``trips``      an interlock latched: the loop's event log holds a trip (whatever followed:
+               the safe output may let a constant-power load collapse the voltage afterwards,
+               a scheduled reset may clear the latch);
 ``collapses``  the output collapsed (or the plant state became non-finite) without a trip;
 ``tracks``     |v_ref - v_out| stayed within the tolerance band (default 2 % of V);
 ``saturates``  outside the band with the command at the converter's limits on more than 10 %
                of the ticks (the converter cannot deliver what the controller asks);
 ``oscillates`` outside the band otherwise (a sustained oscillation or a slow drift).
 
+A cell that trips also keeps the first trip's cause and time, in the run's own words (the
+cause text of the run's event log), and a cell whose loop ended on a collapse (or a non-finite
+plant state) keeps that event and its time.
+
 Points are independent and deterministic, so they run in parallel: on a local process pool
 (the default) or on a Dask distributed cluster; both run the same function per row of the grid
 and give identical maps.
+
+Any cell is also a scenario of its own (:func:`cell_overrides`: the scenario with the point's
+reference, load, start voltage and controller as overrides): ``hilrig run`` on it records the
+cell's run, and :func:`cell_of_run` classifies that recording by the same rules.
 """
 from __future__ import annotations
 
@@ -39,6 +48,30 @@ OUTCOMES = ("tracks", "oscillates", "saturates", "trips", "collapses")
 SYMBOLS = {"tracks": ".", "oscillates": "~", "saturates": "s", "trips": "T", "collapses": "x"}
 FINAL_PART = 0.3
 SATURATED_SHARE = 0.1
+#: outcomes from worst to best: the order in which a controller's worst cell is chosen
+SEVERITY = ("collapses", "trips", "saturates", "oscillates", "tracks")
+#: letters of the trip causes on the terminal map (a cause beyond them shows as "T")
+CAUSE_LETTERS = "ABCDEFGHIJKLMNOPQRSUVWYZ"
+#: hatches of the trip causes on the heat map (a cause beyond them has none)
+CAUSE_HATCHES = ("//", "..", "xx", "\\\\", "++", "oo", "--", "||", "**", "OO")
+
+
+@dataclass(frozen=True)
+class Cell:
+    """One operating point's result: its outcome, and what ended or latched it.
+
+    ``first_cause`` is the first trip's cause as the run's event log words it (empty without a
+    trip), at ``first_cause_time_s``; ``end_event`` is the loop's own end of the run ("voltage
+    collapse", "non-finite plant state"; empty if it ran to the end), at ``end_event_time_s``.
+    A cell that trips and then collapses (the safe output let the load pull the voltage down)
+    has both.
+    """
+
+    outcome: str
+    first_cause: str = ""
+    first_cause_time_s: float | None = None
+    end_event: str = ""
+    end_event_time_s: float | None = None
 
 
 @dataclass(frozen=True)
@@ -161,12 +194,12 @@ def classify(n_planned: int, ran: int, event: int, tripped: bool, v_out, v_ref, 
     return "oscillates"
 
 
-def run_row(task: Task) -> list[str]:
-    """Outcomes of one grid row (one voltage, every power). Runs in any worker process."""
+def run_row(task: Task) -> list[Cell]:
+    """Cells of one grid row (one voltage, every power). Runs in any worker process."""
     from .run import _call, prepare
     sc, fn, profile, v_scenario = _base(task)
     n = sc.n_ticks
-    t_step = task.t_step if task.t_step is not None else min(5e-3, 0.1 * sc.duration)
+    t_step = step_time(sc, task.t_step)
     # the same for every point of the row (and a whole prepare() for a battery reference)
     v_start = task.v_start if task.v_start is not None else v_scenario
     out = []
@@ -176,13 +209,46 @@ def run_row(task: Task) -> list[str]:
         names = [s.name for s in prep.signals]
         rec = np.empty((n, len(names)))
         ran = _call(fn, 0, n, rec, prep.args)
-        a = prep.args
-        col = names.index
-        v_dc = rec[:ran, col("v_dc")] if "v_dc" in names else np.full(ran, np.inf)
-        out.append(classify(n, ran, int(a["ev"][0]), bool(a["latch"][0]), rec[:ran, col("v_out")],
-                            rec[:ran, col("v_ref")], rec[:ran, col(prep.u_names[0])], v_dc,
-                            task.v, task.tol_pct))
+        out.append(_loop_cell(prep, n, ran, {k: rec[:ran, names.index(k)] for k in names},
+                              task.v, task.tol_pct))
     return out
+
+
+def _loop_cell(prep, n: int, ran: int, sig: dict, v_target: float, tol_pct: float) -> Cell:
+    """A cell from the loop's state after a point's run: its event log (the first trip) and its
+    end event, as run.execute reads them into a run's summary."""
+    from hilrig.safety.interlocks import EVT_TRIP
+
+    from .loop import EVENT_TEXT
+    a, ts = prep.args, prep.sc.Ts
+    first_cause, first_t = "", None
+    for row in a["evlog"][:min(int(a["evn"][0]), a["evlog"].shape[0])]:
+        if int(row[1]) == EVT_TRIP:
+            first_cause = prep.table.cause_text(int(row[2]), len(prep.y_names))
+            first_t = int(row[0]) * ts
+            break
+    ev = int(a["ev"][0])
+    end_event, end_t = (EVENT_TEXT[ev], int(a["ev"][1]) * ts) if ev else ("", None)
+    return Cell(_classify_signals(n, ran, ev, first_t is not None, sig, prep.u_names[0],
+                                  v_target, tol_pct),
+                first_cause, first_t, end_event, end_t)
+
+
+def _classify_signals(n, ran, event, tripped, sig, u_name, v_target, tol_pct) -> str:
+    v_dc = sig["v_dc"][:ran] if "v_dc" in sig else np.full(ran, np.inf)
+    return classify(n, ran, event, tripped, sig["v_out"][:ran], sig["v_ref"][:ran],
+                    sig[u_name][:ran], v_dc, v_target, tol_pct)
+
+
+def step_time(sc, t_step: float | None = None) -> float:
+    """When a point's reference steps to its target: ``t_step``, or 5 ms (10 % of a shorter
+    run)."""
+    return t_step if t_step is not None else min(5e-3, 0.1 * sc.duration)
+
+
+def start_voltage(sc, v_start: float | None = None) -> float:
+    """Where every point starts: ``v_start``, or the scenario's start voltage."""
+    return v_start if v_start is not None else _start_voltage(sc)
 
 
 def _start_voltage(sc) -> float:
@@ -194,6 +260,91 @@ def _start_voltage(sc) -> float:
     return prepare(sc).v0
 
 
+def grid_notices(sc, grid: Grid, v_start: float | None = None) -> list[str]:
+    """The notices a run gives for voltages its plant cannot reach
+    (``safety.caution.unreachable_voltages``), for what the map asks: its target voltages and
+    its start voltage, named as the map's user gave them."""
+    from hilrig.safety.caution import unreachable_voltages
+
+    from .scenario import PluginChoice
+    profile = _profile_plugin()
+    given = ("--v-start" if v_start is not None else
+             "initial.v_out" if sc.v_out0 is not None else "the scenario's reference at t = 0")
+    vs = start_voltage(sc, v_start)
+    notes = []
+    for label, points, count in (
+            ("start voltage", ((0.0, vs),), None),
+            ("target voltage", ((0.0, min(grid.v)), (1.0, max(grid.v))), grid.v)):
+        probe = dataclasses.replace(sc, reference=PluginChoice(plugin=profile,
+                                                               values={"points": points}),
+                                    v_out0=None)
+        for note in unreachable_voltages(probe):
+            # the run's own words, with the map's name for the value in place of the probe's
+            _, rest = note.split(" = ", 1) if " = " in note else ("", note)
+            where = given if label == "start voltage" else "--v-range"
+            line = f"{label} ({where}) = {rest}"
+            if count is not None:
+                vdc = sc.plant.values.get("V_dc")
+                line += f" ({sum(v > vdc for v in count)} of {len(count)} target voltages)"
+            notes.append(line)
+    return notes
+
+
+def cell_overrides(sc, controller: str, v_target: float, p_load: float,
+                   v_start: float | None = None, t_step: float | None = None) -> dict[str, Any]:
+    """Scenario overrides (``--set`` keys) that make ``sc`` the run of one map cell: the point's
+    stepped profile reference, its constant load from t = 0, its start voltage, the candidate
+    controller (its own parameters when it is not the scenario's), and SIL mode. Applied to the
+    scenario, they give the scenario :func:`point_scenario` makes, value for value."""
+    vs = start_voltage(sc, v_start)
+    ts = step_time(sc, t_step)
+    ov: dict[str, Any] = {}
+    if sc.mode != "sil":
+        ov["mode"] = "sil"  # every map point runs in SIL
+    ov.update(_controller_override(sc.text, controller))
+    ov["reference"] = {"plugin": "profile", "points": [[0.0, vs], [ts, vs], [ts, float(v_target)]]}
+    ov["load"] = {"points": [{"t": 0.0, "P": float(p_load)}]}
+    ov["initial.v_out"] = vs
+    return ov
+
+
+def set_items(overrides: dict[str, Any]) -> list[str]:
+    """Overrides as ``--set`` items (KEY=VALUE, the value in TOML's notation: floats are written
+    exactly, so the run parses the same numbers)."""
+    from .scenario import _inline
+    return [f"{k}={_inline(v)}" for k, v in overrides.items()]
+
+
+def run_command(scenario: str, sets: list[str], overrides: dict[str, Any]) -> str:
+    """The ``hilrig run`` command line that runs a cell: the map's own ``--set`` items, then
+    the cell's overrides (which win where a key repeats)."""
+    import shlex
+    words = ["hilrig", "run", scenario]
+    for item in list(sets) + set_items(overrides):
+        words += ["--set", item]
+    return " ".join(shlex.quote(w) for w in words)
+
+
+def cell_of_run(folder: Path, v_target: float, tol_pct: float = 2.0) -> Cell:
+    """Classify a recorded run (a run folder) by the map's rules: the cell a re-run gave."""
+    from .loop import EVENT_TEXT
+    from .recording import open_run
+    from .scenario import parse_scenario
+    run = open_run(folder)
+    s = run.summary
+    if not s:
+        raise ValueError(f"{folder}: no summary.json (the run did not finish)")
+    sc = parse_scenario(run.attrs["scenario_text"], name=str(folder))
+    u_name = ([q.name for q in sc.plant.plugin.declaration.inputs] or ["u"])[0]
+    trip = s.get("trip")
+    ends = [e for e in s.get("events", []) if e["event"] in set(EVENT_TEXT.values()) - {""}]
+    ran = int(s["ticks_run"])
+    outcome = _classify_signals(int(s["ticks_planned"]), ran, 1 if ends else 0, trip is not None,
+                                run.signals, u_name, v_target, tol_pct)
+    return Cell(outcome, trip["cause"] if trip else "", trip["time_s"] if trip else None,
+                ends[0]["event"] if ends else "", ends[0]["time_s"] if ends else None)
+
+
 def tasks_for(scenario_text: str, scenario_name: str, controllers: Iterable[str], grid: Grid,
               tol_pct: float = 2.0, t_step: float | None = None,
               v_start: float | None = None) -> list[Task]:
@@ -202,8 +353,9 @@ def tasks_for(scenario_text: str, scenario_name: str, controllers: Iterable[str]
 
 
 def run_envelope(tasks: list[Task], *, cluster: str | None = None, workers: int | None = None,
-                 progress: Callable[[int, int], None] | None = None) -> list[list[str]]:
-    """Run every task (grid row) and return their outcomes, in task order."""
+                 progress: Callable[[int, int], None] | None = None) -> list[list[Cell]]:
+    """Run every task (grid row) and return their cells, in task order. ``progress(done,
+    total)`` counts operating points, after each finished row."""
     if cluster:
         return _run_dask(tasks, cluster, progress)
     return _run_pool(tasks, workers, progress)
@@ -220,24 +372,26 @@ def _run_pool(tasks, workers, progress):
     from concurrent.futures import ProcessPoolExecutor
     warm_up(tasks)
     workers = workers or os.cpu_count() or 1
-    results: list[list[str] | None] = [None] * len(tasks)
+    results: list[list[Cell] | None] = [None] * len(tasks)
+    total = sum(len(t.p) for t in tasks)
+    done = 0
     if workers == 1:
         for i, t in enumerate(tasks):
             results[i] = run_row(t)
+            done += len(t.p)
             if progress:
-                progress(i + 1, len(tasks))
+                progress(done, total)
         return results
     methods = mp.get_all_start_methods()
     ctx = mp.get_context("fork" if "fork" in methods else "spawn")
-    done = 0
     with ProcessPoolExecutor(max_workers=workers, mp_context=ctx) as pool:
         futures = {pool.submit(run_row, t): i for i, t in enumerate(tasks)}
         from concurrent.futures import as_completed
         for fut in as_completed(futures):
             results[futures[fut]] = fut.result()
-            done += 1
+            done += len(tasks[futures[fut]].p)
             if progress:
-                progress(done, len(tasks))
+                progress(done, total)
     return results
 
 
@@ -251,24 +405,31 @@ def _run_dask(tasks, address, progress):
     try:
         futures = client.map(run_row, tasks, pure=False)
         index = {f.key: i for i, f in enumerate(futures)}
-        results: list[list[str] | None] = [None] * len(tasks)
+        results: list[list[Cell] | None] = [None] * len(tasks)
+        total = sum(len(t.p) for t in tasks)
         done = 0
         for fut in as_completed(futures):
             results[index[fut.key]] = fut.result()
-            done += 1
+            done += len(tasks[index[fut.key]].p)
             if progress:
-                progress(done, len(tasks))
+                progress(done, total)
         return results
     finally:
         client.close()
 
 
-def table(tasks: list[Task], results: list[list[str]]) -> list[dict[str, Any]]:
-    """Rows (controller, v_ref_V, p_load_W, outcome) in grid order."""
+#: envelope.csv's columns
+CSV_COLUMNS = ("controller", "v_ref_V", "p_load_W", "outcome", "first_cause", "first_cause_time_s",
+               "end_event", "end_event_time_s")
+
+
+def table(tasks: list[Task], results: list[list[Cell]]) -> list[dict[str, Any]]:
+    """Rows (controller, v_ref_V, p_load_W, and the cell's fields) in grid order."""
     rows = []
-    for t, outs in zip(tasks, results):
-        for p, o in zip(t.p, outs):
-            rows.append({"controller": t.controller, "v_ref_V": t.v, "p_load_W": p, "outcome": o})
+    for t, cells in zip(tasks, results):
+        for p, c in zip(t.p, cells):
+            rows.append({"controller": t.controller, "v_ref_V": t.v, "p_load_W": p,
+                         **dataclasses.asdict(c)})
     return rows
 
 
@@ -280,27 +441,85 @@ def counts(rows: list[dict[str, Any]]) -> dict[str, dict[str, int]]:
     return out
 
 
+def cause_counts(rows: list[dict[str, Any]]) -> dict[str, dict[str, int]]:
+    """{controller: {first trip cause: cells}} (cells that trip), most frequent first."""
+    out: dict[str, dict[str, int]] = {}
+    for r in rows:
+        c = out.setdefault(r["controller"], {})
+        if r["outcome"] == "trips":
+            c[r["first_cause"]] = c.get(r["first_cause"], 0) + 1
+    return {k: dict(sorted(v.items(), key=lambda kv: (-kv[1], kv[0]))) for k, v in out.items()}
+
+
+def causes(rows: list[dict[str, Any]]) -> list[str]:
+    """The distinct first trip causes of a map, most frequent first (then by text): the order
+    of the letters and hatches that tell them apart."""
+    n: dict[str, int] = {}
+    for r in rows:
+        if r["outcome"] == "trips":
+            n[r["first_cause"]] = n.get(r["first_cause"], 0) + 1
+    return sorted(n, key=lambda c: (-n[c], c))
+
+
+def worst_cell(rows: list[dict[str, Any]], controller: str) -> dict[str, Any] | None:
+    """A controller's worst cell: the most severe outcome (collapses, trips, saturates,
+    oscillates); among equals the one with the largest load conductance P/V^2 (a constant-power
+    load's destabilising incremental conductance; common practice, no source); None if every
+    cell tracks."""
+    bad = [r for r in rows if r["controller"] == controller and r["outcome"] != "tracks"]
+    if not bad:
+        return None
+    return min(bad, key=lambda r: (SEVERITY.index(r["outcome"]),
+                                   -r["p_load_W"] / r["v_ref_V"] ** 2))
+
+
 def write_csv(rows: list[dict[str, Any]], dest: Path) -> Path:
     import csv
+
+    def num(x):
+        return "" if x is None else repr(x)
     with open(dest, "w", newline="") as fh:
-        w = csv.DictWriter(fh, fieldnames=["controller", "v_ref_V", "p_load_W", "outcome"])
+        w = csv.DictWriter(fh, fieldnames=list(CSV_COLUMNS))
         w.writeheader()
         for r in rows:
-            w.writerow({**r, "v_ref_V": repr(r["v_ref_V"]), "p_load_W": repr(r["p_load_W"])})
+            w.writerow({**r, "v_ref_V": num(r["v_ref_V"]), "p_load_W": num(r["p_load_W"]),
+                        "first_cause_time_s": num(r["first_cause_time_s"]),
+                        "end_event_time_s": num(r["end_event_time_s"])})
     return dest
 
 
-def text_map(rows: list[dict[str, Any]], controller: str) -> list[str]:
-    """Lines of a compact terminal map: voltage rows (highest first), one character per power."""
+def _letters(order: list[str]) -> dict[str, str]:
+    return {c: CAUSE_LETTERS[i] if i < len(CAUSE_LETTERS) else SYMBOLS["trips"]
+            for i, c in enumerate(order)}
+
+
+def text_map(rows: list[dict[str, Any]], controller: str,
+             cause_order: list[str] | None = None) -> list[str]:
+    """Lines of a compact terminal map: voltage rows (highest first), one character per power;
+    a cell that trips shows its first cause's letter (:func:`cause_key`)."""
+    letters = _letters(cause_order if cause_order is not None else causes(rows))
     sel = [r for r in rows if r["controller"] == controller]
     vs = sorted({r["v_ref_V"] for r in sel}, reverse=True)
     ps = sorted({r["p_load_W"] for r in sel})
-    cell = {(r["v_ref_V"], r["p_load_W"]): r["outcome"] for r in sel}
+    cell = {(r["v_ref_V"], r["p_load_W"]): r for r in sel}
+
+    def sym(r):
+        if r["outcome"] == "trips":
+            return letters.get(r["first_cause"], SYMBOLS["trips"])
+        return SYMBOLS[r["outcome"]]
     lines = []
     for v in vs:
-        lines.append(f"{v:7.1f} V  " + "".join(SYMBOLS[cell[(v, p)]] for p in ps))
+        lines.append(f"{v:7.1f} V  " + "".join(sym(cell[(v, p)]) for p in ps))
     lines.append(f"{'':10s} P: {ps[0] / 1e3:g} .. {ps[-1] / 1e3:g} kW ->")
     return lines
+
+
+def cause_key(rows: list[dict[str, Any]]) -> list[str]:
+    """The terminal map's key of trip causes: one line per letter."""
+    order = causes(rows)
+    letters = _letters(order)
+    n = {c: sum(r["outcome"] == "trips" and r["first_cause"] == c for r in rows) for c in order}
+    return [f"{letters[c]} trips: {c} ({n[c]} cell{'s' if n[c] != 1 else ''})" for c in order]
 
 
 #: colours of the heat map (our own choice: green good, warm colours worse)
@@ -308,36 +527,56 @@ COLOURS = {"tracks": "#3a9a4a", "oscillates": "#e0c040", "saturates": "#e08a30",
            "trips": "#8060c0", "collapses": "#c03030"}
 
 
-def heat_map_png(rows: list[dict[str, Any]], dest: Path, title: str = "") -> Path:
+def heat_map_figure(rows: list[dict[str, Any]], title: str = ""):
+    """The heat map as a matplotlib figure: a panel per controller, a colour per outcome, and
+    over each cell that trips the hatch of its first cause, listed in a second legend."""
     import matplotlib
     matplotlib.use("Agg")
     import matplotlib.pyplot as plt
     from matplotlib.colors import ListedColormap
-    from matplotlib.patches import Patch
+    from matplotlib.patches import Patch, Rectangle
 
     ctrls = list(dict.fromkeys(r["controller"] for r in rows))
     vs = sorted({r["v_ref_V"] for r in rows})
     ps = sorted({r["p_load_W"] for r in rows})
+    order = causes(rows)
+    hatch = {c: CAUSE_HATCHES[i] for i, c in enumerate(order) if i < len(CAUSE_HATCHES)}
     cmap = ListedColormap([COLOURS[o] for o in OUTCOMES])
-    fig, axes = plt.subplots(1, len(ctrls), figsize=(4.2 * len(ctrls) + 1.5, 4.4),
+    fig, axes = plt.subplots(1, len(ctrls), figsize=(4.2 * len(ctrls) + 2.5, 4.4),
                              squeeze=False, constrained_layout=True)
+    dv = (vs[-1] - vs[0]) / max(len(vs) - 1, 1) / 2 or 1.0
+    dp = (ps[-1] - ps[0]) / max(len(ps) - 1, 1) / 2 or 1.0
     for ax, c in zip(axes[0], ctrls):
         grid = np.full((len(vs), len(ps)), np.nan)
         for r in rows:
             if r["controller"] == c:
                 grid[vs.index(r["v_ref_V"]), ps.index(r["p_load_W"])] = OUTCOMES.index(r["outcome"])
-        dv = (vs[-1] - vs[0]) / max(len(vs) - 1, 1) / 2 or 1.0
-        dp = (ps[-1] - ps[0]) / max(len(ps) - 1, 1) / 2 or 1.0
+                if r["outcome"] == "trips" and r["first_cause"] in hatch:
+                    ax.add_patch(Rectangle(((r["p_load_W"] - dp) / 1e3, r["v_ref_V"] - dv),
+                                           2 * dp / 1e3, 2 * dv, facecolor="none",
+                                           edgecolor="white", linewidth=0,
+                                           hatch=hatch[r["first_cause"]]))
         ax.imshow(grid, origin="lower", aspect="auto", cmap=cmap, vmin=-0.5,
                   vmax=len(OUTCOMES) - 0.5, interpolation="nearest",
                   extent=((ps[0] - dp) / 1e3, (ps[-1] + dp) / 1e3, vs[0] - dv, vs[-1] + dv))
         ax.set_title(c, fontsize=10)
         ax.set_xlabel("constant load power [kW]")
         ax.set_ylabel("target reference voltage [V]")
-    fig.legend(handles=[Patch(color=COLOURS[o], label=o) for o in OUTCOMES], loc="outside right center",
-               fontsize=8)
+    fig.legend(handles=[Patch(color=COLOURS[o], label=o) for o in OUTCOMES],
+               loc="outside right upper" if hatch else "outside right center", fontsize=8)
+    if hatch:
+        fig.legend(handles=[Patch(facecolor=COLOURS["trips"], edgecolor="white", hatch=h,
+                                  label=c) for c, h in hatch.items()],
+                   loc="outside right lower", fontsize=7, title="trips: first cause",
+                   title_fontsize=8)
     if title:
         fig.suptitle(title, fontsize=10)
+    return fig
+
+
+def heat_map_png(rows: list[dict[str, Any]], dest: Path, title: str = "") -> Path:
+    fig = heat_map_figure(rows, title)  # sets the Agg backend before pyplot is imported here
+    import matplotlib.pyplot as plt
     fig.savefig(dest, dpi=90)
     plt.close(fig)
     return dest

@@ -26,11 +26,11 @@ def test_pool_results_are_identical_run_to_run_and_to_one_process(small_tasks):
     b = env.run_envelope(small_tasks, workers=2)
     c = env.run_envelope(small_tasks, workers=1)
     assert a == b == c
-    flat = [o for row in a for o in row]
+    flat = [cell.outcome for row in a for cell in row]
     assert set(flat) <= set(env.OUTCOMES)
     # the design region of the cascaded PI (400 V, up to 100 kW) tracks
     i400 = [t.v for t in small_tasks].index(400.0)
-    assert a[i400] == ["tracks"] * 4
+    assert [cell.outcome for cell in a[i400]] == ["tracks"] * 4
 
 
 def test_dask_backend_gives_the_same_map(small_tasks):
@@ -83,10 +83,10 @@ def test_cli_writes_csv_png_and_json(tmp_path):
     p = subprocess.run(cmd, capture_output=True, text=True, timeout=600)
     assert p.returncode == 0, p.stderr
     counts = json.loads(p.stdout)
-    assert sum(counts["cascaded_pi"].values()) == 12
+    assert sum(counts["cascaded_pi"]["outcomes"].values()) == 12
     with open(out / "envelope.csv") as fh:
         rows = list(csv.DictReader(fh))
-    assert len(rows) == 12 and set(rows[0]) == {"controller", "v_ref_V", "p_load_W", "outcome"}
+    assert len(rows) == 12 and list(rows[0]) == list(env.CSV_COLUMNS)
     assert (out / "envelope.png").stat().st_size > 1000
     # run again into the same folder: refused, nothing overwritten
     p = subprocess.run(cmd, capture_output=True, text=True, timeout=600)
@@ -104,7 +104,7 @@ def test_far_from_the_design_point_linear_fails_flatness_tracks():
     grid = env.Grid.parse("150:150", "50e3:50e3", "1x1")
     tasks = env.tasks_for(scen.read_text(), scen.name,
                           ["cascaded_pi", "state_feedback", "flatness"], grid)
-    out = {t.controller: env.run_row(t)[0] for t in tasks}
+    out = {t.controller: env.run_row(t)[0].outcome for t in tasks}
     assert out["flatness"] == "tracks"
     assert out["state_feedback"] != "tracks"
     assert out["cascaded_pi"] != "tracks"
@@ -127,3 +127,319 @@ def test_envelope_of_a_scenario_with_a_battery_model_reference_runs(demo_path, t
     assert len(rows) == 4
     # near the demo's own operating point (about 400 V) and light load, the baseline tracks
     assert all(r["outcome"] == "tracks" for r in rows), rows
+    # a cell of it as a normal run starts where the map's points start (the battery model's
+    # voltage at t = 0, found by the run's own fixed-point search) and tracks the same way
+    p = subprocess.run([sys.executable, "-m", "hilrig.runtime.cli", "envelope", demo_path,
+                        "--cell", "420,20e3", "--controllers", "cascaded_pi", "--out",
+                        str(tmp_path / "cell"), "--headless"],
+                       capture_output=True, text=True, timeout=600)
+    assert p.returncode == 0, p.stdout + p.stderr
+    assert env.cell_of_run(tmp_path / "cell", 420.0) == row_cell(find(
+        read_rows(out / "envelope.csv"), "cascaded_pi", 420.0, 20e3)) == env.Cell("tracks")
+    assert "cell outcome (the map's rules, tracking within 2 %): tracks" in p.stdout
+
+
+# --- the envelope as a first-class command: --headless, --set, elapsed time, progress, the
+# run's notices, first trip causes, re-running a cell ---------------------------------------
+
+HILRIG = [sys.executable, "-m", "hilrig.runtime.cli"]
+MAP_SCENARIO = ROOT / "examples" / "envelope.toml"
+#: a tighter over-voltage interlock (560 V) than the scenario's 650 V, so that the 600 V cells
+#: trip on it, beside the converter's 600 A current rating (both: the scenario's demo data)
+INTERLOCKS_SET = ('interlocks=[{signal = "v_out", above = "560 V"}, '
+                  '{signal = "i_L1", above = "600 A"}]')
+#: two voltages x five load powers, both candidates whose loops the tests above compile
+MAP_ARGS = [MAP_SCENARIO, "--controllers", "cascaded_pi,flatness", "--v-range", "100:600",
+            "--grid", "2x5", "--p-range", "0:150e3", "--workers", "1", "--set", INTERLOCKS_SET]
+V_CAUSE = "interlock v_out > 560 V"
+I_CAUSE = "interlock i_L1 > 600 A"
+
+
+def cli(*args, timeout=600):
+    return subprocess.run(HILRIG + [str(a) for a in args], capture_output=True, text=True,
+                          timeout=timeout, env=dict(os.environ, COLUMNS="200"))
+
+
+def read_rows(path: Path) -> list[dict]:
+    """envelope.csv's rows with numbers as floats and empty times as None."""
+    with open(path, newline="") as fh:
+        rows = list(csv.DictReader(fh))
+    for r in rows:
+        for k in ("v_ref_V", "p_load_W", "first_cause_time_s", "end_event_time_s"):
+            r[k] = float(r[k]) if r[k] != "" else None
+    return rows
+
+
+def row_cell(r: dict) -> "env.Cell":
+    return env.Cell(r["outcome"], r["first_cause"], r["first_cause_time_s"], r["end_event"],
+                    r["end_event_time_s"])
+
+
+def find(rows, controller, v, p):
+    (r,) = [r for r in rows if (r["controller"], r["v_ref_V"], r["p_load_W"]) == (controller, v, p)]
+    return r
+
+
+def rerun(command: str, out: Path):
+    """Run a printed ``hilrig run ...`` command as it stands (the interpreter's module in place
+    of the console script), into ``out``."""
+    import shlex
+    words = shlex.split(command)
+    assert words[:2] == ["hilrig", "run"], command
+    return cli(*words[1:], "--out", out, "--headless")
+
+
+@pytest.fixture(scope="module")
+def two_causes(tmp_path_factory):
+    import time
+    out = tmp_path_factory.mktemp("envelope") / "text"
+    t0 = time.perf_counter()
+    p = cli("envelope", *MAP_ARGS, "--out", out, "--headless")
+    wall = time.perf_counter() - t0
+    assert p.returncode == 0, p.stdout + p.stderr
+    return out, p.stdout, wall
+
+
+@pytest.fixture(scope="module")
+def two_causes_json(tmp_path_factory):
+    out = tmp_path_factory.mktemp("envelope") / "json"
+    p = cli("envelope", *MAP_ARGS, "--out", out, "--json")
+    assert p.returncode == 0, p.stdout + p.stderr
+    return out, json.loads(p.stdout)
+
+
+def test_set_reaches_every_candidate_headless_output_and_the_whole_elapsed_time(two_causes):
+    import re
+    out, stdout, wall = two_causes
+    rows = read_rows(out / "envelope.csv")
+    # with the scenario's own 650 V interlock both candidates track at 600 V ...
+    grid = env.Grid.parse("600:600", "0:150e3", "1x2")
+    for t in env.tasks_for(MAP_SCENARIO.read_text(), MAP_SCENARIO.name,
+                           ["cascaded_pi", "flatness"], grid):
+        assert [c.outcome for c in env.run_row(t)] == ["tracks", "tracks"], t.controller
+    # ... and --set's 560 V interlock reached both: also flatness, which is not the scenario's
+    # own controller (a tracking output must pass 560 V on its way to 600 V)
+    for c in ("cascaded_pi", "flatness"):
+        at600 = [r for r in rows if r["controller"] == c and r["v_ref_V"] == 600.0]
+        assert len(at600) == 5 and {r["first_cause"] for r in at600} == {V_CAUSE}, at600
+    assert "\x1b[" not in stdout  # --headless: no colours, no progress bar
+    # the elapsed time covers compiling (or loading) the loops and the map, not the pool alone
+    m = re.search(r"(\d+) points in ([\d.]+) s \(loops compiled or loaded in ([\d.]+) s, "
+                  r"map ([\d.]+) s\)", stdout)
+    assert m, stdout
+    n, total, loops, grid_s = int(m[1]), float(m[2]), float(m[3]), float(m[4])
+    assert n == 20
+    assert total >= loops + grid_s - 0.1  # each rounded to 0.1 s
+    assert total <= wall
+
+
+def test_each_cell_keeps_its_first_trip_cause_and_end_event_in_the_csv(two_causes):
+    out, _, _ = two_causes
+    rows = read_rows(out / "envelope.csv")
+    assert list(rows[0]) == list(env.CSV_COLUMNS) and len(rows) == 20
+    for r in rows:
+        # a trip has a cause and its time; a collapse without a trip has the loop's end event
+        assert (r["outcome"] == "trips") == (r["first_cause"] != "") == (
+            r["first_cause_time_s"] is not None), r
+        if r["outcome"] == "collapses":
+            assert r["end_event"] == "voltage collapse" and r["end_event_time_s"] > 5e-3, r
+        assert (r["end_event"] == "") == (r["end_event_time_s"] is None), r
+        if r["outcome"] == "tracks":
+            assert r["end_event"] == "", r
+    # 600 V cells: the start is settled at 400 V and the reference steps at 5 ms, shaped with a
+    # slew limit of 200 kV/s (the scenario's shaping), so it reaches 560 V no earlier than
+    # 5 ms + 160 V / 200 kV/s = 5.8 ms [derived]
+    for r in rows:
+        if r["v_ref_V"] == 600.0:
+            assert r["first_cause"] == V_CAUSE and 5.8e-3 <= r["first_cause_time_s"] < 60e-3, r
+    # 100 V at 75 kW and more needs P / V >= 750 A, beyond the 600 A interlock (P = V I): no
+    # cell there tracks; flatness tracks wherever the current allows, so it trips on current
+    for r in rows:
+        if r["v_ref_V"] == 100.0 and r["p_load_W"] >= 75e3:
+            assert r["outcome"] in ("trips", "collapses"), r
+            if r["outcome"] == "trips":
+                assert r["first_cause"] == I_CAUSE, r
+            if r["controller"] == "flatness":
+                assert r["outcome"] == "trips", r
+    for c in ("cascaded_pi", "flatness"):
+        assert find(rows, c, 100.0, 0.0)["outcome"] == "tracks"
+    # a trip stays "trips" when the safe output (0 V) then lets the voltage collapse
+    assert any(r["outcome"] == "trips" and r["end_event"] == "voltage collapse"
+               and r["end_event_time_s"] > r["first_cause_time_s"] for r in rows)
+    # this map has both kinds of cell: a collapse without a trip (the cascaded PI at 100 V)
+    assert any(r["outcome"] == "collapses" for r in rows)
+
+
+def test_trip_causes_in_the_json_and_both_maps_legends(two_causes, two_causes_json):
+    from collections import Counter
+    out, stdout, _ = two_causes
+    _, doc = two_causes_json
+    rows = read_rows(out / "envelope.csv")
+    assert read_rows(two_causes_json[0] / "envelope.csv") == rows  # deterministic
+    for c in ("cascaded_pi", "flatness"):
+        mine = [r for r in rows if r["controller"] == c]
+        assert doc[c]["outcomes"] == {o: sum(r["outcome"] == o for r in mine) for o in env.OUTCOMES}
+        assert doc[c]["trip_causes"] == dict(Counter(r["first_cause"] for r in mine
+                                                     if r["outcome"] == "trips"))
+    # terminal map: a letter per cause, most frequent first, with a key
+    n_v = sum(r["first_cause"] == V_CAUSE for r in rows)
+    n_i = sum(r["first_cause"] == I_CAUSE for r in rows)
+    assert n_v == 10 and 0 < n_i < n_v
+    assert f"A trips: {V_CAUSE} ({n_v} cells)" in stdout
+    assert f"B trips: {I_CAUSE} ({n_i} cell{'s' if n_i > 1 else ''})" in stdout
+    letter = {V_CAUSE: "A", I_CAUSE: "B"}
+    lines = stdout.splitlines()
+    for c in ("cascaded_pi", "flatness"):
+        head = next(i for i, ln in enumerate(lines) if ln.startswith(f"{c}  tracks"))
+        for j, v in enumerate((600.0, 100.0)):
+            mine = sorted((r for r in rows if r["controller"] == c and r["v_ref_V"] == v),
+                          key=lambda r: r["p_load_W"])
+            want = "".join(letter[r["first_cause"]] if r["outcome"] == "trips"
+                           else env.SYMBOLS[r["outcome"]] for r in mine)
+            assert lines[head + 1 + j] == f"{v:7.1f} V  {want}", lines[head + 1 + j]
+    # heat map: a second legend lists the causes; each tripping cell carries its cause's hatch
+    assert (out / "envelope.png").stat().st_size > 1000
+    import matplotlib.pyplot as plt
+    fig = env.heat_map_figure(rows)
+    try:
+        assert len(fig.legends) == 2
+        assert [t.get_text() for t in fig.legends[1].get_texts()] == [V_CAUSE, I_CAUSE]
+        hatches = [h.get_hatch() for h in fig.legends[1].legend_handles]
+        assert len(set(hatches)) == 2 and None not in hatches
+        for ax, c in zip(fig.axes, ("cascaded_pi", "flatness")):
+            drawn = Counter(pt.get_hatch() for pt in ax.patches)
+            want = Counter(hatches[[V_CAUSE, I_CAUSE].index(r["first_cause"])] for r in rows
+                           if r["controller"] == c and r["outcome"] == "trips")
+            assert drawn == want, c
+    finally:
+        plt.close(fig)
+
+
+def test_the_worst_cells_command_reruns_it_as_a_normal_run_with_the_same_outcome(
+        two_causes_json, tmp_path):
+    out, doc = two_causes_json
+    rows = read_rows(out / "envelope.csv")
+    seen = set()
+    for c in ("cascaded_pi", "flatness"):
+        w = doc[c]["worst"]
+        r = find(rows, c, w["v_ref_V"], w["p_load_W"])
+        assert w["outcome"] == r["outcome"] != "tracks"
+        seen.add(w["outcome"])
+        p = rerun(w["command"], tmp_path / c)
+        assert p.returncode == 0, p.stdout + p.stderr
+        # the run's recording, classified by the map's rules, is the map's cell: the same
+        # outcome, first cause and times
+        assert env.cell_of_run(tmp_path / c, w["v_ref_V"]) == row_cell(r)
+        s = json.loads((tmp_path / c / "summary.json").read_text())
+        if r["first_cause"] == I_CAUSE:
+            assert s["trip"]["value"] > 600.0
+    # the worst cells of this map: a collapse (cascaded PI) and a trip (flatness)
+    assert seen == {"collapses", "trips"}
+
+
+def test_cell_option_runs_one_cell_as_a_normal_run(two_causes, tmp_path):
+    out, _, _ = two_causes
+    r = find(read_rows(out / "envelope.csv"), "flatness", 600.0, 75e3)
+    assert r["outcome"] == "trips"
+    folder = tmp_path / "cell"
+    args = ["envelope", MAP_SCENARIO, "--cell", "600 V,75 kW", "--controller", "flatness",
+            "--set", INTERLOCKS_SET, "--out", folder, "--headless"]
+    p = cli(*args)
+    assert p.returncode == 0, p.stdout + p.stderr
+    for f in ("recording.h5", "summary.json", "scenario.toml", "overview.png"):
+        assert (folder / f).exists(), f
+    assert env.cell_of_run(folder, 600.0) == row_cell(r)
+    assert (f"cell outcome (the map's rules, tracking within 2 %): trips: {V_CAUSE} at "
+            f"{r['first_cause_time_s'] * 1e3:.3g} ms") in p.stdout
+    # the printed command is the same run
+    cmd = next(ln.strip() for ln in p.stdout.splitlines() if ln.strip().startswith("hilrig run "))
+    assert "flatness" in cmd and "--out" in cmd
+    # a second time: refused, nothing overwritten
+    p = cli(*args)
+    assert p.returncode == 2 and "nothing was overwritten" in p.stdout, p.stdout
+    p = cli("envelope", MAP_SCENARIO, "--cell", "600 V", "--controller", "flatness")
+    assert p.returncode == 2 and "--cell '600 V': write V,P" in p.stdout, p.stdout
+
+
+#: test data (invented, not a device): an 80 V DC link feeding a 48 V output
+V80 = """\
+title = "80 V DC link, 48 V output (test data)"
+
+[timing]
+Ts = "50 us"
+duration = "40 ms"
+
+[plant]
+plugin = "two_stage_lc"
+V_dc = "80 V"
+
+[controller]
+plugin = "cascaded_pi"
+
+[reference]
+plugin = "profile"
+points = [[0, "48 V"]]
+
+[[load.points]]
+t = 0
+P = "500 W"
+
+[limits]
+v_collapse = "5 V"
+"""
+
+
+def test_a_grid_above_the_plants_v_dc_gets_runs_notice_before_the_map(tmp_path):
+    scen = tmp_path / "v80.toml"
+    scen.write_text(V80)
+    p = cli("envelope", scen, "--controllers", "cascaded_pi", "--v-range", "40:120",
+            "--grid", "2x1", "--p-range", "0:0", "--v-start", "90 V", "--workers", "1",
+            "--out", tmp_path / "map", "--headless")
+    assert p.returncode == 0, p.stdout + p.stderr
+    lines = p.stdout.splitlines()
+    notes = [i for i, ln in enumerate(lines) if ln.startswith("notice: ")]
+    first_run = next(i for i, ln in enumerate(lines) if ln.startswith("preparing the compiled"))
+    assert len(notes) == 2 and max(notes) < first_run, p.stdout
+    start, target = (lines[i] for i in notes)
+    assert start.startswith("notice: start voltage (--v-start) = 90 V is above plant.V_dc = 80 V")
+    assert target.startswith("notice: target voltage (--v-range) = 120 V is above plant.V_dc = "
+                             "80 V") and target.endswith("(1 of 2 target voltages)")
+    # an averaged buck stage cannot put out more than V_dc (common practice, no source): the
+    # 120 V cell saturates, and it is the worst cell
+    rows = read_rows(tmp_path / "map" / "envelope.csv")
+    assert find(rows, "cascaded_pi", 120.0, 0.0)["outcome"] == "saturates"
+    # the notice is run's own: the worst cell's run says the same of its 120 V reference
+    cmd = next(ln.strip() for ln in lines if ln.strip().startswith("hilrig run "))
+    r = rerun(cmd, tmp_path / "cell")
+    assert r.returncode == 0, r.stdout + r.stderr
+    run_note = next(ln for ln in r.stdout.splitlines() if ln.startswith("notice: "))
+    assert run_note == ("notice: reference.points = " + target.split(" = ", 1)[1]
+                        .removesuffix(" (1 of 2 target voltages)"))
+    assert env.cell_of_run(tmp_path / "cell", 120.0).outcome == "saturates"
+    # a grid and start within the DC link: no notice
+    from hilrig.runtime.scenario import load_scenario
+    assert env.grid_notices(load_scenario(scen), env.Grid.parse("20:60", "0:0", "2x1")) == []
+
+
+def test_an_unknown_set_key_is_one_error_before_any_run(tmp_path):
+    bad = "controller.kx=1"
+    p = cli("envelope", MAP_SCENARIO, "--controllers", "cascaded_pi,flatness", "--grid", "2x2",
+            "--set", bad, "--out", tmp_path / "map")
+    assert p.returncode == 2
+    # the same message as run's, one line, nothing ran or was written
+    r = cli("run", MAP_SCENARIO, "--set", bad, "--out", tmp_path / "run")
+    assert r.returncode == 2
+    assert p.stdout == r.stdout and len(p.stdout.strip().splitlines()) == 1, p.stdout
+    assert "unknown key 'controller.kx'" in p.stdout and "Traceback" not in p.stderr
+    assert not (tmp_path / "map").exists()
+    p = cli("envelope", MAP_SCENARIO, "--controllers", "cascaded_pi", "--set", "no-equals-sign")
+    assert p.returncode == 2 and p.stdout.startswith("error: --set 'no-equals-sign': write KEY=VALUE")
+
+
+def test_progress_counts_operating_points(small_tasks):
+    total = sum(len(t.p) for t in small_tasks)
+    for workers in (1, 2):
+        calls = []
+        env.run_envelope(small_tasks, workers=workers, progress=lambda d, n: calls.append((d, n)))
+        assert [d for d, _ in calls] == list(range(4, total + 1, 4))  # a row of 4 points each
+        assert {n for _, n in calls} == {total}
