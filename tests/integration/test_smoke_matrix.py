@@ -133,6 +133,11 @@ def test_compare(tmp_path, name):
     ok(p)
     got = json.loads(p.stdout[p.stdout.index("{"):])
     assert set(got) == set(CONTROLLERS.split(","))
+    # outcome-aware ranks: 1..3, and no candidate that did not complete above one that did
+    ranked = sorted(got.values(), key=lambda r: r["rank"])
+    assert [r["rank"] for r in ranked] == [1, 2, 3]
+    done = [r["outcome"]["completed"] for r in ranked]
+    assert done == sorted(done, reverse=True), ranked
     assert (tmp_path / "cmp" / "comparison.json").is_file()
 
 
@@ -144,8 +149,8 @@ def test_envelope(tmp_path, name):
     ok(p)
     got = json.loads(p.stdout[p.stdout.index("{"):])
     assert set(got) == set(CONTROLLERS.split(","))
-    for counts in got.values():
-        assert sum(v for v in counts.values() if isinstance(v, int)) == 4
+    for per in got.values():
+        assert sum(per["outcomes"].values()) == 4
     assert (tmp_path / "env" / "envelope.csv").is_file()
 
 
