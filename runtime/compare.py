@@ -2,9 +2,10 @@
 
 Each candidate runs the same scenario (same plant, load, reference, interlocks, seed) with only
 the controller replaced; each gets its own run folder ``OUT/<controller>/``. The comparison
-reports, per candidate, the characteristics of the largest reference step (see
-:mod:`hilrig.runtime.metrics`), the whole-run tracking metrics, trips and the loop's compute
-time per tick, and draws one figure per quantity with every candidate overlaid.
+reports, per candidate, the characteristics of the largest reference step and the metrics of
+every reference segment (holds, steps, ramps; see :mod:`hilrig.runtime.metrics`), the whole-run
+tracking metrics, trips and the loop's compute time per tick, and draws one figure per quantity
+with every candidate overlaid.
 """
 from __future__ import annotations
 
@@ -13,13 +14,14 @@ import re
 from pathlib import Path
 from typing import Any, Callable
 
-from .metrics import StepMetrics, largest_step
+from .metrics import largest_change, largest_step
 from .recording import dumps_json, finite_or_none, open_run
 from .run import run_scenario
 from .scenario import load_scenario
 
 JSON_KEYS = ("rise_time_s", "settling_time_s", "overshoot_pct", "steady_state_error_V", "iae_Vs",
-             "rms_error_V", "max_abs_error_V", "saturation_time_s", "trips", "compute_ns_per_tick")
+             "rms_error_V", "max_abs_error_V", "saturation_time_s", "trips", "compute_ns_per_tick",
+             "segments")
 
 
 def folder_name(candidate: str) -> str:
@@ -58,20 +60,22 @@ def compare(scenario: Path, candidates: list[str], out: Path, *, overwrite: bool
             on_run(name)
         res = run_scenario(sc, out / folder_name(name), overwrite=overwrite, notice=notice)
         s = res.summary
-        steps = [StepMetrics(**d) for d in s["steps"]]
-        big = largest_step(steps)
+        segments = s["segments"]
+        big = largest_step(segments)
         m = s["metrics"]
         results[name] = {
-            "rise_time_s": big.rise_time_s if big else math.nan,
-            "settling_time_s": big.settling_time_s if big else math.nan,
-            "overshoot_pct": big.overshoot_pct if big else math.nan,
-            "steady_state_error_V": big.steady_state_error_V if big else math.nan,
+            "rise_time_s": big["rise_time_s"] if big else math.nan,
+            "settling_time_s": big["settling_time_s"] if big else math.nan,
+            "overshoot_pct": big["overshoot_pct"] if big else math.nan,
+            "steady_state_error_V": big["steady_state_error_V"] if big else math.nan,
             "iae_Vs": m["iae_Vs"], "rms_error_V": m["rms_error_V"],
             "max_abs_error_V": m["max_abs_error_V"], "saturation_time_s": m["saturation_time_s"],
             "trips": m["trips"],
             "compute_ns_per_tick": s["timing"]["loop_ns_per_tick"],
             "outcome": "completed" if s["completed"] else (s["end_event"] or "interrupted"),
-            "step": big.as_dict() if big else None,
+            "step": big,
+            "change": largest_change(segments),
+            "segments": segments,
             "folder": str(res.folder),
         }
     (out / "comparison.json").write_text(dumps_json(results, indent=2) + "\n")
@@ -95,12 +99,12 @@ def plot_comparison(out: Path, results: dict[str, dict[str, Any]]) -> list[Path]
 
     runs = {name: open_run(r["folder"]) for name, r in results.items()}
     written = []
-    # a zoom window around the largest step when there is one, else the whole run
+    # a zoom window around the largest step or ramp when there is one, else the whole run
     first = next(iter(results.values()))
     window = None
-    if first["step"]:
-        t0 = first["step"]["t_step_s"]
-        window = (t0 - 0.002, t0 + 0.012)
+    if first["change"]:
+        t0 = first["change"]["t_start_s"]
+        window = (t0 - 0.002, first["change"]["t_end_s"] + 0.012)
     specs = [("compare_v_out.png", "output voltage [V]", lambda r: r.signals["v_out"], True),
              ("compare_error.png", "v_ref - v_out [V]", lambda r: r.signals["v_ref"] - r.signals["v_out"], False),
              ("compare_u.png", "converter command u [V]", lambda r: r.signals["u"], False)]
@@ -115,7 +119,7 @@ def plot_comparison(out: Path, results: dict[str, dict[str, Any]]) -> list[Path]
                 ax.plot(run.time, get(run), lw=0.9, label=name)
             if win:
                 ax.set_xlim(*win)
-                ax.set_title("around the largest reference step", fontsize=9)
+                ax.set_title("around the largest reference step or ramp", fontsize=9)
             ax.set_xlabel("time [s]")
             ax.set_ylabel(ylabel)
             ax.grid(True, lw=0.3)

@@ -23,7 +23,7 @@ from hilrig.safety.interlocks import (DERIVED, EVENT_NAMES, EVT_RESET_IDLE, EVT_
 from . import loop as loopgen
 from . import shaping
 from .errors import PluginError, ScenarioError
-from .metrics import TrackingMetrics, step_metrics
+from .metrics import TrackingMetrics, segment_metrics
 from .recording import SCENARIO, SUMMARY, RunWriter, SignalSpec, clear_derived, dumps_json
 from .scenario import PluginChoice, Scenario
 from .version import installed as installed_version
@@ -514,7 +514,8 @@ def execute(sc: Scenario, prep: Prepared, folder: Path,
         "watchdogs": dict(sc.watchdogs),
         "v_out_start_V": prep.v0,
         "metrics": result,
-        "steps": [],
+        "segments": [],
+        "segmentation": {},
         "timing": {
             **timing,
             "process_start_to_first_tick_s": startup,
@@ -534,10 +535,10 @@ def execute(sc: Scenario, prep: Prepared, folder: Path,
             attrs["bridge"] = dumps_json(more["bridge"])
     # wall-clock figures of SIL runs stay out of the recording so that it is bit-identical
     writer.close(attrs)
-    # per-step metrics need whole signals: read the two back from the closed recording
+    # per-segment metrics need whole signals: read the two back from the closed recording
     import h5py
     with h5py.File(folder / "recording.h5", "r") as f:
-        steps = step_metrics(f["time"][()], f["signals/v_out"][()], f["signals/v_ref_raw"][()])
-    summary["steps"] = [st.as_dict() for st in steps]
+        summary["segments"], summary["segmentation"] = segment_metrics(
+            f["time"][()], f["signals/v_out"][()], f["signals/v_ref_raw"][()])
     (folder / SUMMARY).write_text(dumps_json(summary, indent=2) + "\n")
     return RunResult(folder=folder, summary=summary)
