@@ -136,6 +136,110 @@ def _summary_table(console, s: dict, folder: Path | None) -> None:
     if folder is not None:
         t.add_row("run folder", str(folder))
     console.print(t)
+    _segments_table(console, s.get("segments") or [], s.get("segmentation"))
+
+
+#: the segment tables' metric columns: heading, kinds that have it, key, scale, format
+_SEGMENT_COLS = (("rise/lag [ms]", ("step",), "rise_time_s", 1e3, ".3g"),
+                 ("rise/lag [ms]", ("ramp",), "lag_s", 1e3, ".3g"),
+                 ("settle [ms]", ("step", "ramp"), "settling_time_s", 1e3, ".3g"),
+                 ("overshoot [%]", ("step", "ramp"), "overshoot_pct", 1.0, ".3g"),
+                 ("max |e| [V]", ("hold", "ramp"), "max_abs_error_V", 1.0, ".2f"),
+                 ("ss error [V]", ("step", "ramp"), "steady_state_error_V", 1.0, ".2f"))
+_SEGMENT_HEADS = tuple(dict.fromkeys(c[0] for c in _SEGMENT_COLS))
+
+
+def _segment_label(i: int, seg: dict) -> list[str]:
+    """The cells that say which segment it is: number and kind, times, reference."""
+    t0, t1 = seg.get("t_start_s"), seg.get("t_end_s")
+    when = _num(t0, ".5g") if seg.get("kind") == "step" else f"{_num(t0, '.5g')}..{_num(t1, '.5g')}"
+    v0, v1 = seg.get("v_from_V"), seg.get("v_to_V")
+    if seg.get("kind") == "hold":
+        lo, hi = seg.get("v_ref_min_V"), seg.get("v_ref_max_V")
+        ref = _num(v0, ".4g") if lo == hi else f"{_num(lo, '.4g')}..{_num(hi, '.4g')}"
+    else:
+        ref = f"{_num(v0, '.4g')}->{_num(v1, '.4g')}"
+    return [f"{i} {seg.get('kind')}", when, ref]
+
+
+def _segment_cells(seg: dict) -> list[str]:
+    """The metric cells of one segment ('' where its kind has no such metric)."""
+    kind = seg.get("kind")
+    cells = dict.fromkeys(_SEGMENT_HEADS, "")
+    for head, kinds, k, sc, fm in _SEGMENT_COLS:
+        if kind in kinds:
+            cells[head] = _num(seg[k] * sc if _finite(seg.get(k)) else None, fm)
+    return list(cells.values())
+
+
+_SEGMENT_NOTE = ("step: 10-90 % rise, 2 % settling, overshoot (python-control step_info); ramp: "
+                 "lag of v_out behind the ramp at its end, settling after its end, largest "
+                 "|v_ref_raw - v_out| until settled; hold: largest |v_ref_raw - v_out| once the "
+                 "previous response settled")
+
+
+def _segment_table(title: str, label_heads: tuple):
+    from rich import box
+    from rich.markup import escape
+    from rich.table import Table
+    t = Table(title=escape(title), title_justify="left", header_style="bold", box=box.SIMPLE_HEAD,
+              collapse_padding=True)
+    for head in label_heads:
+        t.add_column(escape(head), no_wrap=True)
+    for head in _SEGMENT_HEADS:
+        # one word a line: the table fits an 80-column terminal
+        t.add_column(escape(head.replace("overshoot", "over-\nshoot").replace(" ", "\n")),
+                     justify="right")
+    return t
+
+
+def _segments_table(console, segments: list, info: dict | None,
+                    title: str = "reference segments", note: bool = True) -> None:
+    """Every segment of a run's reference with its metrics, one row each."""
+    from rich.markup import escape
+    if not segments:
+        return
+    t = _segment_table(title, ("segment", "t [s]", "v_ref [V]"))
+    for i, seg in enumerate(segments):
+        t.add_row(*[escape(c) for c in _segment_label(i + 1, seg)], *_segment_cells(seg))
+    console.print(t)
+    if not note:
+        return
+    text = _SEGMENT_NOTE
+    if info:
+        left = (info.get("changes_found") or 0) - (info.get("changes_listed") or 0)
+        text += (f". Changes of the raw reference above {_num(info.get('threshold_V'), '.3g')} V"
+                 " count" + (f"; {left} smaller steps and ramps are not listed" if left else ""))
+    console.print(escape(text + "."))
+
+
+def _compare_segments(console, by_name: dict) -> None:
+    """compare's segments: when every controller's reference split the same way (a profile's),
+    one table with a row per segment and controller under a list of the segments; else each
+    controller's own table (a battery model's reference follows each controller's output)."""
+    from rich.markup import escape
+    lists = list(by_name.values())
+    if not any(lists):
+        return
+
+    def shape(segs):
+        return [(g.get("kind"), g.get("t_start_s"), g.get("t_end_s")) for g in segs]
+    if all(shape(x) == shape(lists[0]) for x in lists):
+        console.print("reference segments:")
+        for i, seg in enumerate(lists[0]):
+            num_kind, when, ref = _segment_label(i + 1, seg)
+            console.print(escape(f"  {num_kind}: t {when} s, v_ref {ref} V"))
+        t = _segment_table("reference segments, per controller", ("segment", "controller"))
+        for i, seg in enumerate(lists[0]):
+            for j, (name, segs) in enumerate(by_name.items()):
+                t.add_row(escape(_segment_label(i + 1, seg)[0]) if j == 0 else "",
+                          escape(str(name)), *_segment_cells(segs[i]),
+                          end_section=j == len(by_name) - 1)
+        console.print(t)
+    else:
+        for name, segs in by_name.items():
+            _segments_table(console, segs, None, title=f"reference segments: {name}", note=False)
+    console.print(escape(_SEGMENT_NOTE + "."))
 
 
 def _view_args(p, remote: bool = True) -> None:
@@ -350,6 +454,7 @@ def _compare(console, args) -> None:
                   "(column covers). rise, settle, overshoot and ss error: of the largest "
                   "reference step of the run (10-90 % rise, 2 % settling band). Plots and run "
                   "folders: " + escape(str(out)))
+    _compare_segments(console, {labels[n]: r["segments"] for n, r in results.items()})
 
 
 def _envelope(console, args, plain: bool) -> None:

@@ -3,9 +3,9 @@
 Each candidate runs the same scenario (same plant, load, reference, interlocks, seed) with only
 the controller replaced; each gets its own run folder ``OUT/<controller>/``. The comparison
 reports, per candidate, its outcome (:mod:`hilrig.runtime.outcome`), the characteristics of the
-largest reference step (see :mod:`hilrig.runtime.metrics`), the tracking metrics over the time
-the run lasted, trips and the loop's compute time per tick, and draws one figure per quantity
-with every candidate overlaid.
+largest reference step and the metrics of every reference segment (holds, steps, ramps; see
+:mod:`hilrig.runtime.metrics`), the tracking metrics over the time the run lasted, trips and the
+loop's compute time per tick, and draws one figure per quantity with every candidate overlaid.
 
 Candidates are ranked by :func:`hilrig.runtime.outcome.rank_key`: every run that completed
 before every run that did not, whatever their metrics (a run that ended early has metrics of
@@ -19,14 +19,15 @@ import re
 from pathlib import Path
 from typing import Any, Callable
 
-from .metrics import StepMetrics, largest_step
+from .metrics import largest_change, largest_step
 from .outcome import coverage_text, judge, rank_key, time_text
 from .recording import dumps_json, finite_or_none, open_run
 from .run import run_scenario
 from .scenario import load_scenario
 
 JSON_KEYS = ("rise_time_s", "settling_time_s", "overshoot_pct", "steady_state_error_V", "iae_Vs",
-             "rms_error_V", "max_abs_error_V", "saturation_time_s", "trips", "compute_ns_per_tick")
+             "rms_error_V", "max_abs_error_V", "saturation_time_s", "trips", "compute_ns_per_tick",
+             "segments")
 #: what ``--json`` gives per candidate besides the metrics
 JSON_FIELDS = ("rank", "outcome", "covers_s") + JSON_KEYS
 #: the metric that orders candidates of the same outcome class (smaller first)
@@ -75,8 +76,8 @@ def compare(scenario: Path, candidates: list[str], out: Path, *, overwrite: bool
             on_run(name)
         res = run_scenario(sc, out / folder_name(name), overwrite=overwrite, notice=notice)
         s = res.summary
-        steps = [StepMetrics(**d) for d in s["steps"]]
-        big = largest_step(steps)
+        segments = s["segments"]
+        big = largest_step(segments)
         m = s["metrics"]
         oc = judge(s)
         results[name] = {
@@ -84,15 +85,17 @@ def compare(scenario: Path, candidates: list[str], out: Path, *, overwrite: bool
             "outcome": oc,
             # the metrics describe the run up to here (the whole run when it reached its end)
             "covers_s": oc["end_time_s"],
-            "rise_time_s": big.rise_time_s if big else math.nan,
-            "settling_time_s": big.settling_time_s if big else math.nan,
-            "overshoot_pct": big.overshoot_pct if big else math.nan,
-            "steady_state_error_V": big.steady_state_error_V if big else math.nan,
+            "rise_time_s": big["rise_time_s"] if big else math.nan,
+            "settling_time_s": big["settling_time_s"] if big else math.nan,
+            "overshoot_pct": big["overshoot_pct"] if big else math.nan,
+            "steady_state_error_V": big["steady_state_error_V"] if big else math.nan,
             "iae_Vs": m["iae_Vs"], "rms_error_V": m["rms_error_V"],
             "max_abs_error_V": m["max_abs_error_V"], "saturation_time_s": m["saturation_time_s"],
             "trips": m["trips"],
             "compute_ns_per_tick": s["timing"]["loop_ns_per_tick"],
-            "step": big.as_dict() if big else None,
+            "step": big,
+            "change": largest_change(segments),
+            "segments": segments,
             "folder": str(res.folder),
         }
     results = ranked(results)
@@ -137,12 +140,12 @@ def plot_comparison(out: Path, results: dict[str, dict[str, Any]]) -> list[Path]
 
     runs = {name: open_run(r["folder"]) for name, r in results.items()}
     written = []
-    # a zoom window around the largest step when there is one, else the whole run
+    # a zoom window around the largest step or ramp when there is one, else the whole run
     first = next(iter(results.values()))
     window = None
-    if first["step"]:
-        t0 = first["step"]["t_step_s"]
-        window = (t0 - 0.002, t0 + 0.012)
+    if first["change"]:
+        t0 = first["change"]["t_start_s"]
+        window = (t0 - 0.002, first["change"]["t_end_s"] + 0.012)
     specs = [("compare_v_out.png", "output voltage [V]", lambda r: r.signals["v_out"], True),
              ("compare_error.png", "v_ref - v_out [V]", lambda r: r.signals["v_ref"] - r.signals["v_out"], False),
              ("compare_u.png", "converter command u [V]", lambda r: r.signals["u"], False)]
@@ -158,7 +161,7 @@ def plot_comparison(out: Path, results: dict[str, dict[str, Any]]) -> list[Path]
                 ax.plot(run.time, get(run), lw=0.9, ls=ls, label=label)
             if win:
                 ax.set_xlim(*win)
-                ax.set_title("around the largest reference step", fontsize=9)
+                ax.set_title("around the largest reference step or ramp", fontsize=9)
             ax.set_xlabel("time [s]")
             ax.set_ylabel(ylabel)
             ax.grid(True, lw=0.3)

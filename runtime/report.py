@@ -61,6 +61,47 @@ def timing_png(run: Run, dest: Path) -> Path | None:
     return dest
 
 
+#: per kind of reference segment: the sentence that heads its table
+SEGMENT_TEXT = {
+    "step": "Steps (from the step to the next step or ramp; 10-90 % rise, 2 % settling, "
+            "overshoot, undershoot, peak, the definitions of python-control's `step_info`, on "
+            "the output minus its value at the step):",
+    "ramp": "Ramps (lag: (v_ref_raw - v_out) / slope at the ramp's end, steady for lag_steady_s "
+            "before it; largest |v_ref_raw - v_out| from the ramp's start until settled; "
+            "settling: from the ramp's end until |v_ref_raw - v_out| stays below 2 % of the "
+            "change; overshoot: the output past the reference, in % of the change):",
+    "hold": "Holds (largest |v_ref_raw - v_out| from the instant the previous step or ramp "
+            "settled, settled_from_s, to the hold's end):",
+}
+
+
+def _segment_tables(segments: list[dict], info: dict) -> list[str]:
+    """The report's lines for every reference segment: one table per kind, in time order,
+    each row numbered by its place among all segments."""
+    if not segments:
+        return []
+    L = ["", "## Reference segments", ""]
+    line = ("The raw reference (what the scenario commands) split into holds, steps and ramps "
+            "(rule: `hilrig.runtime.metrics.split_reference`)")
+    if info:
+        line += f"; changes above {_metric(info.get('threshold_V'))} V count"
+        left = (info.get("changes_found") or 0) - (info.get("changes_listed") or 0)
+        if left:
+            line += f"; the {left} smallest steps and ramps are not listed"
+    L += [line + ".", ""]
+    for kind in ("step", "ramp", "hold"):
+        rows = [(i + 1, g) for i, g in enumerate(segments) if g.get("kind") == kind]
+        if not rows:
+            continue
+        keys = [k for k in rows[0][1] if k != "kind"]
+        L += [SEGMENT_TEXT[kind], "", "| # | " + " | ".join(keys) + " |",
+              "| " + " | ".join("---" for _ in range(len(keys) + 1)) + " |"]
+        for i, g in rows:
+            L.append(f"| {i} | " + " | ".join(_metric(g.get(k)) for k in keys) + " |")
+        L.append("")
+    return L[:-1]
+
+
 def write_report(run: Run, dest: Path | None = None) -> Path:
     """Write ``report.md`` (and its PNGs in ``report/``) for a finished run; return its path."""
     from .plots import overview_png
@@ -109,17 +150,7 @@ def write_report(run: Run, dest: Path | None = None) -> Path:
     L.append("| --- | --- |")
     for k, v in (s.get("metrics") or {}).items():
         L.append(f"| {k} | {_metric(v)} |")
-    steps = s.get("steps") or []
-    if steps:
-        L.append("")
-        L.append("Reference steps (10-90 % rise, 2 % settling, overshoot, the definitions of "
-                 "python-control's `step_info`):")
-        L.append("")
-        keys = list(steps[0].keys())
-        L.append("| " + " | ".join(keys) + " |")
-        L.append("| " + " | ".join("---" for _ in keys) + " |")
-        for st in steps:
-            L.append("| " + " | ".join(_metric(st[k]) for k in keys) + " |")
+    L += _segment_tables(s.get("segments") or [], s.get("segmentation") or {})
     L.append("")
     L.append("## Interlock and watchdog events")
     L.append("")

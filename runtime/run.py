@@ -23,7 +23,7 @@ from hilrig.safety.interlocks import (DERIVED, EVENT_NAMES, EVT_RESET_IDLE, EVT_
 from . import loop as loopgen
 from . import shaping
 from .errors import PluginError, ScenarioError
-from .metrics import TrackingMetrics, step_metrics
+from .metrics import TrackingMetrics, segment_metrics
 from .outcome import judge
 from .recording import SCENARIO, SUMMARY, RunWriter, SignalSpec, clear_derived, dumps_json
 from .scenario import PluginChoice, Scenario
@@ -677,7 +677,8 @@ def execute(sc: Scenario, prep: Prepared, folder: Path,
         "watchdogs": dict(sc.watchdogs),
         "v_out_start_V": prep.v0,
         "metrics": result,
-        "steps": [],
+        "segments": [],
+        "segmentation": {},
         "timing": {
             **timing,
             "process_start_to_first_tick_s": startup,
@@ -697,11 +698,11 @@ def execute(sc: Scenario, prep: Prepared, folder: Path,
             attrs["bridge"] = dumps_json(more["bridge"])
     # wall-clock figures of SIL runs stay out of the recording so that it is bit-identical
     writer.close(attrs)
-    # per-step metrics need whole signals: read the two back from the closed recording
+    # per-segment metrics need whole signals: read the two back from the closed recording
     import h5py
     with h5py.File(folder / "recording.h5", "r") as f:
-        steps = step_metrics(f["time"][()], f["signals/v_out"][()], f["signals/v_ref_raw"][()])
-    summary["steps"] = [st.as_dict() for st in steps]
+        summary["segments"], summary["segmentation"] = segment_metrics(
+            f["time"][()], f["signals/v_out"][()], f["signals/v_ref_raw"][()])
     # the verdict every table, report and comparison shows (completed/end_event stay for
     # the code that reads them)
     summary["outcome"] = judge(summary)

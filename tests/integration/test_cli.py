@@ -49,6 +49,11 @@ def test_demo_writes_run_folder_and_shows_caution(demo_folder):
     assert "not safety-rated" in stdout.replace("\n", " ").replace("NOT", "not")
     assert "demo data" in stdout
     assert "RMS tracking error" in stdout
+    # every reference segment of summary.json has its row in the segments table
+    segs = json.loads((out / "summary.json").read_text())["segments"]
+    assert "reference segments" in stdout and len(segs) > 1
+    for i, g in enumerate(segs):
+        assert f"{i + 1} {g['kind']}" in stdout
 
 
 def test_report_json_and_export_csv(demo_folder, tmp_path):

@@ -36,6 +36,9 @@ def test_compare_cli_json_folders_and_plots(tmp_path):
         # 100 V step at 50 kW: sub-millisecond 10-90 % rise is expected of a battery emulator
         # (common practice, no source)
         assert m["rise_time_s"] < 1e-3
+        # every segment of the reference, the step's being the table's step columns
+        assert [g["kind"] for g in m["segments"]] == ["hold", "step", "hold"]
+        assert m["segments"][1]["rise_time_s"] == m["rise_time_s"]
     for png in ("compare_v_out.png", "compare_error.png", "compare_u.png"):
         assert (out / png).stat().st_size > 1000
         # each folder's scenario.toml is the scenario that ran: its controller, the override

@@ -49,6 +49,7 @@ def test_report_md_has_outcome_metrics_events_plots_scenario(tripped_run):
     assert png.read_bytes()[:8] == PNG_MAGIC
     assert "](report/overview.png)" in md
     assert "no timing histogram" in md  # a SIL run has no per-tick wall clock
+    assert "## Reference segments" in md and "| # | t_start_s | t_end_s |" in md
 
 
 def test_paced_report_has_the_timing_histogram(demo_path, tmp_path):

@@ -53,7 +53,7 @@ def test_compare_json_view_and_comparison_json_are_strict(tmp_path, monkeypatch,
     def fake_run(sc, folder, **kw):
         folder.mkdir(parents=True)
         return RunResult(folder=folder, summary={
-            "steps": [], "completed": False, "end_event": "voltage collapse",
+            "segments": [], "completed": False, "end_event": "voltage collapse",
             "metrics": {"iae_Vs": math.nan, "rms_error_V": math.nan, "max_abs_error_V": math.inf,
                         "saturation_time_s": 0.0, "trips": 1},
             "timing": {"loop_ns_per_tick": 150.0}})
