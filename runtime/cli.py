@@ -2,6 +2,8 @@
 
 User mistakes (a bad scenario, a missing run folder) print one message naming the file, key and
 value and exit with status 2; they never print a traceback. Nothing recorded is overwritten.
+A paced run that ran but did not hold its ``[paced]`` timing limits exits with status 3
+(``EXIT_TIMING_NOT_MET``); a trip is a result of a run, not an error (status 0).
 """
 from __future__ import annotations
 
@@ -15,6 +17,8 @@ from pathlib import Path
 from hilrig.runtime.version import installed as installed_version
 
 EXIT_USAGE = 2
+#: a paced run that ran but did not hold its [paced] timing limits (summary paced.verdict)
+EXIT_TIMING_NOT_MET = 3
 EXIT_INTERRUPTED = 130
 
 
@@ -94,6 +98,12 @@ def _num(v, spec: str) -> str:
     return format(v, spec) if _finite(v) else "n/a"
 
 
+def _timing_not_met(s: dict) -> bool:
+    """A paced run whose timing verdict says its limits were breached."""
+    v = (s.get("paced") or {}).get("verdict")
+    return bool(v) and not v.get("timing_met", True)
+
+
 def _summary_table(console, s: dict, folder: Path | None) -> None:
     from rich.markup import escape
     from rich.table import Table
@@ -105,7 +115,10 @@ def _summary_table(console, s: dict, folder: Path | None) -> None:
     t.add_column("value", justify="right")
     t.add_row("plant / controller / reference", f"{s['plant']} / {s['controller']} / {s['reference']}")
     t.add_row(escape("simulated [s]"), f"{s['simulated_s']:.4g} of {s['ticks_planned'] * s['Ts_s']:.4g}  ({s['ticks_run']} ticks at {s['Ts_s'] * 1e6:.4g} us)")
-    t.add_row("outcome", "completed" if s["completed"] else f"ended: {s['end_event'] or 'interrupted'}")
+    outcome = "completed" if s["completed"] else f"ended: {s['end_event'] or 'interrupted'}"
+    if _timing_not_met(s):
+        outcome = "timing not met" if s["completed"] else f"{outcome}; timing not met"
+    t.add_row("outcome", outcome)
     tr = s["trip"]
     t.add_row("trip", "none" if not tr else f"{tr['cause']} at t = {tr['time_s']:.6g} s (tick {tr['tick']}), value {_num(tr.get('value'), '.6g')}")
     t.add_row(escape("RMS tracking error [V]"), _num(m["rms_error_V"], ".4g"))
@@ -126,6 +139,12 @@ def _summary_table(console, s: dict, folder: Path | None) -> None:
         t.add_row(escape("paced: lateness p50 / p99 / max [us]"), f"{la['p50']:.1f} / {la['p99']:.1f} / {la['max']:.0f}")
         t.add_row(escape("paced: compute p50 / p99 / max [us]"), f"{co['p50']:.1f} / {co['p99']:.1f} / {co['max']:.0f}")
         t.add_row("paced: late ticks / deadline misses", f"{pc['late_ticks']} / {pc['deadline_misses']} of {la['n']}")
+        from hilrig.runtime.paced import realtime_text, verdict_text
+        if pc.get("verdict"):
+            t.add_row("paced: timing", escape(verdict_text(pc["verdict"])),
+                      style=None if pc["verdict"]["timing_met"] else "bold red")
+        if pc.get("realtime"):
+            t.add_row("paced: real-time requests", escape(realtime_text(pc["realtime"], pc.get("pinned_core"))))
     if folder is not None:
         t.add_row("run folder", str(folder))
     console.print(t)
@@ -138,6 +157,12 @@ def _view_args(p, remote: bool = True) -> None:
     p.add_argument("--telemetry", metavar="ADDRESS",
                    help="publish live telemetry at ADDRESS for 'hilrig watch' viewers "
                         f"(tcp://127.0.0.1:PORT or ipc:///PATH; {where})")
+
+
+def _no_realtime_arg(p) -> None:
+    p.add_argument("--no-realtime", action="store_true",
+                   help="paced runs: do not ask the system for a real-time priority and locked "
+                        "memory (as paced.realtime = false)")
 
 
 def _catch_ctrl_c() -> None:
@@ -182,7 +207,8 @@ def _check_hv_acknowledged(sc, address: str, ack_hv: bool, allow_remote: bool) -
 def _run(console, plain, scenario_path: Path, out: str | None, overwrite: bool, sets: list[str],
          bridge: str | None = None, mode: str = "lockstep", timeout: float = 2.0,
          allow_remote: bool = False, curve_keys: str | None = None, ack_hv: bool = False,
-         paced: bool = False, view: bool = False, telemetry: str | None = None):
+         paced: bool = False, view: bool = False, telemetry: str | None = None,
+         realtime: bool = True):
     from hilrig.runtime.plots import overview_png
     from hilrig.runtime.recording import open_run
     from hilrig.runtime.run import run_scenario
@@ -224,7 +250,8 @@ def _run(console, plain, scenario_path: Path, out: str | None, overwrite: bool, 
             # no progress bar: its redraws would compete with the loop for this process
             res = run_paced(sc, Path(out) if out else None, overwrite=overwrite,
                             notice=None if view else (lambda msg: console.print(msg)),
-                            telemetry=telemetry, allow_remote=allow_remote)
+                            telemetry=telemetry, allow_remote=allow_remote,
+                            realtime=None if realtime else False)
         else:
             res = run_scenario(sc, Path(out) if out else None, overwrite=overwrite, progress=prog,
                                notice=None if view else (lambda msg: console.print(msg)),
@@ -400,6 +427,7 @@ def main(argv: list[str] | None = None) -> int:
     p = sub.add_parser("demo", help="run the shipped demo scenario (invented demo data)")
     p.add_argument("--paced", action="store_true",
                    help="paced mode: one tick per tick period of the wall clock")
+    _no_realtime_arg(p)
     _view_args(p, remote=False)
     p.add_argument("--out", help="run folder to write (default: runs/<time>-demo)")
     p.add_argument("--headless", action="store_true", help="plain text output, no progress bar or colours")
@@ -421,6 +449,7 @@ def main(argv: list[str] | None = None) -> int:
     p.add_argument("--curve-keys", metavar="DIR", help="CurveZMQ keys folder (hilrig keys DIR); required for a remote ZeroMQ peer")
     p.add_argument("--paced", action="store_true",
                    help="paced mode: one tick per tick period of the wall clock (timing rehearsal)")
+    _no_realtime_arg(p)
     _view_args(p)
     p.add_argument("--acknowledge-high-voltage", action="store_true",
                    help="required for a bridge to another machine when the scenario exceeds 60 V DC: "
@@ -512,14 +541,20 @@ def main(argv: list[str] | None = None) -> int:
     try:
         if args.cmd == "demo":
             console.print("hilrig demo: invented demo data, not measurements of real equipment.")
-            _run(console, plain, _demo_path(), args.out, args.overwrite, [], paced=args.paced,
-                 view=_wants_view(args, plain), telemetry=args.telemetry)
+            res = _run(console, plain, _demo_path(), args.out, args.overwrite, [],
+                       paced=args.paced, view=_wants_view(args, plain), telemetry=args.telemetry,
+                       realtime=not args.no_realtime)
+            if _timing_not_met(res.summary):
+                return EXIT_TIMING_NOT_MET
         elif args.cmd == "run":
-            _run(console, plain, Path(args.scenario), args.out, args.overwrite, args.set,
-                 bridge=args.bridge, mode=args.mode, timeout=args.timeout,
-                 allow_remote=args.allow_remote, curve_keys=args.curve_keys,
-                 ack_hv=args.acknowledge_high_voltage, paced=args.paced,
-                 view=_wants_view(args, plain), telemetry=args.telemetry)
+            res = _run(console, plain, Path(args.scenario), args.out, args.overwrite, args.set,
+                       bridge=args.bridge, mode=args.mode, timeout=args.timeout,
+                       allow_remote=args.allow_remote, curve_keys=args.curve_keys,
+                       ack_hv=args.acknowledge_high_voltage, paced=args.paced,
+                       view=_wants_view(args, plain), telemetry=args.telemetry,
+                       realtime=not args.no_realtime)
+            if _timing_not_met(res.summary):
+                return EXIT_TIMING_NOT_MET
         elif args.cmd == "watch":
             from hilrig.bridge.transport import check_address
             from hilrig.runtime.telemetry import DEFAULT_ADDRESS

@@ -86,6 +86,9 @@ def write_report(run: Run, dest: Path | None = None) -> Path:
     L.append("| item | value |")
     L.append("| --- | --- |")
     outcome = "completed" if s.get("completed") else f"ended: {s.get('end_event') or 'interrupted'}"
+    verdict = (s.get("paced") or {}).get("verdict")
+    if verdict and not verdict.get("timing_met", True):
+        outcome = "timing not met" if s.get("completed") else f"{outcome}; timing not met"
     trip = s.get("trip")
     rows = [("run folder", str(run.folder)), ("mode", s.get("mode")),
             ("plant / controller / reference", f"{s.get('plant')} / {s.get('controller')} / {s.get('reference')}"),
@@ -151,6 +154,11 @@ def write_report(run: Run, dest: Path | None = None) -> Path:
             L.append(f"| {k} | {_fmt(tm[k])} |")
     pc = s.get("paced")
     if pc:
+        from .paced import realtime_text, verdict_text
+        if pc.get("verdict"):
+            L.append(f"| paced timing | {verdict_text(pc['verdict'])} |")
+        if pc.get("realtime"):
+            L.append(f"| paced real-time requests | {realtime_text(pc['realtime'], pc.get('pinned_core'))} |")
         for k in ("late_ticks", "deadline_misses", "overruns", "wait"):
             L.append(f"| paced {k} | {_fmt(pc.get(k))} |")
         for k in ("lateness_us", "compute_us"):
