@@ -2,6 +2,10 @@
 
 User mistakes (a bad scenario, a missing run folder) print one message naming the file, key and
 value and exit with status 2; they never print a traceback. Nothing recorded is overwritten.
+A run's exit status follows its outcome (:mod:`hilrig.runtime.outcome`): 0 completed, 1 the run
+did not complete (tripped, collapsed, stopped, ended on an error of the link or the plant), 3 a
+paced run that did not hold its ``[paced]`` timing limits (``EXIT_TIMING_NOT_MET``), so that a
+script or a lab's CI can gate on it; 2 is a usage mistake, 130 an interruption.
 """
 from __future__ import annotations
 
@@ -14,7 +18,11 @@ from pathlib import Path
 
 from hilrig.runtime.version import installed as installed_version
 
+#: a run that ran but did not complete: tripped, collapsed, stopped or ended early
+EXIT_NOT_COMPLETED = 1
 EXIT_USAGE = 2
+#: a paced run that ran but did not hold its [paced] timing limits (summary paced.verdict)
+EXIT_TIMING_NOT_MET = 3
 EXIT_INTERRUPTED = 130
 
 
@@ -96,6 +104,16 @@ def _num(v, spec: str) -> str:
     return format(v, spec) if _finite(v) else "n/a"
 
 
+def _run_status(s: dict) -> int:
+    """The exit status of a run from its outcome: 0 completed, 3 timing not met (and nothing
+    worse), 1 any other run that did not complete."""
+    from hilrig.runtime.outcome import judge
+    oc = judge(s)
+    if oc["completed"]:
+        return 0
+    return EXIT_TIMING_NOT_MET if oc["status"] == "timing not met" else EXIT_NOT_COMPLETED
+
+
 def _summary_table(console, s: dict, folder: Path | None) -> None:
     from rich.markup import escape
     from rich.table import Table
@@ -133,6 +151,12 @@ def _summary_table(console, s: dict, folder: Path | None) -> None:
         t.add_row(escape("paced: lateness p50 / p99 / max [us]"), f"{la['p50']:.1f} / {la['p99']:.1f} / {la['max']:.0f}")
         t.add_row(escape("paced: compute p50 / p99 / max [us]"), f"{co['p50']:.1f} / {co['p99']:.1f} / {co['max']:.0f}")
         t.add_row("paced: late ticks / deadline misses", f"{pc['late_ticks']} / {pc['deadline_misses']} of {la['n']}")
+        from hilrig.runtime.paced import realtime_text, verdict_text
+        if pc.get("verdict"):
+            t.add_row("paced: timing", escape(verdict_text(pc["verdict"])),
+                      style=None if pc["verdict"]["timing_met"] else "bold red")
+        if pc.get("realtime"):
+            t.add_row("paced: real-time requests", escape(realtime_text(pc["realtime"], pc.get("pinned_core"))))
     if folder is not None:
         t.add_row("run folder", str(folder))
     console.print(t)
@@ -251,6 +275,12 @@ def _view_args(p, remote: bool = True) -> None:
                         f"(tcp://127.0.0.1:PORT or ipc:///PATH; {where})")
 
 
+def _no_realtime_arg(p) -> None:
+    p.add_argument("--no-realtime", action="store_true",
+                   help="paced runs: do not ask the system for a real-time priority and locked "
+                        "memory (as paced.realtime = false)")
+
+
 def _catch_ctrl_c() -> None:
     """Ctrl-C ends the run in order at the next chunk (the recording closed, marked not
     complete); a second Ctrl-C interrupts at once."""
@@ -293,7 +323,8 @@ def _check_hv_acknowledged(sc, address: str, ack_hv: bool, allow_remote: bool) -
 def _run(console, plain, scenario_path: Path, out: str | None, overwrite: bool, sets: list[str],
          bridge: str | None = None, mode: str = "lockstep", timeout: float = 2.0,
          allow_remote: bool = False, curve_keys: str | None = None, ack_hv: bool = False,
-         paced: bool = False, view: bool = False, telemetry: str | None = None):
+         paced: bool = False, view: bool = False, telemetry: str | None = None,
+         realtime: bool = True):
     from hilrig.runtime.plots import overview_png
     from hilrig.runtime.recording import open_run
     from hilrig.runtime.run import run_scenario
@@ -335,7 +366,8 @@ def _run(console, plain, scenario_path: Path, out: str | None, overwrite: bool, 
             # no progress bar: its redraws would compete with the loop for this process
             res = run_paced(sc, Path(out) if out else None, overwrite=overwrite,
                             notice=None if view else (lambda msg: console.print(msg)),
-                            telemetry=telemetry, allow_remote=allow_remote)
+                            telemetry=telemetry, allow_remote=allow_remote,
+                            realtime=None if realtime else False)
         else:
             res = run_scenario(sc, Path(out) if out else None, overwrite=overwrite, progress=prog,
                                notice=None if view else (lambda msg: console.print(msg)),
@@ -632,6 +664,7 @@ def main(argv: list[str] | None = None) -> int:
     p = sub.add_parser("demo", help="run the shipped demo scenario (invented demo data)")
     p.add_argument("--paced", action="store_true",
                    help="paced mode: one tick per tick period of the wall clock")
+    _no_realtime_arg(p)
     _view_args(p, remote=False)
     p.add_argument("--out", help="run folder to write (default: runs/<time>-demo)")
     p.add_argument("--headless", action="store_true", help="plain text output, no progress bar or colours")
@@ -653,6 +686,7 @@ def main(argv: list[str] | None = None) -> int:
     p.add_argument("--curve-keys", metavar="DIR", help="CurveZMQ keys folder (hilrig keys DIR); required for a remote ZeroMQ peer")
     p.add_argument("--paced", action="store_true",
                    help="paced mode: one tick per tick period of the wall clock (timing rehearsal)")
+    _no_realtime_arg(p)
     _view_args(p)
     p.add_argument("--acknowledge-high-voltage", action="store_true",
                    help="required for a bridge to another machine when the scenario exceeds 60 V DC: "
@@ -762,14 +796,18 @@ def main(argv: list[str] | None = None) -> int:
     try:
         if args.cmd == "demo":
             console.print("hilrig demo: invented demo data, not measurements of real equipment.")
-            _run(console, plain, _demo_path(), args.out, args.overwrite, [], paced=args.paced,
-                 view=_wants_view(args, plain), telemetry=args.telemetry)
+            res = _run(console, plain, _demo_path(), args.out, args.overwrite, [],
+                       paced=args.paced, view=_wants_view(args, plain), telemetry=args.telemetry,
+                       realtime=not args.no_realtime)
+            return _run_status(res.summary)
         elif args.cmd == "run":
-            _run(console, plain, Path(args.scenario), args.out, args.overwrite, args.set,
-                 bridge=args.bridge, mode=args.mode, timeout=args.timeout,
-                 allow_remote=args.allow_remote, curve_keys=args.curve_keys,
-                 ack_hv=args.acknowledge_high_voltage, paced=args.paced,
-                 view=_wants_view(args, plain), telemetry=args.telemetry)
+            res = _run(console, plain, Path(args.scenario), args.out, args.overwrite, args.set,
+                       bridge=args.bridge, mode=args.mode, timeout=args.timeout,
+                       allow_remote=args.allow_remote, curve_keys=args.curve_keys,
+                       ack_hv=args.acknowledge_high_voltage, paced=args.paced,
+                       view=_wants_view(args, plain), telemetry=args.telemetry,
+                       realtime=not args.no_realtime)
+            return _run_status(res.summary)
         elif args.cmd == "watch":
             from hilrig.bridge.transport import check_address
             from hilrig.runtime.telemetry import DEFAULT_ADDRESS

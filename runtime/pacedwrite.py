@@ -139,6 +139,7 @@ def _child(names, folder, signals, attrs, chunk_rows, compression, cap, ncols, t
                         end_event=end if ended else None)
         conn.send("ready")
         tail = 0
+        closing = None  # the parent's closing message, when it came in with a request's poll
         while True:
             head = int(ctl[HEAD])
             if head > tail:
@@ -172,12 +173,17 @@ def _child(names, folder, signals, attrs, chunk_rows, compression, cap, ncols, t
                                           for st in stats],
                                "metrics": metrics.result() if metrics is not None else None})
                     continue
+                if isinstance(req, tuple):
+                    # close() sets DONE and then sends its message; both can land between this
+                    # loop's read of DONE and its poll: keep it, DONE is seen on the next pass
+                    closing = req
+                    continue
                 raise RuntimeError(f"unexpected request {req!r}")
             time.sleep(0.05)
         if os.getppid() != parent:
             w.f.close()
             return
-        attrs_final, complete = conn.recv()
+        attrs_final, complete = closing if closing is not None else conn.recv()
         w.close(attrs_final, complete=complete)
         live(0, None, ended=True)
         conn.send("closed")

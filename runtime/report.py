@@ -188,6 +188,11 @@ def write_report(run: Run, dest: Path | None = None) -> Path:
             L.append(f"| {k} | {_fmt(tm[k])} |")
     pc = s.get("paced")
     if pc:
+        from .paced import realtime_text, verdict_text
+        if pc.get("verdict"):
+            L.append(f"| paced timing | {verdict_text(pc['verdict'])} |")
+        if pc.get("realtime"):
+            L.append(f"| paced real-time requests | {realtime_text(pc['realtime'], pc.get('pinned_core'))} |")
         for k in ("late_ticks", "deadline_misses", "overruns", "wait"):
             L.append(f"| paced {k} | {_fmt(pc.get(k))} |")
         for k in ("lateness_us", "compute_us"):

@@ -39,7 +39,7 @@ PLANNED_MODES = ("lockstep", "free-running")
 
 TOP_KEYS = {"title", "description", "demo_data", "mode", "seed", "timing", "plant", "controller",
             "reference", "shaping", "load", "limits", "interlocks", "initial", "recording",
-            "faults", "resets", "watchdogs"}
+            "faults", "resets", "watchdogs", "paced"}
 TIMING = {"Ts": ("s", 50e-6, (1e-7, 1.0)), "substeps": ("-", 4, (1, 1000)),
           "duration": ("s", 1.0, (1e-6, 1e6))}
 SHAPING = {"order": ("-", 5, (4, 12)), "pole": ("rad/s", 7500.0, (1.0, 1e7)),
@@ -54,6 +54,11 @@ INTERLOCK_SIDES = ("above", "below", "magnitude_above", "frozen")
 WATCHDOGS = {"overrun_budget": ("s", 0.0, (0.0, 10.0)), "overrun_ticks": ("-", 1, (1, 1_000_000)),
              "stale_limit": ("s", 0.0, (0.0, 60.0)), "max_gap": ("-", 10, (1, 1_000_000)),
              "peer_timeout": ("s", 1.0, (1e-3, 600.0))}
+#: paced runs: the timing limits a run is judged by (docs/scenarios.md says why these defaults)
+#: and the real-time requests to the operating system (SCHED_FIFO priority; see runtime/paced.py)
+PACED = {"miss_share_max": ("-", 0.01, (0.0, 1.0)), "max_lateness": ("s", 1e-3, (0.0, 10.0)),
+         "realtime_priority": ("-", 49, (1, 99))}
+PACED_FLAGS = {"realtime": True}
 MAX_TICKS = 2_000_000_000
 
 
@@ -94,6 +99,9 @@ class Scenario:
     #: watchdog settings (WATCHDOGS keys, SI units)
     watchdogs: dict[str, float] = field(default_factory=lambda: {
         k: float(v[1]) for k, v in WATCHDOGS.items()})
+    #: paced settings (PACED and PACED_FLAGS keys, SI units): timing limits, real-time requests
+    paced: dict[str, Any] = field(default_factory=lambda: {
+        **{k: v[1] for k, v in PACED.items()}, **PACED_FLAGS})
 
     @property
     def stale_limit_s(self) -> float:
@@ -213,12 +221,14 @@ def parse_scenario(text: str, name: str = "scenario.toml", path: str = "",
     recording = _section(cx, raw, "recording", RECORDING, choices=RECORDING_CHOICES)
     recording.setdefault("compression", "none")
     watchdogs = _section(cx, raw, "watchdogs", WATCHDOGS)
+    paced = _paced(cx, raw)
     return Scenario(path=path, text=text, title=title, description=description, demo_data=demo,
                     mode=mode, seed=seed, Ts=Ts, substeps=substeps, duration=duration,
                     plant=plant, controller=controller, reference=reference, shaping=shaping,
                     load_t=load_t, load_v=load_v, v_collapse=limits["v_collapse"],
                     safe_u=limits["safe_u"], interlocks=interlocks, v_out0=v_out0,
-                    recording=recording, faults=faults, resets=resets, watchdogs=watchdogs)
+                    recording=recording, faults=faults, resets=resets, watchdogs=watchdogs,
+                    paced=paced)
 
 
 def _effective_text(cx, raw: dict, overrides: dict[str, Any]) -> str:
@@ -308,6 +318,27 @@ def _section(cx, raw, key, spec, choices=None) -> dict:
             if tab[k] not in allowed:
                 raise cx.fail(f"{key}.{k}", f" = {tab[k]!r} is not one of {', '.join(map(repr, allowed))}")
             out[k] = tab[k]
+    return out
+
+
+def _paced(cx, raw) -> dict[str, Any]:
+    """The ``[paced]`` table: numbers through :func:`_section`, the switches strictly true or
+    false (TOML's 1 is not a yes)."""
+    tab = _table(cx, raw, "paced")
+    for k in tab:
+        if k not in PACED and k not in PACED_FLAGS:
+            raise cx.unknown("paced", k, list(PACED) + list(PACED_FLAGS))
+    share = tab.get("miss_share_max")
+    if isinstance(share, str) and share.strip().endswith("%"):
+        raise cx.fail("paced.miss_share_max", f" = {share!r} is a percentage; write the "
+                      f"fraction of ticks, e.g. 0.01 for 1 %")
+    out = _section(cx, {"paced": {k: v for k, v in tab.items() if k in PACED}}, "paced", PACED)
+    out["realtime_priority"] = int(out["realtime_priority"])
+    for k, default in PACED_FLAGS.items():
+        v = tab.get(k, default)
+        if not isinstance(v, bool):
+            raise cx.fail(f"paced.{k}", f" = {v!r} is not true or false")
+        out[k] = v
     return out
 
 

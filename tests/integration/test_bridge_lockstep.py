@@ -134,7 +134,7 @@ def test_killing_the_simulator_trips_the_staleness_watchdog(tmp_path, demo_path)
         sim.kill()
         sim.communicate(timeout=60)
         out, err = proc.communicate(timeout=300)
-    assert proc.returncode == 0, out + err
+    assert proc.returncode == 1, out + err
     s = json.loads((tmp_path / "r" / "summary.json").read_text())
     assert not s["completed"] and s["end_event"] == "bridge stale", s["events"]
     assert s["trip"]["cause_id"] == "watchdog stale"
@@ -205,7 +205,7 @@ def test_frozen_simulator_over_zeromq_trips_the_staleness_watchdog(tmp_path, dem
         p = subprocess.run(CLI + ["run", str(scen), "--bridge", address, "--out", str(tmp_path / "r"),
                                   "--headless", "--timeout", "3"],
                            capture_output=True, text=True, timeout=600)
-    assert p.returncode == 0, p.stdout + p.stderr
+    assert p.returncode == 1, p.stdout + p.stderr
     s = json.loads((tmp_path / "r" / "summary.json").read_text())
     # ticks 0..200 ran on samples; no reply to actuation 200 within the limit (the --timeout
     # here), so tick 201 is the watchdog tick: stale trip, safe output, end of the run
@@ -267,7 +267,7 @@ def test_disconnect_trips_the_peer_lost_watchdog_and_statistics_are_recorded(tmp
                                   "--headless", "--timeout", "2"],
                            capture_output=True, text=True, timeout=600)
         sim_out, _ = sim.communicate(timeout=60)
-    assert p.returncode == 0, p.stdout + p.stderr
+    assert p.returncode == 1, p.stdout + p.stderr
     assert "disconnected at tick 300" in sim_out
     s = json.loads((tmp_path / "r" / "summary.json").read_text())
     # the simulator says STOP unasked in answer to actuation 300: tick 301 is the watchdog tick
@@ -307,7 +307,7 @@ def test_freeze_on_command_trips_the_staleness_watchdog(tmp_path, demo_path):
         out, err = proc.communicate(timeout=300)
         sim.kill()  # frozen by design: it would wait out its idle timeout
         sim_out, _ = sim.communicate(timeout=120)
-    assert proc.returncode == 0, out + err
+    assert proc.returncode == 1, out + err
     s = json.loads((tmp_path / "r" / "summary.json").read_text())
     assert s["trip"]["cause_id"] == "watchdog stale" and s["end_event"] == "bridge stale"
     assert 0 < s["ticks_run"] < 60 / 50e-6
@@ -344,7 +344,7 @@ def test_scenario_link_freeze_is_applied_by_the_stand_in(tmp_path, demo_path):
     with reaped(sim):
         p = subprocess.run(CLI + ["run", str(scen), "--bridge", address, "--out", str(tmp_path / "r"),
                                   "--headless"], capture_output=True, text=True, timeout=600)
-    assert p.returncode == 0, p.stdout + p.stderr
+    assert p.returncode == 1, p.stdout + p.stderr
     s = json.loads((tmp_path / "r" / "summary.json").read_text())
     # 10 ms at 50 us: the simulator answers actuations up to tick 199, then goes silent
     assert s["trip"]["cause_id"] == "watchdog stale" and s["trip"]["tick"] == 201, s["events"]

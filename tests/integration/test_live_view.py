@@ -18,6 +18,9 @@ from pathlib import Path
 import pytest
 
 CLI = [sys.executable, "-m", "hilrig.runtime.cli"]
+#: these tests are about the live view: a paced run here is judged against limits no shared
+#: machine breaches (the timing verdict and its exit status 3 are tested in test_paced.py)
+GENEROUS_PACED = '\n[paced]\nmiss_share_max = 1.0\nmax_lateness = "10 s"\n'
 
 
 def _live_scenario(demo_path: str, folder: Path) -> Path:
@@ -32,7 +35,7 @@ def _live_scenario(demo_path: str, folder: Path) -> Path:
     s += ('[[interlocks]]\nsignal = "v_out"\nabove = "480 V"\n\n'
           '[[faults]]\nkind = "dropout"\nsignal = "v_out"\nstart = "1 s"\nend = "2.5 s"\n')
     f = folder / "live.toml"
-    f.write_text(s)
+    f.write_text(s + GENEROUS_PACED)
     return f
 
 
@@ -82,7 +85,8 @@ def test_live_view_in_a_terminal_refuses_then_accepts_a_reset(tmp_path, demo_pat
         _wait_for(session, lambda t: "reset accepted" in t or "armed, no trip" in t, 20,
                   "the accepted reset")
         # the run ends by itself; the viewer closes and the summary follows
-        _wait_for(session, lambda t: "EXIT=0" in t, 120, "the end of the run")
+        # (a run that tripped, even if reset, did not complete: exit status 1)
+        _wait_for(session, lambda t: "EXIT=1" in t, 120, "the end of the run")
     finally:
         subprocess.run(["tmux", "kill-session", "-t", session], timeout=30)
     s = json.loads((tmp_path / "r" / "summary.json").read_text())
@@ -143,7 +147,7 @@ def test_stop_command_ends_the_run_in_order(tmp_path, demo_path, mode):
     address = f"tcp://127.0.0.1:{port}"
     text = Path(demo_path).read_text().replace('duration = "1.5 s"', 'duration = "600 s"')
     scen = tmp_path / "long.toml"
-    scen.write_text(text)
+    scen.write_text(text + GENEROUS_PACED)
     args = CLI + ["run", str(scen), "--telemetry", address, "--out", str(tmp_path / "r"),
                   "--headless"] + (["--paced"] if mode == "paced" else [])
     run = subprocess.Popen(args, stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
@@ -154,9 +158,18 @@ def test_stop_command_ends_the_run_in_order(tmp_path, demo_path, mode):
     push = ctx.socket(zmq.PUSH)
     push.setsockopt(zmq.LINGER, 0)
     push.connect(f"tcp://127.0.0.1:{port + 1}")
+    import msgpack
     try:
-        assert sub.poll(240_000), "no telemetry"
-        sub.recv()
+        # the first frames can come before the first tick (a paced run's real-time requests
+        # take a while): a stop then ends the run at tick 0; wait for a frame with ticks run
+        frame = None
+        deadline = time.monotonic() + 240
+        while time.monotonic() < deadline:
+            if sub.poll(1000):
+                frame = msgpack.unpackb(sub.recv(), raw=False)
+                if frame["tick"] > 0:
+                    break
+        assert frame and frame["tick"] > 0, frame or "no telemetry"
         push.send(b"stop")
         out, err = run.communicate(timeout=120)
     finally:
@@ -165,7 +178,7 @@ def test_stop_command_ends_the_run_in_order(tmp_path, demo_path, mode):
         if run.poll() is None:
             run.kill()
             run.communicate(timeout=60)
-    assert run.returncode == 0, out + err
+    assert run.returncode == 1, out + err
     s = json.loads((tmp_path / "r" / "summary.json").read_text())
     assert s["end_event"] == "stopped by the operator", s["events"]
     assert s["trip"]["cause_id"] == "stop requested"
@@ -221,7 +234,7 @@ def test_bridge_run_publishes_link_statistics_and_obeys_stop(tmp_path, demo_path
             if p.poll() is None:
                 p.kill()
                 p.communicate(timeout=60)
-    assert run.returncode == 0, out + err
+    assert run.returncode == 1, out + err
     s = json.loads((tmp_path / "r" / "summary.json").read_text())
     assert s["end_event"] == "stopped by the operator" and s["trip"]["cause_id"] == "stop requested"
     assert "session 1 ended" in sim_out       # the simulator got its orderly STOP

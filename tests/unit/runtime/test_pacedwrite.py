@@ -417,6 +417,30 @@ def test_rows_appended_right_before_close_are_written(tmp_path, monkeypatch):
         assert f["time"].shape == (5,)
 
 
+def test_closing_message_that_arrives_before_done_is_seen_closes_in_order(tmp_path):
+    # close() sets DONE and then sends its message; the recorder can read DONE (not yet set)
+    # and then find the message in its poll for requests. Forced here by sending the message
+    # first and setting DONE 0.3 s later (the recorder polls every 50 ms): it must close the
+    # file complete, not fail on an "unexpected request" (seen in bench/pacing.py runs)
+    (tmp_path / "run").mkdir()
+    w = ProcessWriter(tmp_path / "run", SIGNALS[:1], ATTRS, chunk_rows=10)
+    try:
+        w.append(np.arange(5.0), np.ones((5, 1)))
+        w.sync()
+        w.conn.send((CLOSE_ATTRS, True))
+        time.sleep(0.3)
+        assert not w.ctl[pacedwrite.FAILED], w._child_error()
+        w.ctl[pacedwrite.DONE] = 1
+        assert w.conn.poll(60), "the recorder did not answer"
+        assert w.conn.recv() == "closed"
+        w.proc.join(60)
+    finally:
+        w._cleanup()
+    with h5py.File(tmp_path / "run" / "recording.h5", "r") as f:
+        assert bool(f.attrs["complete"]) is True
+        assert f["time"].shape == (5,)
+
+
 class _NumpyWith:
     """numpy with some attributes replaced (for one module's global ``np``)."""
 

@@ -14,8 +14,8 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 
 from hilrig.runtime.errors import ScenarioError
-from hilrig.runtime.scenario import (LIMITS, RECORDING, SHAPING, TIMING, Scenario, load_scenario,
-                                     parse_scenario)
+from hilrig.runtime.scenario import (LIMITS, PACED, PACED_FLAGS, RECORDING, SHAPING, TIMING,
+                                     Scenario, load_scenario, parse_scenario)
 from hilrig.safety.interlocks import Interlock
 
 DEMO = (files("hilrig.runtime") / "data" / "demo.toml").read_text(encoding="utf-8")
@@ -216,6 +216,38 @@ CASES = [
     ("reset exactly at the end of the run",
      minimal("seed = 3", 'seed = 3\nresets = ["10 ms"]'),
      ["resets[0] = 0.01 s", "timing.duration = 0.01 s"]),
+    # [paced]: the timing limits a paced run is judged by and its real-time requests
+    ("unknown key in [paced]",
+     MINIMAL + '[paced]\nmax_latenes = "1 ms"\n',
+     ["unknown key 'paced.max_latenes'", "did you mean 'max_lateness'",
+      "allowed: max_lateness, miss_share_max, realtime, realtime_priority"]),
+    ("miss share above 1",
+     MINIMAL + "[paced]\nmiss_share_max = 2\n",
+     ["paced.miss_share_max = 2", "outside [0, 1]"]),
+    ("miss share as a percentage string",
+     MINIMAL + '[paced]\nmiss_share_max = "1 %"\n',
+     ["paced.miss_share_max = '1 %'", "is a percentage", "e.g. 0.01 for 1 %"]),
+    ("negative largest lateness",
+     MINIMAL + '[paced]\nmax_lateness = "-1 ms"\n',
+     ["paced.max_lateness = -0.001 s", "outside [0, 10] s"]),
+    ("largest lateness in the wrong unit",
+     MINIMAL + '[paced]\nmax_lateness = "1 mV"\n',
+     ["paced.max_lateness", "'1 mV'", "expected s"]),
+    ("real-time switch that is not true or false",
+     MINIMAL + '[paced]\nrealtime = "yes"\n',
+     ["paced.realtime = 'yes'", "not true or false"]),
+    ("real-time switch given as 1",
+     MINIMAL + "[paced]\nrealtime = 1\n",
+     ["paced.realtime = 1", "not true or false"]),
+    ("real-time priority 0",
+     MINIMAL + "[paced]\nrealtime_priority = 0\n",
+     ["paced.realtime_priority = 0", "[1, 99]"]),
+    ("real-time priority not whole",
+     MINIMAL + "[paced]\nrealtime_priority = 49.5\n",
+     ["paced.realtime_priority = 49.5", "whole number", "[1, 99]"]),
+    ("[paced] not a table",
+     minimal("seed = 3", 'seed = 3\npaced = "fast"'),
+     ["paced is a str", "expected a table [paced]"]),
 ]
 
 
@@ -406,6 +438,26 @@ def test_defaults_fill_in_and_text_is_kept():
     assert sc.load_t.tolist() == [0.0] and sc.load_v.tolist() == [[0.0], [0.0], [0.0]]
 
 
+def test_paced_defaults_values_and_overrides():
+    # the documented defaults (docs/scenarios.md): at most 1 % deadline misses, largest lateness
+    # 1 ms, real-time requests on at SCHED_FIFO priority 49
+    sc = parse_scenario(MINIMAL, name=NAME)
+    assert sc.paced == {"miss_share_max": 0.01, "max_lateness": 1e-3, "realtime_priority": 49,
+                        "realtime": True}
+    assert sc.paced == {**{k: v[1] for k, v in PACED.items()}, **PACED_FLAGS}
+    sc = parse_scenario(MINIMAL + '[paced]\nmax_lateness = "250 us"\nrealtime = false\n',
+                        name=NAME)
+    assert sc.paced["max_lateness"] == 250e-6 and sc.paced["realtime"] is False
+    assert sc.paced["miss_share_max"] == 0.01  # the keys not given keep their defaults
+    # --set paced.max_lateness='1 ns' (the CLI's overrides): 1 ns = 1e-9 s (SI prefix n)
+    sc = parse_scenario(MINIMAL, name=NAME, overrides={"paced.max_lateness": "1 ns",
+                                                       "paced.miss_share_max": 0,
+                                                       "paced.realtime_priority": 20})
+    assert sc.paced["max_lateness"] == 1e-9 and sc.paced["miss_share_max"] == 0.0
+    assert sc.paced["realtime_priority"] == 20 and isinstance(sc.paced["realtime_priority"], int)
+    assert "paced.max_lateness" in sc.text  # the run folder records what ran
+
+
 def test_partly_given_section_keeps_the_other_defaults():
     sc = parse_scenario(demo('L1 = "150 uH"', 'L1 = "0.25 mH"').replace('C2 = "680 uF"\n', ""),
                         name=NAME)
@@ -442,7 +494,8 @@ _KEYS = ["title", "mode", "seed", "demo_data", "timing", "timing.Ts", "timing.su
          "timing.duration", "plant", "plant.plugin", "plant.L1", "plant.R2", "controller.Kp_v",
          "reference.plugin", "reference.points", "shaping.order", "shaping.pole", "load",
          "load.points", "load.interpolation", "limits.safe_u", "interlocks", "initial.v_out",
-         "recording", "recording.chunk", "recording.compression", "unknown"]
+         "recording", "recording.chunk", "recording.compression", "paced", "paced.realtime",
+         "paced.max_lateness", "paced.miss_share_max", "paced.realtime_priority", "unknown"]
 _scalars = (st.booleans() | st.integers(-2**63, 2**63 - 1) | st.floats()
             | st.sampled_from(["", "fast", "200 uH", "50 us", "-1 V", "1e999 V", "open", "auto",
                                "v_out", "sil", "gzip", "linear"])
