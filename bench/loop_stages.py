@@ -10,6 +10,9 @@ the loop as generated, measured in the same run.
 Variants:
 - ``generic RK4``: the runtime's generic RK4 stages over the plant's ``derivs`` in place of the
   two-stage plant's own ``rk4_step`` (the same method, arithmetic in another order);
+- ``bounds-checked``: the chunk of the ``--checked`` build (numba's bounds checks on every
+  index, and the stage marks that name a kernel on an IndexError); its recording must equal the
+  generated loop's bit for bit, which is checked;
 - ``zero-divisor checks``: the chunk compiled with numba's default error model, which tests
   every float divisor for zero so that it can raise ZeroDivisionError (the runtime compiles
   with ``error_model="numpy"``: a division by zero gives inf or NaN, which the protect stage
@@ -22,7 +25,7 @@ Variants:
   record, no RK4). Removing a stage changes what the others compute (without the RK4 the plant
   stands still), so the differences are each stage's approximate cost and need not add up.
 
-Run: python bench/loop_stages.py [--reps 11] [--only generated,owned]
+Run: python bench/loop_stages.py [--reps 11] [--only generated,owned,bounds-checked]
 The last printed line is JSON: {variant: median ns per tick}.
 """
 from __future__ import annotations
@@ -81,6 +84,7 @@ VARIANTS = {
     "without RK4": [_sub("        advance(t, ts, nsub, pp, x, u, d)\n", "")],
     "generic RK4": [lambda text: _sub("        s = plant_rk4_step(dt, pp, s, u, d)\n",
                                       _generic_rk4() + "\n")(text)],
+    "bounds-checked (--checked)": [lambda text: _checked(text)],
     "zero-divisor checks": [_sub('@njit(cache=True, error_model="numpy")\ndef run_chunk',
                                  "@njit(cache=True)\ndef run_chunk")],
     "before (generic RK4 with zero-divisor checks)": [
@@ -88,6 +92,12 @@ VARIANTS = {
         _sub('@njit(cache=True, error_model="numpy")\ndef run_chunk',
              "@njit(cache=True)\ndef run_chunk")],
 }
+
+
+def _checked(text):
+    """The bounds-checked build of the same text (``hilrig ... --checked``)."""
+    from hilrig.runtime.loop import checked_text
+    return checked_text(text)
 
 
 def _generic_rk4():
@@ -150,6 +160,9 @@ def main():
     for name, fn in fns.items():  # compile, and keep one whole recording for the check
         recs[name] = np.zeros((n, width))
         run(fn, recs[name])
+    for key in ("owned", "bounds-checked (--checked)"):
+        if key in fns and recs[key].tobytes() != recs["generated"].tobytes():
+            raise SystemExit(f"{key}: the recording differs from the generated loop's")
     if "owned" in fns:
         same = recs["owned"].tobytes() == recs["generated"].tobytes()
         print(f"owned arrays: recording equal to the generated loop's bit for bit: {same}")
