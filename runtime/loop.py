@@ -15,11 +15,13 @@ One tick k at time t = k Ts runs these stages, in this order, in every mode:
                latch only if no condition holds (else it is refused).
 6. actuate   - the plant advances one period by RK4 substeps with u and the load held
                (zero-order hold; the load profile is sampled at the tick's start).
-7. record    - one row into the chunk buffer: y, u, r, raw reference, load, interlock word,
-               controller code.
+7. record    - one row into the chunk buffer: y, u, r, raw reference, load, the true values of
+               the signals a sensor fault hits (``true_<name>``, written in stage 1 before
+               injection), interlock word, controller code.
 
-After the record stage the tick ends the run early on a *voltage collapse* (v_out below the
-scenario's ``limits.v_collapse``) or on a non-finite plant state; the row of that tick is kept.
+After the record stage the tick ends the run early on a *voltage collapse* (the plant's true
+v_out, before sensor faults, below the scenario's ``limits.v_collapse``) or on a non-finite
+plant state; the row of that tick is kept.
 
 Same inputs, same order, no wall clock inside the stages: a SIL run is bit-identical run to run.
 
@@ -68,6 +70,7 @@ def {fname}(k0, n, ts, nsub, v_collapse, i_vout,
         apply_faults(0, kk, t, seed, f_stage, f_kind, f_sig, f_t0, f_t1, f_val, f_hold, f_cond, wd, y, u, d)
         plant_outputs(t, pp, x, u, d, y)
         v_true = y[i_vout]
+        keep_true(y, f_sig, f_cond, rec, i, y.shape[0] + u.shape[0] + 9)
         # 2 inject: sensor faults on the measured signals
         apply_faults(1, kk, t, seed, f_stage, f_kind, f_sig, f_t0, f_t1, f_val, f_hold, f_cond, wd, y, u, d)
 {decide_8}
@@ -129,7 +132,7 @@ from hilrig.runtime.loop import inline as _inline
 from hilrig.runtime.shaping import shape_init, shape_step as _shape_step
 from hilrig.safety.interlocks import (protect as _protect, supervise as _supervise,
                                       watch as _watch, state_code as _state_code, L_REINIT)
-from hilrig.safety.faults import apply as _apply_faults, trigger as _trigger
+from hilrig.safety.faults import apply as _apply_faults, trigger as _trigger, keep_true as _keep_true
 from hilrig.runtime.clock import cycles, store_fence
 from hilrig.safety.interlocks import W_HOST_TIME, W_HOST_BITS, W_FORCED
 from hilrig.bridge.wire import (exchange, get_sample, read_vector, put_actuation, put_sample,
@@ -147,6 +150,7 @@ trigger = _inline(_trigger)
 supervise = _inline(_supervise)
 state_code = _inline(_state_code)
 apply_faults = _inline(_apply_faults)
+keep_true = _inline(_keep_true)
 
 #: plant state count, a literal so that the compiler unrolls the state loops
 NX = {nx}
@@ -188,6 +192,7 @@ def bridge_tick(kk, i, ts, v_collapse, i_vout,
     simulator samples and actuates). Writes row i of rec; returns 1, or 0 if the run ends."""
     t = kk * ts
     v_true = y[i_vout]
+    keep_true(y, f_sig, f_cond, rec, i, y.shape[0] + u.shape[0] + 9)
     # 2 inject: sensor faults on the measured signals
     apply_faults(1, kk, t, seed, f_stage, f_kind, f_sig, f_t0, f_t1, f_val, f_hold, f_cond, wd, y, u, d)
 {decide_4}
@@ -231,6 +236,7 @@ def bridge_chunk(k0, n, ts, v_collapse, i_vout,
         wd[W_HOST_TIME] = fio[F_TOOK]
         wd[W_HOST_BITS] = 0.0
         v_true = y[i_vout]
+        keep_true(y, f_sig, f_cond, rec, i, y.shape[0] + u.shape[0] + 9)
         # 2 inject: sensor faults on the measured signals
         apply_faults(1, kk, t, seed, f_stage, f_kind, f_sig, f_t0, f_t1, f_val, f_hold, f_cond, wd, y, u, d)
 {decide_8}
@@ -400,6 +406,10 @@ c += 1
 for j in range(d.shape[0]):
     rec[i, c] = d[j]
     c += 1
+# the true-value columns, written before injection (faults.keep_true)
+for j in range(f_cond.shape[0]):
+    if f_cond[j, 5] >= 0.0:
+        c += 1
 rec[i, c] = word
 rec[i, c + 1] = code"""
 
@@ -603,6 +613,7 @@ _STAGES = (
     ("plant_outputs(", 14, "plant {plant}: kernel outputs"),
     ("advance(", 15, "plant {plant}: kernel derivs or rk4_step (the RK4 stage)"),
     ("# 7 record", 16, "hilrig: the recording row"),
+    ("keep_true(", 16, "hilrig: the recording row"),
     ("put_actuation(", 17, "hilrig: the bridge's frame codec"),
     ("get_sample(", 17, "hilrig: the bridge's frame codec"),
     ("read_vector(", 17, "hilrig: the bridge's frame codec"),

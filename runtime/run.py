@@ -15,7 +15,7 @@ from typing import Any, Callable
 import numpy as np
 
 from hilrig.plugins.base import LOAD_SIGNALS, REFERENCE_SIGNALS, BuildContext
-from hilrig.safety.faults import LINK_KINDS, table as fault_table
+from hilrig.safety.faults import LINK_KINDS, table as fault_table, true_signals
 from hilrig.safety.interlocks import (DERIVED, EVENT_NAMES, EVT_RESET_IDLE, EVT_TRIP,
                                       InterlockTable,
                                       new_event_log, new_latch, new_watchdog)
@@ -159,6 +159,12 @@ def prepare(sc: Scenario) -> Prepared:
                 for n, u in REFERENCE_SIGNALS]
     signals.append(SignalSpec("v_ref_raw", "V", "reference before shaping"))
     signals += [SignalSpec(n, u, "load profile") for n, u in LOAD_SIGNALS]
+    # the plant's true value of each signal a sensor fault hits, before injection (none without
+    # sensor faults; faults.keep_true writes them, before the word and the code)
+    true_names = true_signals(sc.faults)
+    signals += [SignalSpec(f"true_{n}", out_units[n][0],
+                           f"{out_units[n][1]}, true plant value before sensor faults")
+                for n in true_names]
     signals.append(SignalSpec("interlock_word", "-", "bit j: interlock j beyond its limit; bits 40-43 watchdogs overrun, stale, sequence gap, peer lost; bit 48 non-finite; bit 49 controller fault; bit 50 latched; bit 51 reset requested; bit 52 reset refused"))
     signals.append(SignalSpec("ctrl_code", "-", "controller return code (0 ok)"))
     if "v_out" not in outputs:
@@ -171,8 +177,8 @@ def prepare(sc: Scenario) -> Prepared:
         pr=pr, xr=np.zeros(n_xr), iyr=iyr, yr=np.zeros(max(len(iyr), 1)), w=np.zeros(1),
         ad=ad, g1=g1, g2=g2, cr=cr, dr=dr, slew=sc.shaping["slew_rate"],
         z=np.zeros(ad.shape[0]), s=np.zeros(1), zt=np.zeros(ad.shape[0]), r=np.zeros(5),
-        dix=np.array([outputs.index(n) if n in outputs else -1 for n in ("v_out", "i_out")],
-                     dtype=np.int64),
+        dix=np.array([outputs.index(n) if n in outputs else -1
+                      for n in ("v_out", "i_out", "v_dc")], dtype=np.int64),
         lim_sig=table.sig, lim_side=table.side, lim_thr=table.thr, lim_deb=table.deb,
         lim_cnt=np.zeros(len(table.rows), dtype=np.int64), latch=_latch(table),
         pv=np.zeros(2 * (ny + nu + len(DERIVED))), y=np.zeros(ny), d=np.zeros(3),
@@ -188,8 +194,8 @@ def prepare(sc: Scenario) -> Prepared:
         names={"plant": pdecl.name, "controller": ctrl.plugin.name, "reference": ref.plugin.name},
         nx=len(pdecl.states), ny=ny, nu=nu, n_xc=n_xc, n_xr=n_xr,
         n_iyc=len(ctrl.plugin.declaration.reads), n_iyr=len(ref.plugin.declaration.reads),
-        n_sig=ny + nu + len(DERIVED), n_rows=len(table.rows), n_faults=len(
-            [f for f in sc.faults if f.kind not in LINK_KINDS]),
+        n_sig=ny + nu + len(DERIVED), n_rows=len(table.rows), n_thr=len(table.thr), n_faults=len(
+            [f for f in sc.faults if f.kind not in LINK_KINDS]), n_true=len(true_names),
         rec_cols=len(signals))
     return Prepared(sc=sc, args=args, signals=signals, table=table, y_names=outputs,
                     u_names=u_names, v0=v0)
@@ -366,7 +372,7 @@ def bind(fn, a: dict, rec_cols: int) -> None:
     index_table("iyr", ref, 0, ny)
     need("w", ref, ((1, None),))
     need("d", plant, (3,))
-    need("dix", "hilrig (derived signals)", (2,), np.int64)
+    need("dix", "hilrig (derived signals)", (3,), np.int64)
     index_table("dix", "hilrig (derived signals)", -1, ny)
     # the load profile
     nl = a["load_t"].shape[0] if isinstance(a["load_t"], np.ndarray) else 0
@@ -387,9 +393,26 @@ def bind(fn, a: dict, rec_cols: int) -> None:
     nr = e["n_rows"]
     need("lim_sig", "scenario [[interlocks]]", (nr,), np.int64)
     index_table("lim_sig", "scenario [[interlocks]]", 0, e["n_sig"])
-    for key, dt in (("lim_side", np.int64), ("lim_thr", np.float64), ("lim_deb", np.int64),
-                    ("lim_cnt", np.int64)):
+    for key, dt in (("lim_side", np.int64), ("lim_deb", np.int64), ("lim_cnt", np.int64)):
         need(key, "scenario [[interlocks]]", (nr,), dt)
+    # thresholds, and with a cross-check row XC_SIZE numbers per row after them (its partner
+    # and drop current index the protect vector)
+    from hilrig.safety.interlocks import SIDE_CROSS, SIDE_WARN, XC_SIZE
+    n_thr = e.get("n_thr", nr)
+    need("lim_thr", "scenario [[interlocks]]", (n_thr,))
+    side_ok = isinstance(a["lim_side"], np.ndarray) and a["lim_side"].shape == (nr,)
+    thr_ok = isinstance(a["lim_thr"], np.ndarray) and a["lim_thr"].shape == (n_thr,)
+    if side_ok and thr_ok:
+        cross = [k for k in range(nr) if int(a["lim_side"][k]) % SIDE_WARN == SIDE_CROSS]
+        if cross and n_thr != nr * (1 + XC_SIZE):
+            problems.append(f"scenario [[interlocks]]: a cross-check needs {nr * (1 + XC_SIZE)} "
+                            f"threshold entries, lim_thr has {n_thr}")
+        for k in cross if n_thr == nr * (1 + XC_SIZE) else ():
+            p_, c_ = a["lim_thr"][nr + XC_SIZE * k], a["lim_thr"][nr + XC_SIZE * k + 1]
+            if not (0 <= p_ < e["n_sig"] and -1 <= c_ < e["n_sig"] and p_ == int(p_)
+                    and c_ == int(c_)):
+                problems.append(f"scenario [[interlocks]]: cross-check row {k} indexes "
+                                f"{p_:g}, {c_:g} outside the {e['n_sig']} signals")
     need("latch", "hilrig (trip latch)", (LATCH_SIZE,))
     need("pv", "hilrig (interlocks)", (2 * e["n_sig"],))
     need("wd", "hilrig (watchdogs)", (WD_SIZE,))
@@ -405,11 +428,22 @@ def bind(fn, a: dict, rec_cols: int) -> None:
                     ("f_hold", np.float64)):
         need(key, "scenario [[faults]]", (nf,), dt)
     index_table("f_sig", "scenario [[faults]]", -1, ny)
-    need("f_cond", "scenario [[faults]]", (max(nf, 1), 5))
-    if nf and isinstance(a["f_cond"], np.ndarray) and a["f_cond"].ndim == 2:
+    from hilrig.safety.faults import C_TRUE, COND_COLS
+    need("f_cond", "scenario [[faults]]", (max(nf, 1), COND_COLS))
+    if isinstance(a["f_cond"], np.ndarray) and a["f_cond"].shape[1:] == (COND_COLS,):
         j = a["f_cond"][:nf, 0]
-        if not (np.all(j >= -1) and np.all(j < ny)):
+        if nf and not (np.all(j >= -1) and np.all(j < ny)):
             problems.append(f"scenario [[faults]]: condition signals {j.tolist()} outside [-1, {ny})")
+        # the true-value columns: each of 0 .. n_true-1 once, on a sensor fault's row (the
+        # loop writes column c0 + q of its row and skips one column per q)
+        q = a["f_cond"][:, C_TRUE]
+        kept = sorted(int(v) for v in q if v >= 0)
+        fsig = a["f_sig"] if isinstance(a["f_sig"], np.ndarray) else np.zeros(0, np.int64)
+        bad_row = any(v >= 0 and (r >= min(nf, fsig.shape[0]) or fsig[r] < 0)
+                      for r, v in enumerate(q))
+        if kept != list(range(e["n_true"])) or bad_row:
+            problems.append(f"hilrig (recording): true-value columns {q.tolist()} are not "
+                            f"0 .. {e['n_true'] - 1} once each")
     # the recording buffer: at least the recorded columns
     if rec_cols < e["rec_cols"]:
         problems.append(f"hilrig (recording): the buffer has {rec_cols} columns, the loop "
@@ -638,8 +672,14 @@ def execute(sc: Scenario, prep: Prepared, folder: Path,
     events = []
     if ev:
         kk = int(a["ev"][1])
-        events.append({"event": loopgen.EVENT_TEXT[ev], "tick": kk, "time_s": kk * sc.Ts,
-                       "v_out_V": float(last_row[i_vout])})
+        e = {"event": loopgen.EVENT_TEXT[ev], "tick": kk, "time_s": kk * sc.Ts,
+             "v_out_V": float(last_row[i_vout])}
+        if "true_v_out" in names:
+            # a sensor fault on v_out: the event reports the plant's true voltage (the one the
+            # collapse check reads), and the measurement beside it
+            e["v_out_V"] = float(last_row[names.index("true_v_out")])
+            e["v_out_measured_V"] = float(last_row[i_vout])
+        events.append(e)
     if end_events:
         events += end_events()
     # trips and resets, in order, from the loop's event log

@@ -26,7 +26,7 @@ except ModuleNotFoundError:  # Python 3.10
 from hilrig.plugins.base import ChoiceParam, Param, TableParam
 from hilrig.safety import faults as fault_kinds
 from hilrig.safety.faults import Fault
-from hilrig.safety.interlocks import (SIDE_ABOVE, SIDE_BELOW, SIDE_FROZEN, SIDE_MAGNITUDE,
+from hilrig.safety.interlocks import (SIDE_ABOVE, SIDE_BELOW, SIDE_CROSS, SIDE_FROZEN, SIDE_MAGNITUDE,
                                       Interlock)
 
 from . import registry
@@ -48,8 +48,10 @@ LIMITS = {"v_collapse": ("V", 25.0, (0.0, 1e5)), "safe_u": ("V", 0.0, (-1e5, 1e5
 RECORDING = {"chunk": ("s", 1.0, (1e-4, 3600.0))}
 RECORDING_CHOICES = {"compression": ("none", "gzip")}
 LOAD_COLUMNS = {"P": "W", "R": "ohm", "I": "A"}
-INTERLOCK_KEYS = {"signal", "above", "below", "magnitude_above", "frozen", "debounce", "action"}
-INTERLOCK_SIDES = ("above", "below", "magnitude_above", "frozen")
+INTERLOCK_KEYS = {"signal", "above", "below", "magnitude_above", "frozen", "cross_check", "band",
+                  "drop", "debounce", "action"}
+DROP_KEYS = {"current", "R", "L"}
+INTERLOCK_SIDES = ("above", "below", "magnitude_above", "frozen", "cross_check")
 #: watchdogs: overrun budget 0 = off; stale limit 0 = automatic (20 periods, at least 50 ms)
 WATCHDOGS = {"overrun_budget": ("s", 0.0, (0.0, 10.0)), "overrun_ticks": ("-", 1, (1, 1_000_000)),
              "stale_limit": ("s", 0.0, (0.0, 60.0)), "max_gap": ("-", 10, (1, 1_000_000)),
@@ -487,8 +489,8 @@ def _interlocks(cx, raw, plant: PluginChoice, controller: PluginChoice) -> list[
                           f"controller{hint} (signals: {', '.join(signals)})")
         sides = [k for k in INTERLOCK_SIDES if k in it]
         if len(sides) != 1:
-            raise cx.fail(where, " needs exactly one of 'above', 'below', 'magnitude_above' or "
-                          "'frozen'")
+            raise cx.fail(where, " needs exactly one of 'above', 'below', 'magnitude_above', "
+                          "'frozen' or 'cross_check'")
         side = sides[0]
         unit = signals[sig]
         action = it.get("action", "trip")
@@ -507,6 +509,48 @@ def _interlocks(cx, raw, plant: PluginChoice, controller: PluginChoice) -> list[
                               f"[1, 1000000]")
             out.append(Interlock(signal=sig, threshold=0.0, debounce=n, unit=unit,
                                  side=SIDE_FROZEN, action=action))
+            continue
+        for k in ("band", "drop"):
+            if k in it and side != "cross_check":
+                raise cx.fail(f"{where}.{k}", " belongs to a cross-check; remove it or add "
+                              "'cross_check' = the signal that must agree")
+        if side == "cross_check":
+            other = it["cross_check"]
+            if not isinstance(other, str) or other not in signals or other == sig:
+                hint = _hint(str(other), signals)
+                raise cx.fail(f"{where}.cross_check", f" = {other!r} is not another signal of "
+                              f"this plant or controller{hint} (signals: {', '.join(signals)})")
+            if signals[other] != unit:
+                raise cx.fail(f"{where}.cross_check", f" = {other!r} is in {signals[other]}, "
+                              f"{sig} in {unit}: a cross-check compares signals of one unit")
+            if "band" not in it:
+                raise cx.fail(where, f": a cross-check needs 'band', the largest |{sig} - "
+                              f"{other}| in {unit} that is still plausible, e.g. band = \"50 {unit}\"")
+            band = _quantity(cx, f"{where}.band", it["band"], unit, (0.0, 1e9))
+            drop = it.get("drop", {})
+            if not isinstance(drop, dict):
+                raise cx.fail(f"{where}.drop", " must be a table: drop = { current = \"i_L2\", "
+                              "R = \"3 mohm\", L = \"100 uH\" }")
+            for k in drop:
+                if k not in DROP_KEYS:
+                    raise cx.unknown(f"{where}.drop", k, DROP_KEYS)
+            cur = drop.get("current", "")
+            if drop and (not isinstance(cur, str) or cur not in measured
+                         or signals[cur] != "A"):
+                amps = sorted(n for n in measured if signals[n] == "A")
+                raise cx.fail(f"{where}.drop.current", f" = {cur!r} is not a measured current "
+                              f"(measured currents: {', '.join(amps) or 'none'})")
+            r_ = _quantity(cx, f"{where}.drop.R", drop["R"], "ohm", (0.0, 1e6)) if "R" in drop else 0.0
+            l_ = _quantity(cx, f"{where}.drop.L", drop["L"], "H", (0.0, 1e3)) if "L" in drop else 0.0
+            deb = it.get("debounce", 1)
+            if isinstance(deb, bool) or not isinstance(deb, int) or not 1 <= deb <= 1_000_000:
+                raise cx.fail(f"{where}.debounce", f" = {deb!r} is not a whole number of ticks in [1, 1000000]")
+            if drop and unit != "V":
+                raise cx.fail(f"{where}.drop", f": a drop (R i + L di/dt, in V) needs voltages; "
+                              f"{sig} is in {unit}")
+            out.append(Interlock(signal=sig, threshold=band, debounce=deb, unit=unit,
+                                 side=SIDE_CROSS, action=action, partner=other,
+                                 drop_current=cur if drop else "", drop_R=r_, drop_L=l_))
             continue
         lo = 0.0 if side == "magnitude_above" else -1e9
         thr = _quantity(cx, f"{where}.{side}", it[side], unit, (lo, 1e9))

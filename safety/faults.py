@@ -26,6 +26,10 @@ start of a tick, before the measurement the condition is evaluated on); sensor a
 faults act from tick k.
 
 Noise comes from numba's generator seeded with the scenario's seed on tick 0.
+
+The true value of every signal a sensor fault hits is recorded beside the measurement, as
+``true_<name>`` (:func:`true_signals`, :func:`keep_true`): the plant's output before injection,
+on every tick of the run (with no sensor fault the recording has no such column).
 """
 from __future__ import annotations
 
@@ -79,17 +83,41 @@ def stage_of(kind: str) -> int:
     return STAGE_CONTROLLER
 
 
+#: columns of a fault's condition row (f_cond): signal index (-1: timed), 1 above / 0 below,
+#: threshold, watched from, duration, and the fault's true-value column (C_TRUE: the number q of
+#: ``true_<name>`` among those columns when this is the first sensor fault on its signal, else -1)
+C_TRUE = 5
+COND_COLS = 6
+
+
+def true_signals(faults: list[Fault]) -> list[str]:
+    """The signals whose true value is recorded: those a sensor fault hits, in order of first
+    appearance."""
+    out: list[str] = []
+    for f in faults:
+        if f.kind in SENSOR_KINDS and f.signal not in out:
+            out.append(f.signal)
+    return out
+
+
 def table(faults: list[Fault], outputs: list[str]) -> dict[str, np.ndarray]:
     """Arrays for the kernel: stage, kind code, signal index, start, end, value, stuck-hold, and
     per fault its condition row [signal index (-1: timed), 1 above / 0 below, threshold, watched
-    from, duration] (a conditional fault's start and end are +inf until it triggers)."""
+    from, duration, true-value column] (a conditional fault's start and end are +inf until it
+    triggers)."""
     faults = [f for f in faults if f.kind not in LINK_KINDS]
     n = len(faults)
     tab = dict(f_stage=np.zeros(n, np.int64), f_kind=np.zeros(n, np.int64),
                f_sig=np.zeros(n, np.int64), f_t0=np.zeros(n), f_t1=np.zeros(n),
-               f_val=np.zeros(n), f_hold=np.full(n, np.nan), f_cond=np.zeros((max(n, 1), 5)))
+               f_val=np.zeros(n), f_hold=np.full(n, np.nan),
+               f_cond=np.zeros((max(n, 1), COND_COLS)))
     tab["f_cond"][:, 0] = -1.0
+    tab["f_cond"][:, C_TRUE] = -1.0
+    kept: list[str] = []
     for i, f in enumerate(faults):
+        if f.kind in SENSOR_KINDS and f.signal not in kept:
+            tab["f_cond"][i, C_TRUE] = len(kept)
+            kept.append(f.signal)
         tab["f_stage"][i] = stage_of(f.kind)
         tab["f_kind"][i] = KINDS.index(f.kind)
         tab["f_sig"][i] = outputs.index(f.signal) if f.kind in SENSOR_KINDS else -1
@@ -97,8 +125,9 @@ def table(faults: list[Fault], outputs: list[str]) -> dict[str, np.ndarray]:
         tab["f_val"][i] = 1.0 / f.value if f.kind == "short_circuit" else f.value
         if f.conditional:
             tab["f_t0"][i] = tab["f_t1"][i] = np.inf
-            tab["f_cond"][i] = (outputs.index(f.when_signal), 1.0 if f.when_side == "above" else 0.0,
-                                f.when_threshold, f.start, f.duration)
+            tab["f_cond"][i, :C_TRUE] = (outputs.index(f.when_signal),
+                                         1.0 if f.when_side == "above" else 0.0,
+                                         f.when_threshold, f.start, f.duration)
     return tab
 
 
@@ -114,6 +143,16 @@ def trigger(t, y, f_t0, f_t1, f_cond):
         if hit:
             f_t0[i] = t
             f_t1[i] = t + f_cond[i, 4]
+
+
+@njit(cache=True)
+def keep_true(y, f_sig, f_cond, rec, i, c0):
+    """Before the inject stage: write the true value of each signal a sensor fault hits into
+    row i of rec, column c0 + q (q from the fault's C_TRUE column)."""
+    for f in range(f_sig.shape[0]):
+        q = f_cond[f, 5]
+        if q >= 0.0:
+            rec[i, c0 + int(q)] = y[f_sig[f]]
 
 
 @njit(cache=True)

@@ -5,10 +5,21 @@ condition must hold on that many consecutive ticks). Signals are the plant's mea
 the controller's outputs, and two derived signals: ``p_out`` = v_out * i_out [W] (when the plant
 measures both) and ``dv_out_dt`` [V/s], the backward difference of the measured v_out over one
 tick (0 on tick 0). Sides: above or below a threshold in SI units, magnitude above a threshold
-(|value| > threshold, for a rate in either direction), or frozen (the measured value exactly
-unchanged from the previous tick while a controller output changed; the debounce is then the
-tick count). Every comparison is written so that NaN trips: ``not (value <= threshold)`` rather
-than ``value > threshold``.
+(|value| > threshold, for a rate in either direction), frozen (the measured value exactly
+unchanged from the previous tick while the controller's command moved or sat at the
+converter's range; the debounce is then the tick count), or cross-check (two signals that must
+agree, |value - partner| beyond a band, e.g. redundant measurements of one quantity). Every
+comparison is written so that NaN trips: ``not (value <= threshold)`` rather than
+``value > threshold``.
+
+Frozen and saturation: a command that sits at the converter's range [0, v_dc] (the first
+controller output at or below 0, or at or above the measured v_dc when the plant measures it; the
+same rule as the saturation-time metric) stops moving, yet it is itself evidence that the output
+should be moving: the converter applies all it can. Such a tick counts as a frozen tick like one
+where the command moved, so a stuck sensor that drives the controller into its rail still trips
+after the row's tick count. A run whose command stays at a rail until the plant's output is
+settled to the last bit (an unreachable reference) trips it too; give such a run a longer count.
+While a trip is latched the command is the safe output, and saturation does not count.
 
 Plausibility checks that always run: a non-finite measurement or controller output, and a
 non-zero fault code returned by the controller.
@@ -75,7 +86,12 @@ WD_NAMES = ("overrun", "stale", "sequence gap", "peer lost", "stop requested")
 CONDITIONS = (((1 << MAX_ROWS) - 1) | (1 << BIT_NONFINITE) | (1 << BIT_CONTROLLER)
               | (((1 << len(WD_NAMES)) - 1) << BIT_WATCHDOG))
 #: interlock sides
-SIDE_BELOW, SIDE_ABOVE, SIDE_MAGNITUDE, SIDE_FROZEN = 0, 1, 2, 3
+SIDE_BELOW, SIDE_ABOVE, SIDE_MAGNITUDE, SIDE_FROZEN, SIDE_CROSS = 0, 1, 2, 3, 4
+#: when a table has a cross-check row, its threshold array ``thr`` (one band or limit per row)
+#: goes on with XC_SIZE numbers per row: partner index, drop current index (-1: none), drop
+#: resistance [ohm], drop inductance [H] (-1, -1, 0, 0 for a row that is no cross-check)
+XC_PARTNER, XC_CURRENT, XC_R, XC_L = range(4)
+XC_SIZE = 4
 
 #: the frozen check counts a tick only while a controller output changes by more than this
 #: fraction of its magnitude since the last tick: well above rounding (about 1e-16 per
@@ -87,7 +103,7 @@ U_MOVED_REL = 1e-9
 #: added to a row's side code when its action is "warn"
 SIDE_WARN = 8
 SIDE_WORDS = {SIDE_BELOW: "below", SIDE_ABOVE: "above", SIDE_MAGNITUDE: "magnitude_above",
-              SIDE_FROZEN: "frozen"}
+              SIDE_FROZEN: "frozen", SIDE_CROSS: "cross_check"}
 #: derived signals appended to the protect vector: name, unit, description
 DERIVED = (("p_out", "W", "output power v_out * i_out"),
            ("dv_out_dt", "V/s", "rate of change of v_out over one tick"))
@@ -120,6 +136,10 @@ class Interlock:
     unit: str = ""
     side: int = -1   # SIDE_*; -1: from ``above``
     action: str = "trip"   # or "warn": logged when it starts, never latched
+    partner: str = ""      # cross-check: the signal that must agree within ``threshold``
+    drop_current: str = ""  # cross-check: the current whose drop separates the two signals
+    drop_R: float = 0.0     # [ohm]
+    drop_L: float = 0.0     # [H]
 
     def __post_init__(self):
         if self.side < 0:
@@ -134,6 +154,13 @@ class Interlock:
         sc = self.side_code
         if sc == SIDE_FROZEN:
             return f"{self.signal} frozen for {self.debounce} ticks"
+        if sc == SIDE_CROSS:
+            other = self.partner
+            if self.drop_current:
+                other = (f"({self.partner} - {self.drop_R:g} ohm * {self.drop_current} - "
+                         f"{self.drop_L:g} H * d{self.drop_current}/dt)")
+            return (f"|{self.signal} - {other}| > {self.threshold:g} {self.unit}{deb}"
+                    .replace("  ", " "))
         if sc == SIDE_MAGNITUDE:
             return f"|{self.signal}| > {self.threshold:g} {self.unit}{deb}".replace("  ", " ")
         side = ">" if sc == SIDE_ABOVE else "<"
@@ -168,6 +195,26 @@ class InterlockTable:
             if r.side_code == SIDE_FROZEN and r.signal in [d[0] for d in DERIVED]:
                 raise InterlockConfigError(f"a frozen check on {r.signal} makes no sense: it is "
                                            f"derived, not measured")
+            if r.side_code == SIDE_CROSS:
+                if r.partner not in names:
+                    close = difflib.get_close_matches(r.partner, names, n=3)
+                    hint = (f"; did you mean {', '.join(close)}?" if close
+                            else f"; signals: {', '.join(names)}")
+                    raise InterlockConfigError(f"cross-check of {r.signal} against unknown "
+                                               f"signal {r.partner!r}{hint}")
+                if r.partner == r.signal:
+                    raise InterlockConfigError(f"cross-check of {r.signal} against itself: name "
+                                               f"another signal")
+                if not r.threshold >= 0.0:
+                    raise InterlockConfigError(f"cross-check of {r.signal}: band {r.threshold!r} "
+                                               f"{r.unit} is negative".replace("  ", " "))
+                if r.drop_current and r.drop_current not in names:
+                    raise InterlockConfigError(f"cross-check of {r.signal}: drop current "
+                                               f"{r.drop_current!r} is not a signal; signals: "
+                                               f"{', '.join(names)}")
+                if not (math.isfinite(r.drop_R) and math.isfinite(r.drop_L)):
+                    raise InterlockConfigError(f"cross-check of {r.signal}: drop R and L must "
+                                               f"be finite")
             if not math.isfinite(r.threshold):
                 # a NaN limit would trip on every tick (every comparison is written so NaN trips)
                 raise InterlockConfigError(f"interlock on {r.signal}: threshold {r.threshold!r} "
@@ -178,11 +225,20 @@ class InterlockTable:
             if r.debounce < 1:
                 raise InterlockConfigError(f"interlock on {r.signal}: debounce {r.debounce} < 1 tick")
             sig.append(names.index(r.signal))
+        thr = [r.threshold for r in rows]
+        if any(r.side_code == SIDE_CROSS for r in rows):
+            for r in rows:
+                if r.side_code == SIDE_CROSS:
+                    thr += [names.index(r.partner),
+                            names.index(r.drop_current) if r.drop_current else -1,
+                            r.drop_R, r.drop_L]
+                else:
+                    thr += [-1, -1, 0.0, 0.0]
         return cls(rows=list(rows), names=list(names),
                    sig=np.array(sig, dtype=np.int64),
                    side=np.array([r.side_code + (SIDE_WARN if r.action == "warn" else 0)
                                   for r in rows], dtype=np.int64),
-                   thr=np.array([r.threshold for r in rows], dtype=np.float64),
+                   thr=np.array(thr, dtype=np.float64),
                    deb=np.array([r.debounce for r in rows], dtype=np.int64))
 
     def warn_mask(self) -> int:
@@ -376,11 +432,46 @@ def state_code(code, xc):
 
 
 @njit(cache=True)
+def _cross(k, nr, ny, nu, m, held, first, ts, pv, sig, thr):
+    """Cross-check row k: (disagreement, beyond the band). The disagreement is
+    signal - partner; with a drop current i, R and L it is signal - (partner - R i - L di/dt),
+    both taken over the last tick by the trapezoidal rule (the mean of this tick's and the last
+    one's values, di/dt the backward difference), which keeps the L di/dt of a load step out of
+    the disagreement; on tick 0 (no last tick) such a row is not judged. A non-finite value is
+    beyond (the plausibility check trips on it too)."""
+    x = nr + XC_SIZE * k
+    p = int(thr[x + XC_PARTNER])
+    c = int(thr[x + XC_CURRENT])
+    j = sig[k]
+    if held and (ny <= p < ny + nu or ny <= j < ny + nu):
+        return 0.0, False  # the command that is not applied
+    a = pv[j]
+    b = pv[p]
+    if not (abs(a) < np.inf and abs(b) < np.inf):
+        return a, True
+    if c < 0:
+        d = a - b
+    elif first:
+        return 0.0, False
+    else:
+        a0 = pv[m + j]
+        b0 = pv[m + p]
+        i1 = pv[c]
+        i0 = pv[m + c]
+        if not (abs(a0) < np.inf and abs(b0) < np.inf and abs(i1) < np.inf
+                and abs(i0) < np.inf):
+            return a, True
+        d = (0.5 * (a + a0) - 0.5 * (b + b0) + thr[x + XC_R] * 0.5 * (i1 + i0)
+             + thr[x + XC_L] * (i1 - i0) / ts)
+    return d, not (abs(d) <= thr[k])
+
+
+@njit(cache=True)
 def protect(tick, t, ts, y, u, code, dix, sig, side, thr, deb, cnt, latch, pv, safe_u):
     """Evaluate every interlock on [y, u, derived]; latch the first cause; force the safe output.
 
-    ``dix`` holds the indices of v_out and i_out in y (-1 when absent); ``pv`` has room for the
-    protect vector of this tick and of the last one. Returns the interlock word: bit j set
+    ``dix`` holds the indices of v_out, i_out and (optional third entry) v_dc in y (-1 when
+    absent); ``pv`` has room for the protect vector of this tick and of the last one. Returns the interlock word: bit j set
     while row j's condition holds (before debounce), BIT_NONFINITE, BIT_CONTROLLER for the
     plausibility checks, BIT_LATCHED while tripped.
     """
@@ -442,6 +533,14 @@ def protect(tick, t, ts, y, u, code, dix, sig, side, thr, deb, cnt, latch, pv, s
                 u_moved = True
         elif a != b:
             u_moved = True
+    # a command at the converter's range [0, v_dc] counts like a moving one for the frozen
+    # check (see the module docstring); not while the safe output is held
+    u_sat = False
+    if nu > 0 and not held:
+        a = pv[ny]
+        ivdc = dix[2] if dix.shape[0] > 2 else -1
+        if a <= 0.0 or (ivdc >= 0 and a >= y[ivdc]):
+            u_sat = True
     for k in range(sig.shape[0]):
         if held and ny <= sig[k] < ny + nu:
             cnt[k] = 0  # a limit on the command that is not applied
@@ -457,8 +556,10 @@ def protect(tick, t, ts, y, u, code, dix, sig, side, thr, deb, cnt, latch, pv, s
             beyond = not (v >= thr[k])
         elif sk == SIDE_MAGNITUDE:
             beyond = not (abs(v) <= thr[k])
+        elif sk == SIDE_CROSS:
+            v, beyond = _cross(k, sig.shape[0], ny, nu, m, held, first, ts, pv, sig, thr)
         else:
-            beyond = u_moved and v == pv[m + sig[k]]
+            beyond = (u_moved or u_sat) and v == pv[m + sig[k]]
         if beyond:
             word |= 1 << k
             cnt[k] += 1

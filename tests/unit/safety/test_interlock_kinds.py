@@ -600,7 +600,7 @@ WHERE = f"interlocks[{N_DEMO_INTERLOCKS}]"
 
 @pytest.mark.parametrize("text, fragments", [
     (_interlock('signal = "v_out"\nabove = "480 V"\nfrozen = 5'),
-     [WHERE, "needs exactly one of 'above', 'below', 'magnitude_above' or 'frozen'"]),
+     [WHERE, "needs exactly one of 'above', 'below', 'magnitude_above', 'frozen' or 'cross_check'"]),
     (_interlock('signal = "v_out"'),
      [WHERE, "needs exactly one of"]),
     (_interlock('signal = "p_out"\nfrozen = 5'),
