@@ -38,7 +38,8 @@ def test_shipped_suite_covers_every_interlock_kind_and_watchdog(shipped):
     res = json.loads((out / "r" / "results.json").read_text())
     causes = {c["cause_id"] for c in res["cases"] if c["cause_id"]}
     for needed in ("v_out above", "v_out below", "i_L1 above", "i_out above", "p_out above",
-                   "dv_out_dt magnitude_above", "v_out frozen", "u above", "non-finite v_out",
+                   "dv_out_dt magnitude_above", "v_out frozen", "v_out cross_check", "u above",
+                   "non-finite v_out",
                    "non-finite u", "watchdog overrun", "watchdog stale", "watchdog peer lost",
                    "watchdog sequence gap"):
         assert needed in causes, needed
@@ -50,6 +51,10 @@ def test_latencies_are_measured_from_the_fault(shipped):
     cases = {c["name"]: c for c in json.loads((out / "r" / "results.json").read_text())["cases"]}
     # a limit on a measured value trips on the fault's own tick
     assert cases["over-voltage: v_out sensor reads 100 V high"]["latency_ticks"] == 0
+    # a stuck v_out while the command sits at V_dc: the frozen check's 41st frozen tick is 40
+    # ticks after the fault's (every tick from the fault's own counts)
+    sat = "frozen measurement under saturation: v_out sensor stuck as the reference steps 100 V"
+    assert cases[sat]["latency_ticks"] == 40
     # three ticks of forced overrun against a 3-tick watchdog: each tick's overrun is known
     # when it is over, so the third trips one tick after it, 3 ticks after the fault's start
     assert cases["overrun watchdog: 200 us compute for 3 ticks against a 40 us budget"]["latency_ticks"] == 3
