@@ -497,6 +497,10 @@ def _interlocks(cx, raw, plant: PluginChoice, controller: PluginChoice) -> list[
         if action not in ("trip", "warn"):
             raise cx.fail(f"{where}.action", f" = {action!r}; write \"trip\" (latch and force the "
                           f"safe output, the default) or \"warn\" (log, never trip)")
+        for k in ("band", "drop"):
+            if k in it and side != "cross_check":
+                raise cx.fail(f"{where}.{k}", " belongs to a cross-check; remove it or add "
+                              "'cross_check' = the signal that must agree")
         if side == "frozen":
             if "debounce" in it:
                 raise cx.fail(where, ": 'frozen' is itself the tick count; remove 'debounce'")
@@ -510,10 +514,6 @@ def _interlocks(cx, raw, plant: PluginChoice, controller: PluginChoice) -> list[
             out.append(Interlock(signal=sig, threshold=0.0, debounce=n, unit=unit,
                                  side=SIDE_FROZEN, action=action))
             continue
-        for k in ("band", "drop"):
-            if k in it and side != "cross_check":
-                raise cx.fail(f"{where}.{k}", " belongs to a cross-check; remove it or add "
-                              "'cross_check' = the signal that must agree")
         if side == "cross_check":
             other = it["cross_check"]
             if not isinstance(other, str) or other not in signals or other == sig:

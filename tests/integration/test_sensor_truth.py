@@ -162,3 +162,33 @@ def test_bind_refuses_true_columns_and_cross_check_indices_that_do_not_fit(tmp_p
     prep.args["lim_thr"][nr + XC_SIZE * (nr - 1)] = 99.0   # partner beyond the protect vector
     with pytest.raises(PluginError, match="cross-check row"):
         _call(fn, 0, 0, np.zeros((1, len(prep.signals))), prep.args)
+
+
+@pytest.mark.parametrize("python_path", [False, True], ids=["compiled", "python"])
+def test_lockstep_records_the_same_true_columns_as_sil(tmp_path, python_path):
+    """In a bridge run the sensor faults are injected on the runtime's side, after the sample
+    arrives: the true columns hold the simulator's sample, bit for bit what SIL records, on the
+    compiled lockstep path and on the per-tick Python path (ipc socket, bounded waits)."""
+    import os
+    import subprocess
+    from tests.integration.standin import CLI, reaped, serve
+    scen = tmp_path / "stuck.toml"
+    scen.write_text(STEP.read_text().replace("[[interlocks]]", STUCK_AT_10MS + '[[faults]]\n'
+                    'kind = "offset"\nsignal = "i_L2"\nvalue = "5 A"\nstart = "5 ms"\n\n'
+                    '[[interlocks]]', 1))
+    address = f"ipc://{tmp_path}/sim.sock"
+    env = dict(os.environ, HILRIG_BRIDGE_PYTHON="1") if python_path else None
+    sim = serve(scen, address, env=env)
+    with reaped(sim):
+        p = subprocess.run(CLI + ["run", str(scen), "--bridge", address, "--out",
+                                  str(tmp_path / "hil"), "--headless", "--timeout", "60"],
+                           capture_output=True, text=True, timeout=600, env=env)
+        sim.communicate(timeout=120)
+    assert p.returncode == 0, p.stdout + p.stderr
+    sil = run_scenario(parse_scenario(scen.read_text(), name=scen.name, path=str(scen)),
+                       tmp_path / "sil")
+    a, b = open_run(tmp_path / "hil"), open_run(sil.folder)
+    for name in ("true_v_out", "true_i_L2", "v_out", "i_L2", "u"):
+        assert a.signals[name].tobytes() == b.signals[name].tobytes(), name
+    assert np.all(a.signals["v_out"][FAULT_TICK:] == a.signals["v_out"][FAULT_TICK])
+    assert np.max(a.signals["true_v_out"][FAULT_TICK:]) > 560.0   # behind the stuck reading
