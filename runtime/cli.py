@@ -76,15 +76,15 @@ class _Progress:
 def _show_caution(console, sc, notes: list[str] | None = None) -> None:
     """The notices of voltages the plant cannot reach (``notes``, or the scenario's own) and
     the high-voltage caution."""
-    from hilrig.safety.caution import (CAUTION_TITLE, caution_text, scenario_voltages,
-                                       unreachable_voltages)
+    from hilrig.safety.caution import (NOTICE_STYLE, WARNING_TITLE, caution_text,
+                                       scenario_voltages, unreachable_voltages)
     for note in unreachable_voltages(sc) if notes is None else notes:
         console.print(f"notice: {note}", markup=False, soft_wrap=True)
     text = caution_text(scenario_voltages(sc))
     if text:
         from rich.markup import escape
         from rich.panel import Panel
-        console.print(Panel(escape(text), title=CAUTION_TITLE, border_style="bold yellow", expand=False, width=min(console.width, 100)))
+        console.print(Panel(escape(text), title=WARNING_TITLE, border_style=NOTICE_STYLE, expand=False, width=min(console.width, 100)))
 
 
 def _json_text(obj) -> str:
@@ -901,7 +901,7 @@ def _interlock_test(console, args) -> int:
     from rich.markup import escape
     from rich.table import Table
 
-    from hilrig.safety.caution import CAUTION_TITLE
+    from hilrig.safety.caution import NOTICE_STYLE, WARNING_TITLE
     from hilrig.safety.suite import junit_xml, latency_text, load_suite, run_suite
     suite = load_suite(args.suite)
     out = Path(args.out) if args.out else Path("runs") / (
@@ -914,7 +914,7 @@ def _interlock_test(console, args) -> int:
                         "simulation. They are monitoring functions, not safety-rated functions "
                         "(IEC 61508, ISO 13849); hardware protection and isolation must stay in "
                         "place, and local codes and licensed practice govern real equipment.",
-                        title=CAUTION_TITLE, border_style="bold yellow", expand=False,
+                        title=WARNING_TITLE, border_style=NOTICE_STYLE, expand=False,
                         width=min(console.width, 100)))
     n_bridge = sum(c.bridge is not None for c in suite.cases)
     console.print(f"{suite.title}{'  [demo data]' if suite.demo_data else ''}: "

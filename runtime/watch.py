@@ -17,6 +17,8 @@ from typing import Any
 import msgpack
 import zmq
 
+from hilrig.safety.caution import NOTICE_STYLE, SIGNAL_STYLE, WARNING_SHORT
+
 from .telemetry import command_address
 
 KEYS_HELP = "s stop run   r reset trip   f freeze trace   q close viewer"
@@ -123,9 +125,13 @@ class View:
         parts: list[Any] = [head, Text(" " + self.status_line(),
                                        style="bold red" if self.gone_for() else "")]
         if f and f.get("caution"):
-            parts.append(Text(" CAUTION: hazardous voltage (above 60 V DC). These interlocks are\n"
-                              " not safety-rated functions; hardware protection must stay in place.",
-                              style="bold yellow"))
+            # WARNING in its ANSI Z535 colour, orange (a terminal approximates it:
+            # safety.caution.SIGNAL_COLOUR); the signal word on its colour panel
+            word, rest = WARNING_SHORT.split(":", 1)
+            line = Text(" ")
+            line.append(f" {word} ", style=SIGNAL_STYLE)
+            line.append(rest.replace("\n", "\n "), style=NOTICE_STYLE)
+            parts.append(line)
         if f is None:
             parts.append(Text("\n waiting for the run's telemetry ... (a first run of a plugin "
                               "combination compiles its loop first: up to a minute)"))
@@ -157,7 +163,11 @@ class View:
                     Panel(Text("\n".join(lines) + "\n" + err), title=trace_title,
                           title_align="left", height=10))
         if f["latched"]:
-            prot = Text("TRIPPED  ", style="bold white on red")
+            # only the label sits on red: the cause is red text on the terminal's own
+            # background (a style given to Text() would be the base of every span)
+            prot = Text()
+            prot.append("TRIPPED", style="bold white on red")
+            prot.append("  ")
             prot.append(f"{f['cause']}", style="bold red")
             if f["trip_t"] is not None:
                 prot.append(f"\nat t = {f['trip_t']:.4f} s")
