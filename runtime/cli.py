@@ -334,6 +334,7 @@ def _run(console, plain, scenario_path: Path, out: str | None, overwrite: bool, 
     _show_caution(console, sc)
     if bridge:
         _check_hv_acknowledged(sc, bridge, ack_hv, allow_remote)
+    _check_disk(console, sc, out, paced=paced or sc.mode == "paced")
     _catch_ctrl_c()
     viewer = None
     tmpdir = None
@@ -387,8 +388,23 @@ def _run(console, plain, scenario_path: Path, out: str | None, overwrite: bool, 
         overview_png(open_run(res.folder), res.folder / "overview.png")
     except ImportError:
         console.print("(matplotlib is not installed: no overview.png)")
+    except (ValueError, ArithmeticError, OverflowError) as exc:
+        # the run and its recording are complete: a plot that cannot be drawn loses nothing
+        console.print(f"notice: no overview.png: the plot could not be drawn ({exc}); the "
+                      f"recording and summary are complete", markup=False, soft_wrap=True)
     _summary_table(console, res.summary, res.folder)
     return res
+
+
+def _check_disk(console, sc, out: str | None, paced: bool) -> None:
+    """Refuse a run whose recording would not fit on the disk (before anything is written)."""
+    from hilrig.runtime.recording import check_free_space
+    from hilrig.runtime.run import prepare
+    n_signals = len(prepare(sc).signals) + (2 if paced else 0)  # paced: lateness and compute
+    note = check_free_space(Path(out) if out else Path("runs"), sc.n_ticks, n_signals,
+                            sc.recording["compression"])
+    if note:
+        console.print(f"notice: {note}", markup=False, soft_wrap=True)
 
 
 def _overrides(sets: list[str]) -> dict:
@@ -655,6 +671,11 @@ def _literal(text: str):
 
 
 def main(argv: list[str] | None = None) -> int:
+    import warnings
+    # numpy's per-operation warnings on absurd values (a peer sending 1e308): the summary says
+    # n/a or inf where a figure overflows, and the plot notes what it clipped
+    warnings.filterwarnings("ignore", message="(overflow|invalid value) encountered",
+                            category=RuntimeWarning)
     ap = argparse.ArgumentParser(prog="hilrig", description=(
         "Trial battery-emulator voltage controllers in a deterministic fixed-step loop: SIL "
         "against an embedded plant model, soft-HIL against an external simulator over a "

@@ -118,6 +118,8 @@ class View:
         f = self.frame
         head = Text()
         title = (f or {}).get("title") or "run"
+        # a publisher's text never reaches the terminal raw (escape codes shown as escapes)
+        title = "".join(ch if ch.isprintable() else repr(ch)[1:-1] for ch in str(title))
         head.append(" hilrig live view ", style="bold reverse")
         head.append(f"  {title}"[:40])
         if f and f.get("demo_data"):
