@@ -239,21 +239,34 @@ class _Keys:
             termios.tcsetattr(self.fd, termios.TCSADRAIN, self.old)
 
 
-def watch(address: str, *, plain: bool = False, exit_when_done: bool = False,
-          give_up_s: float | None = None, linger_s: float = 2.0) -> int:
-    """Run the viewer until q (or the run's end with ``exit_when_done``, or ``give_up_s``
-    without any frame)."""
-    _keep_off_the_loop_core()
+def connect(address: str, curve_keys=None) -> tuple[zmq.Socket, zmq.Socket]:
+    """The viewer's sockets: SUB for frames, PUSH for commands; with ``curve_keys`` (a folder
+    made by ``hilrig keys``) as a CurveZMQ client with the folder's client pair."""
     ctx = zmq.Context.instance()
     sub = ctx.socket(zmq.SUB)
+    push = ctx.socket(zmq.PUSH)
+    if curve_keys is not None:
+        from hilrig.bridge.keys import client_keys
+        pub, sec, server_pub = client_keys(curve_keys)
+        for sock in (sub, push):
+            sock.curve_publickey, sock.curve_secretkey = pub, sec
+            sock.curve_serverkey = server_pub
     sub.setsockopt(zmq.SUBSCRIBE, b"")
     sub.setsockopt(zmq.RCVHWM, 10)
     sub.setsockopt(zmq.LINGER, 0)
     sub.connect(address)
-    push = ctx.socket(zmq.PUSH)
     push.setsockopt(zmq.LINGER, 0)
     push.setsockopt(zmq.SNDHWM, 10)
     push.connect(command_address(address))
+    return sub, push
+
+
+def watch(address: str, *, plain: bool = False, exit_when_done: bool = False,
+          give_up_s: float | None = None, linger_s: float = 2.0, curve_keys=None) -> int:
+    """Run the viewer until q (or the run's end with ``exit_when_done``, or ``give_up_s``
+    without any frame)."""
+    _keep_off_the_loop_core()
+    sub, push = connect(address, curve_keys)
     view = View()
     tty = sys.stdout.isatty() and not plain
     keys = _Keys() if tty else None
