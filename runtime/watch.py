@@ -130,9 +130,9 @@ class View:
             # WARNING in its ANSI Z535 colour, orange (a terminal approximates it:
             # safety.caution.SIGNAL_COLOUR); the signal word on its colour panel
             word, rest = WARNING_SHORT.split(":", 1)
-            line = Text(" ")
+            line = Text()
             line.append(f" {word} ", style=SIGNAL_STYLE)
-            line.append(rest.replace("\n", "\n "), style=NOTICE_STYLE)
+            line.append(rest, style=NOTICE_STYLE)
             parts.append(line)
         if f is None:
             parts.append(Text("\n waiting for the run's telemetry ... (a first run of a plugin "

@@ -308,6 +308,11 @@ def test_the_trip_line_is_readable_and_the_hazard_notice_is_an_orange_warning():
     assert not any("CAUTION" in tx for tx, _ in segs)
     rest = [st for tx, st in segs if "hazardous voltage" in tx]
     assert rest and rest[0].color == orange
+    # a publisher's title with a terminal escape code (ESC [2J clears the screen) is shown as
+    # text, never sent raw
+    v.frame = dict(v.frame, title="t\x1b[2J (test data)")
+    text = "".join(tx for tx, _ in _styled_segments(v.render(80)))
+    assert "\x1b[2J" not in text and "t\\x1b[2J (test data)" in text
 
 
 @pytest.mark.parametrize("mode", ["sil", "paced"])
