@@ -76,15 +76,15 @@ class _Progress:
 def _show_caution(console, sc, notes: list[str] | None = None) -> None:
     """The notices of voltages the plant cannot reach (``notes``, or the scenario's own) and
     the high-voltage caution."""
-    from hilrig.safety.caution import (CAUTION_TITLE, caution_text, scenario_voltages,
-                                       unreachable_voltages)
+    from hilrig.safety.caution import (NOTICE_STYLE, WARNING_TITLE, caution_text,
+                                       scenario_voltages, unreachable_voltages)
     for note in unreachable_voltages(sc) if notes is None else notes:
         console.print(f"notice: {note}", markup=False, soft_wrap=True)
     text = caution_text(scenario_voltages(sc))
     if text:
         from rich.markup import escape
         from rich.panel import Panel
-        console.print(Panel(escape(text), title=CAUTION_TITLE, border_style="bold yellow", expand=False, width=min(console.width, 100)))
+        console.print(Panel(escape(text), title=WARNING_TITLE, border_style=NOTICE_STYLE, expand=False, width=min(console.width, 100)))
 
 
 def _json_text(obj) -> str:
@@ -273,6 +273,10 @@ def _view_args(p, remote: bool = True) -> None:
     p.add_argument("--telemetry", metavar="ADDRESS",
                    help="publish live telemetry at ADDRESS for 'hilrig watch' viewers "
                         f"(tcp://127.0.0.1:PORT or ipc:///PATH; {where})")
+    if remote:
+        p.add_argument("--telemetry-keys", metavar="DIR",
+                       help="CurveZMQ keys folder (hilrig keys DIR); required for telemetry off "
+                            "loopback, whose command socket can stop the run and clear a trip")
 
 
 def _no_realtime_arg(p) -> None:
@@ -324,7 +328,7 @@ def _run(console, plain, scenario_path: Path, out: str | None, overwrite: bool, 
          bridge: str | None = None, mode: str = "lockstep", timeout: float = 2.0,
          allow_remote: bool = False, curve_keys: str | None = None, ack_hv: bool = False,
          paced: bool = False, view: bool = False, telemetry: str | None = None,
-         realtime: bool = True):
+         realtime: bool = True, telemetry_keys: str | None = None):
     from hilrig.runtime.plots import overview_png
     from hilrig.runtime.recording import open_run
     from hilrig.runtime.run import run_scenario
@@ -334,6 +338,7 @@ def _run(console, plain, scenario_path: Path, out: str | None, overwrite: bool, 
     _show_caution(console, sc)
     if bridge:
         _check_hv_acknowledged(sc, bridge, ack_hv, allow_remote)
+    _check_disk(console, sc, out, paced=paced or sc.mode == "paced")
     _catch_ctrl_c()
     viewer = None
     tmpdir = None
@@ -342,14 +347,20 @@ def _run(console, plain, scenario_path: Path, out: str | None, overwrite: bool, 
         tmpdir = tempfile.mkdtemp(prefix="hilrig-view-")
         telemetry = f"ipc://{tmpdir}/telemetry"
     if telemetry:
-        from hilrig.bridge.transport import check_address
-        check_address(telemetry, allow_remote)
+        from hilrig.runtime import telemetry as _tel
+        _tel.check_telemetry_address(telemetry, allow_remote, telemetry_keys)
+        if telemetry_keys:
+            from hilrig.bridge.keys import server_keys
+            server_keys(Path(telemetry_keys))  # a missing or unreadable key: said now
+            _tel.CURVE_KEYS = Path(telemetry_keys)
     prog = _Progress(console, plain or view)
     if view:
         import subprocess
         # the viewer owns the terminal while the run lasts; this process stays quiet
         viewer = subprocess.Popen([sys.executable, "-m", "hilrig.runtime.cli", "watch", telemetry,
-                                   "--exit-when-done"])
+                                   "--exit-when-done"]
+                                  + (["--allow-remote"] if allow_remote else [])
+                                  + (["--curve-keys", telemetry_keys] if telemetry_keys else []))
         from hilrig.runtime import telemetry as _tel
         _tel.WAIT_FOR_VIEWER_S = 10.0  # the run starts once the viewer is there (or after 10 s)
         prog = _Progress(console, True, quiet=True)
@@ -387,8 +398,23 @@ def _run(console, plain, scenario_path: Path, out: str | None, overwrite: bool, 
         overview_png(open_run(res.folder), res.folder / "overview.png")
     except ImportError:
         console.print("(matplotlib is not installed: no overview.png)")
+    except (ValueError, ArithmeticError, OverflowError) as exc:
+        # the run and its recording are complete: a plot that cannot be drawn loses nothing
+        console.print(f"notice: no overview.png: the plot could not be drawn ({exc}); the "
+                      f"recording and summary are complete", markup=False, soft_wrap=True)
     _summary_table(console, res.summary, res.folder)
     return res
+
+
+def _check_disk(console, sc, out: str | None, paced: bool) -> None:
+    """Refuse a run whose recording would not fit on the disk (before anything is written)."""
+    from hilrig.runtime.recording import check_free_space
+    from hilrig.runtime.run import prepare
+    n_signals = len(prepare(sc).signals) + (2 if paced else 0)  # paced: lateness and compute
+    note = check_free_space(Path(out) if out else Path("runs"), sc.n_ticks, n_signals,
+                            sc.recording["compression"])
+    if note:
+        console.print(f"notice: {note}", markup=False, soft_wrap=True)
 
 
 def _overrides(sets: list[str]) -> dict:
@@ -655,6 +681,11 @@ def _literal(text: str):
 
 
 def main(argv: list[str] | None = None) -> int:
+    import warnings
+    # numpy's per-operation warnings on absurd values (a peer sending 1e308): the summary says
+    # n/a or inf where a figure overflows, and the plot notes what it clipped
+    warnings.filterwarnings("ignore", message="(overflow|invalid value) encountered",
+                            category=RuntimeWarning)
     ap = argparse.ArgumentParser(prog="hilrig", description=(
         "Trial battery-emulator voltage controllers in a deterministic fixed-step loop: SIL "
         "against an embedded plant model, soft-HIL against an external simulator over a "
@@ -706,6 +737,9 @@ def main(argv: list[str] | None = None) -> int:
                    help="close after S seconds without telemetry (default: keep waiting)")
     p.add_argument("--allow-remote", action="store_true",
                    help="allow an address that is not on this machine")
+    p.add_argument("--curve-keys", metavar="DIR",
+                   help="CurveZMQ keys folder (hilrig keys DIR): required for a run's telemetry "
+                        "off loopback (the run's --telemetry-keys folder)")
     p = sub.add_parser("keys", help="make CurveZMQ key pairs for a bridge between two machines")
     p.add_argument("folder", help="folder to write simulator.key[_secret] and runtime.key[_secret]")
     p = sub.add_parser("serve-sim", help="serve the stand-in simulator: the scenario's plant over the bridge protocol")
@@ -806,16 +840,25 @@ def main(argv: list[str] | None = None) -> int:
                        allow_remote=args.allow_remote, curve_keys=args.curve_keys,
                        ack_hv=args.acknowledge_high_voltage, paced=args.paced,
                        view=_wants_view(args, plain), telemetry=args.telemetry,
-                       realtime=not args.no_realtime)
+                       realtime=not args.no_realtime, telemetry_keys=args.telemetry_keys)
             return _run_status(res.summary)
         elif args.cmd == "watch":
+            from hilrig.bridge.errors import BridgeError as _BridgeError
             from hilrig.bridge.transport import check_address
-            from hilrig.runtime.telemetry import DEFAULT_ADDRESS
+            from hilrig.runtime.telemetry import DEFAULT_ADDRESS, needs_keys
             from hilrig.runtime.watch import watch
             address = args.address or DEFAULT_ADDRESS
             check_address(address, args.allow_remote)
+            if args.curve_keys is None and needs_keys(address):
+                raise _BridgeError(f"telemetry at {address}, reachable from other machines, "
+                                   f"needs CurveZMQ keys: make them with 'hilrig keys DIR', start "
+                                   f"the run with --telemetry-keys DIR and pass --curve-keys DIR")
+            if args.curve_keys:
+                from hilrig.bridge.keys import client_keys
+                client_keys(Path(args.curve_keys))  # a missing or unreadable key: said now
             return watch(address, plain=args.plain, exit_when_done=args.exit_when_done,
-                         give_up_s=args.give_up)
+                         give_up_s=args.give_up,
+                         curve_keys=Path(args.curve_keys) if args.curve_keys else None)
         elif args.cmd == "interlock-test":
             return _interlock_test(console, args)
         elif args.cmd == "keys":
@@ -901,7 +944,7 @@ def _interlock_test(console, args) -> int:
     from rich.markup import escape
     from rich.table import Table
 
-    from hilrig.safety.caution import CAUTION_TITLE
+    from hilrig.safety.caution import NOTICE_STYLE, WARNING_TITLE
     from hilrig.safety.suite import junit_xml, latency_text, load_suite, run_suite
     suite = load_suite(args.suite)
     out = Path(args.out) if args.out else Path("runs") / (
@@ -914,7 +957,7 @@ def _interlock_test(console, args) -> int:
                         "simulation. They are monitoring functions, not safety-rated functions "
                         "(IEC 61508, ISO 13849); hardware protection and isolation must stay in "
                         "place, and local codes and licensed practice govern real equipment.",
-                        title=CAUTION_TITLE, border_style="bold yellow", expand=False,
+                        title=WARNING_TITLE, border_style=NOTICE_STYLE, expand=False,
                         width=min(console.width, 100)))
     n_bridge = sum(c.bridge is not None for c in suite.cases)
     console.print(f"{suite.title}{'  [demo data]' if suite.demo_data else ''}: "

@@ -7,15 +7,55 @@ import numpy as np
 
 from .recording import Run
 
+#: the largest magnitude drawn as it is. Values beyond (a peer sending 1e308, a diverged
+#: state) are drawn at this bound, with a note on the figure: matplotlib cannot scale an axis
+#: whose range overflows a double (axis ranges and tick spacing become inf or NaN and drawing
+#: fails). The recording keeps the values unchanged. 1e9 V or A is far beyond any battery
+#: emulator (common practice, no source) and the bound of fault values in a scenario.
+PLOT_LIMIT = 1e9
+
+
+class _Shown:
+    """Clips what a figure draws to +-PLOT_LIMIT and remembers the largest magnitude clipped."""
+
+    def __init__(self):
+        self.largest = 0.0
+
+    def __call__(self, x: np.ndarray) -> np.ndarray:
+        x = np.asarray(x, dtype=float)
+        big = np.isfinite(x) & (np.abs(x) > PLOT_LIMIT)
+        if not big.any():
+            return x
+        self.largest = max(self.largest, float(np.abs(x[big]).max()))
+        return np.where(big, np.sign(x) * PLOT_LIMIT, x)
+
+    def note(self) -> str | None:
+        if not self.largest:
+            return None
+        return (f"values beyond +-{PLOT_LIMIT:g} are drawn at +-{PLOT_LIMIT:g} (largest "
+                f"magnitude {self.largest:.3g}); the recording holds them unchanged")
+
+
 
 def overview_png(run: Run, dest: Path) -> Path:
     """Four stacked panels: v_out and v_ref; tracking error; command u; currents."""
     import matplotlib
     matplotlib.use("Agg")
+    import warnings
+
     import matplotlib.pyplot as plt
 
+    with warnings.catch_warnings(), np.errstate(over="ignore", invalid="ignore"):
+        # absurd values (overflowing differences) are clipped below: no warning per operation
+        warnings.simplefilter("ignore", RuntimeWarning)
+        return _overview(plt, run, dest)
+
+
+def _overview(plt, run: Run, dest: Path) -> Path:
+    shown = _Shown()
     t = run.time
-    s = run.signals
+    # the interlock word is a bit field (bit 50: latched), not a value to clip
+    s = {k: v if k == "interlock_word" else shown(v) for k, v in run.signals.items()}
     fig = plt.figure(figsize=(9, 11), constrained_layout=True)
     grid = fig.add_gridspec(5, 1, height_ratios=[1, 1, 1, 1, 1.1])
     ax = [fig.add_subplot(grid[0])]
@@ -27,7 +67,7 @@ def overview_png(run: Run, dest: Path) -> Path:
     ax[0].plot(t, s["v_out"], lw=0.9, color="tab:blue", label="v_out")
     ax[0].set_ylabel("voltage [V]")
     ax[0].legend(loc="best", fontsize=8)
-    ax[1].plot(t, s["v_ref"] - s["v_out"], lw=0.8, color="tab:red")
+    ax[1].plot(t, shown(s["v_ref"] - s["v_out"]), lw=0.8, color="tab:red")
     ax[1].set_ylabel("v_ref - v_out [V]")
     u = s.get("u")
     if u is not None:
@@ -41,9 +81,11 @@ def overview_png(run: Run, dest: Path) -> Path:
             ax[3].plot(t, s[name], lw=0.8, label=name)
     ax[3].set_ylabel("current [A]")
     ax[3].set_xlabel("time [s]")
-    ax[3].legend(loc="best", fontsize=8)
+    if ax[3].get_legend_handles_labels()[1]:
+        ax[3].legend(loc="best", fontsize=8)
     # zoom on the largest tracking error: the transient a reviewer wants to see
-    err = np.abs(s["v_ref"] - s["v_out"])
+    raw = run.signals
+    err = np.abs(raw["v_ref"] - raw["v_out"])
     if t.size > 1 and np.isfinite(err).any():
         j = int(np.nanargmax(err))
         half = max(40, int(round(3e-3 / max(t[1] - t[0], 1e-12))))
@@ -71,6 +113,9 @@ def overview_png(run: Run, dest: Path) -> Path:
 
         from .outcome import judge
         title += "\n" + textwrap.fill(judge(run.summary)["text"], 110)
+    note = shown.note()
+    if note:
+        title += "\n" + note
     fig.suptitle(title, fontsize=10)
     for a in ax:
         a.grid(True, lw=0.3)

@@ -92,6 +92,49 @@ def dumps_json(obj: Any, **kw: Any) -> str:
     return json.dumps(finite_or_none(obj), allow_nan=False, **kw)
 
 
+def projected_bytes(n_rows: int, n_signals: int) -> int:
+    """The size of an uncompressed recording: time and every signal as 8-byte floats per row
+    (HDF5's own metadata is small beside it and not counted)."""
+    return int(n_rows) * (int(n_signals) + 1) * 8
+
+
+def _existing(folder: Path) -> Path:
+    """``folder`` or its nearest existing parent (where the run folder will be created)."""
+    folder = Path(folder).absolute()
+    while not folder.exists() and folder != folder.parent:
+        folder = folder.parent
+    return folder
+
+
+def check_free_space(folder: Path, n_rows: int, n_signals: int, compression: str = "none",
+                     free: int | None = None) -> str | None:
+    """Refuse a run whose uncompressed recording would not fit on the disk of ``folder``
+    (a RecordingError with both figures). With gzip compression the projection is an upper
+    bound: a notice is returned instead of a refusal. ``free``: bytes free (default: the
+    disk's, ``shutil.disk_usage``)."""
+    import shutil
+    need = projected_bytes(n_rows, n_signals)
+    where = _existing(folder)
+    if free is None:
+        free = shutil.disk_usage(where).free
+    if need <= free:
+        return None
+    what = (f"the recording of this run would take {_size(need)} ({n_rows} rows x "
+            f"{n_signals + 1} columns x 8 bytes) and {where} has {_size(free)} free")
+    if compression == "gzip":
+        return (f"{what}; gzip compression may make it fit, or the disk may fill and the run "
+                f"end with a write error")
+    raise RecordingError(f"{what}: shorten timing.duration, lengthen timing.Ts, free disk "
+                         f"space or choose --out on a larger disk (nothing was written)")
+
+
+def _size(n: int) -> str:
+    for f, unit in ((1e12, "TB"), (1e9, "GB"), (1e6, "MB"), (1e3, "kB")):
+        if n >= f:
+            return f"{n / f:.1f} {unit}"
+    return f"{n} bytes"
+
+
 @dataclass(frozen=True)
 class SignalSpec:
     name: str

@@ -3,7 +3,8 @@
 The report is Markdown, readable as text and rendered by any Markdown viewer, ready to attach
 to a lab test record: the outcome, the metrics table, the interlock events, timing (with a
 histogram for paced runs), the plots, the scenario that ran and the versions. Runs on demo
-data say so at the top; every report carries the high-voltage caution of the project.
+data say so at the top; every report carries the project's NOTICE that its interlocks are not safety-rated, and
+the high-voltage WARNING when the scenario configures more than 60 V DC.
 """
 from __future__ import annotations
 
@@ -13,6 +14,8 @@ from pathlib import Path
 
 import numpy as np
 
+from hilrig.safety.caution import WARNING_TITLE
+
 from .errors import RecordingError
 from .outcome import coverage_text, judge
 from .recording import Run
@@ -21,6 +24,22 @@ CAUTION = ("hilrig's interlocks and watchdogs are monitoring functions of a test
            "safety-rated functions (IEC 61508, ISO 13849). This report documents a simulation "
            "or rehearsal; hardware protection and isolation must stay in place, and local codes "
            "and licensed practice govern any connection to real equipment.")
+
+
+def _hazard_text(run: Run) -> str | None:
+    """The high-voltage WARNING of the scenario the run recorded (None at most 60 V DC). When
+    the recorded scenario cannot be read any more (a plugin gone), the WARNING is given:
+    it must never be missing for a run above 60 V DC."""
+    from hilrig.safety.caution import caution_text, scenario_voltages
+
+    from .scenario import parse_scenario
+    try:
+        sc = parse_scenario(run.attrs.get("scenario_text", ""), name="scenario.toml")
+        return caution_text(scenario_voltages(sc))
+    except Exception:  # noqa: BLE001 - any failure gives the notice, never a missing one
+        return ("The scenario of this run could not be read back to check its voltages; treat "
+                "it as configuring voltages above 60 V DC, which on real equipment can kill. "
+                + CAUTION)
 
 
 def _fmt(v) -> str:
@@ -121,7 +140,11 @@ def write_report(run: Run, dest: Path | None = None) -> Path:
     if s.get("demo_data"):
         L.append("**Demo data**: an invented scenario, not measurements of real equipment.")
         L.append("")
-    L.append(f"> **Caution.** {CAUTION}")
+    hazard = _hazard_text(run)
+    if hazard:
+        L.append(f"> **{WARNING_TITLE}.** {hazard}")
+        L.append(">")
+    L.append(f"> **NOTICE.** {CAUTION}")
     L.append("")
     L.append("## Outcome")
     L.append("")

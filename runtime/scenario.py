@@ -12,6 +12,7 @@ from __future__ import annotations
 import difflib
 import json
 import math
+import unicodedata
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
@@ -62,6 +63,9 @@ PACED = {"miss_share_max": ("-", 0.01, (0.0, 1.0)), "max_lateness": ("s", 1e-3, 
          "realtime_priority": ("-", 49, (1, 99))}
 PACED_FLAGS = {"realtime": True}
 MAX_TICKS = 2_000_000_000
+#: the deepest nesting of arrays and tables a scenario may have (its own tables need 4:
+#: [[faults]] entries with a table of rows); deeper input is refused with a clear message
+MAX_NESTING = 8
 
 
 @dataclass
@@ -169,8 +173,21 @@ def parse_scenario(text: str, name: str = "scenario.toml", path: str = "",
         raw = tomllib.loads(text)
     except tomllib.TOMLDecodeError as exc:
         raise ScenarioError(f"{name}: not valid TOML: {exc}") from None
+    except RecursionError:
+        # the TOML reader recurses once per nesting level of arrays and inline tables
+        raise ScenarioError(f"{name}: arrays or inline tables are nested too deeply to read "
+                            f"(a scenario nests at most {MAX_NESTING} levels; a table's rows "
+                            f"are two, e.g. points = [[0, 400], [\"1 s\", 400]])") from None
+    if not raw:
+        # an empty file (or one of comments only) would run every default: an 800 V DC link
+        # for 1 s with no interlocks. More likely a wrong or truncated file than a wish.
+        raise ScenarioError(f"{name}: the scenario is empty (no keys). It would run the "
+                            f"defaults: plant.V_dc = 800 V for 1 s with no interlocks. Write what "
+                            f"to run (runtime/data/demo.toml is an example); to run the defaults "
+                            f"on purpose, give the file at least a title, e.g. title = \"defaults\"")
     for dotted, value in (overrides or {}).items():
         _set_dotted(cx, raw, dotted, value)
+    _check_shape(cx, raw)
     if overrides:
         # what runs is the file with the overrides: the run folder's scenario.toml and the
         # recording's scenario_text hold that, so running them again repeats this run
@@ -231,6 +248,45 @@ def parse_scenario(text: str, name: str = "scenario.toml", path: str = "",
                     safe_u=limits["safe_u"], interlocks=interlocks, v_out0=v_out0,
                     recording=recording, faults=faults, resets=resets, watchdogs=watchdogs,
                     paced=paced)
+
+
+def _check_shape(cx, raw: dict) -> None:
+    """No deeper nesting than MAX_NESTING levels, and no control characters in strings (a title
+    with terminal escape codes would reach the terminal raw): one clear error naming the key.
+    Iterative, so that any depth the TOML reader returned is checked without recursion."""
+    todo: list[tuple[str, Any, int]] = [(k, v, 1) for k, v in raw.items()]
+    while todo:
+        key, v, depth = todo.pop()
+        if depth > MAX_NESTING:
+            raise cx.fail(_printable(key), f" nests arrays or tables {depth} levels deep; a "
+                          f"scenario nests at most {MAX_NESTING}")
+        if isinstance(v, dict):
+            for k, w in v.items():
+                bad = _control_char(k)
+                if bad is not None:
+                    raise cx.fail(_printable(f"{key}.{k}"), f": the key holds {bad}; remove it")
+                todo.append((f"{key}.{k}", w, depth + 1))
+        elif isinstance(v, list):
+            todo.extend((f"{key}[{i}]", w, depth + 1) for i, w in enumerate(v))
+        elif isinstance(v, str):
+            bad = _control_char(v)
+            if bad is not None:
+                raise cx.fail(_printable(key), f" holds {bad}: control characters (such as "
+                              f"terminal escape codes) are not allowed in a scenario's text; "
+                              f"remove it")
+
+
+def _control_char(text: str) -> str | None:
+    """The first control character of ``text`` (tab and newline allowed), described."""
+    for i, ch in enumerate(text):
+        if ch not in "\t\n" and unicodedata.category(ch) == "Cc":
+            return f"the control character U+{ord(ch):04X} at position {i}"
+    return None
+
+
+def _printable(text: str) -> str:
+    """``text`` with control characters shown as escapes (for messages)."""
+    return "".join(repr(ch)[1:-1] if unicodedata.category(ch) == "Cc" else ch for ch in text)
 
 
 def _effective_text(cx, raw: dict, overrides: dict[str, Any]) -> str:

@@ -8,7 +8,13 @@ Any number of viewers (``hilrig watch``) may subscribe, on this machine or, with
 address, from another one.
 
 Addresses: ``tcp://HOST:PORT`` (commands on PORT + 1) or ``ipc:///path`` (commands on
-``/path.cmd``). Loopback by default; another interface needs ``--allow-remote``.
+``/path.cmd``). Loopback by default; another interface needs ``--allow-remote`` and CurveZMQ
+keys (``--telemetry-keys DIR``, a folder made by ``hilrig keys``), as a bridge does: whoever
+reaches the command socket can stop a run or clear a latched trip, so it is never open off this
+machine without authentication. With keys, frames and commands are encrypted, the run serves with
+the folder's server pair (``simulator.key_secret``) and accepts only viewers whose public
+certificate is in the folder; a viewer connects with ``hilrig watch ADDRESS --curve-keys DIR``
+(the client pair ``runtime.key_secret`` and the server's ``simulator.key``).
 
 Frame (every key always present; values in SI units unless the key says otherwise):
 ``v`` protocol version 1, ``title``, ``mode``, ``demo_data``, ``caution`` (text or None),
@@ -34,6 +40,9 @@ from hilrig.safety.interlocks import (EVENT_NAMES, L_CAUSE, L_TIME, L_TRIPPED, S
                                       InterlockTable)
 
 DEFAULT_ADDRESS = "tcp://127.0.0.1:47820"
+#: the CurveZMQ keys folder for telemetry off loopback: set by the command line
+#: (``--telemetry-keys``), passed on by :func:`telemetry_config`
+CURVE_KEYS = None
 #: how long a run waits for its first viewer to subscribe before its first tick: set by the
 #: command line when it has started a viewer itself (a fast run would otherwise be over before
 #: the viewer connects: a publisher drops what nobody has subscribed to yet)
@@ -42,6 +51,26 @@ FRAME_INTERVAL_S = 0.05
 TRACE_S = 2.0
 TRACE_POINTS = 240
 KEY_SIGNALS = ("v_out", "v_ref", "i_out", "i_L1", "v_C1", "u", "v_dc")
+
+
+def needs_keys(address: str) -> bool:
+    """True for a tcp address reachable from other machines (not loopback, not ipc)."""
+    from hilrig.bridge.transport import _is_loopback
+    return not address.startswith("ipc://") and not _is_loopback(address)
+
+
+def check_telemetry_address(address: str, allow_remote: bool = False, curve_keys=None) -> str:
+    """Validate a telemetry address: loopback or ipc, or another interface with
+    ``allow_remote`` and CurveZMQ keys (its command socket can stop a run and clear a trip)."""
+    from hilrig.bridge.errors import BridgeError
+    from hilrig.bridge.transport import check_address
+    check_address(address, allow_remote)
+    if curve_keys is None and needs_keys(address):
+        raise BridgeError(f"telemetry at {address}, reachable from other machines, takes commands "
+                          f"(stop, reset) and needs CurveZMQ keys: make them with 'hilrig keys "
+                          f"DIR' and pass --telemetry-keys DIR (viewers: hilrig watch ADDRESS "
+                          f"--curve-keys DIR)")
+    return address
 
 
 def command_address(address: str) -> str:
@@ -57,11 +86,15 @@ class Telemetry:
     out at most every ``FRAME_INTERVAL_S`` unless ``force``."""
 
     def __init__(self, address: str, *, info: dict[str, Any], names: list[str], units: list[str],
-                 table: InterlockTable, allow_remote: bool = False, wait_for_viewer_s: float = 0.0):
-        from hilrig.bridge.transport import check_address
-        check_address(address, allow_remote)
+                 table: InterlockTable, allow_remote: bool = False, wait_for_viewer_s: float = 0.0,
+                 curve_keys=None):
+        check_telemetry_address(address, allow_remote, curve_keys)
         self.address = address
-        self.ctx = zmq.Context.instance()
+        # a CurveZMQ server owns its context (its authenticator's inproc name: as the bridge's
+        # transports, hilrig.bridge.transport._context)
+        self.own_ctx = curve_keys is not None
+        self.ctx = zmq.Context() if self.own_ctx else zmq.Context.instance()
+        self.auth = None
         # XPUB: a PUB socket that also hands over subscriptions, so a run can wait for its viewer
         self.pub = self.ctx.socket(zmq.XPUB)
         self.pub.setsockopt(zmq.SNDHWM, 10)
@@ -70,11 +103,21 @@ class Telemetry:
         self.cmd.setsockopt(zmq.LINGER, 0)
         self.cmd.setsockopt(zmq.MAXMSGSIZE, 4096)
         try:
+            if curve_keys is not None:
+                from hilrig.bridge.keys import server_keys, start_authenticator
+                pub, sec = server_keys(curve_keys)
+                self.auth = start_authenticator(self.ctx, curve_keys)
+                for sock in (self.pub, self.cmd):
+                    sock.curve_server = True
+                    sock.curve_publickey, sock.curve_secretkey = pub, sec
             self.pub.bind(address)
             self.cmd.bind(command_address(address))
-        except zmq.ZMQError as exc:
+        except BaseException as exc:
             self.pub.close(0)
             self.cmd.close(0)
+            self._release()
+            if not isinstance(exc, zmq.ZMQError):
+                raise
             raise ValueError(f"telemetry address {address} (commands on "
                              f"{command_address(address)}): {exc}; choose another --telemetry "
                              f"address") from None
@@ -209,6 +252,14 @@ class Telemetry:
     def close(self) -> None:
         self.pub.close(linger=200)  # let the last frame (ended) go out
         self.cmd.close(linger=0)
+        self._release()
+
+    def _release(self) -> None:
+        if self.auth is not None:
+            self.auth.stop()
+            self.auth = None
+        if self.own_ctx and not self.ctx.closed:
+            self.ctx.term()  # waits for the last frame's linger, then frees the context
 
 
 def run_info(sc) -> dict[str, Any]:
@@ -222,4 +273,4 @@ def telemetry_config(sc, prep, address: str, allow_remote: bool = False) -> dict
     """Keyword arguments of :class:`Telemetry` for a prepared run."""
     return dict(address=address, info=run_info(sc), names=[s.name for s in prep.signals],
                 units=[s.unit for s in prep.signals], table=prep.table, allow_remote=allow_remote,
-                wait_for_viewer_s=WAIT_FOR_VIEWER_S)
+                wait_for_viewer_s=WAIT_FOR_VIEWER_S, curve_keys=CURVE_KEYS)

@@ -17,6 +17,8 @@ from typing import Any
 import msgpack
 import zmq
 
+from hilrig.safety.caution import NOTICE_STYLE, SIGNAL_STYLE, WARNING_SHORT
+
 from .telemetry import command_address
 
 KEYS_HELP = "s stop run   r reset trip   f freeze trace   q close viewer"
@@ -116,6 +118,8 @@ class View:
         f = self.frame
         head = Text()
         title = (f or {}).get("title") or "run"
+        # a publisher's text never reaches the terminal raw (escape codes shown as escapes)
+        title = "".join(ch if ch.isprintable() else repr(ch)[1:-1] for ch in str(title))
         head.append(" hilrig live view ", style="bold reverse")
         head.append(f"  {title}"[:40])
         if f and f.get("demo_data"):
@@ -123,9 +127,13 @@ class View:
         parts: list[Any] = [head, Text(" " + self.status_line(),
                                        style="bold red" if self.gone_for() else "")]
         if f and f.get("caution"):
-            parts.append(Text(" CAUTION: hazardous voltage (above 60 V DC). These interlocks are\n"
-                              " not safety-rated functions; hardware protection must stay in place.",
-                              style="bold yellow"))
+            # WARNING in its ANSI Z535 colour, orange (a terminal approximates it:
+            # safety.caution.SIGNAL_COLOUR); the signal word on its colour panel
+            word, rest = WARNING_SHORT.split(":", 1)
+            line = Text()
+            line.append(f" {word} ", style=SIGNAL_STYLE)
+            line.append(rest, style=NOTICE_STYLE)
+            parts.append(line)
         if f is None:
             parts.append(Text("\n waiting for the run's telemetry ... (a first run of a plugin "
                               "combination compiles its loop first: up to a minute)"))
@@ -157,7 +165,11 @@ class View:
                     Panel(Text("\n".join(lines) + "\n" + err), title=trace_title,
                           title_align="left", height=10))
         if f["latched"]:
-            prot = Text("TRIPPED  ", style="bold white on red")
+            # only the label sits on red: the cause is red text on the terminal's own
+            # background (a style given to Text() would be the base of every span)
+            prot = Text()
+            prot.append("TRIPPED", style="bold white on red")
+            prot.append("  ")
             prot.append(f"{f['cause']}", style="bold red")
             if f["trip_t"] is not None:
                 prot.append(f"\nat t = {f['trip_t']:.4f} s")
@@ -227,21 +239,34 @@ class _Keys:
             termios.tcsetattr(self.fd, termios.TCSADRAIN, self.old)
 
 
-def watch(address: str, *, plain: bool = False, exit_when_done: bool = False,
-          give_up_s: float | None = None, linger_s: float = 2.0) -> int:
-    """Run the viewer until q (or the run's end with ``exit_when_done``, or ``give_up_s``
-    without any frame)."""
-    _keep_off_the_loop_core()
+def connect(address: str, curve_keys=None) -> tuple[zmq.Socket, zmq.Socket]:
+    """The viewer's sockets: SUB for frames, PUSH for commands; with ``curve_keys`` (a folder
+    made by ``hilrig keys``) as a CurveZMQ client with the folder's client pair."""
     ctx = zmq.Context.instance()
     sub = ctx.socket(zmq.SUB)
+    push = ctx.socket(zmq.PUSH)
+    if curve_keys is not None:
+        from hilrig.bridge.keys import client_keys
+        pub, sec, server_pub = client_keys(curve_keys)
+        for sock in (sub, push):
+            sock.curve_publickey, sock.curve_secretkey = pub, sec
+            sock.curve_serverkey = server_pub
     sub.setsockopt(zmq.SUBSCRIBE, b"")
     sub.setsockopt(zmq.RCVHWM, 10)
     sub.setsockopt(zmq.LINGER, 0)
     sub.connect(address)
-    push = ctx.socket(zmq.PUSH)
     push.setsockopt(zmq.LINGER, 0)
     push.setsockopt(zmq.SNDHWM, 10)
     push.connect(command_address(address))
+    return sub, push
+
+
+def watch(address: str, *, plain: bool = False, exit_when_done: bool = False,
+          give_up_s: float | None = None, linger_s: float = 2.0, curve_keys=None) -> int:
+    """Run the viewer until q (or the run's end with ``exit_when_done``, or ``give_up_s``
+    without any frame)."""
+    _keep_off_the_loop_core()
+    sub, push = connect(address, curve_keys)
     view = View()
     tty = sys.stdout.isatty() and not plain
     keys = _Keys() if tty else None

@@ -1,6 +1,12 @@
-"""High-voltage caution notices.
+"""High-voltage hazard notices.
 
-A caution is shown whenever a voltage that can be present on the equipment a scenario describes
+Signal word and colour (from memory of ANSI Z535.4 and ISO 3864-2): CAUTION is kept for a
+hazardous situation which, if not avoided, could result in minor or moderate injury; WARNING for
+one which could result in death or serious injury; DANGER for one which will. A voltage above
+60 V DC can kill, and whether it will depends on the equipment and the work on it, which the
+tool cannot know: the notice is a WARNING, in the colour ANSI Z535 gives that word (orange).
+
+A notice is shown whenever a voltage that can be present on the equipment a scenario describes
 exceeds 60 V DC, the limit of voltage class A for road-vehicle electric circuits (above it:
 class B, hazardous; ISO 6469-3, and UN ECE / EU Regulation 2015/208 Annex XXIV).
 
@@ -22,7 +28,7 @@ source):
   ``u_max = 10 kV``, which the controller itself limits to the plant's ``V_dc``; a clamp above
   what the plant can produce is not a voltage present on equipment.
 
-When in doubt a value counts: the caution must never be missing for a scenario that has more
+When in doubt a value counts: the notice must never be missing for a scenario that has more
 than 60 V anywhere.
 """
 from __future__ import annotations
@@ -39,8 +45,23 @@ from hilrig.plugins.base import Param, TableParam
 #: ISO 6469-3 voltage class B begins above 60 V DC
 CLASS_B_DC_V = 60.0
 
-CAUTION_TITLE = "CAUTION: HAZARDOUS VOLTAGE"
-CAUTION_TEXT = (
+#: the signal word for a hazard that could result in death or serious injury (ANSI Z535.4,
+#: ISO 3864-2; from memory)
+SIGNAL_WORD = "WARNING"
+#: ANSI Z535 gives WARNING the safety colour orange. A terminal only approximates it: colour
+#: 208 of the 256-colour palette (rich's "dark_orange", #ff8700); a 16-colour terminal shows
+#: its nearest colour (yellow).
+SIGNAL_COLOUR = "dark_orange"
+#: the signal-word panel of a WARNING: black letters on orange
+SIGNAL_STYLE = f"bold black on {SIGNAL_COLOUR}"
+#: the border and text of the notice in the terminal
+NOTICE_STYLE = f"bold {SIGNAL_COLOUR}"
+
+WARNING_TITLE = f"{SIGNAL_WORD}: HAZARDOUS VOLTAGE"
+#: short form for the live view
+WARNING_SHORT = (f"{SIGNAL_WORD}: hazardous voltage (above 60 V DC). These interlocks are\n"
+                 " not safety-rated functions; hardware protection must stay in place.")
+WARNING_TEXT = (
     "This scenario configures voltages above 60 V DC (voltage class B, ISO 6469-3), e.g. "
     "{where} = {vmax:.0f} V. On real equipment such voltages can kill. hilrig's interlocks and "
     "watchdogs are monitoring functions of a test tool, NOT safety-rated functions "
@@ -56,12 +77,13 @@ def hazardous_voltages(items: Iterable[tuple[str, float]]) -> list[tuple[str, fl
 
 
 def caution_text(items: Iterable[tuple[str, float]]) -> str | None:
-    """The caution for a set of configured voltages, or None when all are at most 60 V."""
+    """The hazard notice (WARNING) for a set of configured voltages, or None when all are at
+    most 60 V."""
     hv = hazardous_voltages(items)
     if not hv:
         return None
     name, v = hv[0]
-    return CAUTION_TEXT.format(vmax=abs(v), where=name)
+    return WARNING_TEXT.format(vmax=abs(v), where=name)
 
 
 def _volt_values(key: str, choice, names=None) -> list[tuple[str, float]]:

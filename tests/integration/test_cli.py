@@ -45,7 +45,7 @@ def test_demo_writes_run_folder_and_shows_caution(demo_folder):
     for name in ("recording.h5", "summary.json", "scenario.toml", "overview.png"):
         assert (out / name).is_file(), name
     # high-voltage caution above 60 V DC (ISO 6469-3 voltage class B)
-    assert "CAUTION: HAZARDOUS VOLTAGE" in stdout
+    assert "WARNING: HAZARDOUS VOLTAGE" in stdout and "CAUTION" not in stdout
     assert "not safety-rated" in stdout.replace("\n", " ").replace("NOT", "not")
     assert "demo data" in stdout
     assert "RMS tracking error" in stdout
@@ -133,12 +133,13 @@ def test_a_48_v_scenario_has_no_caution_and_its_remote_bridge_no_high_voltage_re
     p = run_cli("run", low, *remote)
     # refused only by the next check: a remote ZeroMQ peer needs CurveZMQ keys
     assert p.returncode == 2 and "needs CurveZMQ keys" in p.stdout, p.stdout + p.stderr
-    assert "CAUTION" not in p.stdout and "--acknowledge-high-voltage" not in p.stdout
+    assert "WARNING" not in p.stdout and "CAUTION" not in p.stdout \
+        and "--acknowledge-high-voltage" not in p.stdout
     high = tmp_path / "high.toml"
     high.write_text(LOW_48V.replace('plugin = "cascaded_pi"\n', 'plugin = "cascaded_pi"\nu_max = "100 V"\n'))
     p = run_cli("run", high, *remote)
     assert p.returncode == 2 and "--acknowledge-high-voltage" in p.stdout, p.stdout + p.stderr
-    assert "CAUTION: HAZARDOUS VOLTAGE" in p.stdout
+    assert "WARNING: HAZARDOUS VOLTAGE" in p.stdout
     assert "controller.u_max = 100 V" in " ".join(p.stdout.split())
     assert not (tmp_path / "r").exists()
 

@@ -70,7 +70,7 @@ def test_live_view_in_a_terminal_refuses_then_accepts_a_reset(tmp_path, demo_pat
                    check=True, timeout=30)
     try:
         screen = _wait_for(session, lambda t: "TRIPPED" in t, 300, "the trip")
-        for panel in ("hilrig live view", "signals", "protection", "timing", "CAUTION",
+        for panel in ("hilrig live view", "signals", "protection", "timing", "WARNING",
                       "not safety-rated", "keys:", "v_out (o) and reference (.)"):
             assert panel in screen, (panel, screen)
         assert "non-finite value of v_out" in screen
@@ -260,7 +260,7 @@ def test_view_renders_in_80_columns_and_freezes_the_trace():
     console.print(v.render(80))
     text = console.export_text()
     assert all(len(line) <= 80 for line in text.splitlines())
-    for part in ("TRIPPED", "interlock v_out > 480 V", "watchdog: stale", "CAUTION", "##########"):
+    for part in ("TRIPPED", "interlock v_out > 480 V", "watchdog: stale", "WARNING", "##########"):
         assert part in text, part
     v.frozen_trace = frame["trace"]
     frame2 = dict(frame, trace={"t": [0.0, 0.001], "v_out": [1.0, 2.0], "v_ref": [1.0, 2.0]})
@@ -269,6 +269,50 @@ def test_view_renders_in_80_columns_and_freezes_the_trace():
     console.print(v.render(80))
     text = console.export_text()
     assert "FROZEN" in text and "500.0" in text  # still the frozen window's scale
+
+
+def _styled_segments(renderable, width=80):
+    """The (text, style) segments rich draws for a renderable on a 256-colour terminal."""
+    import io
+
+    from rich.console import Console
+    console = Console(width=width, file=io.StringIO(), force_terminal=True, color_system="256")
+    return [(seg.text, seg.style) for seg in console.render(renderable) if seg.text.strip()]
+
+
+def test_the_trip_line_is_readable_and_the_hazard_notice_is_an_orange_warning():
+    """The trip cause must not be drawn in its own background colour; the hazard notice uses the
+    signal word WARNING (could result in death or serious injury; ANSI Z535.4 / ISO 3864-2, from
+    memory) in the WARNING colour of ANSI Z535, orange (a terminal colour approximates it)."""
+    from rich.color import Color
+
+    from hilrig.runtime.watch import View
+    v = View()
+    v.frame = {"v": 1, "title": "t (test data)", "mode": "sil", "demo_data": False,
+               "caution": "x", "tick": 100, "n_total": 1000, "t": 0.005, "wall": 0.1,
+               "values": {"v_out": [500.0, "V"]}, "limits": [["v_out", "above", 480.0, "V"]],
+               "word": 1 << 50, "latched": True, "cause": "interlock v_out > 480 V",
+               "trip_t": 0.004, "events": [], "trace": {"t": [], "v_out": [], "v_ref": []},
+               "timing": {"ticks_per_s": 1e6, "lateness_p99_us": None, "late_ticks": None,
+                          "compute_p99_us": None}, "bridge": None, "ended": False,
+               "end_event": None}
+    segs = _styled_segments(v.render(80))
+    cause = [st for tx, st in segs if "interlock v_out > 480 V" in tx]
+    assert cause, segs
+    for st in cause:
+        assert st.color is not None and st.bgcolor != st.color, st  # readable: not red on red
+    word = [st for tx, st in segs if tx.strip() == "WARNING"]
+    assert word, segs
+    orange = Color.parse("dark_orange")  # 256-colour palette 208, #ff8700
+    assert word[0].bgcolor == orange and word[0].bold, word[0]
+    assert not any("CAUTION" in tx for tx, _ in segs)
+    rest = [st for tx, st in segs if "hazardous voltage" in tx]
+    assert rest and rest[0].color == orange
+    # a publisher's title with a terminal escape code (ESC [2J clears the screen) is shown as
+    # text, never sent raw
+    v.frame = dict(v.frame, title="t\x1b[2J (test data)")
+    text = "".join(tx for tx, _ in _styled_segments(v.render(80)))
+    assert "\x1b[2J" not in text and "t\\x1b[2J (test data)" in text
 
 
 @pytest.mark.parametrize("mode", ["sil", "paced"])

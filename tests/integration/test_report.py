@@ -42,6 +42,10 @@ def test_report_md_has_outcome_metrics_events_plots_scenario(tripped_run):
                  "## Timing", "## Versions", "## Scenario", "```toml"):
         assert part in md, part
     assert "interlock v_out > 480 V at t = 0.2 s" in md
+    # an 800 V scenario: the hazard's signal word is WARNING (death or serious injury; ANSI
+    # Z535.4 / ISO 3864-2, from memory), not CAUTION (minor or moderate injury)
+    assert "> **WARNING: HAZARDOUS VOLTAGE.** This scenario configures voltages above 60 V DC" in md
+    assert "Caution" not in md and "CAUTION" not in md
     assert "| status | tripped |" in md and "| outcome | tripped at 200 ms: interlock v_out > 480 V, value " in md
     assert "| 4000 | 0.2 | trip | interlock v_out > 480 V |" in md
     assert "offset on v_out: active from 0.2 s" in md

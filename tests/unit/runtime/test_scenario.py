@@ -421,7 +421,7 @@ def test_a_load_profile_that_starts_later_has_no_load_before_it():
 
 
 def test_defaults_fill_in_and_text_is_kept():
-    text = "# nothing but a comment\n"
+    text = "# a comment and one key at its default\nseed = 0\n"
     sc = parse_scenario(text, name=NAME)
     assert sc.text == text
     assert (sc.mode, sc.seed, sc.title, sc.demo_data) == ("sil", 0, "", False)
@@ -528,3 +528,42 @@ def test_table_columns_are_bounded(demo_path):
     bad = re.sub(r"rc_pairs = .*", 'rc_pairs = [["0.6 mohm", "0 F"]]', text)
     with pytest.raises(ScenarioError, match=r"reference\.rc_pairs\[0\]\.C = 0 F is outside \(0, 1e\+09\] F"):
         parse_scenario(bad, name="case.toml")
+
+
+@pytest.mark.parametrize("text", ["", "\n\n", "# only a comment\n"])
+def test_an_empty_scenario_is_refused_naming_what_it_would_run(text):
+    # an empty file would run every default: 800 V DC link, 1 s, no interlocks
+    with pytest.raises(ScenarioError) as e:
+        parse_scenario(text, name=NAME)
+    msg = str(e.value)
+    assert msg.startswith(f"{NAME}: the scenario is empty") and "800 V" in msg
+    assert "no interlocks" in msg and 'title = "defaults"' in msg
+    # the way out the message names works
+    assert parse_scenario('title = "defaults"\n', name=NAME).title == "defaults"
+
+
+@pytest.mark.parametrize("depth", [5000, 20])
+def test_deeply_nested_arrays_are_one_clear_error(depth):
+    # 5000 levels: beyond the TOML reader's recursion; 20: readable, but beyond MAX_NESTING
+    text = 'title = "x"\n[reference]\nplugin = "profile"\npoints = ' + "[" * depth + "]" * depth + "\n"
+    with pytest.raises(ScenarioError) as e:
+        parse_scenario(text, name=NAME)
+    msg = str(e.value)
+    assert msg.startswith(f"{NAME}: ") and "nest" in msg and "8" in msg, msg
+
+
+@pytest.mark.parametrize("where, text", [
+    ("title", 'title = "\\u001b[2J\\u001b[31mred"\n'),
+    ("description", 'title = "x"\ndescription = "bell \\u0007"\n'),
+    ("interlocks[0].signal", 'title = "x"\n[[interlocks]]\nsignal = "v_out\\u009b"\nabove = "480 V"\n'),
+])
+def test_control_characters_in_a_scenario_are_refused(where, text):
+    # terminal escape codes (ESC U+001B, BEL U+0007, CSI U+009B: C0/C1 controls, Unicode
+    # category Cc) must not reach the terminal raw
+    with pytest.raises(ScenarioError) as e:
+        parse_scenario(text, name=NAME)
+    msg = str(e.value)
+    assert msg.startswith(f"{NAME}: {where} holds the control character U+00"), msg
+    assert "\x1b" not in msg and "\x07" not in msg and "\x9b" not in msg
+    # tab and newline stay allowed in text
+    assert parse_scenario('title = "a\\tb"\ndescription = """two\nlines"""\n', name=NAME).title == "a\tb"
