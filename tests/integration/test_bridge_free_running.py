@@ -226,3 +226,74 @@ def test_remote_free_running_needs_the_flag_then_keys(tmp_path, plugin_dir):
     assert p.returncode == 2 and "needs CurveZMQ keys" in p.stdout, p.stdout + p.stderr
     assert "Traceback" not in p.stdout + p.stderr
     assert not (tmp_path / "r" / "recording.h5").exists()
+
+
+def _pair_proxy(front: str, back: str, hold: range, drop: bool, stop):
+    """PAIR between the runtime (``front``) and the stand-in (``back``): the SAMPLEs with seq in
+    ``hold`` are dropped (``drop``) or held back and sent in one burst with the next one."""
+    import msgpack
+    import zmq
+    ctx = zmq.Context.instance()
+    a, b = ctx.socket(zmq.PAIR), ctx.socket(zmq.PAIR)
+    for s in (a, b):
+        s.setsockopt(zmq.LINGER, 0)
+    a.bind(front)
+    b.connect(back)
+    held = []
+    poller = zmq.Poller()
+    poller.register(a, zmq.POLLIN)
+    poller.register(b, zmq.POLLIN)
+    try:
+        while not stop.is_set():
+            ready = dict(poller.poll(50))
+            if a in ready:
+                b.send(a.recv())
+            if b in ready:
+                data = b.recv()
+                f = msgpack.unpackb(data, raw=False)
+                if f[0] == 3 and f[1] in hold:
+                    if not drop:
+                        held.append(data)
+                    continue
+                for d in held + [data]:
+                    a.send(d)
+                held = []
+    finally:
+        a.close()
+        b.close()
+
+
+@pytest.mark.parametrize("how", ["burst", "lost"])
+def test_gap_watchdog_counts_samples_never_received(tmp_path, plugin_dir, how):
+    """30 samples held back and delivered in one burst: the runtime answers the newest and
+    holds the measurement for the rest, none was lost, so the sequence-gap watchdog (max_gap
+    10) stays quiet and the held ticks are reported on their own. The same 30 samples lost
+    trip it, with the count lost as its value."""
+    import threading
+    scen = _files(tmp_path, plugin_dir)
+    back, front = f"ipc://{tmp_path}/sim.sock", f"ipc://{tmp_path}/proxy.sock"
+    sim = serve(scen, back, "--mode", "free-running")
+    stop = threading.Event()
+    with reaped(sim):
+        wait_listening(sim)
+        th = threading.Thread(target=_pair_proxy,
+                              args=(front, back, range(100, 130), how == "lost", stop), daemon=True)
+        th.start()
+        try:
+            p = subprocess.run(CLI + ["run", str(scen), "--bridge", front, "--mode", "free-running",
+                                      "--out", str(tmp_path / "r"), "--headless", "--timeout", "30"],
+                               capture_output=True, text=True, timeout=600)
+        finally:
+            stop.set()
+            th.join(60)
+        sim.communicate(timeout=120)
+    s = json.loads((tmp_path / "r" / "summary.json").read_text())
+    br = s["bridge"]
+    if how == "burst":
+        assert p.returncode == 0, p.stdout + p.stderr + json.dumps(s["events"])
+        assert br["lost"] == 0 and br["held_ticks"] >= 30 and br["passed_over"] >= 29, br
+    else:
+        assert p.returncode == 1, p.stdout + p.stderr
+        assert s["trip"]["cause_id"] == "watchdog sequence gap"
+        assert s["trip"]["tick"] == 130 and s["trip"]["value"] == 30.0
+        assert br["lost"] == 30
