@@ -592,6 +592,10 @@ def run_free_running(sc, address: str, folder: Path | None = None, *, timeout_s:
     counts = {"late_runtime": 0, "held_ticks": 0, "passed_over": 0, "sim_late": None,
               "sim_missing": None}
 
+    datagrams = hasattr(link, "stale")
+    # a fault of the peer that ends the session (section 12); armed once the ticks start
+    fault: dict[str, Any] = {"armed": False, "protocol": None}
+
     def recv_frame(wait):
         data = link.recv(wait)
         if data is None:
@@ -601,6 +605,10 @@ def run_free_running(sc, address: str, folder: Path | None = None, *, timeout_s:
             return P.decode(data, n_meas=n_meas, n_act=n_act)
         except ProtocolError as exc:
             stats.rejects.add(exc.reason, str(exc))
+            if fault["armed"] and not datagrams and fault["protocol"] is None:
+                # over ZeroMQ (reliable, ordered) a frame that fails decoding is a fault of
+                # the peer: the session ends on it (section 12); a datagram is dropped
+                fault["protocol"] = exc
             return False
 
     hello = P.Hello(version=P.PROTOCOL_VERSION, tick_period_s=sc.Ts, mode=mode,
@@ -649,6 +657,8 @@ def run_free_running(sc, address: str, folder: Path | None = None, *, timeout_s:
             if left <= 0.0:
                 return None
             f = recv_frame(left)
+            if fault["protocol"] is not None:
+                return None
             if f is None:
                 continue  # the transport's wait is rounded to whole ms: wait out the rest
             if isinstance(f, P.Sample):
@@ -673,6 +683,11 @@ def run_free_running(sc, address: str, folder: Path | None = None, *, timeout_s:
             if isinstance(f, P.Stop):
                 state["lost"] = f"the simulator stopped: {f.reason}"
                 return None
+            if isinstance(f, (P.Hello, P.Welcome, P.Actuation)) and not datagrams:
+                stats.rejects.add("unexpected", f"a {type(f).__name__} frame mid-run")
+                fault["protocol"] = ProtocolError("unexpected", f"the simulator sent a "
+                                                  f"{type(f).__name__} frame mid-run")
+                return None
 
     live = _Live(sc, prep, telemetry, allow_remote, stats)
 
@@ -683,7 +698,7 @@ def run_free_running(sc, address: str, folder: Path | None = None, *, timeout_s:
             # the simulator's clock starts now, with the recording open and the loop ready
             link.send(P.encode(P.Heartbeat(seq=0, t_sender_s=0.0)))
             stats.sent += 1
-            state["started"] = True
+            state["started"] = fault["armed"] = True
         for i in range(n):
             kk = k0 + i
             # after a stale trip the runtime waits for the peer a while longer
@@ -698,7 +713,11 @@ def run_free_running(sc, address: str, folder: Path | None = None, *, timeout_s:
             fresh = False
             if smp is None:
                 since = t_in - (state["t_last"] if state["t_last"] is not None else t_wait)
-                if state["lost"] is not None or state["stale"]:
+                if fault["protocol"] is not None:
+                    bits, value = HOST_PROTOCOL, 0.0
+                    end = {"event": "bridge protocol error", "tick": kk,
+                           "detail": str(fault["protocol"])}
+                elif state["lost"] is not None or state["stale"]:
                     bits, value = HOST_LOST, since
                     end = {"event": "bridge peer lost", "tick": kk,
                            "detail": state["lost"] or f"nothing from the simulator for "
@@ -751,6 +770,12 @@ def run_free_running(sc, address: str, folder: Path | None = None, *, timeout_s:
                     if took > sc.Ts:
                         counts["late_runtime"] += 1
             if end is not None:
+                if bits == HOST_PROTOCOL:
+                    # the safe actuation went out above; then ERROR, and the session is over
+                    told = _send_error(link, fault["protocol"])
+                    stats.sent += int(told)
+                    end["peer_told"] = "safe actuation" + (
+                        f", ERROR {P.error_frame(fault['protocol']).code}" if told else "")
                 ended.append(end)
                 return i + 1
             if not go or live.after_tick(k0, i, rec):
@@ -758,8 +783,8 @@ def run_free_running(sc, address: str, folder: Path | None = None, *, timeout_s:
         return n
 
     def finish() -> list[dict[str, Any]]:
-        if any(e["event"] == "bridge peer lost" for e in ended):
-            return ended  # nobody is there to answer a STOP
+        if any(e["event"] in ("bridge peer lost", "bridge protocol error") for e in ended):
+            return ended  # nobody is there to answer a STOP, or the session ended with ERROR
         try:
             link.send(P.encode(P.Stop(reason="run ended")))
             stats.sent += 1

@@ -579,6 +579,11 @@ def serve_free_running(sc, bind: str, *, sessions: int | None = None,
                         stop = True
                         reason = "stop"
                         break
+                    elif isinstance(f, P.Error):
+                        # the runtime ended the session (not answered: section 10)
+                        stop = True
+                        reason = f"the runtime sent ERROR {f.code}: {f.reason}"
+                        break
                 if stop or time.perf_counter() - last_heard > stale_s:
                     break
                 if pending is None:

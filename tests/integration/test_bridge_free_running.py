@@ -228,9 +228,11 @@ def test_remote_free_running_needs_the_flag_then_keys(tmp_path, plugin_dir):
     assert not (tmp_path / "r" / "recording.h5").exists()
 
 
-def _pair_proxy(front: str, back: str, hold: range, drop: bool, stop):
+def _pair_proxy(front: str, back: str, hold: range, drop: bool, stop, mangle_at=None, seen=None):
     """PAIR between the runtime (``front``) and the stand-in (``back``): the SAMPLEs with seq in
-    ``hold`` are dropped (``drop``) or held back and sent in one burst with the next one."""
+    ``hold`` are dropped (``drop``) or held back and sent in one burst with the next one; the
+    SAMPLE ``mangle_at`` goes out with its leading byte flipped; the runtime's frames are kept
+    in ``seen``."""
     import msgpack
     import zmq
     ctx = zmq.Context.instance()
@@ -247,10 +249,15 @@ def _pair_proxy(front: str, back: str, hold: range, drop: bool, stop):
         while not stop.is_set():
             ready = dict(poller.poll(50))
             if a in ready:
-                b.send(a.recv())
+                data = a.recv()
+                if seen is not None:
+                    seen.append(msgpack.unpackb(data, raw=False))
+                b.send(data)
             if b in ready:
                 data = b.recv()
                 f = msgpack.unpackb(data, raw=False)
+                if f[0] == 3 and f[1] == mangle_at:
+                    data = bytes([data[0] ^ 0xFF]) + data[1:]
                 if f[0] == 3 and f[1] in hold:
                     if not drop:
                         held.append(data)
@@ -297,3 +304,39 @@ def test_gap_watchdog_counts_samples_never_received(tmp_path, plugin_dir, how):
         assert s["trip"]["cause_id"] == "watchdog sequence gap"
         assert s["trip"]["tick"] == 130 and s["trip"]["value"] == 30.0
         assert br["lost"] == 30
+
+
+def test_a_mangled_sample_over_zeromq_trips_and_tells_the_simulator(tmp_path, plugin_dir):
+    """Free-running over ZeroMQ (reliable, ordered): a frame that fails decoding is a fault of
+    the peer (docs/protocol.md section 12). The next tick trips on the protocol-error watchdog,
+    its safe actuation goes out, then ERROR, and the run exits 1."""
+    import threading
+    scen = _files(tmp_path, plugin_dir)
+    back, front = f"ipc://{tmp_path}/sim.sock", f"ipc://{tmp_path}/proxy.sock"
+    sim = serve(scen, back, "--mode", "free-running")
+    stop, seen = threading.Event(), []
+    with reaped(sim):
+        wait_listening(sim)
+        th = threading.Thread(target=_pair_proxy, args=(front, back, range(0), False, stop, 150,
+                                                        seen), daemon=True)
+        th.start()
+        try:
+            p = subprocess.run(CLI + ["run", str(scen), "--bridge", front, "--mode", "free-running",
+                                      "--out", str(tmp_path / "r"), "--headless", "--timeout", "30"],
+                               capture_output=True, text=True, timeout=600)
+        finally:
+            stop.set()
+            th.join(60)
+        sim_out, _ = sim.communicate(timeout=120)
+    assert p.returncode == 1, p.stdout + p.stderr
+    s = json.loads((tmp_path / "r" / "summary.json").read_text())
+    assert s["trip"]["cause_id"] == "watchdog protocol error", s["events"]
+    k = s["trip"]["tick"]
+    assert k == 150 and s["ticks_run"] == k + 1
+    run = open_run(tmp_path / "r")
+    assert run.signals["u"][k] == 0.0  # the safe output (limits.safe_u)
+    assert (int(run.signals["interlock_word"][k]) >> 45) & 1
+    act, err = seen[-2], seen[-1]
+    assert act[0] == 4 and act[1] == k and act[4] is False
+    assert err[0] == 7 and err[1] == 5
+    assert "the runtime sent ERROR 5" in sim_out
