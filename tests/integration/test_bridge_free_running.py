@@ -340,3 +340,44 @@ def test_a_mangled_sample_over_zeromq_trips_and_tells_the_simulator(tmp_path, pl
     assert act[0] == 4 and act[1] == k and act[4] is False
     assert err[0] == 7 and err[1] == 5
     assert "the runtime sent ERROR 5" in sim_out
+
+
+def test_free_running_udp_refuses_a_second_client(tmp_path, plugin_dir):
+    """Over UDP another client's HELLO during a free-running session is refused with ERROR 6
+    and counted; the samples keep going to the session's runtime, which completes."""
+    import socket
+    import msgpack
+    from hilrig.bridge import protocol as P
+    from hilrig.bridge.session import signal_maps
+    from hilrig.runtime.scenario import load_scenario
+    scen = _files(tmp_path, plugin_dir)
+    scen.write_text(scen.read_text() + '\n[watchdogs]\nmax_gap = 100000\n')
+    sc = load_scenario(scen)
+    meas, act = signal_maps(sc)
+    hello = P.encode(P.Hello(P.PROTOCOL_VERSION, sc.Ts, "free-running", meas, act,
+                             P.map_hash(meas, act)))
+    address = udp_address()
+    host, port = address[len("udp://"):].rsplit(":", 1)
+    sim = _serve(scen, address)
+    with reaped(sim):
+        wait_listening(sim)
+        run = subprocess.Popen(CLI + ["run", str(scen), "--bridge", address, "--mode",
+                                      "free-running", "--out", str(tmp_path / "r"), "--headless",
+                                      "--timeout", "60"],
+                               stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
+        with reaped(run):
+            deadline = time.monotonic() + 300
+            while not (tmp_path / "r" / "recording.h5").exists() and time.monotonic() < deadline:
+                time.sleep(0.02)
+            time.sleep(0.1)
+            with socket.socket(socket.AF_INET, socket.SOCK_DGRAM) as s:
+                s.settimeout(5.0)
+                s.sendto(hello, (host, int(port)))
+                answer = msgpack.unpackb(s.recv(70000), raw=False)
+            out, err = run.communicate(timeout=600)
+        sim_out, _ = sim.communicate(timeout=120)
+    assert answer[0] == 7 and answer[1] == 6, answer
+    assert run.returncode == 0, out + err
+    assert "refused a HELLO: a session is in progress" in sim_out
+    assert "rejected frames: 1 (unexpected 1)" in sim_out
+    assert "session 1 ended (stop)" in sim_out
