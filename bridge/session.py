@@ -310,6 +310,7 @@ def run_bridge(sc, address: str, folder: Path | None = None, *, mode: str = "loc
     ended: list[dict[str, Any]] = []
 
     seen: dict[str, Any] = {}
+    handshake: dict[str, Any] = {}  # the WELCOME taken (a late copy of it is a duplicate)
 
     def ask(frame, expect, want_seq=None, reply=None, resume=None):
         """Send a frame and return the reply, decoded and checked. After the compiled path
@@ -370,6 +371,10 @@ def run_bridge(sc, address: str, folder: Path | None = None, *, mode: str = "loc
             else:
                 stats.seq.out_of_order += 1
             return False
+        if isinstance(got, P.Welcome) and got == handshake.get("welcome"):
+            # a late copy of the handshake's answer (the HELLO was resent): a duplicate
+            stats.seq.duplicates += 1
+            return False
         seen["frame"] = got  # decoded once: ask() reuses it
         return True
 
@@ -378,6 +383,7 @@ def run_bridge(sc, address: str, folder: Path | None = None, *, mode: str = "loc
     try:
         welcome = ask(hello, P.Welcome)
         P.handshake_check(hello, welcome)
+        handshake["welcome"] = welcome
         current = ask(P.Heartbeat(seq=0, t_sender_s=0.0), P.Sample, want_seq=0)
     except ProtocolError as exc:
         # a refused WELCOME (or an undecodable answer) is answered with ERROR (section 7.3)

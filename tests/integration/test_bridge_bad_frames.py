@@ -168,12 +168,13 @@ def test_a_bad_sample_from_an_independent_peer_trips(tmp_path, demo_path, case):
 
 def _udp_proxy(front, back: tuple, how, stop: threading.Event):
     """Datagrams between the runtime (on ``front``, a bound socket) and the stand-in at
-    ``back``; each reply carrying SAMPLE AT goes out as how(bytes) (a list of datagrams)."""
+    ``back``; each reply carrying SAMPLE AT goes out as how(frame, bytes, WELCOME bytes) (a list
+    of datagrams)."""
     import select
     import socket
     b = socket.socket(socket.AF_INET, socket.SOCK_DGRAM)
     b.connect(back)
-    peer = None
+    peer, welcome = None, None
     try:
         while not stop.is_set():
             ready, _, _ = select.select([front, b], [], [], 0.1)
@@ -183,7 +184,8 @@ def _udp_proxy(front, back: tuple, how, stop: threading.Event):
             if b in ready:
                 out = b.recv(70000)
                 f = _sample(out)
-                outs = how(f, out) if f[0] == 3 and f[1] == AT else [out]
+                welcome = out if f[0] == 2 else welcome
+                outs = how(f, out, welcome) if f[0] == 3 and f[1] == AT else [out]
                 for o in outs:
                     if peer is not None:
                         front.sendto(o, peer)
@@ -191,11 +193,11 @@ def _udp_proxy(front, back: tuple, how, stop: threading.Event):
         b.close()
 
 
-@pytest.mark.parametrize("case", ["duplicate", "jump"])
+@pytest.mark.parametrize("case", ["duplicate", "late WELCOME", "jump"])
 def test_udp_lockstep_sequence_handling(tmp_path, demo_path, case):
     """Section 11 over datagrams in lockstep: a second copy of a SAMPLE already taken is dropped
     and counted as a duplicate (the run goes on); a SAMPLE beyond the one due is a sequence
-    error (trip)."""
+    error (trip). A late copy of the handshake's WELCOME is a duplicate too."""
     import socket
     from tests.integration.standin import udp_address
     scen = _scenario(tmp_path, demo_path)
@@ -203,8 +205,9 @@ def test_udp_lockstep_sequence_handling(tmp_path, demo_path, case):
     host, port = back[len("udp://"):].rsplit(":", 1)
     front = socket.socket(socket.AF_INET, socket.SOCK_DGRAM)
     front.bind(("127.0.0.1", 0))
-    how = ((lambda f, b: [b, b]) if case == "duplicate"
-           else (lambda f, b: [_raw(f[1] + 3, f[2], f[3])]))
+    how = {"duplicate": lambda f, b, w: [b, b],
+           "late WELCOME": lambda f, b, w: [b, w],   # a copy of the handshake's answer
+           "jump": lambda f, b, w: [_raw(f[1] + 3, f[2], f[3])]}[case]
     sim = serve(scen, back)
     stop = threading.Event()
     with reaped(sim):
@@ -222,7 +225,7 @@ def test_udp_lockstep_sequence_handling(tmp_path, demo_path, case):
             th.join(60)
             front.close()
         sim.communicate(timeout=120)
-    if case == "duplicate":
+    if case != "jump":
         assert p.returncode == 0, p.stdout + p.stderr
         s = json.loads((tmp_path / "r" / "summary.json").read_text())
         br = s["bridge"]
