@@ -19,8 +19,9 @@ from hilrig.runtime.outcome import judge
 from hilrig.runtime.run import (RunResult, bind, check_folder, default_folder, execute,
                                 fault_args, prepare, supervision_args)
 
-from hilrig.safety.interlocks import (HOST_GAP, HOST_LOST, HOST_STALE, HOST_STOP, L_RESET_NOW,
-                                      W_FORCED, W_HOST_BITS, W_HOST_TIME, W_HOST_VALUE)
+from hilrig.safety.interlocks import (HOST_GAP, HOST_LOST, HOST_PROTOCOL, HOST_SEQUENCE,
+                                      HOST_STALE, HOST_STOP, L_RESET_NOW, W_FORCED, W_HOST_BITS,
+                                      W_HOST_TIME, W_HOST_VALUE)
 
 from . import protocol as P
 from .errors import BridgeError, PeerError, ProtocolError, TransportTimeout
@@ -100,6 +101,15 @@ class _Compiled:
     def reply(self) -> bytes:
         """The frame that stopped the block (ST_FRAME)."""
         return self.rbuf[:min(int(self.io[self.W.IO_NRECV]), self.rbuf.size)].tobytes()
+
+    def oversize(self) -> "ProtocolError | None":
+        """The rejection of the frame that stopped the block when it was longer than the
+        receive buffer (its bytes were cut), naming its true length; else None."""
+        n = int(self.io[self.W.IO_MSGLEN])
+        if n <= P.MAX_FRAME_BYTES:
+            return None
+        return ProtocolError("oversize", f"frame of {n} bytes, at most {P.MAX_FRAME_BYTES} "
+                                         f"allowed")
 
     def sample(self) -> "P.Sample":
         W = self.W
@@ -210,16 +220,54 @@ class BridgeStats:
         rtt = np.array(self.rtt_ns, dtype=float) / 1e3
         pct = (lambda q: float(np.percentile(rtt, q))) if rtt.size else (lambda q: None)
         resent = getattr(self.link, "resent", 0)
-        stale = getattr(self.link, "stale", 0)
         return {"frames_sent": self.sent, "frames_received": self.received,
                 "ticks_compiled": self.compiled,
-                "resent": resent, "stale_replies": stale,
+                "resent": resent,
                 "lost": self.seq.lost, "duplicates": self.seq.duplicates,
                 "out_of_order": self.seq.out_of_order, "late": 0,
                 "rejected": dict(self.rejects.counts),
                 "reject_log": [list(e) for e in list(self.rejects.log)[-10:]],
                 "rtt_us": {"p50": pct(50), "p99": pct(99),
                            "max": float(rtt.max()) if rtt.size else None, "n": int(rtt.size)}}
+
+
+#: what the lockstep loop raises in ``wd`` for each reason a sample is missing, and the event
+_HOST_BIT = {"stale": HOST_STALE, "lost": HOST_LOST, "protocol": HOST_PROTOCOL,
+             "sequence": HOST_SEQUENCE}
+_END_EVENT = {"stale": "bridge stale", "lost": "bridge peer lost",
+              "protocol": "bridge protocol error", "sequence": "bridge sequence error"}
+
+
+def _send_error(link, exc: ProtocolError) -> bool:
+    """Tell the peer the session ends: ERROR with the code of ``exc`` (section 12). Over
+    request/reply its answer (STOP) is read and dropped. True when it went out."""
+    try:
+        data = P.encode(P.error_frame(exc))
+        if hasattr(link, "send"):  # datagrams: no answer awaited
+            link.send(data)
+        else:
+            link.request(data)
+        return True
+    except (BridgeError, ProtocolError, TransportTimeout, OSError):
+        return False
+
+
+def _abort_peer(link, safe_frame: bytes, exc: ProtocolError) -> str:
+    """After a protocol or sequence error: the safe actuation (output enable off) to the peer,
+    then ERROR. Over request/reply each answer is read and dropped; over datagrams nothing is
+    awaited. Returns what went out."""
+    sent = []
+    try:
+        if hasattr(link, "send"):
+            link.send(safe_frame)
+        else:
+            link.request(safe_frame)
+        sent.append("safe actuation")
+    except (BridgeError, TransportTimeout, OSError):
+        pass
+    if not link.closed and _send_error(link, exc):
+        sent.append(f"ERROR {P.error_frame(exc).code}")
+    return ", ".join(sent) or "nothing (the link failed)"
 
 
 def run_bridge(sc, address: str, folder: Path | None = None, *, mode: str = "lockstep",
@@ -262,6 +310,7 @@ def run_bridge(sc, address: str, folder: Path | None = None, *, mode: str = "loc
     ended: list[dict[str, Any]] = []
 
     seen: dict[str, Any] = {}
+    handshake: dict[str, Any] = {}  # the WELCOME taken (a late copy of it is a duplicate)
 
     def ask(frame, expect, want_seq=None, reply=None, resume=None):
         """Send a frame and return the reply, decoded and checked. After the compiled path
@@ -277,8 +326,7 @@ def run_bridge(sc, address: str, folder: Path | None = None, *, mode: str = "loc
             # a datagram that does not decode is counted and treated as lost (resent)
             accept = lambda b: _acceptable(b, want_seq)  # noqa: E731
         if reply is not None and accept is not None and not accept(reply):
-            link.stale += 1  # as the transport counts a datagram it drops
-            reply, resume = None, "wait"
+            reply, resume = None, "wait"  # dropped and counted by accept
         if reply is None:
             if resume is None:
                 reply = link.request(data, accept=accept) if datagrams else link.request(data)
@@ -308,12 +356,24 @@ def run_bridge(sc, address: str, folder: Path | None = None, *, mode: str = "loc
         return got
 
     def _acceptable(b: bytes, want: int) -> bool:
+        """Datagrams (section 11): an undecodable datagram is dropped and counted by reason;
+        a SAMPLE below the one due (a late copy of an answer already taken) is dropped and
+        counted as a duplicate or out of order; anything else goes to the exchange, where a
+        SAMPLE beyond the one due is a sequence error."""
         try:
             got = P.decode(b, n_meas=n_meas, n_act=n_act)
         except ProtocolError as exc:
             stats.rejects.add(exc.reason, str(exc))
             return False
-        if isinstance(got, P.Sample) and got.seq != want:
+        if isinstance(got, P.Sample) and got.seq < want:
+            if stats.seq.last is not None and got.seq <= stats.seq.last:
+                stats.seq.check(got.seq)  # counts it: duplicate or out-of-order
+            else:
+                stats.seq.out_of_order += 1
+            return False
+        if isinstance(got, P.Welcome) and got == handshake.get("welcome"):
+            # a late copy of the handshake's answer (the HELLO was resent): a duplicate
+            stats.seq.duplicates += 1
             return False
         seen["frame"] = got  # decoded once: ask() reuses it
         return True
@@ -323,8 +383,14 @@ def run_bridge(sc, address: str, folder: Path | None = None, *, mode: str = "loc
     try:
         welcome = ask(hello, P.Welcome)
         P.handshake_check(hello, welcome)
+        handshake["welcome"] = welcome
         current = ask(P.Heartbeat(seq=0, t_sender_s=0.0), P.Sample, want_seq=0)
-    except (ProtocolError, PeerError, TransportTimeout) as exc:
+    except ProtocolError as exc:
+        # a refused WELCOME (or an undecodable answer) is answered with ERROR (section 7.3)
+        _send_error(link, exc)
+        link.close()
+        raise BridgeError(f"bridge handshake with {address} failed: {exc}") from None
+    except (PeerError, TransportTimeout) as exc:
         link.close()
         raise BridgeError(f"bridge handshake with {address} failed: {exc}") from None
     stale_s = sc.watchdogs["stale_limit"] or timeout_s
@@ -350,8 +416,9 @@ def run_bridge(sc, address: str, folder: Path | None = None, *, mode: str = "loc
         except PeerError as exc:
             state["missing"] = ("lost", f"the simulator ended the session: {exc}")
         except ProtocolError as exc:
-            ended.append({"event": "bridge protocol error", "tick": kk, "detail": str(exc)})
-            return i + 1
+            # the next tick trips on it (protocol-error watchdog), then safe actuation and ERROR
+            state["missing"] = ("protocol", str(exc))
+            state["error"] = exc
         return -1
 
     def compiled_block(k0: int, i: int, n: int, rec: np.ndarray) -> int:
@@ -374,6 +441,11 @@ def run_bridge(sc, address: str, folder: Path | None = None, *, mode: str = "loc
         end = -1
         if status in (W.ST_OK, W.ST_END):
             state["sample"] = fast.sample()
+        elif status == W.ST_FRAME and fast.oversize() is not None:
+            exc = fast.oversize()  # the bytes were cut: decoding them would misreport the size
+            stats.received += 1
+            stats.rejects.add(exc.reason, str(exc))
+            state["missing"], state["error"] = ("protocol", str(exc)), exc
         elif status == W.ST_FRAME:
             end = await_sample(last, fast.frame(), i + done - 1, reply=fast.reply())
         elif status == W.ST_TIMEOUT or (status == W.ST_SENDFAIL and fast.kind == W.KIND_ZMQ):
@@ -410,22 +482,30 @@ def run_bridge(sc, address: str, folder: Path | None = None, *, mode: str = "loc
                 # watchdog tick: no fresh sample; the controller runs on the measurement held,
                 # the trip forces the safe output, and the run ends (nobody answers any more)
                 why, detail = state["missing"]
-                wd[W_HOST_BITS] = HOST_STALE if why == "stale" else HOST_LOST
+                wd[W_HOST_BITS] = _HOST_BIT[why]
                 wd[W_HOST_VALUE] = state["waited"] if why == "stale" else 0.0
                 tick(kk, i, sc.Ts, sc.v_collapse, a["i_vout"], *targs, rec, a["ev"])
                 wd[W_HOST_BITS] = 0.0
-                e = {"event": f"bridge {'stale' if why == 'stale' else 'peer lost'}",
-                     "tick": kk, "detail": detail}
+                e = {"event": _END_EVENT[why], "tick": kk, "detail": detail}
                 if why == "stale":
                     e["detected_after_s"] = state["waited"]
+                if why in ("protocol", "sequence") and not link.closed:
+                    # the peer is still there: it gets the safe actuation, then ERROR
+                    e["peer_told"] = _abort_peer(
+                        link, P.encode_actuation(kk, a["u"], int(rec[i, -2]), False),
+                        state.get("error") or ProtocolError("unexpected", detail))
+                    stats.sent += 2
                 ended.append(e)
                 return i + 1
             smp = state["sample"]
             verdict = stats.seq.check(smp.seq)
             if smp.seq != kk:
-                ended.append({"event": "bridge sequence error", "tick": kk,
-                              "detail": f"sample seq {smp.seq} ({verdict}) where {kk} was due"})
-                return i
+                # lockstep answers ACTUATION k-1 with SAMPLE k, nothing else (section 11): this
+                # tick runs on the measurement held and trips (sequence-error watchdog)
+                state["missing"] = ("sequence", f"sample seq {smp.seq} ({verdict}) where {kk} "
+                                                f"was due")
+                state["error"] = ProtocolError("unexpected", state["missing"][1])
+                continue
             t_in = time.perf_counter()
             a["y"][:] = smp.meas
             a["d"][:] = np.nan  # the load lives in the simulator
@@ -515,7 +595,12 @@ def run_free_running(sc, address: str, folder: Path | None = None, *, timeout_s:
     n_meas, n_act = len(meas_map), len(act_map)
     stats = BridgeStats()
     ended: list[dict[str, Any]] = []
-    counts = {"late_runtime": 0, "held_ticks": 0, "sim_late": None, "sim_missing": None}
+    counts = {"late_runtime": 0, "held_ticks": 0, "passed_over": 0, "sim_late": None,
+              "sim_missing": None}
+
+    datagrams = hasattr(link, "stale")
+    # a fault of the peer that ends the session (section 12); armed once the ticks start
+    fault: dict[str, Any] = {"armed": False, "protocol": None}
 
     def recv_frame(wait):
         data = link.recv(wait)
@@ -526,6 +611,10 @@ def run_free_running(sc, address: str, folder: Path | None = None, *, timeout_s:
             return P.decode(data, n_meas=n_meas, n_act=n_act)
         except ProtocolError as exc:
             stats.rejects.add(exc.reason, str(exc))
+            if fault["armed"] and not datagrams and fault["protocol"] is None:
+                # over ZeroMQ (reliable, ordered) a frame that fails decoding is a fault of
+                # the peer: the session ends on it (section 12); a datagram is dropped
+                fault["protocol"] = exc
             return False
 
     hello = P.Hello(version=P.PROTOCOL_VERSION, tick_period_s=sc.Ts, mode=mode,
@@ -548,8 +637,18 @@ def run_free_running(sc, address: str, folder: Path | None = None, *, timeout_s:
         notice(f"bridge: connected to {welcome.simulator_name!r} at {address} (free-running, "
                f"Ts = {sc.Ts:g} s, stale after {stale_s * 1e3:g} ms)")
     state: dict[str, Any] = {"next": None, "took": 0.0, "last_seq": -1, "t_last": None,
-                             "stale": False, "lost": None, "started": False, "held_first": False}
+                             "stale": False, "lost": None, "started": False, "held_first": False,
+                             "lost_run": 0}
     wd = a["wd"]
+
+    def take(f) -> str:
+        """Classify a received sample's seq (section 11); a gap adds the seq numbers never
+        received to the run of lost samples the gap watchdog judges."""
+        expected = stats.seq.expected
+        verdict = stats.seq.check(f.seq)
+        if verdict == "gap":
+            state["lost_run"] = max(state["lost_run"], f.seq - expected)
+        return verdict
 
     def next_sample(kk, wait, since):
         """The sample for tick kk, or None when none came ``wait`` s after ``since`` (a
@@ -564,20 +663,22 @@ def run_free_running(sc, address: str, folder: Path | None = None, *, timeout_s:
             if left <= 0.0:
                 return None
             f = recv_frame(left)
+            if fault["protocol"] is not None:
+                return None
             if f is None:
                 continue  # the transport's wait is rounded to whole ms: wait out the rest
             if isinstance(f, P.Sample):
-                verdict = stats.seq.check(f.seq)
-                if verdict in ("duplicate", "out-of-order"):
+                if take(f) in ("duplicate", "out-of-order"):
                     continue
                 # a runtime that fell behind answers the newest sample, not a queue of old
-                # ones: the samples passed over are lost ticks (held measurement)
+                # ones: the samples passed over were received, and their ticks run on the
+                # measurement held (counted as held, not as lost)
                 while True:
                     g = recv_frame(0.0)
                     if g is None or g is False:
                         break
-                    if isinstance(g, P.Sample) and stats.seq.check(g.seq) not in (
-                            "duplicate", "out-of-order"):
+                    if isinstance(g, P.Sample) and take(g) not in ("duplicate", "out-of-order"):
+                        counts["passed_over"] += 1
                         f = g
                 state["next"] = f
                 state["t_last"] = time.perf_counter()
@@ -587,6 +688,11 @@ def run_free_running(sc, address: str, folder: Path | None = None, *, timeout_s:
                 return None
             if isinstance(f, P.Stop):
                 state["lost"] = f"the simulator stopped: {f.reason}"
+                return None
+            if isinstance(f, (P.Hello, P.Welcome, P.Actuation)) and not datagrams:
+                stats.rejects.add("unexpected", f"a {type(f).__name__} frame mid-run")
+                fault["protocol"] = ProtocolError("unexpected", f"the simulator sent a "
+                                                  f"{type(f).__name__} frame mid-run")
                 return None
 
     live = _Live(sc, prep, telemetry, allow_remote, stats)
@@ -598,7 +704,7 @@ def run_free_running(sc, address: str, folder: Path | None = None, *, timeout_s:
             # the simulator's clock starts now, with the recording open and the loop ready
             link.send(P.encode(P.Heartbeat(seq=0, t_sender_s=0.0)))
             stats.sent += 1
-            state["started"] = True
+            state["started"] = fault["armed"] = True
         for i in range(n):
             kk = k0 + i
             # after a stale trip the runtime waits for the peer a while longer
@@ -613,7 +719,11 @@ def run_free_running(sc, address: str, folder: Path | None = None, *, timeout_s:
             fresh = False
             if smp is None:
                 since = t_in - (state["t_last"] if state["t_last"] is not None else t_wait)
-                if state["lost"] is not None or state["stale"]:
+                if fault["protocol"] is not None:
+                    bits, value = HOST_PROTOCOL, 0.0
+                    end = {"event": "bridge protocol error", "tick": kk,
+                           "detail": str(fault["protocol"])}
+                elif state["lost"] is not None or state["stale"]:
                     bits, value = HOST_LOST, since
                     end = {"event": "bridge peer lost", "tick": kk,
                            "detail": state["lost"] or f"nothing from the simulator for "
@@ -628,7 +738,9 @@ def run_free_running(sc, address: str, folder: Path | None = None, *, timeout_s:
                 state["stale"] = False
                 fresh = smp.seq == kk
                 if fresh:
-                    gap = kk - state["last_seq"] - 1
+                    # the longest run of seq numbers never received since the last fresh tick
+                    # (samples received and passed over in a burst are held, not lost)
+                    gap, state["lost_run"] = state["lost_run"], 0
                     state["last_seq"] = kk
                     a["y"][:] = smp.meas
                     if gap > max_gap:
@@ -664,6 +776,12 @@ def run_free_running(sc, address: str, folder: Path | None = None, *, timeout_s:
                     if took > sc.Ts:
                         counts["late_runtime"] += 1
             if end is not None:
+                if bits == HOST_PROTOCOL:
+                    # the safe actuation went out above; then ERROR, and the session is over
+                    told = _send_error(link, fault["protocol"])
+                    stats.sent += int(told)
+                    end["peer_told"] = "safe actuation" + (
+                        f", ERROR {P.error_frame(fault['protocol']).code}" if told else "")
                 ended.append(end)
                 return i + 1
             if not go or live.after_tick(k0, i, rec):
@@ -671,8 +789,8 @@ def run_free_running(sc, address: str, folder: Path | None = None, *, timeout_s:
         return n
 
     def finish() -> list[dict[str, Any]]:
-        if any(e["event"] == "bridge peer lost" for e in ended):
-            return ended  # nobody is there to answer a STOP
+        if any(e["event"] in ("bridge peer lost", "bridge protocol error") for e in ended):
+            return ended  # nobody is there to answer a STOP, or the session ended with ERROR
         try:
             link.send(P.encode(P.Stop(reason="run ended")))
             stats.sent += 1
@@ -697,6 +815,7 @@ def run_free_running(sc, address: str, folder: Path | None = None, *, timeout_s:
         d["late"] = counts["late_runtime"]
         return {"bridge": {"address": address, "mode": mode, "simulator": welcome.simulator_name,
                            "stale_limit_s": stale_s, "held_ticks": counts["held_ticks"],
+                           "passed_over": counts["passed_over"],
                            "simulator_late_actuations": counts["sim_late"],
                            "simulator_missing_actuations": counts["sim_missing"], **d}}
 

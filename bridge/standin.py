@@ -183,6 +183,33 @@ def start_command_reader(faults: Faults, stream, tick: Callable[[], int], datagr
     return th
 
 
+class Rejections:
+    """The frames the stand-in refused, counted by reason (docs/protocol.md section 12): the
+    first of each reason is logged at once, the counts when serving ends."""
+
+    def __init__(self, log: Callable[[str], None]):
+        self.counter = P.RejectCounter()
+        self.log = log
+
+    def add(self, reason: str, message: str) -> None:
+        self.counter.add(reason, message)
+        if self.counter.counts[reason] == 1:
+            self.log(f"stand-in simulator: rejected a frame ({reason}): {message} (further "
+                     f"rejections for this reason are counted)")
+
+    def summary(self) -> str:
+        c = self.counter.counts
+        return (f"rejected frames: {self.counter.total}"
+                + (" (" + ", ".join(f"{k} {v}" for k, v in sorted(c.items())) + ")" if c else ""))
+
+
+def _refuse_second_hello(rejects: "Rejections") -> P.Error:
+    """The answer to a HELLO while a session is in progress: the session is never replaced."""
+    rejects.add("unexpected", "HELLO while a session is in progress")
+    return P.Error(code=P.ERR_UNEXPECTED, reason="unexpected: a session is in progress; "
+                                                 "HELLO refused")
+
+
 class StandIn:
     """State of the simulated plant for one session (reset by each handshake)."""
 
@@ -319,6 +346,9 @@ def serve(sc, bind: str, *, sessions: int | None = None, allow_remote: bool = Fa
     n_meas, n_act = len(sim.meas_map), len(sim.act_map)
     served = 0
     in_session = False
+    datagrams = bind.startswith("udp://")
+    rejects = Rejections(log)
+    first_hello = None  # (HELLO bytes, peer) that opened the session in progress
     log(f"stand-in simulator: {sc.plant.plugin.name}, Ts = {sc.Ts:g} s, listening on {bind}")
 
     def send(data: bytes) -> None:
@@ -358,17 +388,28 @@ def serve(sc, bind: str, *, sessions: int | None = None, allow_remote: bool = Fa
             try:
                 frame = P.decode(data, n_meas=n_meas, n_act=n_act)
             except ProtocolError as exc:
-                reply(P.error_frame(exc))
+                rejects.add(exc.reason, str(exc))
+                if not datagrams:  # REQ/REP answers every request; a datagram is dropped
+                    reply(P.error_frame(exc))
                 continue
-            if isinstance(frame, P.Hello):
+            if isinstance(frame, P.Hello) and in_session:
+                if (datagrams and sim.k == 0 and sim.last is None
+                        and first_hello == (data, getattr(rep, "peer", None))):
+                    reply(sim.welcome("lockstep"))  # its WELCOME was lost: answer again
+                else:
+                    reply(_refuse_second_hello(rejects))
+                    log("stand-in simulator: refused a HELLO: a session is in progress")
+            elif isinstance(frame, P.Hello):
                 welcome = sim.welcome("lockstep")
                 try:
                     P.handshake_check(frame, welcome)
                 except ProtocolError as exc:
+                    rejects.add(exc.reason, str(exc))
                     reply(P.error_frame(exc))
                     continue
                 sim.reset()
                 in_session = True
+                first_hello = (data, getattr(rep, "peer", None))
                 reply(welcome)
             elif isinstance(frame, P.Heartbeat) and in_session and sim.k == 0:
                 if sim.last is None:
@@ -397,11 +438,14 @@ def serve(sc, bind: str, *, sessions: int | None = None, allow_remote: bool = Fa
                     sim.last = reply(sim.sample(sim.k))
                 else:
                     reply(P.Error(code=6, reason=f"actuation seq {frame.seq} where {sim.k} was due"))
-            elif isinstance(frame, P.Stop):
+            elif isinstance(frame, (P.Stop, P.Error)):
+                # an ERROR request is answered with STOP too (section 13: REQ/REP)
                 reply(P.Stop(reason="session ended"))
                 if in_session:
                     served += 1
-                    log(f"stand-in simulator: session {served} ended after {sim.k} ticks")
+                    why = (f" (the runtime sent ERROR {frame.code}: {frame.reason})"
+                           if isinstance(frame, P.Error) else "")
+                    log(f"stand-in simulator: session {served} ended after {sim.k} ticks{why}")
                 in_session = False
             else:
                 reply(P.Error(code=6, reason=f"unexpected {type(frame).__name__} frame"))
@@ -410,6 +454,7 @@ def serve(sc, bind: str, *, sessions: int | None = None, allow_remote: bool = Fa
         if faults.active():
             log(f"stand-in simulator: faults injected: {faults.dropped} dropped, "
                 f"{faults.corrupted} corrupted replies")
+        log(f"stand-in simulator: {rejects.summary()}")
     return served
 
 
@@ -438,6 +483,8 @@ def serve_free_running(sc, bind: str, *, sessions: int | None = None,
     n_meas, n_act = len(sim.meas_map), len(sim.act_map)
     ts = sc.Ts
     served = 0
+    datagrams = bind.startswith("udp://")
+    rejects = Rejections(log)
     log(f"stand-in simulator (free-running): {sc.plant.plugin.name}, Ts = {ts:g} s, "
         f"listening on {bind}")
 
@@ -453,18 +500,23 @@ def serve_free_running(sc, bind: str, *, sessions: int | None = None,
             try:
                 hello = P.decode(data, n_meas=n_meas, n_act=n_act)
             except ProtocolError as exc:
-                send(P.error_frame(exc))
+                rejects.add(exc.reason, str(exc))
+                if not datagrams:  # an undecodable datagram is dropped, never answered
+                    send(P.error_frame(exc))
                 continue
             if not isinstance(hello, P.Hello):
+                rejects.add("unexpected", f"expected HELLO, got {type(hello).__name__}")
                 send(P.Error(code=6, reason=f"expected HELLO, got {type(hello).__name__}"))
                 continue
             welcome = sim.welcome("free-running")
             try:
                 P.handshake_check(hello, welcome)
             except ProtocolError as exc:
+                rejects.add(exc.reason, str(exc))
                 send(P.error_frame(exc))
                 continue
             sim.reset()
+            session_peer = getattr(link, "peer", None)
             send(welcome)
             ready = link.recv(10.0)
             try:
@@ -493,10 +545,30 @@ def serve_free_running(sc, bind: str, *, sessions: int | None = None,
                     data = link.recv(min(deadline - now, 0.0005) if deadline - now > 0.002 else 0)
                     if data is None:
                         continue
+                    if datagrams and link.peer != session_peer:
+                        # another client: a HELLO is refused, the rest dropped; the session's
+                        # runtime keeps the samples (and the plant is not reset)
+                        try:
+                            f = P.decode(data, n_meas=n_meas, n_act=n_act)
+                        except ProtocolError as exc:
+                            rejects.add(exc.reason, str(exc))
+                            f = None
+                        if isinstance(f, P.Hello):
+                            send(_refuse_second_hello(rejects))
+                            log("stand-in simulator: refused a HELLO: a session is in progress")
+                        elif f is not None:
+                            rejects.add("unexpected", f"{type(f).__name__} from another client")
+                        link.peer = session_peer
+                        continue
                     last_heard = time.perf_counter()
                     try:
                         f = P.decode(data, n_meas=n_meas, n_act=n_act)
-                    except ProtocolError:
+                    except ProtocolError as exc:
+                        rejects.add(exc.reason, str(exc))
+                        continue
+                    if isinstance(f, P.Hello):
+                        send(_refuse_second_hello(rejects))
+                        log("stand-in simulator: refused a HELLO: a session is in progress")
                         continue
                     if isinstance(f, P.Actuation):
                         if f.seq == sim.k and pending is None:
@@ -506,6 +578,11 @@ def serve_free_running(sc, bind: str, *, sessions: int | None = None,
                     elif isinstance(f, P.Stop):
                         stop = True
                         reason = "stop"
+                        break
+                    elif isinstance(f, P.Error):
+                        # the runtime ended the session (not answered: section 10)
+                        stop = True
+                        reason = f"the runtime sent ERROR {f.code}: {f.reason}"
                         break
                 if stop or time.perf_counter() - last_heard > stale_s:
                     break
@@ -544,4 +621,5 @@ def serve_free_running(sc, bind: str, *, sessions: int | None = None,
             log(f"stand-in simulator: session {served} ended ({reason}) after {text}")
     finally:
         link.close()
+        log(f"stand-in simulator: {rejects.summary()}")
     return served

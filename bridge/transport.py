@@ -25,6 +25,13 @@ from typing import Callable
 import zmq
 
 from .errors import BridgeError, TransportTimeout  # noqa: F401  (defined in errors.py)
+from .protocol import MAX_FRAME_BYTES
+
+#: the longest ZeroMQ message hilrig's sockets read (ZMQ_MAXMSGSIZE). Not a second frame cap:
+#: every frame over MAX_FRAME_BYTES is rejected as oversize; reading up to this much lets the
+#: rejection name the frame's true length. A longer message makes ZeroMQ drop the connection
+#: (the receiver then sees silence). docs/protocol.md section 13.
+READ_LIMIT_BYTES = 16 * MAX_FRAME_BYTES
 
 
 def check_address(address: str, allow_remote: bool = False) -> str:
@@ -108,7 +115,7 @@ class ReqTransport:
             self.sock.setsockopt(zmq.LINGER, 0)
             self.sock.setsockopt(zmq.RCVTIMEO, self.timeout_ms)
             self.sock.setsockopt(zmq.SNDTIMEO, self.timeout_ms)
-            self.sock.setsockopt(zmq.MAXMSGSIZE, 1 << 20)
+            self.sock.setsockopt(zmq.MAXMSGSIZE, READ_LIMIT_BYTES)
             self.sock.connect(self.address)
         except BaseException:
             self.close()
@@ -189,7 +196,7 @@ class RepTransport:
                 self.sock.curve_server = True
                 self.sock.curve_publickey, self.sock.curve_secretkey = pub, sec
             self.sock.setsockopt(zmq.LINGER, 0)
-            self.sock.setsockopt(zmq.MAXMSGSIZE, 1 << 20)
+            self.sock.setsockopt(zmq.MAXMSGSIZE, READ_LIMIT_BYTES)
             self.sock.bind(self.address)
         except BaseException:
             self.close()
@@ -276,7 +283,7 @@ class UdpClient:
                     break
                 if accept is None or accept(reply):
                     return reply
-                self.stale += 1  # a late answer to an earlier copy: drop it, keep waiting
+                self.stale += 1  # dropped (the caller counts it by kind), keep waiting
         self.close()
         raise TransportTimeout(f"no reply from {self.address} after {self.retries + 1} tries "
                                f"{self.timeout_s * 1e3:g} ms apart")
@@ -377,7 +384,7 @@ class PairTransport:
                     self.sock.curve_serverkey = server_pub
                     self.monitor = self.sock.get_monitor_socket(_HANDSHAKE_FAILED)
             self.sock.setsockopt(zmq.LINGER, 0)
-            self.sock.setsockopt(zmq.MAXMSGSIZE, 1 << 20)
+            self.sock.setsockopt(zmq.MAXMSGSIZE, READ_LIMIT_BYTES)
             self.sock.setsockopt(zmq.SNDHWM, 1000)
             (self.sock.bind if bind else self.sock.connect)(self.address)
         except BaseException:

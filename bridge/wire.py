@@ -51,7 +51,8 @@ KIND_ZMQ, KIND_UDP = 1, 2
 # io (int64 array) slots shared by the runtime's and the stand-in's compiled loops
 IO_KIND, IO_HANDLE, IO_WAIT_MS, IO_STATUS, IO_NRECV, IO_NSENT, IO_SEQ, IO_ERRNO = range(8)
 IO_ADDRLEN = 8   # stand-in over UDP: length of the peer address in ``addr``
-IO_SIZE = 9
+IO_MSGLEN = 9    # the true length of the last message received (it may exceed rbuf)
+IO_SIZE = 10
 # fio (float64 array) slots
 F_INV_F, F_TOOK, F_TSIM, F_WAITED = range(4)
 F_SIZE = 4
@@ -403,7 +404,8 @@ def exchange(io, sbuf, ns, rbuf, pfd):
             io[IO_ERRNO] = e
             return -ST_PENDING if e == EINTR else -ST_TIMEOUT
         # a message longer than rbuf (one byte over the protocol's frame limit) comes back
-        # cut to rbuf: the full decoder rejects it as oversize
+        # cut to rbuf; its true length stays in io[IO_MSGLEN], for the oversize report
+        io[IO_MSGLEN] = m
         return min(m, cap)
     if c_send(h, sbuf, ns) < 0:
         return -ST_RETRY  # e.g. ICMP port unreachable reported on the connected socket
@@ -415,4 +417,5 @@ def exchange(io, sbuf, ns, rbuf, pfd):
     m = c_recv(h, rbuf, cap)
     if m < 0:
         return -ST_RETRY
+    io[IO_MSGLEN] = m
     return m

@@ -74,7 +74,8 @@ CONTROLLER_CODE_MAX = CAUSE_WATCHDOG - CAUSE_CONTROLLER - 1
 #: bits of the interlock word. The word is recorded as float64, which holds integers exactly only
 #: up to 2**53: every bit must stay below 53.
 BIT_WATCHDOG = 40        # + watchdog index: 40 overrun, 41 stale, 42 sequence gap, 43 peer lost,
-                         # 44 stop requested by the operator
+                         # 44 stop requested by the operator, 45 bridge protocol error,
+                         # 46 bridge sequence error
 BIT_NONFINITE = 48
 BIT_CONTROLLER = 49
 BIT_LATCHED = 50
@@ -82,7 +83,8 @@ BIT_RESET_REQUESTED = 51
 BIT_RESET_REFUSED = 52
 MAX_ROWS = 40
 #: the bits that say a condition holds now (rows, non-finite, controller fault)
-WD_NAMES = ("overrun", "stale", "sequence gap", "peer lost", "stop requested")
+WD_NAMES = ("overrun", "stale", "sequence gap", "peer lost", "stop requested", "protocol error",
+            "sequence error")
 CONDITIONS = (((1 << MAX_ROWS) - 1) | (1 << BIT_NONFINITE) | (1 << BIT_CONTROLLER)
               | (((1 << len(WD_NAMES)) - 1) << BIT_WATCHDOG))
 #: interlock sides
@@ -114,7 +116,7 @@ DERIVED = (("p_out", "W", "output power v_out * i_out"),
 #: and (paced loop) this tick's work time, which becomes the next tick's W_HOST_TIME
 W_BUDGET, W_DEB, W_CNT, W_HOST_TIME, W_HOST_BITS, W_HOST_VALUE, W_FORCED, W_LAST_WORK = range(8)
 WD_SIZE = 8
-HOST_STALE, HOST_GAP, HOST_LOST, HOST_STOP = 1, 2, 4, 8
+HOST_STALE, HOST_GAP, HOST_LOST, HOST_STOP, HOST_PROTOCOL, HOST_SEQUENCE = 1, 2, 4, 8, 16, 32
 #: event log: rows of (tick, kind, cause, value); kinds
 EVT_TRIP, EVT_RESET_ACCEPTED, EVT_RESET_REFUSED, EVT_RESET_IDLE, EVT_WARN, EVT_ALSO = range(1, 7)
 EVENT_NAMES = {EVT_TRIP: "trip", EVT_RESET_ACCEPTED: "reset accepted",
@@ -412,7 +414,7 @@ def watch(tick, t, wd, latch):
     else:
         wd[W_CNT] = 0.0
     hb = int(wd[W_HOST_BITS])
-    for b in range(4):
+    for b in range(len(WD_NAMES) - 1):
         if hb & (1 << b):
             word |= 1 << (BIT_WATCHDOG + 1 + b)
             _trip(latch, CAUSE_WATCHDOG + 1 + b, tick, t, wd[W_HOST_VALUE])

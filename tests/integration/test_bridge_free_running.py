@@ -226,3 +226,158 @@ def test_remote_free_running_needs_the_flag_then_keys(tmp_path, plugin_dir):
     assert p.returncode == 2 and "needs CurveZMQ keys" in p.stdout, p.stdout + p.stderr
     assert "Traceback" not in p.stdout + p.stderr
     assert not (tmp_path / "r" / "recording.h5").exists()
+
+
+def _pair_proxy(front: str, back: str, hold: range, drop: bool, stop, mangle_at=None, seen=None):
+    """PAIR between the runtime (``front``) and the stand-in (``back``): the SAMPLEs with seq in
+    ``hold`` are dropped (``drop``) or held back and sent in one burst with the next one; the
+    SAMPLE ``mangle_at`` goes out with its leading byte flipped; the runtime's frames are kept
+    in ``seen``."""
+    import msgpack
+    import zmq
+    ctx = zmq.Context.instance()
+    a, b = ctx.socket(zmq.PAIR), ctx.socket(zmq.PAIR)
+    for s in (a, b):
+        s.setsockopt(zmq.LINGER, 0)
+    a.bind(front)
+    b.connect(back)
+    held = []
+    poller = zmq.Poller()
+    poller.register(a, zmq.POLLIN)
+    poller.register(b, zmq.POLLIN)
+    try:
+        while not stop.is_set():
+            ready = dict(poller.poll(50))
+            if a in ready:
+                data = a.recv()
+                if seen is not None:
+                    seen.append(msgpack.unpackb(data, raw=False))
+                b.send(data)
+            if b in ready:
+                data = b.recv()
+                f = msgpack.unpackb(data, raw=False)
+                if f[0] == 3 and f[1] == mangle_at:
+                    data = bytes([data[0] ^ 0xFF]) + data[1:]
+                if f[0] == 3 and f[1] in hold:
+                    if not drop:
+                        held.append(data)
+                    continue
+                for d in held + [data]:
+                    a.send(d)
+                held = []
+    finally:
+        a.close()
+        b.close()
+
+
+@pytest.mark.parametrize("how", ["burst", "lost"])
+def test_gap_watchdog_counts_samples_never_received(tmp_path, plugin_dir, how):
+    """30 samples held back and delivered in one burst: the runtime answers the newest and
+    holds the measurement for the rest, none was lost, so the sequence-gap watchdog (max_gap
+    10) stays quiet and the held ticks are reported on their own. The same 30 samples lost
+    trip it, with the count lost as its value."""
+    import threading
+    scen = _files(tmp_path, plugin_dir)
+    back, front = f"ipc://{tmp_path}/sim.sock", f"ipc://{tmp_path}/proxy.sock"
+    sim = serve(scen, back, "--mode", "free-running")
+    stop = threading.Event()
+    with reaped(sim):
+        wait_listening(sim)
+        th = threading.Thread(target=_pair_proxy,
+                              args=(front, back, range(100, 130), how == "lost", stop), daemon=True)
+        th.start()
+        try:
+            p = subprocess.run(CLI + ["run", str(scen), "--bridge", front, "--mode", "free-running",
+                                      "--out", str(tmp_path / "r"), "--headless", "--timeout", "30"],
+                               capture_output=True, text=True, timeout=600)
+        finally:
+            stop.set()
+            th.join(60)
+        sim.communicate(timeout=120)
+    s = json.loads((tmp_path / "r" / "summary.json").read_text())
+    br = s["bridge"]
+    if how == "burst":
+        assert p.returncode == 0, p.stdout + p.stderr + json.dumps(s["events"])
+        assert br["lost"] == 0 and br["held_ticks"] >= 30 and br["passed_over"] >= 29, br
+    else:
+        assert p.returncode == 1, p.stdout + p.stderr
+        assert s["trip"]["cause_id"] == "watchdog sequence gap"
+        assert s["trip"]["tick"] == 130 and s["trip"]["value"] == 30.0
+        assert br["lost"] == 30
+
+
+def test_a_mangled_sample_over_zeromq_trips_and_tells_the_simulator(tmp_path, plugin_dir):
+    """Free-running over ZeroMQ (reliable, ordered): a frame that fails decoding is a fault of
+    the peer (docs/protocol.md section 12). The next tick trips on the protocol-error watchdog,
+    its safe actuation goes out, then ERROR, and the run exits 1."""
+    import threading
+    scen = _files(tmp_path, plugin_dir)
+    back, front = f"ipc://{tmp_path}/sim.sock", f"ipc://{tmp_path}/proxy.sock"
+    sim = serve(scen, back, "--mode", "free-running")
+    stop, seen = threading.Event(), []
+    with reaped(sim):
+        wait_listening(sim)
+        th = threading.Thread(target=_pair_proxy, args=(front, back, range(0), False, stop, 150,
+                                                        seen), daemon=True)
+        th.start()
+        try:
+            p = subprocess.run(CLI + ["run", str(scen), "--bridge", front, "--mode", "free-running",
+                                      "--out", str(tmp_path / "r"), "--headless", "--timeout", "30"],
+                               capture_output=True, text=True, timeout=600)
+        finally:
+            stop.set()
+            th.join(60)
+        sim_out, _ = sim.communicate(timeout=120)
+    assert p.returncode == 1, p.stdout + p.stderr
+    s = json.loads((tmp_path / "r" / "summary.json").read_text())
+    assert s["trip"]["cause_id"] == "watchdog protocol error", s["events"]
+    k = s["trip"]["tick"]
+    assert k == 150 and s["ticks_run"] == k + 1
+    run = open_run(tmp_path / "r")
+    assert run.signals["u"][k] == 0.0  # the safe output (limits.safe_u)
+    assert (int(run.signals["interlock_word"][k]) >> 45) & 1
+    act, err = seen[-2], seen[-1]
+    assert act[0] == 4 and act[1] == k and act[4] is False
+    assert err[0] == 7 and err[1] == 5
+    assert "the runtime sent ERROR 5" in sim_out
+
+
+def test_free_running_udp_refuses_a_second_client(tmp_path, plugin_dir):
+    """Over UDP another client's HELLO during a free-running session is refused with ERROR 6
+    and counted; the samples keep going to the session's runtime, which completes."""
+    import socket
+    import msgpack
+    from hilrig.bridge import protocol as P
+    from hilrig.bridge.session import signal_maps
+    from hilrig.runtime.scenario import load_scenario
+    scen = _files(tmp_path, plugin_dir)
+    scen.write_text(scen.read_text() + '\n[watchdogs]\nmax_gap = 100000\n')
+    sc = load_scenario(scen)
+    meas, act = signal_maps(sc)
+    hello = P.encode(P.Hello(P.PROTOCOL_VERSION, sc.Ts, "free-running", meas, act,
+                             P.map_hash(meas, act)))
+    address = udp_address()
+    host, port = address[len("udp://"):].rsplit(":", 1)
+    sim = _serve(scen, address)
+    with reaped(sim):
+        wait_listening(sim)
+        run = subprocess.Popen(CLI + ["run", str(scen), "--bridge", address, "--mode",
+                                      "free-running", "--out", str(tmp_path / "r"), "--headless",
+                                      "--timeout", "60"],
+                               stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
+        with reaped(run):
+            deadline = time.monotonic() + 300
+            while not (tmp_path / "r" / "recording.h5").exists() and time.monotonic() < deadline:
+                time.sleep(0.02)
+            time.sleep(0.1)
+            with socket.socket(socket.AF_INET, socket.SOCK_DGRAM) as s:
+                s.settimeout(5.0)
+                s.sendto(hello, (host, int(port)))
+                answer = msgpack.unpackb(s.recv(70000), raw=False)
+            out, err = run.communicate(timeout=600)
+        sim_out, _ = sim.communicate(timeout=120)
+    assert answer[0] == 7 and answer[1] == 6, answer
+    assert run.returncode == 0, out + err
+    assert "refused a HELLO: a session is in progress" in sim_out
+    assert "rejected frames: 1 (unexpected 1)" in sim_out
+    assert "session 1 ended (stop)" in sim_out

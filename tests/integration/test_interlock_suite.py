@@ -41,7 +41,7 @@ def test_shipped_suite_covers_every_interlock_kind_and_watchdog(shipped):
                    "dv_out_dt magnitude_above", "v_out frozen", "v_out cross_check", "u above",
                    "non-finite v_out",
                    "non-finite u", "watchdog overrun", "watchdog stale", "watchdog peer lost",
-                   "watchdog sequence gap"):
+                   "watchdog sequence gap", "watchdog protocol error"):
         assert needed in causes, needed
     assert sum(c["expect"] == "no trip" for c in res["cases"]) >= 2
 
@@ -61,6 +61,10 @@ def test_latencies_are_measured_from_the_fault(shipped):
     # the staleness watchdog is judged on the wall clock, from the last sample: at its limit
     stale = cases["staleness watchdog: the simulator freezes (lockstep, ipc)"]
     assert stale["latency_clock"] == "wall" and 0.1 <= stale["latency_s"] < 0.25
+    # corruption acts from the start; the 300th reply is the sample of tick 298 (2 handshake
+    # replies before it), and that tick trips
+    bad = cases["protocol-error watchdog: the simulator mangles its 300th reply (lockstep, ipc)"]
+    assert bad["latency_ticks"] == 298
 
 
 def test_junit_xml_has_one_testcase_per_case_and_no_failures(shipped):

@@ -689,3 +689,23 @@ def run_lockstep_client(address, ts, tau, timeout_ms):
     finally:
         sock.close()
         ctx.term()
+
+
+def test_doc_states_the_sockets_read_limit(tmp_path):
+    """One frame cap (MAX_FRAME_BYTES) everywhere; the sockets' read limit is the multiple of it
+    the document states, set on every ZeroMQ socket hilrig opens."""
+    import zmq
+    from hilrig.bridge.transport import (READ_LIMIT_BYTES, PairTransport, RepTransport,
+                                         ReqTransport)
+    assert READ_LIMIT_BYTES == 16 * MAX_FRAME_BYTES == 1 << 20
+    section = DOC_TEXT.split("### ZeroMQ, lockstep", 1)[1].split("\n### ", 1)[0]
+    assert "up to 16 · `MAX_FRAME_BYTES` (1 MiB, `ZMQ_MAXMSGSIZE`)" in section
+    assert f"`MAX_FRAME_BYTES` ({MAX_FRAME_BYTES})" in section
+    socks = [RepTransport(f"ipc://{tmp_path}/a"), ReqTransport(f"ipc://{tmp_path}/a"),
+             PairTransport(f"ipc://{tmp_path}/b", bind=True)]
+    try:
+        for t in socks:
+            assert t.sock.getsockopt(zmq.MAXMSGSIZE) == READ_LIMIT_BYTES
+    finally:
+        for t in socks:
+            t.close()
