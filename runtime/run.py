@@ -165,7 +165,7 @@ def prepare(sc: Scenario) -> Prepared:
     signals += [SignalSpec(f"true_{n}", out_units[n][0],
                            f"{out_units[n][1]}, true plant value before sensor faults")
                 for n in true_names]
-    signals.append(SignalSpec("interlock_word", "-", "bit j: interlock j beyond its limit; bits 40-43 watchdogs overrun, stale, sequence gap, peer lost; bit 48 non-finite; bit 49 controller fault; bit 50 latched; bit 51 reset requested; bit 52 reset refused"))
+    signals.append(SignalSpec("interlock_word", "-", "bit j: interlock j beyond its limit; bits 40-46 watchdogs overrun, stale, sequence gap, peer lost, stop requested, protocol error, sequence error; bit 48 non-finite; bit 49 controller fault; bit 50 latched; bit 51 reset requested; bit 52 reset refused"))
     signals.append(SignalSpec("ctrl_code", "-", "controller return code (0 ok)"))
     if "v_out" not in outputs:
         raise ScenarioError(f"plant {pdecl.name!r} has no v_out output; the runtime needs it")

@@ -53,7 +53,7 @@ from .interlocks import BIT_LATCHED
 
 CASE_KEYS = {"name", "scenario", "set", "faults", "interlocks", "watchdogs", "expect", "cause",
              "within", "hold", "bridge", "description"}
-BRIDGE_KEYS = {"mode", "transport", "simulator"}
+BRIDGE_KEYS = {"mode", "transport", "simulator", "second_client"}
 SIM_FAULT_KEYS = {"drop": float, "delay": float, "jitter": float, "freeze_after": int,
                   "disconnect_after": int, "corrupt_every": int, "fault_seed": int}
 EXPECT = ("trip", "no trip")
@@ -242,7 +242,18 @@ def _check_bridge(where: str, b: Any) -> dict[str, Any]:
                              f"(allowed: {', '.join(sorted(SIM_FAULT_KEYS))})")
         if isinstance(v, bool) or not isinstance(v, (int, float)):
             raise SuiteError(f"{where}: bridge.simulator.{k} = {v!r} is not a number")
-    return {"mode": mode, "transport": transport, "simulator": dict(sim)}
+    second = b.get("second_client")
+    if second is not None:
+        from hilrig.runtime.units import parse_quantity
+        try:
+            second = parse_quantity(second, "s", where=f"{where}: bridge.second_client")
+        except ValueError as exc:
+            raise SuiteError(str(exc)) from None
+        if not (0.0 <= second <= 60.0):
+            raise SuiteError(f"{where}: bridge.second_client = {second:g} s is outside [0, 60] s "
+                             f"(wall time after the session started)")
+    return {"mode": mode, "transport": transport, "simulator": dict(sim),
+            "second_client": second}
 
 
 # ---- running -------------------------------------------------------------------------------
@@ -319,10 +330,15 @@ def _run_bridge_case(case: Case, sc, folder: Path) -> tuple[dict, float | None]:
         cmd += [flags[k], str(v)]
     log = open(folder / "simulator.log", "w")
     sim = subprocess.Popen(cmd, stdout=log, stderr=subprocess.STDOUT, text=True)
+    intruder = None
     try:
         _wait_listening(folder / "simulator.log", sim)
+        if b.get("second_client") is not None:
+            intruder = _SecondClient(sc, address, folder / "run", b["second_client"])
         res = run_bridge(sc, address, folder / "run", mode=b["mode"], timeout_s=30.0,
                          overwrite=True)
+        if intruder is not None:
+            res.summary["second_client"] = intruder.result()
     finally:
         if sim.poll() is None:
             try:
@@ -343,6 +359,64 @@ def _run_bridge_case(case: Case, sc, folder: Path) -> tuple[dict, float | None]:
     return res.summary, (min(starts) if starts else None)
 
 
+class _SecondClient:
+    """Another client that sends a valid HELLO to the stand-in ``after_s`` seconds (wall time)
+    after the session's recording appeared, and keeps the answer: a session in progress must
+    refuse it with ERROR (docs/protocol.md) and go on untouched."""
+
+    def __init__(self, sc, address: str, run_folder: Path, after_s: float):
+        import threading
+        from hilrig.bridge import protocol as P
+        from hilrig.bridge.session import signal_maps
+        meas, act = signal_maps(sc)
+        self.hello = P.encode(P.Hello(P.PROTOCOL_VERSION, sc.Ts, sc.mode if sc.mode in (
+            "lockstep", "free-running") else "lockstep", meas, act, P.map_hash(meas, act)))
+        self.address, self.folder, self.after_s = address, Path(run_folder), after_s
+        self.answer: Any = None
+        self.error: str | None = None
+        self.thread = threading.Thread(target=self._run, daemon=True)
+        self.thread.start()
+
+    def _run(self) -> None:
+        try:
+            end = time.monotonic() + 120.0
+            while not (self.folder / "recording.h5").exists() and time.monotonic() < end:
+                time.sleep(0.01)
+            time.sleep(self.after_s)
+            self.answer = self._ask()
+        except Exception as exc:  # reported by the judge as the case's failure
+            self.error = f"{type(exc).__name__}: {exc}"
+
+    def _ask(self):
+        import msgpack
+        if self.address.startswith("udp://"):
+            import socket
+            host, port = self.address[len("udp://"):].rsplit(":", 1)
+            with socket.socket(socket.AF_INET, socket.SOCK_DGRAM) as s:
+                s.settimeout(10.0)
+                s.sendto(self.hello, (host, int(port)))
+                return msgpack.unpackb(s.recv(1 << 17), raw=False)
+        import zmq
+        ctx = zmq.Context()
+        s = ctx.socket(zmq.REQ)
+        s.setsockopt(zmq.LINGER, 0)
+        try:
+            s.connect(self.address)
+            s.send(self.hello)
+            return msgpack.unpackb(s.recv(), raw=False) if s.poll(10_000) else None
+        finally:
+            s.close()
+            ctx.term()
+
+    def result(self) -> dict[str, Any]:
+        self.thread.join(timeout=30.0)
+        from hilrig.bridge import protocol as P
+        a = self.answer
+        refused = isinstance(a, list) and len(a) >= 2 and a[0] == P.ERROR
+        return {"answer": None if a is None else repr(a)[:200], "refused": refused,
+                "error": self.error}
+
+
 def _wait_listening(log_path: Path, proc, limit_s: float = 120.0) -> None:
     deadline = time.monotonic() + limit_s
     while time.monotonic() < deadline:
@@ -360,6 +434,10 @@ def judge(case: Case, sc, summary: dict, run_folder: Path, fault_s: float | None
     res = CaseResult(name=case.name, passed=True, expect=case.expect,
                      outcome=f"trip: {trip['cause_id']}" if trip else "no trip", fault_s=fault_s)
     why = res.reasons
+    second = summary.get("second_client")
+    if second is not None and not second.get("refused"):
+        why.append(f"a second client's HELLO during the session was not refused with ERROR "
+                   f"(answer {second.get('answer')}, {second.get('error') or 'no error'})")
     if case.expect == "no trip":
         if trip:
             why.append(f"tripped on {trip['cause']} at t = {trip['time_s']:.6g} s")

@@ -44,6 +44,8 @@ def test_shipped_suite_covers_every_interlock_kind_and_watchdog(shipped):
                    "watchdog sequence gap", "watchdog protocol error"):
         assert needed in causes, needed
     assert sum(c["expect"] == "no trip" for c in res["cases"]) >= 2
+    # the bridge's second-client case: another client's HELLO mid-run refused, no trip
+    assert any("second client" in c["name"] and c["passed"] for c in res["cases"])
 
 
 def test_latencies_are_measured_from_the_fault(shipped):
@@ -145,6 +147,8 @@ expect = "no trip"
     ('[[cases]]\nname = "a"\nexpect = "trip"\nbogus = 1\n', "unknown key 'bogus'"),
     ('[[cases]]\nname = "a"\nexpect = "no trip"\ncause = "v_out above"\n', "no-trip case takes no cause"),
     ('[[cases]]\nname = "a"\nexpect = "trip"\nbridge = { mode = "sideways" }\n', "bridge mode 'sideways'"),
+    ('[[cases]]\nname = "a"\nexpect = "no trip"\nbridge = { second_client = "120 s" }\n',
+     "bridge.second_client = 120 s is outside [0, 60] s"),
     ('[[cases]]\nname = "a"\nexpect = "trip"\n[[cases]]\nname = "a"\nexpect = "trip"\n', "used twice"),
     # a no-trip case whose fault starts after its (shortened) run would pass without any fault
     ('[[cases]]\nname = "a"\nexpect = "no trip"\nset = { "timing.duration" = "0.1 s" }\n'
@@ -158,3 +162,18 @@ def test_malformed_suite_is_one_clear_error(tmp_path, body, message):
     assert p.returncode == 2, p.stdout + p.stderr
     assert message in p.stdout and "Traceback" not in p.stdout + p.stderr
     assert not (tmp_path / "r").exists()
+
+
+def test_a_second_client_that_is_not_refused_fails_its_case():
+    """The judge of a bridge case with a second client: the case fails unless that client's
+    HELLO was refused with ERROR, whatever the run did (a session replaced by an intruder is a
+    failed proof, even if no interlock tripped)."""
+    from hilrig.safety.suite import Case, judge
+    case = Case(name="x", text="", scenario_path="", expect="no trip",
+                bridge={"second_client": 0.1})
+    summary = {"trip": None, "completed": True, "end_event": None, "events": [],
+               "second_client": {"refused": False, "answer": "[2, ...]", "error": None}}
+    res = judge(case, None, summary, Path("."), None)
+    assert not res.passed and "not refused with ERROR" in res.reasons[0], res.reasons
+    summary["second_client"] = {"refused": True, "answer": "[7, 6, ...]", "error": None}
+    assert judge(case, None, summary, Path("."), None).passed
