@@ -302,7 +302,9 @@ def test_gap_watchdog_counts_samples_never_received(tmp_path, plugin_dir, how):
     else:
         assert p.returncode == 1, p.stdout + p.stderr
         assert s["trip"]["cause_id"] == "watchdog sequence gap"
-        assert s["trip"]["tick"] == 130 and s["trip"]["value"] == 30.0
+        # free-running: the tick that sees sample 130 (the first after the gap) is 130 when the
+        # runtime keeps pace, a little later on a loaded machine (seen: 131 in CI)
+        assert 130 <= s["trip"]["tick"] <= 140 and s["trip"]["value"] == 30.0, s["trip"]
         assert br["lost"] == 30
 
 

@@ -38,8 +38,10 @@ def test_dask_backend_gives_the_same_map(small_tasks):
     # ":0": the scheduler's HTTP server always starts (None means its default port, 8787,
     # which a second run on the same machine already held: seen as "Port 8787 is already in
     # use" raised through the warnings-as-errors setting); a free port avoids the clash
+    # host and dashboard on loopback: by default the scheduler and its HTTP server listen on
+    # every interface (the suite's network guard refused that bind)
     with distributed.LocalCluster(n_workers=2, threads_per_worker=1, processes=True,
-                                  dashboard_address=":0") as cluster:
+                                  host="127.0.0.1", dashboard_address="127.0.0.1:0") as cluster:
         via_dask = env.run_envelope(small_tasks, cluster=cluster.scheduler_address)
     assert via_dask == env.run_envelope(small_tasks, workers=2)
 
