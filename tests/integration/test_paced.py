@@ -92,19 +92,28 @@ def test_paced_run_keeps_the_wall_clock_and_records_timing(paced):
 
 
 def test_forced_overrun_is_spent_and_trips_the_overrun_watchdog(demo_path, tmp_path):
-    # 25 ms of forced compute on one tick against a 15 ms budget (far above the scheduling
-    # noise of a shared machine, a few ms at worst): the tick really takes that long, and the
-    # overrun (known when the tick is over) trips on the next tick
+    # 150 ms of forced compute on one tick against a 100 ms budget (far above the scheduling
+    # noise of a shared machine): the tick really takes that long, and the overrun (known when
+    # the tick is over) trips on the next tick. A CI machine once stalled a tick past a 15 ms
+    # budget before the forced one (the run tripped near tick 1315); such a stall is a real
+    # overrun, checked as one, and then the forced tick cannot be reached: skipped, said why.
     sc = load_scenario(demo_path, overrides={
-        "timing.duration": 0.12, "watchdogs": {"overrun_budget": "15 ms"},
-        "faults": [{"kind": "overrun", "value": "25 ms", "start": "0.1 s", "end": "0.10005 s"}]})
+        "timing.duration": 0.12, "watchdogs": {"overrun_budget": "100 ms"},
+        "faults": [{"kind": "overrun", "value": "150 ms", "start": "0.1 s", "end": "0.10005 s"}]})
     res = run_paced(sc, tmp_path / "r")
     run = open_run(res.folder)
     k = 2000
-    assert res.summary["trip"] is not None, res.summary["events"]
-    assert run.signals["tick_compute"][k] >= 25e-3
-    assert res.summary["trip"]["cause_id"] == "watchdog overrun"
-    assert res.summary["trip"]["tick"] == k + 1
+    trip = res.summary["trip"]
+    assert trip is not None, res.summary["events"]
+    assert trip["cause_id"] == "watchdog overrun"
+    if trip["tick"] < k + 1:
+        # the watchdog was right: the tick before the trip did take longer than the budget
+        # (its work runs from its deadline to its end: lateness + compute)
+        j = trip["tick"] - 1
+        assert run.signals["tick_lateness"][j] + run.signals["tick_compute"][j] >= 0.1
+        pytest.skip(f"the machine stalled tick {trip['tick'] - 1} past 100 ms before the forced overrun")
+    assert run.signals["tick_compute"][k] >= 150e-3
+    assert trip["tick"] == k + 1
     assert run.signals["u"][k + 1] == 0.0 and run.signals["u"][k] > 0.0
     assert res.summary["paced"]["overruns"] >= 1
 
