@@ -43,6 +43,9 @@ TOP_KEYS = {"title", "description", "demo_data", "mode", "seed", "timing", "plan
             "faults", "resets", "watchdogs", "paced"}
 TIMING = {"Ts": ("s", 50e-6, (1e-7, 1.0)), "substeps": ("-", 4, (1, 1000)),
           "duration": ("s", 1.0, (1e-6, 1e6))}
+#: "adaptive": RK4 sub-steps refined where the plant is stiff (runtime/loop.py); "fixed": the
+#: given substeps only, for comparison (a stiff run may then end in a plant integration error)
+TIMING_CHOICES = {"integration": ("adaptive", "fixed")}
 SHAPING = {"order": ("-", 5, (4, 12)), "pole": ("rad/s", 7500.0, (1.0, 1e7)),
            "slew_rate": ("V/s", 2e5, (1e-3, 1e9))}
 LIMITS = {"v_collapse": ("V", 25.0, (0.0, 1e5)), "safe_u": ("V", 0.0, (-1e5, 1e5))}
@@ -108,6 +111,8 @@ class Scenario:
     #: paced settings (PACED and PACED_FLAGS keys, SI units): timing limits, real-time requests
     paced: dict[str, Any] = field(default_factory=lambda: {
         **{k: v[1] for k, v in PACED.items()}, **PACED_FLAGS})
+    #: "adaptive" (stiffness-aware RK4 sub-steps) or "fixed" (timing.integration)
+    integration: str = "adaptive"
 
     @property
     def stale_limit_s(self) -> float:
@@ -213,8 +218,9 @@ def parse_scenario(text: str, name: str = "scenario.toml", path: str = "",
     if isinstance(seed, bool) or not isinstance(seed, int) or not (0 <= seed < 2**63):
         raise cx.fail("seed", f" = {seed!r} is not a whole number in [0, 2^63)")
 
-    timing = _section(cx, raw, "timing", TIMING)
+    timing = _section(cx, raw, "timing", TIMING, choices=TIMING_CHOICES)
     Ts, substeps, duration = timing["Ts"], int(timing["substeps"]), timing["duration"]
+    integration = timing.get("integration", "adaptive")
     if duration / Ts > MAX_TICKS:
         raise cx.fail("timing.duration", f" = {duration:g} s is {duration / Ts:.3g} ticks at Ts = "
                       f"{Ts:g} s; at most {MAX_TICKS:g} ticks: shorten the run or lengthen Ts")
@@ -235,7 +241,8 @@ def parse_scenario(text: str, name: str = "scenario.toml", path: str = "",
     interlocks = _interlocks(cx, raw, plant, controller)
     v_out0 = _initial(cx, raw)
     faults = _faults(cx, raw, plant, duration, Ts)
-    _check_short_circuits(cx, faults, plant, Ts, substeps)
+    if integration == "fixed" or getattr(plant.plugin.module, "fast_rate", None) is None:
+        _check_short_circuits(cx, faults, plant, Ts, substeps)
     resets = _resets(cx, raw, Ts, duration)
     recording = _section(cx, raw, "recording", RECORDING, choices=RECORDING_CHOICES)
     recording.setdefault("compression", "none")
@@ -247,7 +254,7 @@ def parse_scenario(text: str, name: str = "scenario.toml", path: str = "",
                     load_t=load_t, load_v=load_v, v_collapse=limits["v_collapse"],
                     safe_u=limits["safe_u"], interlocks=interlocks, v_out0=v_out0,
                     recording=recording, faults=faults, resets=resets, watchdogs=watchdogs,
-                    paced=paced)
+                    paced=paced, integration=integration)
 
 
 def _check_shape(cx, raw: dict) -> None:
@@ -771,7 +778,9 @@ def _faults(cx, raw, plant: PluginChoice, duration: float, Ts: float) -> list[Fa
 def _check_short_circuits(cx, faults, plant: PluginChoice, Ts: float, substeps: int) -> None:
     """A short circuit across the output capacitance is a fast pole (tau = R C): explicit RK4
     needs substeps no longer than tau / 2, or the integration rings and the recorded voltage
-    is an artefact (it can even rise). Refuse such a scenario with the fix."""
+    is an artefact (it can even rise). With fixed sub-steps (timing.integration = "fixed", or a
+    plant without the ``fast_rate`` kernel) refuse such a scenario with the fix; the adaptive
+    integration shortens its steps by itself."""
     vals = plant.values
     cap = next((vals[k] for k in ("C2", "C") if isinstance(vals.get(k), float)), None)
     if cap is None:
