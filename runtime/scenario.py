@@ -130,6 +130,8 @@ class _Ctx:
     def __init__(self, name: str, base: Path = Path(".")):
         self.name = name
         self.base = base
+        #: the keys an override gave (a plugin key unknown there is refused naming it)
+        self.overridden: set[str] = set()
 
     def fail(self, key: str, msg: str) -> ScenarioError:
         return ScenarioError(f"{self.name}: {key}{msg}")
@@ -179,7 +181,6 @@ def parse_scenario(text: str, name: str = "scenario.toml", path: str = "",
     apart, as not applied, and ``Scenario.overrides`` keeps both lists.
     """
     cx = _Ctx(name, Path(path).parent if path else Path("."))
-    # an unknown plugin key that an override gave is refused naming the override (_plugin)
     cx.overridden = set(overrides or ())
     try:
         raw = tomllib.loads(text)
@@ -517,8 +518,7 @@ def _plugin(cx, raw, key, default_name) -> PluginChoice:
     values = decl.defaults()
     for k, v in tab.items():
         if k not in known:
-            given = getattr(cx, "overridden", ())
-            if f"{key}.{k}" in given or key in given:
+            if f"{key}.{k}" in cx.overridden or key in cx.overridden:
                 raise ScenarioError(
                     f"{cx.name}: unknown key '{key}.{k}' (an override): {key} {decl.name} has "
                     f"no parameter {k!r}{_hint(str(k), known)} (its parameters: "

@@ -1,6 +1,11 @@
 """The record tells the truth about --set overrides: an override a candidate cannot take is
 listed as not applied (or refused before anything runs), never listed as applied.
 
+The record is checked from outside hilrig's own bookkeeping: the recorded scenario.toml is read
+with Python's standard TOML reader (tomllib), and whether an override acted is decided by the
+recordings themselves (h5py): a candidate that did not take it records bit for bit the run it
+records without it, one that took it records another (common practice, no source).
+
 Uses only plugin combinations the other tests compile already (two_stage_lc with a profile
 reference and cascaded_pi, flatness or state_feedback), and runs of a few milliseconds.
 """
