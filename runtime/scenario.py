@@ -113,6 +113,10 @@ class Scenario:
         **{k: v[1] for k, v in PACED.items()}, **PACED_FLAGS})
     #: "adaptive" (stiffness-aware RK4 sub-steps) or "fixed" (timing.integration)
     integration: str = "adaptive"
+    #: the overrides this run took and those it did not (a candidate of compare or envelope
+    #: that lacks a controller parameter): {"applied": [{"key", "value"}], "not_applied":
+    #: [{"key", "value", "reason"}]}, values in TOML's notation; summary.json keeps it
+    overrides: dict[str, list] = field(default_factory=lambda: {"applied": [], "not_applied": []})
 
     @property
     def stale_limit_s(self) -> float:
@@ -131,6 +135,8 @@ class _Ctx:
     def __init__(self, name: str, base: Path = Path(".")):
         self.name = name
         self.base = base
+        #: the keys an override gave (a plugin key unknown there is refused naming it)
+        self.overridden: set[str] = set()
 
     def fail(self, key: str, msg: str) -> ScenarioError:
         return ScenarioError(f"{self.name}: {key}{msg}")
@@ -154,8 +160,9 @@ def _hint(name: str, known) -> str:
     return f"; did you mean {', '.join(repr(c) for c in close[:3])}?" if close else ""
 
 
-def load_scenario(path: str | Path, overrides: dict[str, Any] | None = None) -> Scenario:
-    """Read and validate a scenario file."""
+def load_scenario(path: str | Path, overrides: dict[str, Any] | None = None,
+                  not_applied: list[dict[str, str]] | None = None) -> Scenario:
+    """Read and validate a scenario file (``not_applied``: see :func:`parse_scenario`)."""
     path = Path(path)
     try:
         text = path.read_text(encoding="utf-8")
@@ -163,17 +170,23 @@ def load_scenario(path: str | Path, overrides: dict[str, Any] | None = None) -> 
         raise ScenarioError(f"scenario file {str(path)!r} does not exist") from None
     except (OSError, UnicodeDecodeError) as exc:
         raise ScenarioError(f"{path}: cannot read: {exc}") from None
-    return parse_scenario(text, name=path.name, path=str(path), overrides=overrides)
+    return parse_scenario(text, name=path.name, path=str(path), overrides=overrides,
+                          not_applied=not_applied)
 
 
 def parse_scenario(text: str, name: str = "scenario.toml", path: str = "",
-                   overrides: dict[str, Any] | None = None) -> Scenario:
+                   overrides: dict[str, Any] | None = None,
+                   not_applied: list[dict[str, str]] | None = None) -> Scenario:
     """Validate scenario text; ``overrides`` replaces top-level sections' keys (dotted names).
 
     With overrides, the returned scenario's ``text`` is the scenario that runs (the file with
     them applied, headed by a comment listing them), so that a run folder records it.
+    ``not_applied`` lists overrides given to the command that this scenario does not take
+    (``{"key", "value", "reason"}``, from :func:`plan_candidates`): the header lists them
+    apart, as not applied, and ``Scenario.overrides`` keeps both lists.
     """
     cx = _Ctx(name, Path(path).parent if path else Path("."))
+    cx.overridden = set(overrides or ())
     try:
         raw = tomllib.loads(text)
     except tomllib.TOMLDecodeError as exc:
@@ -193,10 +206,10 @@ def parse_scenario(text: str, name: str = "scenario.toml", path: str = "",
     for dotted, value in (overrides or {}).items():
         _set_dotted(cx, raw, dotted, value)
     _check_shape(cx, raw)
-    if overrides:
+    if overrides or not_applied:
         # what runs is the file with the overrides: the run folder's scenario.toml and the
         # recording's scenario_text hold that, so running them again repeats this run
-        text = _effective_text(cx, raw, overrides)
+        text = _effective_text(cx, raw, overrides or {}, not_applied or [])
     for k in raw:
         if k not in TOP_KEYS:
             raise cx.unknown("", k, TOP_KEYS)
@@ -254,7 +267,10 @@ def parse_scenario(text: str, name: str = "scenario.toml", path: str = "",
                     load_t=load_t, load_v=load_v, v_collapse=limits["v_collapse"],
                     safe_u=limits["safe_u"], interlocks=interlocks, v_out0=v_out0,
                     recording=recording, faults=faults, resets=resets, watchdogs=watchdogs,
-                    paced=paced, integration=integration)
+                    paced=paced, integration=integration,
+                    overrides={"applied": [{"key": k, "value": _inline(v)}
+                                           for k, v in (overrides or {}).items()],
+                               "not_applied": [dict(d) for d in not_applied or []]})
 
 
 def _check_shape(cx, raw: dict) -> None:
@@ -296,21 +312,26 @@ def _printable(text: str) -> str:
     return "".join(repr(ch)[1:-1] if unicodedata.category(ch) == "Cc" else ch for ch in text)
 
 
-def _effective_text(cx, raw: dict, overrides: dict[str, Any]) -> str:
+def _effective_text(cx, raw: dict, overrides: dict[str, Any],
+                    not_applied: list[dict[str, str]] = ()) -> str:
     """The scenario with overrides applied, as TOML text that parses to ``raw``.
 
     The file's comments and layout are not kept (the text is written from the parsed values);
-    a header names the file and the overrides.
+    a header names the file and the overrides, and apart from them those given to the command
+    that this scenario did not take, each with its reason.
     """
     import tomli_w
     try:
         body = tomli_w.dumps(raw)
-        given = "\n".join(f"#   {k} = {_inline(v)}" for k, v in overrides.items())
+        given = "\n".join(f"#   {k} = {_inline(v)}" for k, v in overrides.items()) or "#   (none)"
     except (TypeError, ValueError) as exc:
         raise ScenarioError(f"{cx.name}: an override cannot be written as TOML: {exc}") from None
+    skipped = "".join(f"\n#   {d['key']} = {d['value']}: {d['reason']}" for d in not_applied)
+    if skipped:
+        skipped = "\n# and these overrides NOT applied (given to the command, not taken here):" + skipped
     return (f"# {cx.name} with these overrides applied (the scenario that ran; written by "
             f"hilrig from the\n# parsed values, so the file's comments and layout are not "
-            f"kept):\n{given}\n\n{body}")
+            f"kept):\n{given}{skipped}\n\n{body}")
 
 
 def _inline(v: Any) -> str:
@@ -336,6 +357,85 @@ def _set_dotted(cx, raw: dict, dotted: str, value: Any) -> None:
             raise ScenarioError(f"{cx.name}: override {dotted!r}: {'.'.join(parts[:i + 1])} is a "
                                 f"{type(node).__name__}, not a table, so it has no key {parts[i + 1]!r}")
     node[parts[-1]] = value
+
+
+@dataclass
+class CandidatePlan:
+    """How one candidate controller of ``compare`` or ``envelope`` takes the command's
+    overrides: the scenario it runs, the overrides that made it (its own controller table when
+    it is not the scenario's, then every override it can take) and those it cannot take."""
+
+    scenario: Scenario
+    overrides: dict[str, Any]
+    not_applied: list[dict[str, str]]
+
+
+def plan_candidates(path: str | Path, overrides: dict[str, Any] | None,
+                    candidates: list[str]) -> tuple[Scenario, dict[str, CandidatePlan]]:
+    """The scenario with the overrides every candidate shares, and each candidate's plan.
+
+    Only the controller differs between candidates, so only ``controller.<param>`` overrides
+    can fit some and not others: each goes to the candidates that declare ``<param>`` and is
+    listed as not applied, with the reason, for the others (their scenario.toml header and
+    ``Scenario.overrides``). One that no candidate takes is refused, naming the candidates'
+    parameters; so is an override of ``controller`` or ``controller.plugin`` (the candidates
+    are the command's to choose). Every other override is checked here with run's messages.
+    Nothing runs; a mistake raises :class:`ScenarioError`.
+    """
+    name = Path(path).name
+    overrides = dict(overrides or {})
+    for k in overrides:
+        if k in ("controller", "controller.plugin"):
+            raise ScenarioError(
+                f"{name}: override {k!r}: the candidate controllers are chosen with "
+                f"--controllers, so an override cannot name one; set a controller parameter "
+                f"on its own, e.g. --set controller.NAME=VALUE (it reaches the candidates "
+                f"that have it)")
+    params = {k: v for k, v in overrides.items() if k.startswith("controller.")}
+    shared = {k: v for k, v in overrides.items() if k not in params}
+    base = load_scenario(path, overrides=shared)
+    own = base.controller.plugin
+    first: dict[str, tuple[dict[str, Any], list[str]]] = {}
+    for cand in candidates:
+        ov = dict(shared)
+        if cand not in (own.name, own.origin[1]):
+            # the scenario's controller parameters belong to its own controller: others run
+            # with their defaults and the overrides they take
+            ov["controller"] = {"plugin": cand}
+        sc = load_scenario(path, overrides=ov)
+        first[cand] = (ov, [p.name for p in sc.controller.plugin.declaration.params])
+    for k in params:
+        p = k.split(".")[1]
+        if not any(p in known for _, known in first.values()):
+            have = "; ".join(f"{c} has {', '.join(known) or 'no parameters'}"
+                             for c, (_, known) in first.items())
+            every = sorted({q for _, known in first.values() for q in known})
+            raise ScenarioError(
+                f"{name}: unknown key {k!r} (an override): no candidate controller has a "
+                f"parameter {p!r}{_hint(p, every)} ({have}); fix the key, or leave the "
+                f"override out")
+    plans = {}
+    for cand, (ov, known) in first.items():
+        taken = {k: v for k, v in params.items() if k.split(".")[1] in known}
+        skipped = [{"key": k, "value": _inline(v),
+                    "reason": f"controller {cand} has no parameter {k.split('.')[1]!r}"}
+                   for k, v in params.items() if k not in taken]
+        ov = {**ov, **taken}
+        plans[cand] = CandidatePlan(load_scenario(path, overrides=ov, not_applied=skipped),
+                                    ov, skipped)
+    return base, plans
+
+
+def not_applied_lines(plans: dict[str, CandidatePlan]) -> list[str]:
+    """One notice per override that some candidates do not take: which, and why."""
+    keys = dict.fromkeys(d["key"] for p in plans.values() for d in p.not_applied)
+    lines = []
+    for k in keys:
+        without = [(c, d["reason"]) for c, p in plans.items() for d in p.not_applied if d["key"] == k]
+        took = [c for c in plans if c not in dict(without)]
+        lines.append(f"notice: override {k} is not applied to {', '.join(c for c, _ in without)} "
+                     f"({'; '.join(r for _, r in without)}); applied to {', '.join(took)}")
+    return lines
 
 
 def _str(cx, raw, key, default):
@@ -425,6 +525,11 @@ def _plugin(cx, raw, key, default_name) -> PluginChoice:
     values = decl.defaults()
     for k, v in tab.items():
         if k not in known:
+            if f"{key}.{k}" in cx.overridden or key in cx.overridden:
+                raise ScenarioError(
+                    f"{cx.name}: unknown key '{key}.{k}' (an override): {key} {decl.name} has "
+                    f"no parameter {k!r}{_hint(str(k), known)} (its parameters: "
+                    f"{', '.join(known) or 'none'}); fix the key, or leave the override out")
             raise cx.unknown(key, k, known + ["plugin"])
         q = decl.param(k)
         where = f"{key}.{k}"
