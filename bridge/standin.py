@@ -13,6 +13,7 @@ import numpy as np
 
 from hilrig.runtime import loop as loopgen
 from hilrig.runtime.run import fault_args, prepare
+from hilrig.safety.interlocks import new_latch
 
 from . import protocol as P
 from .errors import ProtocolError
@@ -222,7 +223,8 @@ class StandIn:
         self.reset()
         # compile (or load) both kernels now, not in the middle of a session
         self.sample(0)
-        self.advance_k(0.0, sc.Ts, self.nsub, self.zf, self.pp, self.x.copy(), self.u, self.d.copy())
+        self.advance_k(0.0, sc.Ts, self.nsub, self.zf, self.pp, self.x.copy(), self.u,
+                       self.d.copy(), True, self.wd, self.uq.copy(), self.slatch.copy())
         self.reset()
 
     def welcome(self, mode: str) -> P.Welcome:
@@ -233,7 +235,12 @@ class StandIn:
 
     def reset(self):
         a = prepare(self.sc).args
-        self.faults = (*fault_args(a), a["wd"])
+        # the watchdog array also carries the safe state and the actuation delay; the queue of
+        # past commands and a latch that follows the runtime's output-enable flag make the
+        # stand-in apply both as SIL does
+        self.wd, self.uq = a["wd"], a["uq"]
+        self.slatch = new_latch()
+        self.faults = (*fault_args(a), self.wd, self.uq, self.slatch)
         # the same integration as a SIL run of the scenario (sub-steps and stiffness rule)
         self.nsub, self.zf = a["nsub"], a["zf"]
         self.pp, self.x = a["pp"], a["x"].copy()
@@ -262,11 +269,12 @@ class StandIn:
             return None
         return _CompiledServer(self, rep, kind)
 
-    def step(self, u: np.ndarray) -> bool:
-        """Apply u for one period from tick k (load held as sampled), advance to k + 1."""
+    def step(self, u: np.ndarray, enable: bool = True) -> bool:
+        """Apply u for one period from tick k (load held as sampled), advance to k + 1; with
+        the runtime's output disabled (its trip latched), under the scenario's safe state."""
         self.u[:] = u
         ok = self.advance_k(self.k * self.sc.Ts, self.sc.Ts, self.nsub, self.zf, self.pp, self.x,
-                            self.u, self.d)
+                            self.u, self.d, bool(enable), self.wd, self.uq, self.slatch)
         self.k += 1
         return bool(ok)
 
@@ -432,8 +440,7 @@ def serve(sc, bind: str, *, sessions: int | None = None, allow_remote: bool = Fa
                     send(sim.last)  # a repeated actuation: answer again, do not advance
                 elif frame.seq == sim.k:
                     # output disabled: the stage is switched off, modelled as 0 V applied
-                    u = frame.u if frame.output_enable else np.zeros_like(frame.u)
-                    if not sim.step(u):
+                    if not sim.step(frame.u, frame.output_enable):
                         reply(P.Error(code=6, reason=f"the plant state became non-finite at tick {sim.k}"))
                         in_session = False
                         continue
@@ -529,6 +536,7 @@ def serve_free_running(sc, bind: str, *, sessions: int | None = None,
                 continue
             late = missing = 0
             pending = None
+            enable = True
             last_heard = time.perf_counter()
             t0 = time.perf_counter()
             faults.tick = 0
@@ -574,7 +582,7 @@ def serve_free_running(sc, bind: str, *, sessions: int | None = None,
                         continue
                     if isinstance(f, P.Actuation):
                         if f.seq == sim.k and pending is None:
-                            pending = f.u if f.output_enable else np.zeros_like(f.u)
+                            pending, enable = f.u, f.output_enable
                         elif f.seq < sim.k:
                             late += 1
                     elif isinstance(f, P.Stop):
@@ -594,7 +602,8 @@ def serve_free_running(sc, bind: str, *, sessions: int | None = None,
                 else:
                     u = pending
                 pending = None
-                if not sim.step(u):
+                # a missed actuation keeps the last command and the last enable flag
+                if not sim.step(u, enable):
                     send(P.Error(code=6, reason=f"the plant state became non-finite at tick {sim.k}"))
                     break
                 if faults.disconnect_after is not None and sim.k >= faults.disconnect_after:

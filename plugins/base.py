@@ -124,6 +124,9 @@ class BuildContext:
     #: the plant plugin module (``derivs``, ``outputs``, ``DECLARATION``): for design work such
     #: as linearising the plant at an operating point in a controller's build hook
     plant_module: Any = None
+    #: the scenario's sample-to-actuation delay [control periods] (timing.actuation_delay): a
+    #: controller that compensates delay (``Declaration.compensates_delay``) designs for it
+    actuation_delay: float = 0.0
 
 
 @dataclass
@@ -145,6 +148,9 @@ class Declaration:
     equilibrium: Callable[[Mapping[str, Any], float, np.ndarray], np.ndarray] | None = None
     #: number of states the kernel keeps (may depend on values, e.g. RC pairs)
     n_states: Callable[[Mapping[str, Any]], int] | None = None
+    #: controller only: it compensates the actuation delay it is built for (a prediction over
+    #: ``BuildContext.actuation_delay``); runs and comparisons say so beside the delay
+    compensates_delay: bool = False
 
     def __post_init__(self):
         if self.kind not in KINDS:

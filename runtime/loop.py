@@ -80,7 +80,7 @@ def {fname}(k0, n, ts, nsub, zf, v_collapse, i_vout,
               ad, g1, g2, cr, dr, slew, z, s, zt, r,
               dix, lim_sig, lim_side, lim_thr, lim_deb, lim_cnt, latch, pv,
               seed, f_stage, f_kind, f_sig, f_t0, f_t1, f_val, f_hold, f_cond,
-              reset_t, reset_i, evlog, evn, wd,
+              reset_t, reset_i, evlog, evn, wd, uq,
               y, d, rec, ev{paced_params}):
     """{fdoc}"""
 {borrow}{energy_start}    for i in range(n):
@@ -89,14 +89,17 @@ def {fname}(k0, n, ts, nsub, zf, v_collapse, i_vout,
 {paced_wait}        # 1 sample (load faults act on the load, as a real device would)
         interp_rows(load_t, load_v, t, lcur, d)
         apply_faults(0, kk, t, seed, f_stage, f_kind, f_sig, f_t0, f_t1, f_val, f_hold, f_cond, wd, y, u, d)
+        contactor(t, latch, wd, d)
         plant_outputs(t, pp, x, u, d, y)
         v_true = y[i_vout]
         keep_true(y, f_sig, f_cond, rec, i, y.shape[0] + u.shape[0] + 9)
         # 2 inject: sensor faults on the measured signals
         apply_faults(1, kk, t, seed, f_stage, f_kind, f_sig, f_t0, f_t1, f_val, f_hold, f_cond, wd, y, u, d)
 {decide_8}
-        # 6 actuate
-        nref = advance(t, ts, nsub, zf, pp, x, u, d)
+        # 6 actuate: the command in force after the actuation delay, or the trip's safe state
+        # (gates blocked at once; the output contactor open after its delay)
+        contactor(t, latch, wd, d)
+        nref = actuate(t, ts, nsub, zf, pp, x, u, uq, latch, wd, d)
 {record_8}
 {paced_stamp}        # end of tick: the run ends on a plant integration error (a non-finite state, a
         # rise of stored energy beyond what the circuit can deliver, too many sub-steps) or a
@@ -167,7 +170,9 @@ from hilrig.safety.interlocks import (protect as _protect, supervise as _supervi
                                       watch as _watch, state_code as _state_code, L_REINIT)
 from hilrig.safety.faults import apply as _apply_faults, trigger as _trigger, keep_true as _keep_true
 from hilrig.runtime.clock import cycles, store_fence
-from hilrig.safety.interlocks import W_HOST_TIME, W_HOST_BITS, W_FORCED
+from hilrig.safety.interlocks import W_HOST_TIME, W_HOST_BITS, W_FORCED, W_DELAY
+from hilrig.safety.interlocks import (contactor as _contactor, gates_blocked as _gates_blocked,
+                                      follow_enable as _follow_enable)
 from hilrig.bridge.wire import (exchange, get_sample, read_vector, put_actuation, put_sample,
                                 get_actuation, zmq_recv, zmq_send, c_poll, c_recvfrom, c_sendto,
                                 IO_KIND, IO_HANDLE, IO_WAIT_MS, IO_STATUS, IO_NRECV, IO_NSENT,
@@ -184,6 +189,9 @@ supervise = _inline(_supervise)
 state_code = _inline(_state_code)
 apply_faults = _inline(_apply_faults)
 keep_true = _inline(_keep_true)
+contactor = _inline(_contactor)
+gates_blocked = _inline(_gates_blocked)
+follow_enable = _inline(_follow_enable)
 
 #: plant state count, a literal so that the compiler unrolls the state loops
 NX = {nx}
@@ -205,6 +213,59 @@ def rk4(ta, dt, pp, s, u, d):
 
 
 @njit(inline="always")
+def step(ta, dt, pp, s, u, d, blocked):
+    """One RK4 step; with the converter's gates blocked (u NaN), a current through its diodes
+    that reaches zero within the step stops there: the step is redone to the crossing (located
+    by linear interpolation of that current over the step), the current set to zero, and the
+    rest of the step taken from there (where the plant holds it at zero)."""
+    s1 = rk4(ta, dt, pp, s, u, d)
+{gate_fixup}
+    return s1
+
+
+@njit(inline="always")
+def actuate(t, h, nsub, zf, pp, x, u, uq, latch, wd, d):
+    """Stage 6: the plant advances one period. The command in force is the controller's u of
+    this tick, or (actuation delay of wd[W_DELAY] half periods) the command of an earlier tick
+    from the queue uq (rows 1-3: 1-3 ticks ago; row 0: the applied command), switching at
+    mid-period for an odd number of half periods; with the gates blocked by a trip, NaN (the
+    plant's diodes decide; a plant that does not model them applies 0 V). Returns advance's
+    count of refined steps, or -1."""
+    dh = int(wd[W_DELAY])
+    blocked = gates_blocked(latch, wd)
+    nu = u.shape[0]
+    if dh > 0 and not (uq[1, 0] == uq[1, 0]):
+        # the first tick: the commands before it are taken to be its own (bumpless start)
+        for m in range(1, 4):
+            for j in range(nu):
+                uq[m, j] = u[j]
+    l1 = (dh + 1) // 2
+    l2 = dh // 2
+    nh = 2 if (l1 != l2 and not blocked) else 1
+    hh = h / nh
+    ns = nsub if nh == 1 else (nsub + 1) // 2
+    n = 0
+    for half in range(nh):
+        lag = l1 if half == 0 else l2
+        ua = u
+        if blocked or lag > 0:
+            ua = uq[0]
+            for j in range(nu):
+                ua[j] = np.nan if blocked else uq[lag, j]
+        m = advance(t + half * hh, hh, ns, zf, pp, x, ua, d)
+        if m < 0:
+            return m
+        n += m
+    if dh > 0:
+        for m in range(3, 1, -1):
+            for j in range(nu):
+                uq[m, j] = uq[m - 1, j]
+        for j in range(nu):
+            uq[1, j] = u[j]
+    return n
+
+
+@njit(inline="always")
 def advance(t, h, nsub, zf, pp, x, u, d):
     """RK4 with nsub substeps over one control period h; u and the load d held. A plant
     that brings its own ``rk4_step`` (the same method, arranged for its equations) is stepped
@@ -220,6 +281,7 @@ def advance(t, h, nsub, zf, pp, x, u, d):
     dt = h / nsub
     s = ({x_items},)
     extra = 0
+    blocked = not (u[0] == u[0])
     for j in range(nsub):
         ta = t + j * dt
 {fast_step}
@@ -331,7 +393,7 @@ def bridge_chunk(k0, n, ts, v_collapse, i_vout,
 
 @njit(cache=True, error_model="numpy")
 def sim_serve(k, limit, ts, nsub, zf, pp, x, u, load_t, load_v, lcur, d, y,
-              seed, f_stage, f_kind, f_sig, f_t0, f_t1, f_val, f_hold, f_cond, wd,
+              seed, f_stage, f_kind, f_sig, f_t0, f_t1, f_val, f_hold, f_cond, wd, uq, slatch,
               io, rbuf, sbuf, pfd, addr, alen):
     """Stand-in simulator, lockstep, compiled: while k < limit, take the actuation of tick k,
     advance the plant one period and answer with the sample of tick k + 1 (as sim_advance and
@@ -365,11 +427,16 @@ def sim_serve(k, limit, ts, nsub, zf, pp, x, u, load_t, load_v, lcur, d, y,
             io[IO_STATUS] = ST_FRAME
             io[IO_NRECV] = m
             return k
-        # output disabled: the stage is switched off, modelled as 0 V applied
+        # output disabled (the runtime's trip is latched): the scenario's safe state, as in SIL
         for j in range(n_act):
-            u[j] = ut[j] if enable else 0.0
-        advance(k * ts, ts, nsub, zf, pp, x, u, d)
+            u[j] = ut[j]
+        follow_enable(k * ts, enable, slatch)
+        contactor(k * ts, slatch, wd, d)
+        nref = actuate(k * ts, ts, nsub, zf, pp, x, u, uq, slatch, wd, d)
         k += 1
+        if nref < 0:
+            io[IO_STATUS] = ST_NONFINITE
+            return k
         for j in range(NX):
             if not (x[j] - x[j] == 0.0):
                 io[IO_STATUS] = ST_NONFINITE
@@ -377,6 +444,7 @@ def sim_serve(k, limit, ts, nsub, zf, pp, x, u, load_t, load_v, lcur, d, y,
         t = k * ts
         interp_rows(load_t, load_v, t, lcur, d)
         apply_faults(0, k, t, seed, f_stage, f_kind, f_sig, f_t0, f_t1, f_val, f_hold, f_cond, wd, y, u, d)
+        contactor(t, slatch, wd, d)
         plant_outputs(t, pp, x, u, d, y)
         trigger(t, y, f_t0, f_t1, f_cond)
         ns = put_sample(sbuf, k, t, y)
@@ -393,20 +461,24 @@ def sim_serve(k, limit, ts, nsub, zf, pp, x, u, load_t, load_v, lcur, d, y,
 
 @njit(cache=True, error_model="numpy")
 def sim_sample(kk, t, pp, x, u, load_t, load_v, lcur, d, y,
-               seed, f_stage, f_kind, f_sig, f_t0, f_t1, f_val, f_hold, f_cond, wd):
+               seed, f_stage, f_kind, f_sig, f_t0, f_t1, f_val, f_hold, f_cond, wd, uq, slatch):
     """Stand-in simulator: the plant's outputs at time t (the load sampled at t, with the
-    scenario's load faults; its sensor faults are injected on the runtime's side). Conditional
-    faults are triggered on these outputs, as in SIL."""
+    scenario's load faults and its output contactor; its sensor faults are injected on the
+    runtime's side). Conditional faults are triggered on these outputs, as in SIL."""
     interp_rows(load_t, load_v, t, lcur, d)
     apply_faults(0, kk, t, seed, f_stage, f_kind, f_sig, f_t0, f_t1, f_val, f_hold, f_cond, wd, y, u, d)
+    contactor(t, slatch, wd, d)
     plant_outputs(t, pp, x, u, d, y)
     trigger(t, y, f_t0, f_t1, f_cond)
 
 
 @njit(cache=True, error_model="numpy")
-def sim_advance(t, ts, nsub, zf, pp, x, u, d):
-    """Stand-in simulator: advance the plant one period with u and the load d held."""
-    if advance(t, ts, nsub, zf, pp, x, u, d) < 0:
+def sim_advance(t, ts, nsub, zf, pp, x, u, d, enable, wd, uq, slatch):
+    """Stand-in simulator: advance the plant one period with u and the load d held, under the
+    scenario's actuation delay and, while the runtime's output is disabled, its safe state."""
+    follow_enable(t, enable, slatch)
+    contactor(t, slatch, wd, d)
+    if actuate(t, ts, nsub, zf, pp, x, u, uq, slatch, wd, d) < 0:
         return False
     for j in range(NX):
         if not (x[j] - x[j] == 0.0):
@@ -558,6 +630,28 @@ def _import_lines(plant: Plugin, ctrl: Plugin, ref: Plugin) -> str:
     return "\n".join(lines)
 
 
+def _gate_fixup_text(nx: int, currents: tuple[int, ...]) -> str:
+    """The zero-crossing stop of each current through the converter's diodes (the plant's
+    ``GATE_BLOCK_CURRENTS``) while its gates are blocked."""
+    if not currents:
+        return ""
+    out = ["    if blocked:"]
+    for i in currents:
+        items = ", ".join("0.0" if j == i else f"sa[{j}]" for j in range(nx))
+        out += [f"        if (s[{i}] > 0.0 and not (s1[{i}] > 0.0)) or (s[{i}] < 0.0 and not (s1[{i}] < 0.0)):",
+                f"            th = s[{i}] / (s[{i}] - s1[{i}])",
+                "            sa = rk4(ta, th * dt, pp, s, u, d)",
+                f"            sa = ({items},)",
+                "            s1 = rk4(ta + th * dt, (1.0 - th) * dt, pp, sa, u, d)"]
+    return "\n".join(out)
+
+
+def gate_block_currents(plant: Plugin) -> tuple[int, ...]:
+    """The plant's states that are currents through the converter's switches (optional module
+    attribute ``GATE_BLOCK_CURRENTS``): with the gates blocked each one stops at zero."""
+    return tuple(int(i) for i in getattr(plant.module, "GATE_BLOCK_CURRENTS", ()))
+
+
 def _rk4_text(nx: int, own_step: bool, fast: bool = False) -> dict[str, str]:
     """The RK4 step, unrolled for nx states (the plant's own ``rk4_step`` if it has one, else
     the generic stages over its ``derivs``), and the substep loop's body: refined where the
@@ -579,7 +673,7 @@ def _rk4_text(nx: int, own_step: bool, fast: bool = False) -> dict[str, str]:
             f"    s = ({s_new},)"])
     if fast:
         step = """        if dt * plant_fast_rate(pp, s, d) <= zf:
-            s = rk4(ta, dt, pp, s, u, d)
+            s = step(ta, dt, pp, s, u, d, blocked)
         else:
             # stiff here: RK4 steps of at most zf / rate each, the rate taken at each one's
             # start; the remainder is split evenly, so the last step ends on the substep's end
@@ -587,18 +681,18 @@ def _rk4_text(nx: int, own_step: bool, fast: bool = False) -> dict[str, str]:
             while True:
                 q = rem * plant_fast_rate(pp, s, d) / zf
                 if q <= 1.0:
-                    s = rk4(ta, rem, pp, s, u, d)
+                    s = step(ta, rem, pp, s, u, d, blocked)
                     extra += 1
                     break
                 if not (q < MAX_REFINE) or extra >= MAX_REFINE:
                     return -1  # a non-finite rate, or more steps than the limit
                 hh = rem / np.ceil(q)
-                s = rk4(ta, hh, pp, s, u, d)
+                s = step(ta, hh, pp, s, u, d, blocked)
                 extra += 1
                 ta += hh
                 rem -= hh"""
     else:
-        step = "        s = rk4(ta, dt, pp, s, u, d)"
+        step = "        s = step(ta, dt, pp, s, u, d, blocked)"
     return dict(x_items=", ".join(f"x[{i}]" for i in r), rk4_body=body, fast_step=step,
                 store="\n".join(f"    x[{i}] = s[{i}]" for i in r))
 
@@ -681,6 +775,7 @@ def generate(plant: Plugin, ctrl: Plugin, ref: Plugin,
                             run_chunk=sil, paced_chunk=paced,
                             plugins=plugin_ids(plant, ctrl, ref), checked=bool(checked),
                             max_refine=MAX_REFINE,
+                            gate_fixup=_gate_fixup_text(nx, gate_block_currents(plant)),
                             **_rk4_text(nx, has_rk4_step(plant), has_fast_rate(plant)))
     if checked:
         text = checked_text(text)

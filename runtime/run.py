@@ -177,7 +177,7 @@ def prepare(sc: Scenario) -> Prepared:
     ctx = BuildContext(Ts=sc.Ts, plant=dict(plant.values), plant_name=pdecl.name,
                        plant_outputs=tuple(outputs),
                        plant_states=tuple(s.name for s in pdecl.states),
-                       plant_module=plant.plugin.module)
+                       plant_module=plant.plugin.module, actuation_delay=sc.actuation_delay)
     where = Path(sc.path).name if sc.path else "scenario"
 
     def pack(key, choice):
@@ -237,7 +237,13 @@ def prepare(sc: Scenario) -> Prepared:
         lim_sig=table.sig, lim_side=table.side, lim_thr=table.thr, lim_deb=table.deb,
         lim_cnt=np.zeros(len(table.rows), dtype=np.int64), latch=_latch(table),
         pv=np.zeros(2 * (ny + nu + len(DERIVED))), y=np.zeros(ny), d=np.zeros(3),
-        wd=new_watchdog(sc.watchdogs["overrun_budget"], int(sc.watchdogs["overrun_ticks"])),
+        wd=new_watchdog(sc.watchdogs["overrun_budget"], int(sc.watchdogs["overrun_ticks"]),
+                        safe_action=sc.safe_state["action"],
+                        contactor_s=sc.safe_state["contactor_delay_s"],
+                        delay_halves=int(round(2 * sc.actuation_delay))),
+        # the command in force on the plant (row 0) and the commands of the last 3 ticks (rows
+        # 1-3, NaN until the first tick fills them): the actuation delay's queue
+        uq=np.full((4, nu), np.nan),
         ev=np.zeros(loopgen.EV_SIZE), seed=np.int64(sc.seed % (2**32)),
         reset_t=np.array(sorted(sc.resets), dtype=np.float64), reset_i=np.zeros(1, dtype=np.int64),
         evlog=new_event_log()[0], evn=new_event_log()[1],
@@ -329,7 +335,7 @@ def chunk_args(a: dict) -> tuple:
             a["ad"], a["g1"], a["g2"], a["cr"], a["dr"], a["slew"], a["z"], a["s"], a["zt"], a["r"],
             a["dix"], a["lim_sig"], a["lim_side"], a["lim_thr"], a["lim_deb"], a["lim_cnt"],
             a["latch"], a["pv"],
-            *fault_args(a), *supervision_args(a), a["y"], a["d"])
+            *fault_args(a), *supervision_args(a), a["uq"], a["y"], a["d"])
 
 
 def _call(fn, k0, n, rec, a):
@@ -428,6 +434,7 @@ def bind(fn, a: dict, rec_cols: int) -> None:
     index_table("iyr", ref, 0, ny)
     need("w", ref, ((1, None),))
     need("d", plant, (3,))
+    need("uq", "hilrig (actuation queue)", (4, nu))
     need("dix", "hilrig (derived signals)", (3,), np.int64)
     index_table("dix", "hilrig (derived signals)", -1, ny)
     # the load profile
@@ -768,6 +775,9 @@ def execute(sc: Scenario, prep: Prepared, folder: Path,
         "reference": sc.reference.plugin.name,
         "Ts_s": sc.Ts, "substeps": a.get("nsub", sc.substeps),
         "integration": integration_summary(a),
+        "actuation_delay_periods": sc.actuation_delay,
+        "controller_compensates_delay": bool(sc.controller.plugin.declaration.compensates_delay),
+        "safe_state": dict(sc.safe_state),
         "ticks_planned": n_total, "ticks_run": done, "simulated_s": done * sc.Ts,
         "completed": done == n_total and end_event is None,
         "end_event": end_event,

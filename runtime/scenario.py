@@ -40,9 +40,15 @@ PLANNED_MODES = ("lockstep", "free-running")
 
 TOP_KEYS = {"title", "description", "demo_data", "mode", "seed", "timing", "plant", "controller",
             "reference", "shaping", "load", "limits", "interlocks", "initial", "recording",
-            "faults", "resets", "watchdogs", "paced"}
+            "faults", "resets", "watchdogs", "paced", "safe_state"}
 TIMING = {"Ts": ("s", 50e-6, (1e-7, 1.0)), "substeps": ("-", 4, (1, 1000)),
           "duration": ("s", 1.0, (1e-6, 1e6))}
+#: sample-to-actuation delay in control periods (docs/design-notes.md, "Digital-control delay")
+ACTUATION_DELAYS = (0.0, 0.5, 1.0, 1.5, 2.0)
+DEFAULT_ACTUATION_DELAY = 0.0
+#: the trip's safe actions (safety/interlocks.py SAFE_ACTIONS) and the default
+SAFE_ACTION_NAMES = ("gate_block", "zero_voltage")
+DEFAULT_SAFE_ACTION = "gate_block"
 #: "adaptive": RK4 sub-steps refined where the plant is stiff (runtime/loop.py); "fixed": the
 #: given substeps only, for comparison (a stiff run may then end in a plant integration error)
 TIMING_CHOICES = {"integration": ("adaptive", "fixed")}
@@ -113,6 +119,12 @@ class Scenario:
         **{k: v[1] for k, v in PACED.items()}, **PACED_FLAGS})
     #: "adaptive" (stiffness-aware RK4 sub-steps) or "fixed" (timing.integration)
     integration: str = "adaptive"
+    #: sample-to-actuation delay [control periods] (timing.actuation_delay)
+    actuation_delay: float = DEFAULT_ACTUATION_DELAY
+    #: the trip's safe state: {"action": "gate_block" | "zero_voltage", "contactor_delay_s":
+    #: seconds after the trip at which the output contactor opens, or None (never)}
+    safe_state: dict[str, Any] = field(default_factory=lambda: {
+        "action": DEFAULT_SAFE_ACTION, "contactor_delay_s": None})
     #: the overrides this run took and those it did not (a candidate of compare or envelope
     #: that lacks a controller parameter): {"applied": [{"key", "value"}], "not_applied":
     #: [{"key", "value", "reason"}]}, values in TOML's notation; summary.json keeps it
@@ -231,7 +243,9 @@ def parse_scenario(text: str, name: str = "scenario.toml", path: str = "",
     if isinstance(seed, bool) or not isinstance(seed, int) or not (0 <= seed < 2**63):
         raise cx.fail("seed", f" = {seed!r} is not a whole number in [0, 2^63)")
 
-    timing = _section(cx, raw, "timing", TIMING, choices=TIMING_CHOICES)
+    tim = dict(_table(cx, raw, "timing"))
+    delay = _actuation_delay(cx, tim.pop("actuation_delay", DEFAULT_ACTUATION_DELAY))
+    timing = _section(cx, {"timing": tim}, "timing", TIMING, choices=TIMING_CHOICES)
     Ts, substeps, duration = timing["Ts"], int(timing["substeps"]), timing["duration"]
     integration = timing.get("integration", "adaptive")
     if duration / Ts > MAX_TICKS:
@@ -260,6 +274,7 @@ def parse_scenario(text: str, name: str = "scenario.toml", path: str = "",
     recording = _section(cx, raw, "recording", RECORDING, choices=RECORDING_CHOICES)
     recording.setdefault("compression", "none")
     watchdogs = _section(cx, raw, "watchdogs", WATCHDOGS)
+    safe_state = _safe_state(cx, raw)
     paced = _paced(cx, raw)
     return Scenario(path=path, text=text, title=title, description=description, demo_data=demo,
                     mode=mode, seed=seed, Ts=Ts, substeps=substeps, duration=duration,
@@ -267,7 +282,8 @@ def parse_scenario(text: str, name: str = "scenario.toml", path: str = "",
                     load_t=load_t, load_v=load_v, v_collapse=limits["v_collapse"],
                     safe_u=limits["safe_u"], interlocks=interlocks, v_out0=v_out0,
                     recording=recording, faults=faults, resets=resets, watchdogs=watchdogs,
-                    paced=paced, integration=integration,
+                    paced=paced, integration=integration, actuation_delay=delay,
+                    safe_state=safe_state,
                     overrides={"applied": [{"key": k, "value": _inline(v)}
                                            for k, v in (overrides or {}).items()],
                                "not_applied": [dict(d) for d in not_applied or []]})
@@ -878,6 +894,41 @@ def _faults(cx, raw, plant: PluginChoice, duration: float, Ts: float) -> list[Fa
                                else 1e9), lower_open=lower_open)
         out.append(Fault(kind=kind, start=start, end=end, signal=signal, value=value, **cond))
     return out
+
+
+def _actuation_delay(cx, v) -> float:
+    """``timing.actuation_delay``: a number of control periods, one of ACTUATION_DELAYS."""
+    if isinstance(v, str) and v.strip().lower() == "none":
+        return 0.0
+    if isinstance(v, bool) or not isinstance(v, (int, float)):
+        raise cx.fail("timing.actuation_delay", f" = {v!r} is not a number of control periods "
+                      f"(one of {', '.join(f'{d:g}' for d in ACTUATION_DELAYS)}, e.g. 1 for one "
+                      f"period, 0.5 for the PWM update at mid-period)")
+    if float(v) not in ACTUATION_DELAYS:
+        raise cx.fail("timing.actuation_delay", f" = {v!r} periods is not one of "
+                      f"{', '.join(f'{d:g}' for d in ACTUATION_DELAYS)} (half periods up to two)")
+    return float(v)
+
+
+def _safe_state(cx, raw) -> dict[str, Any]:
+    """The ``[safe_state]`` table: what a trip does to the converter (``action``) and whether an
+    output contactor opens after it (``contactor_delay``, a time; absent or "never": never)."""
+    tab = _table(cx, raw, "safe_state")
+    for k in tab:
+        if k not in ("action", "contactor_delay"):
+            raise cx.unknown("safe_state", k, ["action", "contactor_delay"])
+    action = tab.get("action", DEFAULT_SAFE_ACTION)
+    if action not in SAFE_ACTION_NAMES:
+        close = difflib.get_close_matches(str(action), SAFE_ACTION_NAMES, n=1)
+        hint = f"; did you mean {close[0]!r}?" if close else ""
+        raise cx.fail("safe_state.action", f" = {action!r} is not a safe action{hint} "
+                      f"(one of {', '.join(map(repr, SAFE_ACTION_NAMES))})")
+    cd = tab.get("contactor_delay", "never")
+    if isinstance(cd, str) and cd.strip().lower() == "never":
+        delay = None
+    else:
+        delay = _quantity(cx, "safe_state.contactor_delay", cd, "s", (0.0, 3600.0))
+    return {"action": action, "contactor_delay_s": delay}
 
 
 def _check_short_circuits(cx, faults, plant: PluginChoice, Ts: float, substeps: int) -> None:

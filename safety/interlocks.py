@@ -115,7 +115,14 @@ DERIVED = (("p_out", "W", "output power v_out * i_out"),
 #: last tick (written by the fault stage after watch has read it)
 #: and (paced loop) this tick's work time, which becomes the next tick's W_HOST_TIME
 W_BUDGET, W_DEB, W_CNT, W_HOST_TIME, W_HOST_BITS, W_HOST_VALUE, W_FORCED, W_LAST_WORK = range(8)
-WD_SIZE = 8
+#: then the safe state's configuration (not watchdog state, kept here because the loop already
+#: carries this array): the trip's safe action (SAFE_ZERO_VOLTAGE or SAFE_GATE_BLOCK), the
+#: output contactor's opening delay after a trip [s] (negative: it never opens), and the
+#: sample-to-actuation delay in half control periods (0-4)
+W_SAFE_ACTION, W_CONTACTOR, W_DELAY = 8, 9, 10
+WD_SIZE = 11
+SAFE_ZERO_VOLTAGE, SAFE_GATE_BLOCK = 0.0, 1.0
+SAFE_ACTIONS = {"zero_voltage": SAFE_ZERO_VOLTAGE, "gate_block": SAFE_GATE_BLOCK}
 HOST_STALE, HOST_GAP, HOST_LOST, HOST_STOP, HOST_PROTOCOL, HOST_SEQUENCE = 1, 2, 4, 8, 16, 32
 #: event log: rows of (tick, kind, cause, value); kinds
 EVT_TRIP, EVT_RESET_ACCEPTED, EVT_RESET_REFUSED, EVT_RESET_IDLE, EVT_WARN, EVT_ALSO = range(1, 7)
@@ -284,11 +291,46 @@ class InterlockTable:
         return f"non-finite {self.names[j] if j < len(self.names) else 'value'}"
 
 
-def new_watchdog(budget_s: float = 0.0, debounce: int = 1) -> np.ndarray:
+def new_watchdog(budget_s: float = 0.0, debounce: int = 1, safe_action: str = "zero_voltage",
+                 contactor_s: float | None = None, delay_halves: int = 0) -> np.ndarray:
     wd = np.zeros(WD_SIZE)
     wd[W_BUDGET] = budget_s
     wd[W_DEB] = debounce
+    wd[W_SAFE_ACTION] = SAFE_ACTIONS[safe_action]
+    wd[W_CONTACTOR] = -1.0 if contactor_s is None else contactor_s
+    wd[W_DELAY] = delay_halves
     return wd
+
+
+@njit(cache=True)
+def contactor(t, latch, wd, d):
+    """The output contactor: once it has opened (``wd[W_CONTACTOR]`` seconds after the latched
+    trip; never when negative) the load is disconnected: d = 0 (no power, conductance or
+    current). Closed again when an accepted reset clears the latch."""
+    if latch[L_TRIPPED] != 0.0 and wd[W_CONTACTOR] >= 0.0:
+        if t >= latch[L_TIME] + wd[W_CONTACTOR] - 1e-9 * (1.0 + abs(t)):
+            d[0] = 0.0
+            d[1] = 0.0
+            d[2] = 0.0
+
+
+@njit(cache=True)
+def follow_enable(t, enable, latch):
+    """The stand-in simulator's view of the runtime's trip: its actuation frames carry the
+    output-enable flag (off while a trip is latched). The first disabled actuation latches
+    (at t, the trip tick's time, as the runtime's latch has it); an enabled one clears it."""
+    if not enable:
+        if latch[L_TRIPPED] == 0.0:
+            latch[L_TRIPPED] = 1.0
+            latch[L_TIME] = t
+    else:
+        latch[L_TRIPPED] = 0.0
+
+
+@njit(cache=True)
+def gates_blocked(latch, wd):
+    """True while a latched trip blocks the converter's gates (safe action gate_block)."""
+    return latch[L_TRIPPED] != 0.0 and wd[W_SAFE_ACTION] == SAFE_GATE_BLOCK
 
 
 def new_latch() -> np.ndarray:

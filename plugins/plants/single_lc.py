@@ -85,10 +85,33 @@ def _clamp_u(p, u):
     return uc
 
 
+#: the state that is the current through the converter's switches: with the gates blocked
+#: (u NaN) it flows through a diode and stops at zero (runtime/loop.py ``step``)
+GATE_BLOCK_CURRENTS = (0,)
+
+
+@njit(cache=True, inline="always")
+def _switch_node(p, u, i_l, v_out):
+    """The switch-node voltage: the clamped command while the converter switches; with its
+    gates blocked (u NaN) the diodes decide by the sign of i_L (0 V for a positive current,
+    V_dc for a negative one; at zero current the node follows v_out within [0, V_dc])."""
+    if u[0] == u[0]:
+        return _clamp_u(p, u)
+    if i_l > 0.0:
+        return 0.0
+    if i_l < 0.0:
+        return p[V_DC]
+    if v_out > p[V_DC]:
+        return p[V_DC]
+    if v_out < 0.0:
+        return 0.0
+    return v_out + p[R] * i_l
+
+
 @njit(cache=True)
 def derivs(t, p, x, u, d):
     i_l, v_out = x[0], x[1]
-    uc = _clamp_u(p, u)
+    uc = _switch_node(p, u, i_l, v_out)
     return ((uc - p[R] * i_l - v_out) * p[INV_L],
             (i_l - load_current(v_out, d, p[V_LOAD_MIN])) * p[INV_C])
 

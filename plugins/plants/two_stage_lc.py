@@ -97,20 +97,45 @@ DECLARATION = Declaration(
 )
 
 
+#: the states that are currents through the converter's switches: with the gates blocked
+#: (u NaN) each one flows through a diode and stops at zero (runtime/loop.py ``step``)
+GATE_BLOCK_CURRENTS = (0,)
+
+
 @njit(cache=True, inline="always")
 def _clamp_u(p, u):
     uc = u[0]
     if uc > p[V_DC]:
         uc = p[V_DC]
-    elif not (uc >= 0.0):  # also catches NaN: a NaN command applies 0 V (and trips elsewhere)
+    elif not (uc >= 0.0):  # also catches NaN (handled by the callers as gates blocked)
         uc = 0.0
     return uc
+
+
+@njit(cache=True, inline="always")
+def _switch_node(p, u, i_l1, v_c1):
+    """The converter's output (switch-node) voltage: the command clamped to [0, V_dc] while it
+    switches; with its gates blocked (u NaN, a trip's safe action) the diodes decide: a
+    positive inductor current freewheels through the low-side diode (0 V), a negative one
+    returns to the DC link through the high-side diode (V_dc); at zero current both block
+    while v_C1 lies within [0, V_dc] and the node follows v_C1 (the current stays zero)."""
+    if u[0] == u[0]:
+        return _clamp_u(p, u)
+    if i_l1 > 0.0:
+        return 0.0
+    if i_l1 < 0.0:
+        return p[V_DC]
+    if v_c1 > p[V_DC]:
+        return p[V_DC]
+    if v_c1 < 0.0:
+        return 0.0
+    return v_c1
 
 
 @njit(cache=True)
 def derivs(t, p, x, u, d):
     i_l1, v_c1, i_l2, v_out = x[0], x[1], x[2], x[3]
-    uc = _clamp_u(p, u)
+    uc = _switch_node(p, u, i_l1, v_c1)
     i_load = load_current(v_out, d, p[V_LOAD_MIN])
     return ((uc - p[R1] * i_l1 - v_c1) * p[INV_L1],
             (i_l1 - i_l2) * p[INV_C1],
@@ -142,6 +167,8 @@ def rk4_step(dt, p, s, u, d):
     method; in floating point the results differ from the generic step's by rounding
     (a few units in the last place per step; the tests bound it).
     """
+    if not (u[0] == u[0]):
+        return _blocked_step(dt, p, s, u, d)
     uc = _clamp_u(p, u)
     h2 = 0.5 * dt
     w = dt / 6.0
@@ -162,6 +189,24 @@ def rk4_step(dt, p, s, u, d):
             v1 + w * (g1 + 2.0 * g2 + 2.0 * g3 + g4),
             i2 + w * (m1 + 2.0 * m2 + 2.0 * m3 + m4),
             ((vo + w * e * (n1 + 2.0 * n2 + 2.0 * n3 + n4)) - q123) - q4)
+
+
+@njit(cache=True)
+def _blocked_step(dt, p, s, u, d):
+    """One classic RK4 step over ``derivs`` with the gates blocked (the switch-node voltage
+    follows the diodes, so it is evaluated at every stage; not a hot path)."""
+    k1 = derivs(0.0, p, s, u, d)
+    k2 = derivs(0.0, p, (s[0] + 0.5 * dt * k1[0], s[1] + 0.5 * dt * k1[1],
+                         s[2] + 0.5 * dt * k1[2], s[3] + 0.5 * dt * k1[3]), u, d)
+    k3 = derivs(0.0, p, (s[0] + 0.5 * dt * k2[0], s[1] + 0.5 * dt * k2[1],
+                         s[2] + 0.5 * dt * k2[2], s[3] + 0.5 * dt * k2[3]), u, d)
+    k4 = derivs(0.0, p, (s[0] + dt * k3[0], s[1] + dt * k3[1], s[2] + dt * k3[2],
+                         s[3] + dt * k3[3]), u, d)
+    w = dt / 6.0
+    return (s[0] + w * (k1[0] + 2.0 * k2[0] + 2.0 * k3[0] + k4[0]),
+            s[1] + w * (k1[1] + 2.0 * k2[1] + 2.0 * k3[1] + k4[1]),
+            s[2] + w * (k1[2] + 2.0 * k2[2] + 2.0 * k3[2] + k4[2]),
+            s[3] + w * (k1[3] + 2.0 * k2[3] + 2.0 * k3[3] + k4[3]))
 
 
 @njit(cache=True, inline="always")
