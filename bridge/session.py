@@ -139,7 +139,7 @@ def _tick_args(a: dict) -> tuple:
             a["pr"], a["xr"], a["iyr"], a["yr"], a["w"],
             a["ad"], a["g1"], a["g2"], a["cr"], a["dr"], a["slew"], a["z"], a["s"], a["zt"], a["r"],
             a["dix"], a["lim_sig"], a["lim_side"], a["lim_thr"], a["lim_deb"], a["lim_cnt"], a["latch"],
-            a["pv"], *fault_args(a), *supervision_args(a), a["y"], a["d"])
+            a["pv"], *fault_args(a), *supervision_args(a), a["s_tab"], a["s_x"], a["y"], a["d"])
 
 
 class _Live:

@@ -3,6 +3,9 @@
 One tick k at time t = k Ts runs these stages, in this order, in every mode:
 
 1. sample    - plant outputs y from the plant state (in-process plant).
+   measure   - the sensor chain of each signal the scenario declares one for (``[[sensors]]``,
+               :mod:`hilrig.runtime.sensors`: sample offset, anti-alias filter, offset, ADC),
+               right after the true values are kept; none by default (y exact).
 2. inject    - scheduled sensor faults applied to y (:mod:`hilrig.safety.faults`; load faults
                act on the load when it is sampled, controller faults right after stage 4).
 3. reference - the reference plugin writes the raw reference w from its declared reads of y;
@@ -16,8 +19,8 @@ One tick k at time t = k Ts runs these stages, in this order, in every mode:
 6. actuate   - the plant advances one period by RK4 substeps with u and the load held
                (zero-order hold; the load profile is sampled at the tick's start).
 7. record    - one row into the chunk buffer: y, u, r, raw reference, load, the true values of
-               the signals a sensor fault hits (``true_<name>``, written in stage 1 before
-               injection), interlock word, controller code.
+               the signals a sensor fault or a sensor chain hits (``true_<name>``, written in
+               stage 1 before the chain and injection), interlock word, controller code.
 
 After the record stage the tick ends the run early on a *voltage collapse* (the plant's true
 v_out, before sensor faults, below the scenario's ``limits.v_collapse``) or on a non-finite
@@ -81,6 +84,7 @@ def {fname}(k0, n, ts, nsub, zf, v_collapse, i_vout,
               dix, lim_sig, lim_side, lim_thr, lim_deb, lim_cnt, latch, pv,
               seed, f_stage, f_kind, f_sig, f_t0, f_t1, f_val, f_hold, f_cond,
               reset_t, reset_i, evlog, evn, wd,
+              s_tab, s_x,
               y, d, rec, ev{paced_params}):
     """{fdoc}"""
 {borrow}{energy_start}    for i in range(n):
@@ -92,6 +96,8 @@ def {fname}(k0, n, ts, nsub, zf, v_collapse, i_vout,
         plant_outputs(t, pp, x, u, d, y)
         v_true = y[i_vout]
         keep_true(y, f_sig, f_cond, rec, i, y.shape[0] + u.shape[0] + 9)
+        # the sensor chain (runtime/sensors.py): what is measured of the true outputs
+        sensor_chain(kk, y, s_tab, s_x, rec, i, y.shape[0] + u.shape[0] + 9)
         # 2 inject: sensor faults on the measured signals
         apply_faults(1, kk, t, seed, f_stage, f_kind, f_sig, f_t0, f_t1, f_val, f_hold, f_cond, wd, y, u, d)
 {decide_8}
@@ -174,6 +180,7 @@ from hilrig.bridge.wire import (exchange, get_sample, read_vector, put_actuation
                                 IO_SEQ, IO_ADDRLEN, F_INV_F, F_TOOK, F_TSIM, F_WAITED, KIND_ZMQ,
                                 ST_OK, ST_END, ST_FRAME, ST_SENDFAIL, ST_NONFINITE, ST_IDLE)
 from hilrig.runtime.borrow import borrowed
+from hilrig.runtime.sensors import chain as _sensor_chain
 {imports}
 interp_rows = _inline(_interp_rows)
 shape_step = _inline(_shape_step)
@@ -184,6 +191,7 @@ supervise = _inline(_supervise)
 state_code = _inline(_state_code)
 apply_faults = _inline(_apply_faults)
 keep_true = _inline(_keep_true)
+sensor_chain = _inline(_sensor_chain)
 
 #: plant state count, a literal so that the compiler unrolls the state loops
 NX = {nx}
@@ -240,12 +248,15 @@ def bridge_tick(kk, i, ts, v_collapse, i_vout,
                 dix, lim_sig, lim_side, lim_thr, lim_deb, lim_cnt, latch, pv,
                 seed, f_stage, f_kind, f_sig, f_t0, f_t1, f_val, f_hold, f_cond,
                 reset_t, reset_i, evlog, evn, wd,
+                s_tab, s_x,
                 y, d, rec, ev):
     """Bridge modes: one tick on a y received from the simulator (stages 2-5 and 7; the
     simulator samples and actuates). Writes row i of rec; returns 1, or 0 if the run ends."""
     t = kk * ts
     v_true = y[i_vout]
     keep_true(y, f_sig, f_cond, rec, i, y.shape[0] + u.shape[0] + 9)
+    # the sensor chain (runtime/sensors.py): what is measured of the true outputs
+    sensor_chain(kk, y, s_tab, s_x, rec, i, y.shape[0] + u.shape[0] + 9)
     # 2 inject: sensor faults on the measured signals
     apply_faults(1, kk, t, seed, f_stage, f_kind, f_sig, f_t0, f_t1, f_val, f_hold, f_cond, wd, y, u, d)
 {decide_4}
@@ -267,6 +278,7 @@ def bridge_chunk(k0, n, ts, v_collapse, i_vout,
                  dix, lim_sig, lim_side, lim_thr, lim_deb, lim_cnt, latch, pv,
                  seed, f_stage, f_kind, f_sig, f_t0, f_t1, f_val, f_hold, f_cond,
                  reset_t, reset_i, evlog, evn, wd,
+                 s_tab, s_x,
                  y, d, rec, ev, io, fio, meas, sbuf, rbuf, pfd, rtt):
     """Lockstep over a socket, compiled end to end (hilrig.bridge.wire): ticks k0 .. k0+n-1 in
     rows 0 .. n-1 of rec. Each tick runs on the sample in meas (tick k0's is there on entry),
@@ -290,6 +302,8 @@ def bridge_chunk(k0, n, ts, v_collapse, i_vout,
         wd[W_HOST_BITS] = 0.0
         v_true = y[i_vout]
         keep_true(y, f_sig, f_cond, rec, i, y.shape[0] + u.shape[0] + 9)
+        # the sensor chain (runtime/sensors.py): what is measured of the true outputs
+        sensor_chain(kk, y, s_tab, s_x, rec, i, y.shape[0] + u.shape[0] + 9)
         # 2 inject: sensor faults on the measured signals
         apply_faults(1, kk, t, seed, f_stage, f_kind, f_sig, f_t0, f_t1, f_val, f_hold, f_cond, wd, y, u, d)
 {decide_8}
@@ -463,6 +477,10 @@ for j in range(d.shape[0]):
 # the true-value columns, written before injection (faults.keep_true)
 for j in range(f_cond.shape[0]):
     if f_cond[j, 5] >= 0.0:
+        c += 1
+# and those of the chained signals (sensors.chain, column S_TRUE)
+for j in range(s_tab.shape[0]):
+    if s_tab[j, 11] >= 0.0:
         c += 1
 rec[i, c] = word
 rec[i, c + 1] = code"""
@@ -727,6 +745,7 @@ _STAGES = (
     ("advance(", 15, "plant {plant}: kernel derivs or rk4_step (the RK4 stage)"),
     ("# 7 record", 16, "hilrig: the recording row"),
     ("keep_true(", 16, "hilrig: the recording row"),
+    ("sensor_chain(", 18, "hilrig: the sensor chain"),
     ("put_actuation(", 17, "hilrig: the bridge's frame codec"),
     ("get_sample(", 17, "hilrig: the bridge's frame codec"),
     ("read_vector(", 17, "hilrig: the bridge's frame codec"),

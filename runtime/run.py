@@ -22,6 +22,7 @@ from hilrig.safety.interlocks import (DERIVED, EVENT_NAMES, EVT_RESET_IDLE, EVT_
                                       new_event_log, new_latch, new_watchdog)
 
 from . import loop as loopgen
+from . import sensors
 from . import shaping
 from .errors import PluginError, ScenarioError
 from .metrics import TrackingMetrics, segment_metrics
@@ -219,6 +220,11 @@ def prepare(sc: Scenario) -> Prepared:
     signals += [SignalSpec(f"true_{n}", out_units[n][0],
                            f"{out_units[n][1]}, true plant value before sensor faults")
                 for n in true_names]
+    # and of each signal with a sensor chain that no sensor fault hits (runtime/sensors.py)
+    chain_names = sensors.true_signals(sc.sensors, true_names)
+    signals += [SignalSpec(f"true_{n}", out_units[n][0],
+                           f"{out_units[n][1]}, true plant value before the sensor chain")
+                for n in chain_names]
     signals.append(SignalSpec("interlock_word", "-", "bit j: interlock j beyond its limit; bits 40-46 watchdogs overrun, stale, sequence gap, peer lost, stop requested, protocol error, sequence error; bit 48 non-finite; bit 49 controller fault; bit 50 latched; bit 51 reset requested; bit 52 reset refused"))
     signals.append(SignalSpec("ctrl_code", "-", "controller return code (0 ok)"))
     if "v_out" not in outputs:
@@ -242,6 +248,8 @@ def prepare(sc: Scenario) -> Prepared:
         reset_t=np.array(sorted(sc.resets), dtype=np.float64), reset_i=np.zeros(1, dtype=np.int64),
         evlog=new_event_log()[0], evn=new_event_log()[1],
         **fault_table(sc.faults, outputs),
+        s_tab=sensors.table(sc.sensors, outputs, sc.Ts, len(true_names), true_names),
+        s_x=np.zeros((len(sc.sensors), 2)),
     )
     args["_integration"] = integ
     # what bind() checks the arrays against (kept beside them, never passed to the loop)
@@ -252,6 +260,7 @@ def prepare(sc: Scenario) -> Prepared:
         n_iyc=len(ctrl.plugin.declaration.reads), n_iyr=len(ref.plugin.declaration.reads),
         n_sig=ny + nu + len(DERIVED), n_rows=len(table.rows), n_thr=len(table.thr), n_faults=len(
             [f for f in sc.faults if f.kind not in LINK_KINDS]), n_true=len(true_names),
+        n_sensors=len(sc.sensors), n_true_chain=len(chain_names),
         rec_cols=len(signals))
     return Prepared(sc=sc, args=args, signals=signals, table=table, y_names=outputs,
                     u_names=u_names, v0=v0)
@@ -329,7 +338,7 @@ def chunk_args(a: dict) -> tuple:
             a["ad"], a["g1"], a["g2"], a["cr"], a["dr"], a["slew"], a["z"], a["s"], a["zt"], a["r"],
             a["dix"], a["lim_sig"], a["lim_side"], a["lim_thr"], a["lim_deb"], a["lim_cnt"],
             a["latch"], a["pv"],
-            *fault_args(a), *supervision_args(a), a["y"], a["d"])
+            *fault_args(a), *supervision_args(a), a["s_tab"], a["s_x"], a["y"], a["d"])
 
 
 def _call(fn, k0, n, rec, a):
@@ -500,6 +509,21 @@ def bind(fn, a: dict, rec_cols: int) -> None:
         if kept != list(range(e["n_true"])) or bad_row:
             problems.append(f"hilrig (recording): true-value columns {q.tolist()} are not "
                             f"0 .. {e['n_true'] - 1} once each")
+    # the sensor chain: a signal index and a true-value column per row (the loop writes column
+    # c0 + q and the record stage skips one column per q >= 0)
+    from hilrig.runtime.sensors import S_COLS, S_SIG, S_TRUE
+    ns = e.get("n_sensors", 0)
+    need("s_tab", "scenario [[sensors]]", (ns, S_COLS))
+    need("s_x", "scenario [[sensors]]", (ns, 2))
+    if isinstance(a["s_tab"], np.ndarray) and a["s_tab"].shape == (ns, S_COLS):
+        sig = a["s_tab"][:, S_SIG]
+        if not (np.all(sig >= 0) and np.all(sig < ny) and np.all(sig == np.floor(sig))):
+            problems.append(f"scenario [[sensors]]: signals {sig.tolist()} outside [0, {ny})")
+        q = sorted(int(v) for v in a["s_tab"][:, S_TRUE] if v >= 0)
+        first = e["n_true"]
+        if q != list(range(first, first + e.get("n_true_chain", 0))):
+            problems.append(f"hilrig (recording): the sensor chain's true-value columns {q} "
+                            f"are not {first} .. {first + e.get('n_true_chain', 0) - 1} once each")
     # the recording buffer: at least the recorded columns
     if rec_cols < e["rec_cols"]:
         problems.append(f"hilrig (recording): the buffer has {rec_cols} columns, the loop "

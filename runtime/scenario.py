@@ -27,6 +27,7 @@ except ModuleNotFoundError:  # Python 3.10
 from hilrig.plugins.base import ChoiceParam, Param, TableParam
 from hilrig.safety import faults as fault_kinds
 from hilrig.safety.faults import Fault
+from hilrig.runtime.sensors import Sensor
 from hilrig.safety.interlocks import (SIDE_ABOVE, SIDE_BELOW, SIDE_CROSS, SIDE_FROZEN, SIDE_MAGNITUDE,
                                       Interlock)
 
@@ -40,7 +41,7 @@ PLANNED_MODES = ("lockstep", "free-running")
 
 TOP_KEYS = {"title", "description", "demo_data", "mode", "seed", "timing", "plant", "controller",
             "reference", "shaping", "load", "limits", "interlocks", "initial", "recording",
-            "faults", "resets", "watchdogs", "paced"}
+            "faults", "resets", "watchdogs", "paced", "sensors"}
 TIMING = {"Ts": ("s", 50e-6, (1e-7, 1.0)), "substeps": ("-", 4, (1, 1000)),
           "duration": ("s", 1.0, (1e-6, 1e6))}
 #: "adaptive": RK4 sub-steps refined where the plant is stiff (runtime/loop.py); "fixed": the
@@ -117,6 +118,8 @@ class Scenario:
     #: that lacks a controller parameter): {"applied": [{"key", "value"}], "not_applied":
     #: [{"key", "value", "reason"}]}, values in TOML's notation; summary.json keeps it
     overrides: dict[str, list] = field(default_factory=lambda: {"applied": [], "not_applied": []})
+    #: the sensor chain per measured signal (``[[sensors]]``; none: exact measurements)
+    sensors: list[Sensor] = field(default_factory=list)
 
     @property
     def stale_limit_s(self) -> float:
@@ -261,13 +264,14 @@ def parse_scenario(text: str, name: str = "scenario.toml", path: str = "",
     recording.setdefault("compression", "none")
     watchdogs = _section(cx, raw, "watchdogs", WATCHDOGS)
     paced = _paced(cx, raw)
+    sensors = _sensors(cx, raw, plant, Ts, interlocks)
     return Scenario(path=path, text=text, title=title, description=description, demo_data=demo,
                     mode=mode, seed=seed, Ts=Ts, substeps=substeps, duration=duration,
                     plant=plant, controller=controller, reference=reference, shaping=shaping,
                     load_t=load_t, load_v=load_v, v_collapse=limits["v_collapse"],
                     safe_u=limits["safe_u"], interlocks=interlocks, v_out0=v_out0,
                     recording=recording, faults=faults, resets=resets, watchdogs=watchdogs,
-                    paced=paced, integration=integration,
+                    paced=paced, integration=integration, sensors=sensors,
                     overrides={"applied": [{"key": k, "value": _inline(v)}
                                            for k, v in (overrides or {}).items()],
                                "not_applied": [dict(d) for d in not_applied or []]})
@@ -914,3 +918,82 @@ def _initial(cx, raw):
     if not math.isfinite(q):
         raise cx.fail("initial.v_out", " is not finite")
     return q
+
+
+SENSOR_KEYS = {"signal", "cutoff", "bits", "range", "sample_offset", "offset"}
+
+
+def _sensors(cx, raw, plant: PluginChoice, Ts: float, interlocks: list[Interlock]) -> list[Sensor]:
+    """The ``[[sensors]]`` entries: per measured signal at most one chain of a sample offset
+    [s], a first-order anti-alias filter (``cutoff`` [Hz]), a constant ``offset`` and an ideal
+    ADC (``bits`` over ``range`` = [lo, hi], the signal's unit); see runtime/sensors.py. An
+    interlock limit that the ADC's readings can never pass is refused: it could never trip."""
+    items = raw.get("sensors", [])
+    if not isinstance(items, list) or not all(isinstance(x, dict) for x in items):
+        raise cx.fail("sensors", " must be an array of tables [[sensors]], e.g. [[sensors]] "
+                      "signal = \"v_out\" cutoff = \"20 kHz\"")
+    signals = {sg.name: sg.unit for sg in plant.plugin.declaration.outputs}
+    out: list[Sensor] = []
+    for i, it in enumerate(items):
+        where = f"sensors[{i}]"
+        for k in it:
+            if k not in SENSOR_KEYS:
+                raise cx.unknown(where, k, SENSOR_KEYS)
+        sig = it.get("signal")
+        if not isinstance(sig, str) or sig not in signals:
+            raise cx.fail(f"{where}.signal", f" = {sig!r} is not a measured signal of this "
+                          f"plant{_hint(str(sig), signals)} (signals: {', '.join(signals)})")
+        if any(s.signal == sig for s in out):
+            first = next(j for j, s in enumerate(out) if s.signal == sig)
+            raise cx.fail(f"{where}.signal", f" = {sig!r} already has a chain in "
+                          f"sensors[{first}]; a signal has one chain: merge the two entries")
+        unit = signals[sig]
+        if not (SENSOR_KEYS - {"signal"}) & set(it):
+            raise cx.fail(where, f" ({sig}) declares no part of a chain: give cutoff, bits "
+                          f"and range, sample_offset or offset, or remove the entry")
+        cutoff = (_quantity(cx, f"{where}.cutoff", it["cutoff"], "Hz", (0.0, 1e12),
+                            lower_open=True) if "cutoff" in it else 0.0)
+        soff = (_quantity(cx, f"{where}.sample_offset", it["sample_offset"], "s", (0.0, Ts))
+                if "sample_offset" in it else 0.0)
+        offset = (_quantity(cx, f"{where}.offset", it["offset"], unit, (-1e9, 1e9))
+                  if "offset" in it else 0.0)
+        bits, lo, hi = 0, 0.0, 0.0
+        if ("bits" in it) != ("range" in it):
+            have, miss = ("bits", "range") if "bits" in it else ("range", "bits")
+            raise cx.fail(where, f" ({sig}) has {have!r} but no {miss!r}: an ADC needs both, "
+                          f"e.g. bits = 12, range = [\"0 {unit}\", \"1000 {unit}\"]")
+        if "bits" in it:
+            bits = it["bits"]
+            if isinstance(bits, bool) or not isinstance(bits, int) or not 1 <= bits <= 32:
+                raise cx.fail(f"{where}.bits", f" = {bits!r} is not a whole number of bits in "
+                              f"[1, 32]")
+            rng = it["range"]
+            if not isinstance(rng, list) or len(rng) != 2:
+                raise cx.fail(f"{where}.range", f" = {rng!r} is not [lo, hi], e.g. "
+                              f"[\"0 {unit}\", \"1000 {unit}\"]")
+            lo = _quantity(cx, f"{where}.range[0]", rng[0], unit, (-1e9, 1e9))
+            hi = _quantity(cx, f"{where}.range[1]", rng[1], unit, (-1e9, 1e9))
+            if not hi > lo:
+                why = ("is empty: the upper end must be above the lower one" if hi == lo else
+                       f"is reversed: write the lower end first, [{hi:g} {unit}, {lo:g} {unit}]")
+                raise cx.fail(f"{where}.range", f" = [{lo:g}, {hi:g}] {unit} {why}")
+        out.append(Sensor(signal=sig, cutoff=cutoff, bits=bits, lo=lo, hi=hi,
+                          sample_offset=soff, offset=offset))
+    # a limit beyond every reading of the ADC never trips (an out-of-range input reads as the
+    # end code): refuse it rather than run an interlock that cannot act
+    adc = {s.signal: s for s in out if s.bits}
+    for k, il in enumerate(interlocks):
+        s = adc.get(il.signal)
+        if s is None or il.side not in (SIDE_ABOVE, SIDE_BELOW, SIDE_MAGNITUDE):
+            continue
+        top = s.hi - s.lsb
+        never = (il.threshold >= top if il.side == SIDE_ABOVE
+                 else il.threshold <= s.lo if il.side == SIDE_BELOW
+                 else il.threshold >= max(abs(s.lo), abs(top)))
+        if never:
+            j = next(n for n, x in enumerate(out) if x.signal == il.signal)
+            raise cx.fail(f"sensors[{j}].range", f" = [{s.lo:g}, {s.hi:g}] {il.unit}: interlock "
+                          f"{il.describe()} can never trip, since the ADC reads at most "
+                          f"{top:g} {il.unit} and at least {s.lo:g} {il.unit}; widen the range beyond "
+                          f"the limit")
+    return out
