@@ -757,8 +757,8 @@ def execute(sc: Scenario, prep: Prepared, folder: Path,
         if ev == loopgen.EV_INTEGRATION:
             e.update(integration_error(a["ev"], kk, sc.Ts))
         if "true_v_out" in names:
-            # a sensor fault on v_out: the event reports the plant's true voltage (the one the
-            # collapse check reads), and the measurement beside it
+            # a sensor fault or chain on v_out: the event reports the plant's true voltage
+            # (the one the collapse check reads), and the measurement beside it
             e["v_out_V"] = float(last_row[names.index("true_v_out")])
             e["v_out_measured_V"] = float(last_row[i_vout])
         events.append(e)

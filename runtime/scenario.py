@@ -994,6 +994,6 @@ def _sensors(cx, raw, plant: PluginChoice, Ts: float, interlocks: list[Interlock
             j = next(n for n, x in enumerate(out) if x.signal == il.signal)
             raise cx.fail(f"sensors[{j}].range", f" = [{s.lo:g}, {s.hi:g}] {il.unit}: interlock "
                           f"{il.describe()} can never trip, since the ADC reads at most "
-                          f"{top:g} {il.unit} and at least {s.lo:g} {il.unit}; widen the range beyond "
-                          f"the limit")
+                          f"{top:g} {il.unit} and at least {s.lo:g} {il.unit}; widen the range "
+                          f"beyond the limit")
     return out

@@ -114,7 +114,8 @@ def test_the_chain_leaves_the_plant_alone(tmp_path, demo_path):
 
 
 def test_a_sensor_fault_acts_on_the_reading_after_the_chain(tmp_path, demo_path):
-    fault = '[[faults]]\nkind = "offset"\nsignal = "v_out"\nstart = "5 ms"\nend = "6 ms"\nvalue = "5 V"\n'
+    fault = ('[[faults]]\nkind = "offset"\nsignal = "v_out"\nstart = "5 ms"\nend = "6 ms"\n'
+             'value = "5 V"\n')
     s, run = _run(tmp_path, demo_path, OPEN_LOOP + CHAIN + fault, "fault")
     true = run.signals["true_v_out"]
     want, _ = offline_chain(true)
@@ -152,3 +153,26 @@ def test_a_lockstep_run_applies_the_same_chain_on_the_runtime_side(closed, tmp_p
     run = open_run(tmp_path / "hil")
     for name in ("v_out", "true_v_out", "u", "i_L1"):
         assert run.signals[name].tobytes() == sil.signals[name].tobytes(), name
+
+
+def test_bind_refuses_sensor_tables_that_do_not_fit(demo_path):
+    """The loop indexes y with each chain's signal and writes its true-value column: run.bind
+    checks both, and the table's shape, before the first tick."""
+    from hilrig.runtime.errors import PluginError
+    from hilrig.runtime.run import _call, compile_loop, prepare
+    from hilrig.runtime.sensors import S_SIG, S_TRUE
+    sc = parse_scenario(_text(demo_path, CHAIN), name="demo.toml")
+    fn, _, _ = compile_loop(sc)
+    rec = np.zeros((1, len(prepare(sc).signals)))
+    _call(fn, 0, 0, rec, prepare(sc).args)   # as prepared: accepted
+    for key, change, match in (
+            ("s_tab", lambda t: t.__setitem__((0, S_SIG), 6.0), "sensors.*outside"),
+            ("s_tab", lambda t: t.__setitem__((0, S_TRUE), 1.0), "true-value columns"),
+            ("s_x", None, "s_x has")):
+        a = prepare(sc).args
+        if change is None:
+            a[key] = np.zeros((2, 2))
+        else:
+            change(a[key])
+        with pytest.raises(PluginError, match=match):
+            _call(fn, 0, 0, rec, a)

@@ -122,7 +122,8 @@ def test_out_of_range_reads_the_end_codes_and_nan_stays_nan():
 
 
 def test_the_table_numbers_true_columns_after_the_faults_and_skips_kept_ones():
-    sensors = [Sensor("a", cutoff=1e3), Sensor("b", bits=8, lo=0.0, hi=1.0), Sensor("c", offset=1.0)]
+    sensors = [Sensor("a", cutoff=1e3), Sensor("b", bits=8, lo=0.0, hi=1.0),
+               Sensor("c", offset=1.0)]
     tab = table(sensors, ["c", "b", "a"], TS, 2, ["b"])
     assert tab.shape == (3, S_COLS)
     assert tab[:, S_TRUE].tolist() == [2.0, -1.0, 3.0]
@@ -160,8 +161,10 @@ def test_a_full_chain_is_read_in_si_units():
      ["sensors[0].range", "reversed", "[0 V, 1000 V]"]),
     ('signal = "v_out"\nbits = 12\nrange = ["5 A", "10 A"]', ["sensors[0].range[0]", "V"]),
     ('signal = "v_out"\nbits = 12', ["sensors[0]", "no 'range'"]),
-    ('signal = "v_uot"\ncutoff = "20 kHz"', ["sensors[0].signal", "'v_uot'", "did you mean 'v_out'"]),
-    ('signal = "v_out"\ncutof = "20 kHz"', ["unknown key 'sensors[0].cutof'", "did you mean 'cutoff'"]),
+    ('signal = "v_uot"\ncutoff = "20 kHz"',
+     ["sensors[0].signal", "'v_uot'", "did you mean 'v_out'"]),
+    ('signal = "v_out"\ncutof = "20 kHz"',
+     ["unknown key 'sensors[0].cutof'", "did you mean 'cutoff'"]),
     ('signal = "v_out"\nsample_offset = "60 us"', ["sensors[0].sample_offset", "[0, 5e-05] s"]),
     ('signal = "v_out"', ["sensors[0]", "declares no part of a chain"]),
     ('signal = "v_out"\ncutoff = "20 kHz"\n[[sensors]]\nsignal = "v_out"\nbits = 8\n'
