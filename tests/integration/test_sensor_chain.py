@@ -138,16 +138,22 @@ def test_a_paced_run_applies_the_same_chain_as_sil(closed, tmp_path, demo_path):
         assert run.signals[name].tobytes() == sil.signals[name].tobytes(), name
 
 
-def test_a_lockstep_run_applies_the_same_chain_on_the_runtime_side(closed, tmp_path, demo_path):
+@pytest.mark.parametrize("python_path", [False, True], ids=["compiled", "python"])
+def test_a_lockstep_run_applies_the_same_chain_on_the_runtime_side(closed, tmp_path, demo_path,
+                                                                   python_path):
+    """bridge_chunk (compiled exchange) and bridge_tick (the per-tick Python path, which
+    free-running runs too) both apply the chain to the simulator's samples."""
+    import os
     _, (_, sil), _ = closed
     scen = tmp_path / "bridge.toml"
     scen.write_text(_text(demo_path, CHAIN))
     address = f"ipc://{tmp_path}/sim.sock"
-    sim = serve(scen, address)
+    env = dict(os.environ, HILRIG_BRIDGE_PYTHON="1") if python_path else None
+    sim = serve(scen, address, env=env)
     with reaped(sim):
         p = subprocess.run(CLI + ["run", str(scen), "--bridge", address, "--out",
                                   str(tmp_path / "hil"), "--headless", "--timeout", "60"],
-                           capture_output=True, text=True, timeout=600)
+                           capture_output=True, text=True, timeout=600, env=env)
         sim.communicate(timeout=120)
     assert p.returncode == 0, p.stdout + p.stderr
     run = open_run(tmp_path / "hil")
