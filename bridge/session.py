@@ -638,7 +638,7 @@ def run_free_running(sc, address: str, folder: Path | None = None, *, timeout_s:
                f"Ts = {sc.Ts:g} s, stale after {stale_s * 1e3:g} ms)")
     state: dict[str, Any] = {"next": None, "took": 0.0, "last_seq": -1, "t_last": None,
                              "stale": False, "lost": None, "started": False, "held_first": False,
-                             "lost_run": 0}
+                             "lost_run": 0, "raw": None}
     wd = a["wd"]
 
     def take(f) -> str:
@@ -742,7 +742,7 @@ def run_free_running(sc, address: str, folder: Path | None = None, *, timeout_s:
                     # (samples received and passed over in a burst are held, not lost)
                     gap, state["lost_run"] = state["lost_run"], 0
                     state["last_seq"] = kk
-                    a["y"][:] = smp.meas
+                    a["y"][:] = state["raw"] = smp.meas
                     if gap > max_gap:
                         bits, value = HOST_GAP, float(gap)
                 else:
@@ -750,8 +750,12 @@ def run_free_running(sc, address: str, folder: Path | None = None, *, timeout_s:
                     if state["last_seq"] < 0 and not state["held_first"]:
                         # lost before any sample arrived: there is nothing older to hold, so
                         # these first ticks run on the first sample received (a later one)
-                        a["y"][:] = smp.meas
+                        a["y"][:] = state["raw"] = smp.meas
                         state["held_first"] = True
+            if state["raw"] is not None:
+                # a held tick runs on the sample as received: the tick changes y in place
+                # (sensor chain, sensor faults), which must not be applied to it twice
+                a["y"][:] = state["raw"]
             a["d"][:] = np.nan
             wd[W_HOST_BITS] = bits | int(live.host_bits())
             wd[W_HOST_VALUE] = value
