@@ -399,7 +399,8 @@ def run_bridge(sc, address: str, folder: Path | None = None, *, mode: str = "loc
         notice(f"bridge: connected to {welcome.simulator_name!r} at {address} ({mode}, "
                f"{n_meas} measurements, {n_act} actuations; stale after {stale_s * 1e3:g} ms)")
     # the sample for the next tick, or the reason there is none: ("stale" | "lost", detail)
-    state: dict[str, Any] = {"sample": current, "took": 0.0, "missing": None, "waited": 0.0}
+    state: dict[str, Any] = {"sample": current, "took": 0.0, "missing": None, "waited": 0.0,
+                             "raw": None}
     wd = a["wd"]
 
     live = _Live(sc, prep, telemetry, allow_remote, stats)
@@ -439,6 +440,8 @@ def run_bridge(sc, address: str, folder: Path | None = None, *, mode: str = "loc
         stats.rtt_ns.extend(fast.rtt[:ok].astype(np.int64).tolist())
         last = kk + done - 1
         end = -1
+        if done and status not in (W.ST_OK, W.ST_END):
+            state["raw"] = fast.meas.copy()  # the last tick's sample (no next one was read)
         if status in (W.ST_OK, W.ST_END):
             state["sample"] = fast.sample()
         elif status == W.ST_FRAME and fast.oversize() is not None:
@@ -484,6 +487,10 @@ def run_bridge(sc, address: str, folder: Path | None = None, *, mode: str = "loc
                 why, detail = state["missing"]
                 wd[W_HOST_BITS] = _HOST_BIT[why]
                 wd[W_HOST_VALUE] = state["waited"] if why == "stale" else 0.0
+                if state["raw"] is not None:
+                    # the sample held, as received: the last tick changed y in place (sensor
+                    # chain, sensor faults), which must not be applied to it twice
+                    a["y"][:] = state["raw"]
                 tick(kk, i, sc.Ts, sc.v_collapse, a["i_vout"], *targs, rec, a["ev"])
                 wd[W_HOST_BITS] = 0.0
                 e = {"event": _END_EVENT[why], "tick": kk, "detail": detail}
@@ -507,7 +514,7 @@ def run_bridge(sc, address: str, folder: Path | None = None, *, mode: str = "loc
                 state["error"] = ProtocolError("unexpected", state["missing"][1])
                 continue
             t_in = time.perf_counter()
-            a["y"][:] = smp.meas
+            a["y"][:] = state["raw"] = smp.meas
             a["d"][:] = np.nan  # the load lives in the simulator
             wd[W_HOST_TIME] = state["took"]
             wd[W_HOST_BITS] = live.host_bits()

@@ -182,3 +182,26 @@ def test_bind_refuses_sensor_tables_that_do_not_fit(demo_path):
             change(a[key])
         with pytest.raises(PluginError, match=match):
             _call(fn, 0, 0, rec, a)
+
+
+def test_the_watchdog_tick_of_a_lockstep_run_holds_the_sample_as_received(tmp_path, demo_path):
+    """The simulator goes silent at 10 ms (link_freeze): the staleness watchdog's tick, the
+    run's last, holds the last sample. The tick before changed y in place (the chain's 1 V
+    offset); the held tick starts again from the sample, so its true value is that sample and
+    its reading 1 V above it, not 2 V."""
+    scen = tmp_path / "freeze.toml"
+    scen.write_text(_text(demo_path, '[[sensors]]\nsignal = "v_out"\noffset = "1 V"\n'
+                          '[[faults]]\nkind = "link_freeze"\nstart = "10 ms"\n'
+                          '[watchdogs]\nstale_limit = "150 ms"\n'))
+    address = f"ipc://{tmp_path}/lf.sock"
+    sim = serve(scen, address)
+    with reaped(sim):
+        p = subprocess.run(CLI + ["run", str(scen), "--bridge", address, "--out",
+                                  str(tmp_path / "r"), "--headless"],
+                           capture_output=True, text=True, timeout=600)
+    assert p.returncode == 1, p.stdout + p.stderr
+    run = open_run(tmp_path / "r")
+    true, v = run.signals["true_v_out"], run.signals["v_out"]
+    assert true.shape == (202,)   # ticks 0 .. 201, the last one the watchdog's
+    assert true[201] == true[200]
+    np.testing.assert_allclose(v - true, 1.0, rtol=0, atol=1e-9)
