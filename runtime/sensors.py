@@ -83,9 +83,12 @@ def hold_coefficients(tau: float, h: float, ts: float) -> tuple[float, float, fl
     if tau <= 0.0:
         # no filter: the input itself, interpolated at h
         return 0.0, 1.0 - h / ts, h / ts
-    a = math.exp(-h / tau)
-    q = (h - tau * (1.0 - a)) / ts
-    return a, (1.0 - a) - q, q
+    x = h / tau
+    b = -math.expm1(-x)  # 1 - a without cancellation for a slow filter
+    # x - (1 - exp(-x)), the ramp's part, by its series where the difference would cancel
+    g = x * x * (0.5 - x * (1.0 / 6.0 - x / 24.0)) if x < 1e-3 else x - b
+    q = tau * g / ts
+    return 1.0 - b, b - q, q
 
 
 def table(sensors: list[Sensor], outputs: list[str], ts: float,

@@ -14,10 +14,12 @@ import math
 
 import numpy as np
 import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
 from scipy import signal as sps
 
 from hilrig.runtime.errors import ScenarioError
-from hilrig.runtime.scenario import parse_scenario
+from hilrig.runtime.scenario import SENSOR_KEYS, parse_scenario
 from hilrig.runtime.sensors import S_COLS, S_TRUE, Sensor, chain, quantise, table
 
 TS = 50e-6
@@ -180,3 +182,43 @@ def test_bad_sensor_entries_are_one_clear_error(extra, fragments):
     assert msg.startswith("s.toml: ")
     for f in fragments:
         assert f in msg, (f, msg)
+
+
+# --- property: any value in a sensor entry gives a Scenario or a ScenarioError ------------------
+
+_scalars = (st.booleans() | st.integers(-2**63, 2**63 - 1) | st.floats()
+            | st.sampled_from(["", "20 kHz", "-1 Hz", "0 Hz", "1e999 Hz", "10 us", "60 us",
+                               "0 V", "1000 V", "nan V", "inf V", "-5 A", "v_out", "i_L1"])
+            | st.text(max_size=6))
+_values = st.recursive(_scalars, lambda inner: st.lists(inner, max_size=3), max_leaves=4)
+_entry = st.dictionaries(st.sampled_from(sorted(SENSOR_KEYS) + ["x"]), _values, max_size=4)
+
+
+@settings(max_examples=200, deadline=None)
+@given(entries=st.lists(_entry, max_size=2), signal=st.sampled_from(["v_out", "i_L1", "v_dc"]))
+def test_any_sensor_entry_is_a_scenario_or_one_scenario_error(entries, signal):
+    entries = [{"signal": signal, **e} if i == 0 and "signal" not in e else e
+               for i, e in enumerate(entries)]
+    try:
+        sc = parse_scenario(BASE, name="s.toml", overrides={"sensors": entries})
+    except ScenarioError as exc:
+        assert str(exc).startswith("s.toml: ")
+        return
+    # accepted: every coefficient of the loop's table is finite and the ADC's step positive
+    tab = table(sc.sensors, ["v_out", "i_out", "i_L1", "v_C1", "i_L2", "v_dc"], sc.Ts, 0, [])
+    assert np.all(np.isfinite(tab))
+    for s in sc.sensors:
+        assert s.bits == 0 or (s.lsb > 0 and s.hi > s.lo)
+
+
+@pytest.mark.parametrize("fc", [1e-3, 1e-2])
+def test_a_slow_filter_follows_the_ramp_response_without_cancellation(fc):
+    # x = Ts / tau is tiny: the ramp response t - tau (1 - exp(-t / tau)) = tau (x^2/2 - x^3/6
+    # + ...) with x = t / tau (its Taylor series), about 1.6e-7 of Ts after one tick at 1 mHz
+    tau = 1.0 / (2.0 * math.pi * fc)
+    n = 5
+    t = TS * np.arange(1, n + 1)
+    got, _ = _run_chain(Sensor("x", cutoff=fc), t.copy(), f0=0.0, y_prev=0.0)
+    x = t / tau
+    want = tau * x * x * (0.5 - x / 6.0 + x * x / 24.0)
+    np.testing.assert_allclose(got, want, rtol=1e-9, atol=0)
