@@ -135,6 +135,13 @@ def integration_plan(sc: Scenario) -> dict[str, Any]:
     if adaptive and rate is not None and math.isfinite(rate) and rate > 0:
         n = max(asked, int(math.ceil(sc.Ts * rate / loopgen.Z_LINEAR - 1e-9)))
     refine = adaptive and loopgen.has_fast_rate(sc.plant.plugin)
+    if loopgen.has_advance_period(sc.plant.plugin):
+        # the plant integrates each period itself (its own instants and step rule): the loop's
+        # substeps and refinement do not apply; the energy check still does
+        return {"method": "the plant's own (advance_period)", "rule": "plant",
+                "substeps_asked": asked, "substeps": asked, "linear_rate_per_s": rate,
+                "z_linear": None, "refines_stiff_steps": False, "z_fast": math.inf,
+                "energy_check": loopgen.has_energy_check(sc.plant.plugin)}
     return {"method": "RK4", "rule": "adaptive" if adaptive else "fixed",
             "substeps_asked": asked, "substeps": n, "linear_rate_per_s": rate,
             "z_linear": loopgen.Z_LINEAR if adaptive else None,
