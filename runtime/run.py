@@ -54,6 +54,8 @@ class Prepared:
     y_names: list[str]
     u_names: list[str]
     v0: float
+    #: the start offset applied to the plant's v_out state [V] (0: an exact equilibrium start)
+    v_out_offset: float = 0.0
 
 
 def process_age_s() -> float | None:
@@ -209,6 +211,7 @@ def prepare(sc: Scenario) -> Prepared:
     nx = x0.shape[0]
     if nx != len(pdecl.states):
         raise ScenarioError(f"plant {pdecl.name!r}: equilibrium gave {nx} states, declared {len(pdecl.states)}")
+    x_offset = _start_offset(sc, pdecl, v0, x0, where)
     ad, g1, g2, cr, dr = shaping.design(sc.shaping["order"], sc.shaping["pole"], sc.Ts)
     integ = integration_plan(sc)
     table = InterlockTable.build(sc.interlocks, outputs + u_names + [d[0] for d in DERIVED])
@@ -261,7 +264,26 @@ def prepare(sc: Scenario) -> Prepared:
             [f for f in sc.faults if f.kind not in LINK_KINDS]), n_true=len(true_names),
         rec_cols=len(signals))
     return Prepared(sc=sc, args=args, signals=signals, table=table, y_names=outputs,
-                    u_names=u_names, v0=v0)
+                    u_names=u_names, v0=v0, v_out_offset=x_offset)
+
+
+def _start_offset(sc: Scenario, pdecl, v0: float, x0: np.ndarray, where: str) -> float:
+    """Excite the start: move the plant's state named ``v_out`` by ``[initial] v_out_offset``
+    from its equilibrium (every other state stays there), so that an unstable equilibrium
+    cannot pass as tracking. Returns the offset applied [V]: 0 when switched off, or when the
+    plant declares no state named ``v_out`` (it then starts exactly at its equilibrium)."""
+    off = float(sc.offset_volts(v0))
+    names = [s.name for s in pdecl.states]
+    if off == 0.0 or "v_out" not in names:
+        return 0.0
+    from .scenario import V_OUT_OFFSET_MAX_PCT
+    if not abs(off) <= V_OUT_OFFSET_MAX_PCT / 100.0 * abs(v0):
+        raise ScenarioError(f"{where}: initial.v_out_offset = {off:g} V is more than "
+                            f"{V_OUT_OFFSET_MAX_PCT:g} % of the start voltage {v0:g} V; the "
+                            f"excitation is a small offset: use a smaller one, or set "
+                            f"initial.v_out to start elsewhere")
+    x0[names.index("v_out")] += off
+    return off
 
 
 def _latch(table: InterlockTable) -> np.ndarray:
@@ -783,6 +805,7 @@ def execute(sc: Scenario, prep: Prepared, folder: Path,
         "watchdogs": dict(sc.watchdogs),
         "overrides": sc.overrides,
         "v_out_start_V": prep.v0,
+        "v_out_start_offset_V": prep.v_out_offset,
         "metrics": result,
         "segments": [],
         "segmentation": {},
