@@ -225,14 +225,7 @@ def advance(t, h, nsub, zf, pp, x, u, d):
     usual path), -1 when one period needed more than MAX_REFINE.
 
     The state travels as a tuple so that it stays in registers through the substeps."""
-    dt = h / nsub
-    s = ({x_items},)
-    extra = 0
-    for j in range(nsub):
-        ta = t + j * dt
-{fast_step}
-{store}
-    return extra
+{advance_body}
 
 
 {run_chunk}
@@ -556,9 +549,16 @@ def has_rk4_step(plant: Plugin) -> bool:
     return getattr(plant.module, "rk4_step", None) is not None
 
 
+def has_advance_period(plant: Plugin) -> bool:
+    """Whether the plant plugin integrates a whole period itself (optional kernel
+    ``advance_period``, e.g. a switching-level plant placing its switching instants)."""
+    return getattr(plant.module, "advance_period", None) is not None
+
+
 def _import_lines(plant: Plugin, ctrl: Plugin, ref: Plugin) -> str:
     lines = []
     names = {"plant": ("derivs", "outputs") + (("rk4_step",) if has_rk4_step(plant) else ())
+                       + (("advance_period",) if has_advance_period(plant) else ())
                        + (("fast_rate",) if has_fast_rate(plant) else ())
                        + (("energy", "energy_limit") if has_energy_check(plant) else ()),
              "ctrl": ("init", "step"), "ref": ("init", "step")}
@@ -570,16 +570,22 @@ def _import_lines(plant: Plugin, ctrl: Plugin, ref: Plugin) -> str:
             lines.append("from hilrig.runtime.registry import load_file as _load_file")
             lines.append(f"_{tag} = _load_file({where!r})")
         for k in names[tag]:
+            if k == "advance_period":
+                # called, not inlined: a whole period's work dwarfs a call, and inlined it
+                # would be compiled anew into each chunk function of every combination
+                lines.append(f"{tag}_{k} = _{tag}.{k}")
+                continue
             # each kernel is inlined into the loop: a call across compiled functions passes
             # every array through reference counting and keeps values out of registers
             lines.append(f"{tag}_{k} = _inline(_{tag}.{k})")
     return "\n".join(lines)
 
 
-def _rk4_text(nx: int, own_step: bool, fast: bool = False) -> dict[str, str]:
+def _rk4_text(nx: int, own_step: bool, fast: bool = False, period: bool = False) -> dict[str, str]:
     """The RK4 step, unrolled for nx states (the plant's own ``rk4_step`` if it has one, else
-    the generic stages over its ``derivs``), and the substep loop's body: refined where the
-    plant's ``fast_rate`` asks for it (``fast``), else one RK4 step per substep."""
+    the generic stages over its ``derivs``), and the body of ``advance``: the substep loop,
+    refined where the plant's ``fast_rate`` asks for it (``fast``), else one RK4 step per
+    substep; or, for a plant with ``advance_period`` (``period``), one call of it per period."""
     r = range(nx)
     if own_step:
         body = "    s = plant_rk4_step(dt, pp, s, u, d)"
@@ -617,8 +623,16 @@ def _rk4_text(nx: int, own_step: bool, fast: bool = False) -> dict[str, str]:
                 rem -= hh"""
     else:
         step = "        s = rk4(ta, dt, pp, s, u, d)"
-    return dict(x_items=", ".join(f"x[{i}]" for i in r), rk4_body=body, fast_step=step,
-                store="\n".join(f"    x[{i}] = s[{i}]" for i in r))
+    x_items = ", ".join(f"x[{i}]" for i in r)
+    store = "\n".join(f"    x[{i}] = s[{i}]" for i in r)
+    if period:
+        # the plant integrates the whole period itself (switching instants, its own rule)
+        advance = f"    s = plant_advance_period(t, h, pp, ({x_items},), u, d)\n{store}\n    return 0"
+    else:
+        advance = (f"    dt = h / nsub\n    s = ({x_items},)\n    extra = 0\n"
+                   f"    for j in range(nsub):\n        ta = t + j * dt\n{step}\n{store}\n"
+                   f"    return extra")
+    return dict(x_items=x_items, rk4_body=body, fast_step=step, store=store, advance_body=advance)
 
 
 def _energy_text(checks: bool) -> dict[str, str]:
@@ -699,7 +713,8 @@ def generate(plant: Plugin, ctrl: Plugin, ref: Plugin,
                             run_chunk=sil, paced_chunk=paced,
                             plugins=plugin_ids(plant, ctrl, ref), checked=bool(checked),
                             max_refine=MAX_REFINE,
-                            **_rk4_text(nx, has_rk4_step(plant), has_fast_rate(plant)))
+                            **_rk4_text(nx, has_rk4_step(plant), has_fast_rate(plant),
+                                         has_advance_period(plant)))
     if checked:
         text = checked_text(text)
     # write then rename: concurrent workers never import a half-written file, and an existing
@@ -742,7 +757,7 @@ _STAGES = (
     ("supervise(", 12, "hilrig: trip latch and resets"),
     ("interp_rows(", 13, "hilrig: the load profile"),
     ("plant_outputs(", 14, "plant {plant}: kernel outputs"),
-    ("advance(", 15, "plant {plant}: kernel derivs or rk4_step (the RK4 stage)"),
+    ("advance(", 15, "plant {plant}: kernel derivs, rk4_step or advance_period (the RK4 stage)"),
     ("# 7 record", 16, "hilrig: the recording row"),
     ("keep_true(", 16, "hilrig: the recording row"),
     ("sensor_chain(", 18, "hilrig: the sensor chain"),

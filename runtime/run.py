@@ -55,6 +55,8 @@ class Prepared:
     y_names: list[str]
     u_names: list[str]
     v0: float
+    #: the start offset applied to the plant's v_out state [V] (0: an exact equilibrium start)
+    v_out_offset: float = 0.0
 
 
 def process_age_s() -> float | None:
@@ -136,6 +138,13 @@ def integration_plan(sc: Scenario) -> dict[str, Any]:
     if adaptive and rate is not None and math.isfinite(rate) and rate > 0:
         n = max(asked, int(math.ceil(sc.Ts * rate / loopgen.Z_LINEAR - 1e-9)))
     refine = adaptive and loopgen.has_fast_rate(sc.plant.plugin)
+    if loopgen.has_advance_period(sc.plant.plugin):
+        # the plant integrates each period itself (its own instants and step rule): the loop's
+        # substeps and refinement do not apply; the energy check still does
+        return {"method": "the plant's own (advance_period)", "rule": "plant",
+                "substeps_asked": asked, "substeps": asked, "linear_rate_per_s": rate,
+                "z_linear": None, "refines_stiff_steps": False, "z_fast": math.inf,
+                "energy_check": loopgen.has_energy_check(sc.plant.plugin)}
     return {"method": "RK4", "rule": "adaptive" if adaptive else "fixed",
             "substeps_asked": asked, "substeps": n, "linear_rate_per_s": rate,
             "z_linear": loopgen.Z_LINEAR if adaptive else None,
@@ -203,6 +212,7 @@ def prepare(sc: Scenario) -> Prepared:
     nx = x0.shape[0]
     if nx != len(pdecl.states):
         raise ScenarioError(f"plant {pdecl.name!r}: equilibrium gave {nx} states, declared {len(pdecl.states)}")
+    x_offset = _start_offset(sc, pdecl, v0, x0, where)
     ad, g1, g2, cr, dr = shaping.design(sc.shaping["order"], sc.shaping["pole"], sc.Ts)
     integ = integration_plan(sc)
     table = InterlockTable.build(sc.interlocks, outputs + u_names + [d[0] for d in DERIVED])
@@ -263,7 +273,26 @@ def prepare(sc: Scenario) -> Prepared:
         n_sensors=len(sc.sensors), n_true_chain=len(chain_names),
         rec_cols=len(signals))
     return Prepared(sc=sc, args=args, signals=signals, table=table, y_names=outputs,
-                    u_names=u_names, v0=v0)
+                    u_names=u_names, v0=v0, v_out_offset=x_offset)
+
+
+def _start_offset(sc: Scenario, pdecl, v0: float, x0: np.ndarray, where: str) -> float:
+    """Excite the start: move the plant's state named ``v_out`` by ``[initial] v_out_offset``
+    from its equilibrium (every other state stays there), so that an unstable equilibrium
+    cannot pass as tracking. Returns the offset applied [V]: 0 when switched off, or when the
+    plant declares no state named ``v_out`` (it then starts exactly at its equilibrium)."""
+    off = float(sc.offset_volts(v0))
+    names = [s.name for s in pdecl.states]
+    if off == 0.0 or "v_out" not in names:
+        return 0.0
+    from .scenario import V_OUT_OFFSET_MAX_PCT
+    if not abs(off) <= V_OUT_OFFSET_MAX_PCT / 100.0 * abs(v0):
+        raise ScenarioError(f"{where}: initial.v_out_offset = {off:g} V is more than "
+                            f"{V_OUT_OFFSET_MAX_PCT:g} % of the start voltage {v0:g} V; the "
+                            f"excitation is a small offset: use a smaller one, or set "
+                            f"initial.v_out to start elsewhere")
+    x0[names.index("v_out")] += off
+    return off
 
 
 def _latch(table: InterlockTable) -> np.ndarray:
@@ -800,6 +829,7 @@ def execute(sc: Scenario, prep: Prepared, folder: Path,
         "watchdogs": dict(sc.watchdogs),
         "overrides": sc.overrides,
         "v_out_start_V": prep.v0,
+        "v_out_start_offset_V": prep.v_out_offset,
         "metrics": result,
         "segments": [],
         "segmentation": {},

@@ -66,6 +66,15 @@ WATCHDOGS = {"overrun_budget": ("s", 0.0, (0.0, 10.0)), "overrun_ticks": ("-", 1
 PACED = {"miss_share_max": ("-", 0.01, (0.0, 1.0)), "max_lateness": ("s", 1e-3, (0.0, 10.0)),
          "realtime_priority": ("-", 49, (1, 99))}
 PACED_FLAGS = {"realtime": True}
+#: excitation: the plant's v_out state starts this far from its equilibrium (below: toward
+#: collapse, the dangerous direction for a constant-power load), so that an unstable
+#: equilibrium cannot pass as tracking; ``[initial] v_out_offset`` changes it, "0 V" = off
+V_OUT_OFFSET_DEFAULT_TEXT = "-0.25 %"
+V_OUT_OFFSET_DEFAULT = (-0.25, "%")
+#: the largest offset a scenario may ask for: in percent of the start voltage, and in volts
+#: (prepare() also refuses a voltage beyond V_OUT_OFFSET_MAX_PCT of the start voltage)
+V_OUT_OFFSET_MAX_PCT = 10.0
+V_OUT_OFFSET_MAX_V = 1e4
 MAX_TICKS = 2_000_000_000
 #: the deepest nesting of arrays and tables a scenario may have (its own tables need 4:
 #: [[faults]] entries with a table of rows); deeper input is refused with a clear message
@@ -102,6 +111,9 @@ class Scenario:
     safe_u: float
     interlocks: list[Interlock]
     v_out0: float | None
+    #: start offset of the plant's v_out state from its equilibrium: (value, "%") in percent of
+    #: the start voltage or (value, "V"); see V_OUT_OFFSET_DEFAULT and offset_volts()
+    v_out_offset: tuple[float, str] = V_OUT_OFFSET_DEFAULT
     recording: dict[str, Any] = field(default_factory=dict)
     faults: list[Fault] = field(default_factory=list)
     #: times [s] at which a reset of a latched trip is requested (an operator's intended reset)
@@ -126,6 +138,11 @@ class Scenario:
         """The bridge staleness limit: as set, or 20 periods and at least 50 ms."""
         set_ = self.watchdogs.get("stale_limit", 0.0)
         return set_ if set_ > 0 else max(20 * self.Ts, 0.05)
+
+    def offset_volts(self, v_start: float) -> float:
+        """The start offset of v_out [V] for the start voltage ``v_start``."""
+        value, unit = self.v_out_offset
+        return value / 100.0 * v_start if unit == "%" else value
 
     @property
     def n_ticks(self) -> int:
@@ -255,7 +272,7 @@ def parse_scenario(text: str, name: str = "scenario.toml", path: str = "",
     load_t, load_v = _load(cx, raw)
     limits = _section(cx, raw, "limits", LIMITS)
     interlocks = _interlocks(cx, raw, plant, controller)
-    v_out0 = _initial(cx, raw)
+    v_out0, v_out_offset = _initial(cx, raw)
     faults = _faults(cx, raw, plant, duration, Ts)
     if integration == "fixed" or getattr(plant.plugin.module, "fast_rate", None) is None:
         _check_short_circuits(cx, faults, plant, Ts, substeps)
@@ -270,6 +287,7 @@ def parse_scenario(text: str, name: str = "scenario.toml", path: str = "",
                     plant=plant, controller=controller, reference=reference, shaping=shaping,
                     load_t=load_t, load_v=load_v, v_collapse=limits["v_collapse"],
                     safe_u=limits["safe_u"], interlocks=interlocks, v_out0=v_out0,
+                    v_out_offset=v_out_offset,
                     recording=recording, faults=faults, resets=resets, watchdogs=watchdogs,
                     paced=paced, integration=integration, sensors=sensors,
                     overrides={"applied": [{"key": k, "value": _inline(v)}
@@ -907,17 +925,48 @@ def _check_short_circuits(cx, faults, plant: PluginChoice, Ts: float, substeps: 
 
 
 def _initial(cx, raw):
+    """``[initial]``: the start voltage (None = auto) and the start offset of the plant's v_out
+    state from its equilibrium, ``(value, "%")`` in percent of the start voltage or
+    ``(value, "V")`` (see :data:`V_OUT_OFFSET_DEFAULT`)."""
     tab = _table(cx, raw, "initial")
     for k in tab:
-        if k != "v_out":
-            raise cx.unknown("initial", k, ["v_out"])
+        if k not in ("v_out", "v_out_offset"):
+            raise cx.unknown("initial", k, ["v_out", "v_out_offset"])
+    offset = _v_out_offset(cx, tab.get("v_out_offset", V_OUT_OFFSET_DEFAULT_TEXT))
     v = tab.get("v_out", "auto")
     if v == "auto":
-        return None
+        return None, offset
     q = _quantity(cx, "initial.v_out", v, "V", (0.0, 1e5))
     if not math.isfinite(q):
         raise cx.fail("initial.v_out", " is not finite")
-    return q
+    return q, offset
+
+
+def _v_out_offset(cx, value) -> tuple[float, str]:
+    """``initial.v_out_offset``: ``"-0.25 %"`` (percent of the start voltage) or a voltage
+    (``"-0.5 V"``, a bare number in volts); 0 switches the excitation off."""
+    key = "initial.v_out_offset"
+    lim_pct, lim_v = V_OUT_OFFSET_MAX_PCT, V_OUT_OFFSET_MAX_V
+    fix = (f"write a percentage of the start voltage such as \"-0.25 %\" (at most "
+           f"{lim_pct:g} % either way) or a voltage such as \"-0.5 V\"; \"0 V\" starts "
+           f"exactly at the equilibrium")
+    if isinstance(value, str) and value.strip().endswith("%"):
+        text = value.strip()[:-1].strip()
+        try:
+            q = parse_quantity(text, "-", where=key)
+        except UnitError:
+            raise cx.fail(key, f" = {value!r} is not a percentage; {fix}") from None
+        if not abs(q) <= lim_pct:
+            raise cx.fail(key, f" = {value!r} is outside [-{lim_pct:g}, {lim_pct:g}] % of the "
+                          f"start voltage; {fix}")
+        return q, "%"
+    try:
+        q = parse_quantity(value, "V", where=key)
+    except UnitError:
+        raise cx.fail(key, f" = {value!r} is neither a percentage nor a voltage; {fix}") from None
+    if not abs(q) <= lim_v:
+        raise cx.fail(key, f" = {q:g} V is outside [-{lim_v:g}, {lim_v:g}] V; {fix}")
+    return q, "V"
 
 
 SENSOR_KEYS = {"signal", "cutoff", "bits", "range", "sample_offset", "offset"}

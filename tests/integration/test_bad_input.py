@@ -29,6 +29,10 @@ CASES = {
                      'range = ["1000 V", "0 V"]\n',
                      r"sensor_range\.toml: sensors\[0\]\.range = \[1000, 0\] V is reversed: write "
                      r"the lower end first"),
+    # a start excitation far beyond a small offset (docs/scenarios.md, [initial])
+    "offset": (lambda d: Path(d).read_text() + '\n[initial]\nv_out_offset = "-30 %"\n',
+               r"offset\.toml: initial\.v_out_offset = '-30 %' is outside \[-10, 10\] % of the "
+               r"start voltage; write a percentage"),
 }
 
 
