@@ -23,9 +23,12 @@ Variants:
 - ``owned arrays``: the chunk without the borrowed views (every array argument counted by
   numba's reference counting, as before :mod:`hilrig.runtime.borrow`); its recording must equal
   the generated loop's bit for bit, which is checked;
+- ``sensor chain``: the loop as generated, run on the scenario with a sensor chain on v_out
+  and i_L1 (``CHAIN``: anti-alias filter, sample offset, offset, 12-bit ADC); the other
+  variants run without one (the chain's loop over no rows);
 - ``without <stage>``: one stage removed (the load table sampled once, the reference and the
-  shaping filter run once, no fault application, no watchdog/interlock/supervision stage, no
-  record, no RK4). Removing a stage changes what the others compute (without the RK4 the plant
+  shaping filter run once, no fault application, no sensor chain stage, no
+  watchdog/interlock/supervision stage, no record, no RK4). Removing a stage changes what the others compute (without the RK4 the plant
   stands still), so the differences are each stage's approximate cost and need not add up.
 
 Run: python bench/loop_stages.py [--reps 11] [--only generated,owned,bounds-checked,fixed]
@@ -84,6 +87,7 @@ VARIANTS = {
                "        word = wword\n")],
     "without record": [_resub(r"        # 7 record\n(.*\n)*?        rec\[i, c \+ 1\] = code\n",
                               "        rec[i, 0] = word + code\n")],
+    "without sensor chain": [_resub(r"        # the sensor chain.*\n        sensor_chain\(.*\n", "")],
     "without RK4": [_sub("        nref = advance(t, ts, nsub, zf, pp, x, u, d)\n", "        nref = 0\n")],
     "generic RK4": [lambda text: _sub("    s = plant_rk4_step(dt, pp, s, u, d)\n",
                                       _generic_rk4() + "\n")(text)],
@@ -95,7 +99,24 @@ VARIANTS = {
         lambda text: _sub("    s = plant_rk4_step(dt, pp, s, u, d)\n", _generic_rk4() + "\n")(text),
         _sub('@njit(cache=True, error_model="numpy")\ndef run_chunk',
              "@njit(cache=True)\ndef run_chunk")],
+    "sensor chain (v_out and i_L1)": [],
 }
+#: the scenario text a variant adds (the sensor chain: runtime/sensors.py)
+CHAIN = """
+[[sensors]]
+signal = "v_out"
+cutoff = "20 kHz"
+sample_offset = "10 us"
+bits = 12
+range = ["0 V", "1000 V"]
+[[sensors]]
+signal = "i_L1"
+cutoff = "20 kHz"
+offset = "0.5 A"
+bits = 12
+range = ["-1000 A", "1000 A"]
+"""
+EXTRA = {"sensor chain (v_out and i_L1)": CHAIN}
 
 
 def fixed_substeps(text):
@@ -160,10 +181,12 @@ def main():
         fns[name] = build(t, f"hilrig_stage_variant_{j}", tmp)
     n = sc.n_ticks
     chunk = int(round(sc.recording["chunk"] / sc.Ts))
-    width = len(R.prepare(sc).signals)
+    scs = {k: parse_scenario(SCENARIO + EXTRA[k], name="bench.toml") if k in EXTRA else sc
+           for k in fns}
+    width = max(len(R.prepare(s).signals) for s in scs.values())
 
-    def run(fn, rec):
-        a = R.prepare(sc).args
+    def run(fn, rec, s=sc):
+        a = R.prepare(s).args
         done = 0
         while done < n:
             done += R._call(fn, done, min(chunk, n - done), rec[done:], a)
@@ -172,7 +195,7 @@ def main():
     recs = {}
     for name, fn in fns.items():  # compile, and keep one whole recording for the check
         recs[name] = np.zeros((n, width))
-        run(fn, recs[name])
+        run(fn, recs[name], scs[name])
     for key in ("owned", "bounds-checked (--checked)",
                 "fixed sub-steps (before the stiffness-aware rule)"):
         if key in fns and recs[key].tobytes() != recs["generated"].tobytes():
@@ -187,7 +210,7 @@ def main():
     for _ in range(args.reps):
         for name, fn in fns.items():
             t = time.process_time()
-            done = run(fn, rec)
+            done = run(fn, rec, scs[name])
             ns[name].append((time.process_time() - t) / done * 1e9)
     med = {k: st.median(v) for k, v in ns.items()}
     ref = med["generated"]

@@ -139,7 +139,7 @@ def _tick_args(a: dict) -> tuple:
             a["pr"], a["xr"], a["iyr"], a["yr"], a["w"],
             a["ad"], a["g1"], a["g2"], a["cr"], a["dr"], a["slew"], a["z"], a["s"], a["zt"], a["r"],
             a["dix"], a["lim_sig"], a["lim_side"], a["lim_thr"], a["lim_deb"], a["lim_cnt"], a["latch"],
-            a["pv"], *fault_args(a), *supervision_args(a), a["y"], a["d"])
+            a["pv"], *fault_args(a), *supervision_args(a), a["s_tab"], a["s_x"], a["y"], a["d"])
 
 
 class _Live:
@@ -399,7 +399,8 @@ def run_bridge(sc, address: str, folder: Path | None = None, *, mode: str = "loc
         notice(f"bridge: connected to {welcome.simulator_name!r} at {address} ({mode}, "
                f"{n_meas} measurements, {n_act} actuations; stale after {stale_s * 1e3:g} ms)")
     # the sample for the next tick, or the reason there is none: ("stale" | "lost", detail)
-    state: dict[str, Any] = {"sample": current, "took": 0.0, "missing": None, "waited": 0.0}
+    state: dict[str, Any] = {"sample": current, "took": 0.0, "missing": None, "waited": 0.0,
+                             "raw": None}
     wd = a["wd"]
 
     live = _Live(sc, prep, telemetry, allow_remote, stats)
@@ -439,6 +440,8 @@ def run_bridge(sc, address: str, folder: Path | None = None, *, mode: str = "loc
         stats.rtt_ns.extend(fast.rtt[:ok].astype(np.int64).tolist())
         last = kk + done - 1
         end = -1
+        if done and status not in (W.ST_OK, W.ST_END):
+            state["raw"] = fast.meas.copy()  # the last tick's sample (no next one was read)
         if status in (W.ST_OK, W.ST_END):
             state["sample"] = fast.sample()
         elif status == W.ST_FRAME and fast.oversize() is not None:
@@ -484,6 +487,10 @@ def run_bridge(sc, address: str, folder: Path | None = None, *, mode: str = "loc
                 why, detail = state["missing"]
                 wd[W_HOST_BITS] = _HOST_BIT[why]
                 wd[W_HOST_VALUE] = state["waited"] if why == "stale" else 0.0
+                if state["raw"] is not None:
+                    # the sample held, as received: the last tick changed y in place (sensor
+                    # chain, sensor faults), which must not be applied to it twice
+                    a["y"][:] = state["raw"]
                 tick(kk, i, sc.Ts, sc.v_collapse, a["i_vout"], *targs, rec, a["ev"])
                 wd[W_HOST_BITS] = 0.0
                 e = {"event": _END_EVENT[why], "tick": kk, "detail": detail}
@@ -507,7 +514,7 @@ def run_bridge(sc, address: str, folder: Path | None = None, *, mode: str = "loc
                 state["error"] = ProtocolError("unexpected", state["missing"][1])
                 continue
             t_in = time.perf_counter()
-            a["y"][:] = smp.meas
+            a["y"][:] = state["raw"] = smp.meas
             a["d"][:] = np.nan  # the load lives in the simulator
             wd[W_HOST_TIME] = state["took"]
             wd[W_HOST_BITS] = live.host_bits()
@@ -638,7 +645,7 @@ def run_free_running(sc, address: str, folder: Path | None = None, *, timeout_s:
                f"Ts = {sc.Ts:g} s, stale after {stale_s * 1e3:g} ms)")
     state: dict[str, Any] = {"next": None, "took": 0.0, "last_seq": -1, "t_last": None,
                              "stale": False, "lost": None, "started": False, "held_first": False,
-                             "lost_run": 0}
+                             "lost_run": 0, "raw": None}
     wd = a["wd"]
 
     def take(f) -> str:
@@ -742,7 +749,7 @@ def run_free_running(sc, address: str, folder: Path | None = None, *, timeout_s:
                     # (samples received and passed over in a burst are held, not lost)
                     gap, state["lost_run"] = state["lost_run"], 0
                     state["last_seq"] = kk
-                    a["y"][:] = smp.meas
+                    a["y"][:] = state["raw"] = smp.meas
                     if gap > max_gap:
                         bits, value = HOST_GAP, float(gap)
                 else:
@@ -750,8 +757,12 @@ def run_free_running(sc, address: str, folder: Path | None = None, *, timeout_s:
                     if state["last_seq"] < 0 and not state["held_first"]:
                         # lost before any sample arrived: there is nothing older to hold, so
                         # these first ticks run on the first sample received (a later one)
-                        a["y"][:] = smp.meas
+                        a["y"][:] = state["raw"] = smp.meas
                         state["held_first"] = True
+            if state["raw"] is not None:
+                # a held tick runs on the sample as received: the tick changes y in place
+                # (sensor chain, sensor faults), which must not be applied to it twice
+                a["y"][:] = state["raw"]
             a["d"][:] = np.nan
             wd[W_HOST_BITS] = bits | int(live.host_bits())
             wd[W_HOST_VALUE] = value

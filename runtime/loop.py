@@ -3,6 +3,9 @@
 One tick k at time t = k Ts runs these stages, in this order, in every mode:
 
 1. sample    - plant outputs y from the plant state (in-process plant).
+   measure   - the sensor chain of each signal the scenario declares one for (``[[sensors]]``,
+               :mod:`hilrig.runtime.sensors`: sample offset, anti-alias filter, offset, ADC),
+               right after the true values are kept; none by default (y exact).
 2. inject    - scheduled sensor faults applied to y (:mod:`hilrig.safety.faults`; load faults
                act on the load when it is sampled, controller faults right after stage 4).
 3. reference - the reference plugin writes the raw reference w from its declared reads of y;
@@ -16,8 +19,8 @@ One tick k at time t = k Ts runs these stages, in this order, in every mode:
 6. actuate   - the plant advances one period by RK4 substeps with u and the load held
                (zero-order hold; the load profile is sampled at the tick's start).
 7. record    - one row into the chunk buffer: y, u, r, raw reference, load, the true values of
-               the signals a sensor fault hits (``true_<name>``, written in stage 1 before
-               injection), interlock word, controller code.
+               the signals a sensor fault or a sensor chain hits (``true_<name>``, written in
+               stage 1 before the chain and injection), interlock word, controller code.
 
 After the record stage the tick ends the run early on a *voltage collapse* (the plant's true
 v_out, before sensor faults, below the scenario's ``limits.v_collapse``) or on a non-finite
@@ -81,6 +84,7 @@ def {fname}(k0, n, ts, nsub, zf, v_collapse, i_vout,
               dix, lim_sig, lim_side, lim_thr, lim_deb, lim_cnt, latch, pv,
               seed, f_stage, f_kind, f_sig, f_t0, f_t1, f_val, f_hold, f_cond,
               reset_t, reset_i, evlog, evn, wd, uq,
+              s_tab, s_x,
               y, d, rec, ev{paced_params}):
     """{fdoc}"""
 {borrow}{energy_start}    for i in range(n):
@@ -93,6 +97,8 @@ def {fname}(k0, n, ts, nsub, zf, v_collapse, i_vout,
         plant_outputs(t, pp, x, u, d, y)
         v_true = y[i_vout]
         keep_true(y, f_sig, f_cond, rec, i, y.shape[0] + u.shape[0] + 9)
+        # the sensor chain (runtime/sensors.py): what is measured of the true outputs
+        sensor_chain(kk, y, s_tab, s_x, rec, i, y.shape[0] + u.shape[0] + 9)
         # 2 inject: sensor faults on the measured signals
         apply_faults(1, kk, t, seed, f_stage, f_kind, f_sig, f_t0, f_t1, f_val, f_hold, f_cond, wd, y, u, d)
 {decide_8}
@@ -179,6 +185,7 @@ from hilrig.bridge.wire import (exchange, get_sample, read_vector, put_actuation
                                 IO_SEQ, IO_ADDRLEN, F_INV_F, F_TOOK, F_TSIM, F_WAITED, KIND_ZMQ,
                                 ST_OK, ST_END, ST_FRAME, ST_SENDFAIL, ST_NONFINITE, ST_IDLE)
 from hilrig.runtime.borrow import borrowed
+from hilrig.runtime.sensors import chain as _sensor_chain
 {imports}
 interp_rows = _inline(_interp_rows)
 shape_step = _inline(_shape_step)
@@ -192,6 +199,7 @@ keep_true = _inline(_keep_true)
 contactor = _inline(_contactor)
 gates_blocked = _inline(_gates_blocked)
 follow_enable = _inline(_follow_enable)
+sensor_chain = _inline(_sensor_chain)
 
 #: plant state count, a literal so that the compiler unrolls the state loops
 NX = {nx}
@@ -199,6 +207,9 @@ NX = {nx}
 PLUGINS = {plugins!r}
 #: compiled with bounds checks (the --checked build)
 CHECKED = {checked!r}
+#: the plant models a converter with blocked gates (GATE_BLOCK_CURRENTS): the safe action
+#: gate_block reaches it as a NaN command; otherwise it gets safe_u (zero voltage)
+GATE_BLOCK = {gate_block!r}
 
 
 #: the stiffness-aware integration's rule (runtime/loop.py Z_FAST, MAX_REFINE)
@@ -232,7 +243,8 @@ def actuate(t, h, nsub, zf, pp, x, u, uq, latch, wd, d):
     plant's diodes decide; a plant that does not model them applies 0 V). Returns advance's
     count of refined steps, or -1."""
     dh = int(wd[W_DELAY])
-    blocked = gates_blocked(latch, wd)
+    # a plant that does not model blocked gates (no GATE_BLOCK_CURRENTS) gets safe_u instead
+    blocked = GATE_BLOCK and gates_blocked(latch, wd)
     nu = u.shape[0]
     if dh > 0 and not (uq[1, 0] == uq[1, 0]):
         # the first tick: the commands before it are taken to be its own (bumpless start)
@@ -278,15 +290,7 @@ def advance(t, h, nsub, zf, pp, x, u, d):
     usual path), -1 when one period needed more than MAX_REFINE.
 
     The state travels as a tuple so that it stays in registers through the substeps."""
-    dt = h / nsub
-    s = ({x_items},)
-    extra = 0
-    blocked = not (u[0] == u[0])
-    for j in range(nsub):
-        ta = t + j * dt
-{fast_step}
-{store}
-    return extra
+{advance_body}
 
 
 {run_chunk}
@@ -302,12 +306,15 @@ def bridge_tick(kk, i, ts, v_collapse, i_vout,
                 dix, lim_sig, lim_side, lim_thr, lim_deb, lim_cnt, latch, pv,
                 seed, f_stage, f_kind, f_sig, f_t0, f_t1, f_val, f_hold, f_cond,
                 reset_t, reset_i, evlog, evn, wd,
+                s_tab, s_x,
                 y, d, rec, ev):
     """Bridge modes: one tick on a y received from the simulator (stages 2-5 and 7; the
     simulator samples and actuates). Writes row i of rec; returns 1, or 0 if the run ends."""
     t = kk * ts
     v_true = y[i_vout]
     keep_true(y, f_sig, f_cond, rec, i, y.shape[0] + u.shape[0] + 9)
+    # the sensor chain (runtime/sensors.py): what is measured of the true outputs
+    sensor_chain(kk, y, s_tab, s_x, rec, i, y.shape[0] + u.shape[0] + 9)
     # 2 inject: sensor faults on the measured signals
     apply_faults(1, kk, t, seed, f_stage, f_kind, f_sig, f_t0, f_t1, f_val, f_hold, f_cond, wd, y, u, d)
 {decide_4}
@@ -329,6 +336,7 @@ def bridge_chunk(k0, n, ts, v_collapse, i_vout,
                  dix, lim_sig, lim_side, lim_thr, lim_deb, lim_cnt, latch, pv,
                  seed, f_stage, f_kind, f_sig, f_t0, f_t1, f_val, f_hold, f_cond,
                  reset_t, reset_i, evlog, evn, wd,
+                 s_tab, s_x,
                  y, d, rec, ev, io, fio, meas, sbuf, rbuf, pfd, rtt):
     """Lockstep over a socket, compiled end to end (hilrig.bridge.wire): ticks k0 .. k0+n-1 in
     rows 0 .. n-1 of rec. Each tick runs on the sample in meas (tick k0's is there on entry),
@@ -352,6 +360,8 @@ def bridge_chunk(k0, n, ts, v_collapse, i_vout,
         wd[W_HOST_BITS] = 0.0
         v_true = y[i_vout]
         keep_true(y, f_sig, f_cond, rec, i, y.shape[0] + u.shape[0] + 9)
+        # the sensor chain (runtime/sensors.py): what is measured of the true outputs
+        sensor_chain(kk, y, s_tab, s_x, rec, i, y.shape[0] + u.shape[0] + 9)
         # 2 inject: sensor faults on the measured signals
         apply_faults(1, kk, t, seed, f_stage, f_kind, f_sig, f_t0, f_t1, f_val, f_hold, f_cond, wd, y, u, d)
 {decide_8}
@@ -536,6 +546,10 @@ for j in range(d.shape[0]):
 for j in range(f_cond.shape[0]):
     if f_cond[j, 5] >= 0.0:
         c += 1
+# and those of the chained signals (sensors.chain, column S_TRUE)
+for j in range(s_tab.shape[0]):
+    if s_tab[j, 11] >= 0.0:
+        c += 1
 rec[i, c] = word
 rec[i, c + 1] = code"""
 
@@ -610,9 +624,16 @@ def has_rk4_step(plant: Plugin) -> bool:
     return getattr(plant.module, "rk4_step", None) is not None
 
 
+def has_advance_period(plant: Plugin) -> bool:
+    """Whether the plant plugin integrates a whole period itself (optional kernel
+    ``advance_period``, e.g. a switching-level plant placing its switching instants)."""
+    return getattr(plant.module, "advance_period", None) is not None
+
+
 def _import_lines(plant: Plugin, ctrl: Plugin, ref: Plugin) -> str:
     lines = []
     names = {"plant": ("derivs", "outputs") + (("rk4_step",) if has_rk4_step(plant) else ())
+                       + (("advance_period",) if has_advance_period(plant) else ())
                        + (("fast_rate",) if has_fast_rate(plant) else ())
                        + (("energy", "energy_limit") if has_energy_check(plant) else ()),
              "ctrl": ("init", "step"), "ref": ("init", "step")}
@@ -624,6 +645,11 @@ def _import_lines(plant: Plugin, ctrl: Plugin, ref: Plugin) -> str:
             lines.append("from hilrig.runtime.registry import load_file as _load_file")
             lines.append(f"_{tag} = _load_file({where!r})")
         for k in names[tag]:
+            if k == "advance_period":
+                # called, not inlined: a whole period's work dwarfs a call, and inlined it
+                # would be compiled anew into each chunk function of every combination
+                lines.append(f"{tag}_{k} = _{tag}.{k}")
+                continue
             # each kernel is inlined into the loop: a call across compiled functions passes
             # every array through reference counting and keeps values out of registers
             lines.append(f"{tag}_{k} = _inline(_{tag}.{k})")
@@ -652,10 +678,11 @@ def gate_block_currents(plant: Plugin) -> tuple[int, ...]:
     return tuple(int(i) for i in getattr(plant.module, "GATE_BLOCK_CURRENTS", ()))
 
 
-def _rk4_text(nx: int, own_step: bool, fast: bool = False) -> dict[str, str]:
+def _rk4_text(nx: int, own_step: bool, fast: bool = False, period: bool = False) -> dict[str, str]:
     """The RK4 step, unrolled for nx states (the plant's own ``rk4_step`` if it has one, else
-    the generic stages over its ``derivs``), and the substep loop's body: refined where the
-    plant's ``fast_rate`` asks for it (``fast``), else one RK4 step per substep."""
+    the generic stages over its ``derivs``), and the body of ``advance``: the substep loop,
+    refined where the plant's ``fast_rate`` asks for it (``fast``), else one RK4 step per
+    substep; or, for a plant with ``advance_period`` (``period``), one call of it per period."""
     r = range(nx)
     if own_step:
         body = "    s = plant_rk4_step(dt, pp, s, u, d)"
@@ -693,8 +720,17 @@ def _rk4_text(nx: int, own_step: bool, fast: bool = False) -> dict[str, str]:
                 rem -= hh"""
     else:
         step = "        s = step(ta, dt, pp, s, u, d, blocked)"
-    return dict(x_items=", ".join(f"x[{i}]" for i in r), rk4_body=body, fast_step=step,
-                store="\n".join(f"    x[{i}] = s[{i}]" for i in r))
+    x_items = ", ".join(f"x[{i}]" for i in r)
+    store = "\n".join(f"    x[{i}] = s[{i}]" for i in r)
+    if period:
+        # the plant integrates the whole period itself (switching instants, its own rule)
+        advance = f"    s = plant_advance_period(t, h, pp, ({x_items},), u, d)\n{store}\n    return 0"
+    else:
+        advance = (f"    dt = h / nsub\n    s = ({x_items},)\n    extra = 0\n"
+                   f"    blocked = not (u[0] == u[0])\n"
+                   f"    for j in range(nsub):\n        ta = t + j * dt\n{step}\n{store}\n"
+                   f"    return extra")
+    return dict(x_items=x_items, rk4_body=body, fast_step=step, store=store, advance_body=advance)
 
 
 def _energy_text(checks: bool) -> dict[str, str]:
@@ -776,6 +812,7 @@ def generate(plant: Plugin, ctrl: Plugin, ref: Plugin,
                             plugins=plugin_ids(plant, ctrl, ref), checked=bool(checked),
                             max_refine=MAX_REFINE,
                             gate_fixup=_gate_fixup_text(nx, gate_block_currents(plant)),
+                            gate_block=bool(gate_block_currents(plant)),
                             **_rk4_text(nx, has_rk4_step(plant), has_fast_rate(plant)))
     if checked:
         text = checked_text(text)
@@ -819,9 +856,10 @@ _STAGES = (
     ("supervise(", 12, "hilrig: trip latch and resets"),
     ("interp_rows(", 13, "hilrig: the load profile"),
     ("plant_outputs(", 14, "plant {plant}: kernel outputs"),
-    ("advance(", 15, "plant {plant}: kernel derivs or rk4_step (the RK4 stage)"),
+    ("advance(", 15, "plant {plant}: kernel derivs, rk4_step or advance_period (the RK4 stage)"),
     ("# 7 record", 16, "hilrig: the recording row"),
     ("keep_true(", 16, "hilrig: the recording row"),
+    ("sensor_chain(", 18, "hilrig: the sensor chain"),
     ("put_actuation(", 17, "hilrig: the bridge's frame codec"),
     ("get_sample(", 17, "hilrig: the bridge's frame codec"),
     ("read_vector(", 17, "hilrig: the bridge's frame codec"),

@@ -22,6 +22,7 @@ from hilrig.safety.interlocks import (DERIVED, EVENT_NAMES, EVT_RESET_IDLE, EVT_
                                       new_event_log, new_latch, new_watchdog)
 
 from . import loop as loopgen
+from . import sensors
 from . import shaping
 from .errors import PluginError, ScenarioError
 from .metrics import TrackingMetrics, segment_metrics
@@ -54,6 +55,8 @@ class Prepared:
     y_names: list[str]
     u_names: list[str]
     v0: float
+    #: the start offset applied to the plant's v_out state [V] (0: an exact equilibrium start)
+    v_out_offset: float = 0.0
 
 
 def process_age_s() -> float | None:
@@ -135,11 +138,26 @@ def integration_plan(sc: Scenario) -> dict[str, Any]:
     if adaptive and rate is not None and math.isfinite(rate) and rate > 0:
         n = max(asked, int(math.ceil(sc.Ts * rate / loopgen.Z_LINEAR - 1e-9)))
     refine = adaptive and loopgen.has_fast_rate(sc.plant.plugin)
+    if loopgen.has_advance_period(sc.plant.plugin):
+        # the plant integrates each period itself (its own instants and step rule): the loop's
+        # substeps and refinement do not apply; the energy check still does
+        return {"method": "the plant's own (advance_period)", "rule": "plant",
+                "substeps_asked": asked, "substeps": asked, "linear_rate_per_s": rate,
+                "z_linear": None, "refines_stiff_steps": False, "z_fast": math.inf,
+                "energy_check": loopgen.has_energy_check(sc.plant.plugin)}
     return {"method": "RK4", "rule": "adaptive" if adaptive else "fixed",
             "substeps_asked": asked, "substeps": n, "linear_rate_per_s": rate,
             "z_linear": loopgen.Z_LINEAR if adaptive else None,
             "refines_stiff_steps": refine, "z_fast": loopgen.Z_FAST if refine else math.inf,
             "energy_check": loopgen.has_energy_check(sc.plant.plugin)}
+
+
+def safe_action_applied(sc: Scenario) -> str:
+    """The safe action a trip applies to this scenario's plant: gate_block needs a plant that
+    models blocked gates (``GATE_BLOCK_CURRENTS``); any other gets safe_u (zero voltage)."""
+    if sc.safe_state["action"] == "gate_block" and not loopgen.gate_block_currents(sc.plant.plugin):
+        return "zero_voltage (the plant does not model blocked gates)"
+    return sc.safe_state["action"]
 
 
 def integration_error(ev: np.ndarray, kk: int, ts: float) -> dict[str, Any]:
@@ -202,6 +220,7 @@ def prepare(sc: Scenario) -> Prepared:
     nx = x0.shape[0]
     if nx != len(pdecl.states):
         raise ScenarioError(f"plant {pdecl.name!r}: equilibrium gave {nx} states, declared {len(pdecl.states)}")
+    x_offset = _start_offset(sc, pdecl, v0, x0, where)
     ad, g1, g2, cr, dr = shaping.design(sc.shaping["order"], sc.shaping["pole"], sc.Ts)
     integ = integration_plan(sc)
     table = InterlockTable.build(sc.interlocks, outputs + u_names + [d[0] for d in DERIVED])
@@ -219,6 +238,11 @@ def prepare(sc: Scenario) -> Prepared:
     signals += [SignalSpec(f"true_{n}", out_units[n][0],
                            f"{out_units[n][1]}, true plant value before sensor faults")
                 for n in true_names]
+    # and of each signal with a sensor chain that no sensor fault hits (runtime/sensors.py)
+    chain_names = sensors.true_signals(sc.sensors, true_names)
+    signals += [SignalSpec(f"true_{n}", out_units[n][0],
+                           f"{out_units[n][1]}, true plant value before the sensor chain")
+                for n in chain_names]
     signals.append(SignalSpec("interlock_word", "-", "bit j: interlock j beyond its limit; bits 40-46 watchdogs overrun, stale, sequence gap, peer lost, stop requested, protocol error, sequence error; bit 48 non-finite; bit 49 controller fault; bit 50 latched; bit 51 reset requested; bit 52 reset refused"))
     signals.append(SignalSpec("ctrl_code", "-", "controller return code (0 ok)"))
     if "v_out" not in outputs:
@@ -248,6 +272,8 @@ def prepare(sc: Scenario) -> Prepared:
         reset_t=np.array(sorted(sc.resets), dtype=np.float64), reset_i=np.zeros(1, dtype=np.int64),
         evlog=new_event_log()[0], evn=new_event_log()[1],
         **fault_table(sc.faults, outputs),
+        s_tab=sensors.table(sc.sensors, outputs, sc.Ts, len(true_names), true_names),
+        s_x=np.zeros((len(sc.sensors), 2)),
     )
     args["_integration"] = integ
     # what bind() checks the arrays against (kept beside them, never passed to the loop)
@@ -258,9 +284,29 @@ def prepare(sc: Scenario) -> Prepared:
         n_iyc=len(ctrl.plugin.declaration.reads), n_iyr=len(ref.plugin.declaration.reads),
         n_sig=ny + nu + len(DERIVED), n_rows=len(table.rows), n_thr=len(table.thr), n_faults=len(
             [f for f in sc.faults if f.kind not in LINK_KINDS]), n_true=len(true_names),
+        n_sensors=len(sc.sensors), n_true_chain=len(chain_names),
         rec_cols=len(signals))
     return Prepared(sc=sc, args=args, signals=signals, table=table, y_names=outputs,
-                    u_names=u_names, v0=v0)
+                    u_names=u_names, v0=v0, v_out_offset=x_offset)
+
+
+def _start_offset(sc: Scenario, pdecl, v0: float, x0: np.ndarray, where: str) -> float:
+    """Excite the start: move the plant's state named ``v_out`` by ``[initial] v_out_offset``
+    from its equilibrium (every other state stays there), so that an unstable equilibrium
+    cannot pass as tracking. Returns the offset applied [V]: 0 when switched off, or when the
+    plant declares no state named ``v_out`` (it then starts exactly at its equilibrium)."""
+    off = float(sc.offset_volts(v0))
+    names = [s.name for s in pdecl.states]
+    if off == 0.0 or "v_out" not in names:
+        return 0.0
+    from .scenario import V_OUT_OFFSET_MAX_PCT
+    if not abs(off) <= V_OUT_OFFSET_MAX_PCT / 100.0 * abs(v0):
+        raise ScenarioError(f"{where}: initial.v_out_offset = {off:g} V is more than "
+                            f"{V_OUT_OFFSET_MAX_PCT:g} % of the start voltage {v0:g} V; the "
+                            f"excitation is a small offset: use a smaller one, or set "
+                            f"initial.v_out to start elsewhere")
+    x0[names.index("v_out")] += off
+    return off
 
 
 def _latch(table: InterlockTable) -> np.ndarray:
@@ -335,7 +381,7 @@ def chunk_args(a: dict) -> tuple:
             a["ad"], a["g1"], a["g2"], a["cr"], a["dr"], a["slew"], a["z"], a["s"], a["zt"], a["r"],
             a["dix"], a["lim_sig"], a["lim_side"], a["lim_thr"], a["lim_deb"], a["lim_cnt"],
             a["latch"], a["pv"],
-            *fault_args(a), *supervision_args(a), a["uq"], a["y"], a["d"])
+            *fault_args(a), *supervision_args(a), a["uq"], a["s_tab"], a["s_x"], a["y"], a["d"])
 
 
 def _call(fn, k0, n, rec, a):
@@ -507,6 +553,21 @@ def bind(fn, a: dict, rec_cols: int) -> None:
         if kept != list(range(e["n_true"])) or bad_row:
             problems.append(f"hilrig (recording): true-value columns {q.tolist()} are not "
                             f"0 .. {e['n_true'] - 1} once each")
+    # the sensor chain: a signal index and a true-value column per row (the loop writes column
+    # c0 + q and the record stage skips one column per q >= 0)
+    from hilrig.runtime.sensors import S_COLS, S_SIG, S_TRUE
+    ns = e.get("n_sensors", 0)
+    need("s_tab", "scenario [[sensors]]", (ns, S_COLS))
+    need("s_x", "scenario [[sensors]]", (ns, 2))
+    if isinstance(a["s_tab"], np.ndarray) and a["s_tab"].shape == (ns, S_COLS):
+        sig = a["s_tab"][:, S_SIG]
+        if not (np.all(sig >= 0) and np.all(sig < ny) and np.all(sig == np.floor(sig))):
+            problems.append(f"scenario [[sensors]]: signals {sig.tolist()} outside [0, {ny})")
+        q = sorted(int(v) for v in a["s_tab"][:, S_TRUE] if v >= 0)
+        first = e["n_true"]
+        if q != list(range(first, first + e.get("n_true_chain", 0))):
+            problems.append(f"hilrig (recording): the sensor chain's true-value columns {q} "
+                            f"are not {first} .. {first + e.get('n_true_chain', 0) - 1} once each")
     # the recording buffer: at least the recorded columns
     if rec_cols < e["rec_cols"]:
         problems.append(f"hilrig (recording): the buffer has {rec_cols} columns, the loop "
@@ -740,8 +801,8 @@ def execute(sc: Scenario, prep: Prepared, folder: Path,
         if ev == loopgen.EV_INTEGRATION:
             e.update(integration_error(a["ev"], kk, sc.Ts))
         if "true_v_out" in names:
-            # a sensor fault on v_out: the event reports the plant's true voltage (the one the
-            # collapse check reads), and the measurement beside it
+            # a sensor fault or chain on v_out: the event reports the plant's true voltage
+            # (the one the collapse check reads), and the measurement beside it
             e["v_out_V"] = float(last_row[names.index("true_v_out")])
             e["v_out_measured_V"] = float(last_row[i_vout])
         events.append(e)
@@ -777,7 +838,7 @@ def execute(sc: Scenario, prep: Prepared, folder: Path,
         "integration": integration_summary(a),
         "actuation_delay_periods": sc.actuation_delay,
         "controller_compensates_delay": bool(sc.controller.plugin.declaration.compensates_delay),
-        "safe_state": dict(sc.safe_state),
+        "safe_state": {**sc.safe_state, "applied": safe_action_applied(sc)},
         "ticks_planned": n_total, "ticks_run": done, "simulated_s": done * sc.Ts,
         "completed": done == n_total and end_event is None,
         "end_event": end_event,
@@ -786,6 +847,7 @@ def execute(sc: Scenario, prep: Prepared, folder: Path,
         "watchdogs": dict(sc.watchdogs),
         "overrides": sc.overrides,
         "v_out_start_V": prep.v0,
+        "v_out_start_offset_V": prep.v_out_offset,
         "metrics": result,
         "segments": [],
         "segmentation": {},

@@ -27,6 +27,7 @@ except ModuleNotFoundError:  # Python 3.10
 from hilrig.plugins.base import ChoiceParam, Param, TableParam
 from hilrig.safety import faults as fault_kinds
 from hilrig.safety.faults import Fault
+from hilrig.runtime.sensors import Sensor
 from hilrig.safety.interlocks import (SIDE_ABOVE, SIDE_BELOW, SIDE_CROSS, SIDE_FROZEN, SIDE_MAGNITUDE,
                                       Interlock)
 
@@ -40,7 +41,7 @@ PLANNED_MODES = ("lockstep", "free-running")
 
 TOP_KEYS = {"title", "description", "demo_data", "mode", "seed", "timing", "plant", "controller",
             "reference", "shaping", "load", "limits", "interlocks", "initial", "recording",
-            "faults", "resets", "watchdogs", "paced", "safe_state"}
+            "faults", "resets", "watchdogs", "paced", "safe_state", "sensors"}
 TIMING = {"Ts": ("s", 50e-6, (1e-7, 1.0)), "substeps": ("-", 4, (1, 1000)),
           "duration": ("s", 1.0, (1e-6, 1e6))}
 #: sample-to-actuation delay in control periods (docs/design-notes.md, "Digital-control delay")
@@ -71,6 +72,15 @@ WATCHDOGS = {"overrun_budget": ("s", 0.0, (0.0, 10.0)), "overrun_ticks": ("-", 1
 PACED = {"miss_share_max": ("-", 0.01, (0.0, 1.0)), "max_lateness": ("s", 1e-3, (0.0, 10.0)),
          "realtime_priority": ("-", 49, (1, 99))}
 PACED_FLAGS = {"realtime": True}
+#: excitation: the plant's v_out state starts this far from its equilibrium (below: toward
+#: collapse, the dangerous direction for a constant-power load), so that an unstable
+#: equilibrium cannot pass as tracking; ``[initial] v_out_offset`` changes it, "0 V" = off
+V_OUT_OFFSET_DEFAULT_TEXT = "-0.25 %"
+V_OUT_OFFSET_DEFAULT = (-0.25, "%")
+#: the largest offset a scenario may ask for: in percent of the start voltage, and in volts
+#: (prepare() also refuses a voltage beyond V_OUT_OFFSET_MAX_PCT of the start voltage)
+V_OUT_OFFSET_MAX_PCT = 10.0
+V_OUT_OFFSET_MAX_V = 1e4
 MAX_TICKS = 2_000_000_000
 #: the deepest nesting of arrays and tables a scenario may have (its own tables need 4:
 #: [[faults]] entries with a table of rows); deeper input is refused with a clear message
@@ -107,6 +117,9 @@ class Scenario:
     safe_u: float
     interlocks: list[Interlock]
     v_out0: float | None
+    #: start offset of the plant's v_out state from its equilibrium: (value, "%") in percent of
+    #: the start voltage or (value, "V"); see V_OUT_OFFSET_DEFAULT and offset_volts()
+    v_out_offset: tuple[float, str] = V_OUT_OFFSET_DEFAULT
     recording: dict[str, Any] = field(default_factory=dict)
     faults: list[Fault] = field(default_factory=list)
     #: times [s] at which a reset of a latched trip is requested (an operator's intended reset)
@@ -129,12 +142,19 @@ class Scenario:
     #: that lacks a controller parameter): {"applied": [{"key", "value"}], "not_applied":
     #: [{"key", "value", "reason"}]}, values in TOML's notation; summary.json keeps it
     overrides: dict[str, list] = field(default_factory=lambda: {"applied": [], "not_applied": []})
+    #: the sensor chain per measured signal (``[[sensors]]``; none: exact measurements)
+    sensors: list[Sensor] = field(default_factory=list)
 
     @property
     def stale_limit_s(self) -> float:
         """The bridge staleness limit: as set, or 20 periods and at least 50 ms."""
         set_ = self.watchdogs.get("stale_limit", 0.0)
         return set_ if set_ > 0 else max(20 * self.Ts, 0.05)
+
+    def offset_volts(self, v_start: float) -> float:
+        """The start offset of v_out [V] for the start voltage ``v_start``."""
+        value, unit = self.v_out_offset
+        return value / 100.0 * v_start if unit == "%" else value
 
     @property
     def n_ticks(self) -> int:
@@ -266,7 +286,7 @@ def parse_scenario(text: str, name: str = "scenario.toml", path: str = "",
     load_t, load_v = _load(cx, raw)
     limits = _section(cx, raw, "limits", LIMITS)
     interlocks = _interlocks(cx, raw, plant, controller)
-    v_out0 = _initial(cx, raw)
+    v_out0, v_out_offset = _initial(cx, raw)
     faults = _faults(cx, raw, plant, duration, Ts)
     if integration == "fixed" or getattr(plant.plugin.module, "fast_rate", None) is None:
         _check_short_circuits(cx, faults, plant, Ts, substeps)
@@ -276,14 +296,16 @@ def parse_scenario(text: str, name: str = "scenario.toml", path: str = "",
     watchdogs = _section(cx, raw, "watchdogs", WATCHDOGS)
     safe_state = _safe_state(cx, raw)
     paced = _paced(cx, raw)
+    sensors = _sensors(cx, raw, plant, Ts, interlocks)
     return Scenario(path=path, text=text, title=title, description=description, demo_data=demo,
                     mode=mode, seed=seed, Ts=Ts, substeps=substeps, duration=duration,
                     plant=plant, controller=controller, reference=reference, shaping=shaping,
                     load_t=load_t, load_v=load_v, v_collapse=limits["v_collapse"],
                     safe_u=limits["safe_u"], interlocks=interlocks, v_out0=v_out0,
+                    v_out_offset=v_out_offset,
                     recording=recording, faults=faults, resets=resets, watchdogs=watchdogs,
                     paced=paced, integration=integration, actuation_delay=delay,
-                    safe_state=safe_state,
+                    safe_state=safe_state, sensors=sensors,
                     overrides={"applied": [{"key": k, "value": _inline(v)}
                                            for k, v in (overrides or {}).items()],
                                "not_applied": [dict(d) for d in not_applied or []]})
@@ -954,14 +976,124 @@ def _check_short_circuits(cx, faults, plant: PluginChoice, Ts: float, substeps: 
 
 
 def _initial(cx, raw):
+    """``[initial]``: the start voltage (None = auto) and the start offset of the plant's v_out
+    state from its equilibrium, ``(value, "%")`` in percent of the start voltage or
+    ``(value, "V")`` (see :data:`V_OUT_OFFSET_DEFAULT`)."""
     tab = _table(cx, raw, "initial")
     for k in tab:
-        if k != "v_out":
-            raise cx.unknown("initial", k, ["v_out"])
+        if k not in ("v_out", "v_out_offset"):
+            raise cx.unknown("initial", k, ["v_out", "v_out_offset"])
+    offset = _v_out_offset(cx, tab.get("v_out_offset", V_OUT_OFFSET_DEFAULT_TEXT))
     v = tab.get("v_out", "auto")
     if v == "auto":
-        return None
+        return None, offset
     q = _quantity(cx, "initial.v_out", v, "V", (0.0, 1e5))
     if not math.isfinite(q):
         raise cx.fail("initial.v_out", " is not finite")
-    return q
+    return q, offset
+
+
+def _v_out_offset(cx, value) -> tuple[float, str]:
+    """``initial.v_out_offset``: ``"-0.25 %"`` (percent of the start voltage) or a voltage
+    (``"-0.5 V"``, a bare number in volts); 0 switches the excitation off."""
+    key = "initial.v_out_offset"
+    lim_pct, lim_v = V_OUT_OFFSET_MAX_PCT, V_OUT_OFFSET_MAX_V
+    fix = (f"write a percentage of the start voltage such as \"-0.25 %\" (at most "
+           f"{lim_pct:g} % either way) or a voltage such as \"-0.5 V\"; \"0 V\" starts "
+           f"exactly at the equilibrium")
+    if isinstance(value, str) and value.strip().endswith("%"):
+        text = value.strip()[:-1].strip()
+        try:
+            q = parse_quantity(text, "-", where=key)
+        except UnitError:
+            raise cx.fail(key, f" = {value!r} is not a percentage; {fix}") from None
+        if not abs(q) <= lim_pct:
+            raise cx.fail(key, f" = {value!r} is outside [-{lim_pct:g}, {lim_pct:g}] % of the "
+                          f"start voltage; {fix}")
+        return q, "%"
+    try:
+        q = parse_quantity(value, "V", where=key)
+    except UnitError:
+        raise cx.fail(key, f" = {value!r} is neither a percentage nor a voltage; {fix}") from None
+    if not abs(q) <= lim_v:
+        raise cx.fail(key, f" = {q:g} V is outside [-{lim_v:g}, {lim_v:g}] V; {fix}")
+    return q, "V"
+
+
+SENSOR_KEYS = {"signal", "cutoff", "bits", "range", "sample_offset", "offset"}
+
+
+def _sensors(cx, raw, plant: PluginChoice, Ts: float, interlocks: list[Interlock]) -> list[Sensor]:
+    """The ``[[sensors]]`` entries: per measured signal at most one chain of a sample offset
+    [s], a first-order anti-alias filter (``cutoff`` [Hz]), a constant ``offset`` and an ideal
+    ADC (``bits`` over ``range`` = [lo, hi], the signal's unit); see runtime/sensors.py. An
+    interlock limit that the ADC's readings can never pass is refused: it could never trip."""
+    items = raw.get("sensors", [])
+    if not isinstance(items, list) or not all(isinstance(x, dict) for x in items):
+        raise cx.fail("sensors", " must be an array of tables [[sensors]], e.g. [[sensors]] "
+                      "signal = \"v_out\" cutoff = \"20 kHz\"")
+    signals = {sg.name: sg.unit for sg in plant.plugin.declaration.outputs}
+    out: list[Sensor] = []
+    for i, it in enumerate(items):
+        where = f"sensors[{i}]"
+        for k in it:
+            if k not in SENSOR_KEYS:
+                raise cx.unknown(where, k, SENSOR_KEYS)
+        sig = it.get("signal")
+        if not isinstance(sig, str) or sig not in signals:
+            raise cx.fail(f"{where}.signal", f" = {sig!r} is not a measured signal of this "
+                          f"plant{_hint(str(sig), signals)} (signals: {', '.join(signals)})")
+        if any(s.signal == sig for s in out):
+            first = next(j for j, s in enumerate(out) if s.signal == sig)
+            raise cx.fail(f"{where}.signal", f" = {sig!r} already has a chain in "
+                          f"sensors[{first}]; a signal has one chain: merge the two entries")
+        unit = signals[sig]
+        if not (SENSOR_KEYS - {"signal"}) & set(it):
+            raise cx.fail(where, f" ({sig}) declares no part of a chain: give cutoff, bits "
+                          f"and range, sample_offset or offset, or remove the entry")
+        cutoff = (_quantity(cx, f"{where}.cutoff", it["cutoff"], "Hz", (0.0, 1e12),
+                            lower_open=True) if "cutoff" in it else 0.0)
+        soff = (_quantity(cx, f"{where}.sample_offset", it["sample_offset"], "s", (0.0, Ts))
+                if "sample_offset" in it else 0.0)
+        offset = (_quantity(cx, f"{where}.offset", it["offset"], unit, (-1e9, 1e9))
+                  if "offset" in it else 0.0)
+        bits, lo, hi = 0, 0.0, 0.0
+        if ("bits" in it) != ("range" in it):
+            have, miss = ("bits", "range") if "bits" in it else ("range", "bits")
+            raise cx.fail(where, f" ({sig}) has {have!r} but no {miss!r}: an ADC needs both, "
+                          f"e.g. bits = 12, range = [\"0 {unit}\", \"1000 {unit}\"]")
+        if "bits" in it:
+            bits = it["bits"]
+            if isinstance(bits, bool) or not isinstance(bits, int) or not 1 <= bits <= 32:
+                raise cx.fail(f"{where}.bits", f" = {bits!r} is not a whole number of bits in "
+                              f"[1, 32]")
+            rng = it["range"]
+            if not isinstance(rng, list) or len(rng) != 2:
+                raise cx.fail(f"{where}.range", f" = {rng!r} is not [lo, hi], e.g. "
+                              f"[\"0 {unit}\", \"1000 {unit}\"]")
+            lo = _quantity(cx, f"{where}.range[0]", rng[0], unit, (-1e9, 1e9))
+            hi = _quantity(cx, f"{where}.range[1]", rng[1], unit, (-1e9, 1e9))
+            if not hi > lo:
+                why = ("is empty: the upper end must be above the lower one" if hi == lo else
+                       f"is reversed: write the lower end first, [{hi:g} {unit}, {lo:g} {unit}]")
+                raise cx.fail(f"{where}.range", f" = [{lo:g}, {hi:g}] {unit} {why}")
+        out.append(Sensor(signal=sig, cutoff=cutoff, bits=bits, lo=lo, hi=hi,
+                          sample_offset=soff, offset=offset))
+    # a limit beyond every reading of the ADC never trips (an out-of-range input reads as the
+    # end code): refuse it rather than run an interlock that cannot act
+    adc = {s.signal: s for s in out if s.bits}
+    for k, il in enumerate(interlocks):
+        s = adc.get(il.signal)
+        if s is None or il.side not in (SIDE_ABOVE, SIDE_BELOW, SIDE_MAGNITUDE):
+            continue
+        top = s.hi - s.lsb
+        never = (il.threshold >= top if il.side == SIDE_ABOVE
+                 else il.threshold <= s.lo if il.side == SIDE_BELOW
+                 else il.threshold >= max(abs(s.lo), abs(top)))
+        if never:
+            j = next(n for n, x in enumerate(out) if x.signal == il.signal)
+            raise cx.fail(f"sensors[{j}].range", f" = [{s.lo:g}, {s.hi:g}] {il.unit}: interlock "
+                          f"{il.describe()} can never trip, since the ADC reads at most "
+                          f"{top:g} {il.unit} and at least {s.lo:g} {il.unit}; widen the range "
+                          f"beyond the limit")
+    return out

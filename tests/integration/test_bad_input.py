@@ -24,6 +24,15 @@ CASES = {
     # terminal escape codes in the title (ESC [2J clears the screen)
     "escape": (lambda d: _demo_with(d, 'title = "', 'title = "\\u001b[2J\\u001b[31m'),
                r"escape\.toml: title holds the control character U\+001B at position 0"),
+    # a sensor chain's ADC range written upside down
+    "sensor_range": (lambda d: Path(d).read_text() + '\n[[sensors]]\nsignal = "v_out"\nbits = 12\n'
+                     'range = ["1000 V", "0 V"]\n',
+                     r"sensor_range\.toml: sensors\[0\]\.range = \[1000, 0\] V is reversed: write "
+                     r"the lower end first"),
+    # a start excitation far beyond a small offset (docs/scenarios.md, [initial])
+    "offset": (lambda d: Path(d).read_text() + '\n[initial]\nv_out_offset = "-30 %"\n',
+               r"offset\.toml: initial\.v_out_offset = '-30 %' is outside \[-10, 10\] % of the "
+               r"start voltage; write a percentage"),
 }
 
 

@@ -117,6 +117,29 @@ def test_samples_lost_before_the_first_one_do_not_leave_a_zero_measurement(tmp_p
     assert 10.0 * np.exp(-20e-3 / 20e-3) < v[0] < 10.0
 
 
+def test_a_held_tick_runs_the_sensor_chain_on_the_sample_as_received(tmp_path, plugin_dir):
+    """Samples lost (UDP, 30 % loss from 20 to 70 ms): a tick without a fresh sample holds the
+    last one received. The tick changes y in place (sensor chain, sensor faults); a held tick
+    must start again from the sample itself, or a 1 V measurement offset is added twice (and
+    the recorded true value is the last reading, 1 V above the plant)."""
+    scen = _files(tmp_path, plugin_dir, duration="0.1 s")
+    scen.write_text(scen.read_text() + '\n[watchdogs]\nmax_gap = 100000\n'
+                    '[[faults]]\nkind = "link_loss"\nvalue = 0.3\nstart = "20 ms"\nend = "70 ms"\n'
+                    '[[sensors]]\nsignal = "v_out"\noffset = "1 V"\n')
+    p, _ = _session(scen, udp_address(), tmp_path / "r")
+    assert p.returncode == 0, p.stdout + p.stderr
+    s = json.loads((tmp_path / "r" / "summary.json").read_text())
+    held = s["bridge"]["held_ticks"]
+    assert held >= 1
+    run = open_run(tmp_path / "r")
+    true, v = run.signals["true_v_out"], run.signals["v_out"]
+    # the reading is the sample plus the offset on every tick, held or fresh
+    np.testing.assert_allclose(v - true, 1.0, rtol=0, atol=1e-9)
+    # a held tick records the held sample again, exactly (held twice, it read 1 V higher)
+    step = np.diff(true)
+    assert np.sum(step == 0.0) >= held, (held, step[np.abs(step - 1.0) < 1e-9].size)
+
+
 def test_killing_the_simulator_trips_the_staleness_watchdog(tmp_path, plugin_dir):
     """Issue requirement: killing the stand-in simulator mid-run trips the staleness watchdog
     within its limit, the safe state is applied, and the recording up to the trip is intact
