@@ -625,8 +625,9 @@ def _envelope(console, args, plain: bool) -> None:
         for line in env.text_map(rows, c, order):
             console.print(escape(line), highlight=False)
     # a cell that trips shows the letter of its first cause (the key below), else T
-    console.print("map: " + "  ".join(f"{sym} {o}" for o, sym in env.SYMBOLS.items()
-                                      if o != "trips" or not order))
+    console.print(escape("map: " + "  ".join(f"{sym} {env.legend_label(o)}"
+                                             for o, sym in env.SYMBOLS.items()
+                                             if o != "trips" or not order)))
     for line in env.cause_key(rows):
         console.print("     " + line, markup=False, soft_wrap=True)
     for c in names:

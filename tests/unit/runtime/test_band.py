@@ -185,3 +185,18 @@ def test_metrics_are_withheld_after_a_plant_integration_error():
     assert oc["status"] == "integration error"
     assert oc["first_cause"] == ("plant integration error: tick 399 (t = 19.95 ms): v_out "
                                  "beyond the energy bound")
+
+
+def test_an_envelope_cell_word_follows_the_run_outcome():
+    from hilrig.runtime import envelope as env
+    # the map's own final-part word only refines a run that reached its end
+    assert env.cell_word("tripped", "tracks") == "trips"
+    assert env.cell_word("integration error", "tracks") == "integration error"
+    assert env.cell_word("collapsed", "tracks") == "collapses"
+    assert env.cell_word("oscillating", "saturates") == "oscillates"
+    assert env.cell_word("out of band", "tracks") == "oscillates"   # never "tracks"
+    assert env.cell_word("out of band", "saturates") == "saturates"
+    assert env.cell_word("completed", "tracks") == "tracks"
+    assert set(env.OUTCOMES) == set(env.SYMBOLS) == set(env.COLOURS) == set(env.OUTCOME_WORDS)
+    assert env.legend_label("tracks") == "tracks (completed)"
+    assert env.legend_label("integration error") == "integration error"
