@@ -541,6 +541,8 @@ def _compare(console, args) -> None:
     for name, r in results.items():
         if not r["outcome"]["completed"]:
             console.print(f"{r['rank']}. {escape(labels[name])}: {escape(r['outcome']['text'])}")
+        if r.get("metrics_note"):
+            console.print(f"   no metrics: {escape(r['metrics_note'])}")
     console.print(escape(RANK_RULE) + ". * covers only the part of the run before it ended "
                   "(column covers). rise, settle, overshoot and ss error: of the largest "
                   "reference step of the run (10-90 % rise, 2 % settling band). Plots and run "
