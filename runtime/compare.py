@@ -34,10 +34,10 @@ JSON_FIELDS = ("rank", "outcome", "covers_s", "metrics_note") + JSON_KEYS
 #: the metric that orders candidates of the same outcome class (smaller first)
 RANK_METRIC = "iae_Vs"
 #: the ranking rule in words, for the table's footer and the docs
-RANK_RULE = ("ranked: runs that completed (inside their tracking band) first, by IAE (smaller "
-             "first); then runs that reached their end without a trip but oscillated, left "
-             "their band or missed their timing; then the others, whatever their metrics "
-             "(those that reached the planned end first, then the longest)")
+RANK_RULE = ("ranked: runs that completed first, by IAE (smaller first; completed: inside "
+             "the tracking band too); then runs that reached their end without a trip but "
+             "oscillated, left their band or missed their timing; then the others, whatever "
+             "their metrics (those that reached the planned end first, then the longest)")
 
 
 def folder_name(candidate: str) -> str:
