@@ -5,7 +5,8 @@ and JSON file shows.
 the comparison (table, ``--json``, comparison.json, plots) and the live view's end state all
 show what it returns, and ``run.execute`` stores it as ``summary["outcome"]``. It reads only the
 summary (``ticks_planned``, ``ticks_run``, ``Ts_s``, ``simulated_s``, ``end_event``,
-``events``, ``paced``), so a summary.json written by an older version is judged the same way.
+``events``, ``paced``, ``tracking``), so a summary.json written by an older version is judged
+the same way (one without ``tracking`` is not judged on its band).
 
 Statuses, worst cause first (the status names the first abnormal thing; anything after it is
 in ``then``):
@@ -32,10 +33,10 @@ in ``then``):
     process).
 ``oscillating``
     the run otherwise reached its planned end, but inside a settled window the output swung
-    across the window's mean at least ``metrics.OSC_SWINGS`` (3) full periods, each half-swing from
-    more than one band above the mean to more than one band below it (so peak to peak above
-    twice the band), with at least one full period in the window's last half (sustained, not
-    a decaying transient). Takes precedence over "out of band".
+    across the window's mean at least ``metrics.OSC_SWINGS`` (3) full periods, each
+    half-swing from more than one band above the mean to more than one band below it (so
+    peak to peak above twice the band), with at least one full period in the window's last
+    half (sustained, not a decaying transient). Takes precedence over "out of band".
 ``out of band``
     the run otherwise reached its planned end, but inside a settled window
     ``|v_ref_raw - v_out|`` stayed above the tracking band for longer than
