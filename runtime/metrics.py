@@ -74,13 +74,13 @@ meaningless (an IAE of 1e180).
 
 Tracking band (:func:`band_check`, the outcomes "out of band" and "oscillating" of
 ``runtime/outcome.py``): the band at a sample is ``max(BAND_REL |v_ref_raw|, BAND_FLOOR_V)``
-(5 %, at least 0.5 V). Settled windows start ``SETTLE_DELAY_S`` (10 ms) after the run's start
-and after the end of each step or ramp, and end at the next step or ramp (its last hold tick),
+(5 %, at least 0.5 V). Settled windows start ``SETTLE_DELAY_S`` (10 ms, but at least
+``SETTLE_TICKS`` = 100 ticks) after the run's start and after the end of each step or ramp, and end at the next step or ramp (its last hold tick),
 at the run's end, or at the cut above, whichever comes first. In a settled window:
 
 - out of band: ``|v_ref_raw - v_out|`` above the band (a non-finite output counts as above)
   on consecutive samples for longer than ``OUT_OF_BAND_S`` (2 ms, i.e. more than 2 ms / Ts
-  samples);
+  samples, and more than ``OUT_OF_BAND_TICKS`` = 20);
 - oscillating: with m the mean of v_out over the window and b the band at the window's mean
   |v_ref_raw|, each sample is high (v_out > m + b), low (v_out < m - b) or neither; a
   half-swing is a change from high to low or back, skipping the samples in between (a
@@ -90,7 +90,11 @@ at the run's end, or at the cut above, whichever comes first. In a settled windo
 
 The 5 % band is the tracking band a trial of a voltage loop is judged by (common practice, no
 source); 10 ms covers several closed-loop time constants of the shipped controllers (about
-1 ms rise); 2 ms is a couple of those, so a load step's dip that recovers does not count.
+1 ms rise); 2 ms is a couple of those, so a load step's dip that recovers does not count. The
+tick floors are for slow-sampled loops (a 1 kHz test loop): a digital loop's bandwidth is a
+tenth to a twentieth of its sampling rate at best (common practice, no source), so its
+settling spans some tens of ticks whatever its period; at the usual 20 kHz (50 us) the
+millisecond figures rule (100 ticks = 5 ms, 20 ticks = 1 ms).
 
 References
 ----------
@@ -127,6 +131,9 @@ BAND_REL = 0.05
 BAND_FLOOR_V = 0.5
 SETTLE_DELAY_S = 10e-3
 OUT_OF_BAND_S = 2e-3
+#: ... and never fewer ticks than these (a slow-sampled loop settles in ticks, not ms)
+SETTLE_TICKS = 100
+OUT_OF_BAND_TICKS = 20
 OSC_SWINGS = 3
 #: the metric keys of each segment kind (NaN when a segment is not scored)
 _STEP_KEYS = ("rise_time_s", "settling_time_s", "overshoot_pct", "undershoot_pct", "peak_V",
@@ -535,8 +542,9 @@ def band_check(t: np.ndarray, v_out: np.ndarray, v_ref_raw: np.ndarray, *,
         changes = split_reference(r)[0]
     starts = [0] + [ch.b for ch in changes]
     ends = [ch.a + 1 for ch in changes] + [n]
-    delay = int(math.ceil(SETTLE_DELAY_S / ts - 1e-9))
-    limit = int(math.floor(OUT_OF_BAND_S / ts + 1e-9))   # more than this many samples
+    delay = max(int(math.ceil(SETTLE_DELAY_S / ts - 1e-9)), SETTLE_TICKS)
+    limit = max(int(math.floor(OUT_OF_BAND_S / ts + 1e-9)), OUT_OF_BAND_TICKS)   # more than
+    out.update(settle_delay_s=delay * ts, out_of_band_limit_s=limit * ts)
     err = np.abs(r - y)
     band = np.maximum(BAND_REL * np.abs(r), BAND_FLOOR_V)
     outside = ~(err <= band)                             # NaN counts as outside

@@ -40,7 +40,7 @@ in ``then``):
 ``out of band``
     the run otherwise reached its planned end, but inside a settled window
     ``|v_ref_raw - v_out|`` stayed above the tracking band for longer than
-    ``metrics.OUT_OF_BAND_S`` (2 ms) without a break.
+    ``metrics.OUT_OF_BAND_S`` (2 ms, and 20 ticks) without a break.
 ``timing not met``
     a paced run that otherwise completed, whose timing verdict
     (``summary["paced"]["verdict"]["timing_met"]``) is false (after "oscillating" and "out of
@@ -51,7 +51,7 @@ in ``then``):
 The band and the settled windows (``runtime/metrics.py`` ``band_check``, stored by
 ``run.execute`` as ``summary["tracking"]``): the band at a sample is
 ``max(BAND_REL |v_ref_raw|, BAND_FLOOR_V)`` = max(5 % of the raw reference, 0.5 V); a settled
-window starts ``SETTLE_DELAY_S`` (10 ms) after the run's start and after each step's or ramp's
+window starts ``SETTLE_DELAY_S`` (10 ms, at least 100 ticks) after the run's start and after each step's or ramp's
 end, and lasts to the next step or ramp (or the run's end, or its first trip or collapse).
 
 Only "completed" counts as completed: a tripped run that held its safe output to the planned

@@ -8,8 +8,8 @@ import numpy as np
 import pytest
 
 from hilrig.runtime.metrics import (BAND_FLOOR_V, BAND_REL, OSC_SWINGS, OUT_OF_BAND_S,
-                                    SETTLE_DELAY_S, band_check, segment_metrics,
-                                    withhold_metrics)
+                                    OUT_OF_BAND_TICKS, SETTLE_DELAY_S, SETTLE_TICKS, band_check,
+                                    segment_metrics, withhold_metrics)
 from hilrig.runtime.outcome import judge
 
 TS = 50e-6
@@ -25,9 +25,26 @@ def _settled_window_start():
 
 
 def test_the_documented_constants():
-    # 5 % band with a 0.5 V floor, 10 ms settling allowance, 2 ms outside, 3 full swings
-    assert (BAND_REL, BAND_FLOOR_V, SETTLE_DELAY_S, OUT_OF_BAND_S, OSC_SWINGS) == \
-        (0.05, 0.5, 10e-3, 2e-3, 3)
+    # 5 % band with a 0.5 V floor, 10 ms (100 ticks) settling allowance, 2 ms (20 ticks)
+    # outside, 3 full swings
+    assert (BAND_REL, BAND_FLOOR_V, SETTLE_DELAY_S, SETTLE_TICKS, OUT_OF_BAND_S,
+            OUT_OF_BAND_TICKS, OSC_SWINGS) == (0.05, 0.5, 10e-3, 100, 2e-3, 20, 3)
+
+
+def test_a_slow_sampled_loop_gets_its_tick_floors():
+    # 1 ms ticks: the window starts 100 ticks after the step, the limit is 20 ticks
+    ts = 1e-3
+    t = np.arange(400) * ts
+    r = np.where(np.arange(400) > 50, 12.0, 10.0)
+    y = r.copy()
+    y[51:51 + 90] = 10.0               # 90 ms behind the step: inside the settling allowance
+    y[200:215] -= 1.0                  # 15 ticks outside: under the 20-tick limit
+    tr = band_check(t, y, r)
+    assert tr["settle_delay_s"] == pytest.approx(0.1) and tr["out_of_band_limit_s"] == pytest.approx(0.02)
+    assert tr["windows"][0][0] == pytest.approx(0.151)
+    assert tr["out_of_band"] is False
+    y[200:222] -= 1.0                  # 22 ticks: out of band
+    assert band_check(t, y, r)["out_of_band"] is True
 
 
 def test_a_sustained_sine_is_oscillating_with_its_period_count():
