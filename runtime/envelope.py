@@ -20,11 +20,11 @@ that reached its end without a trip, by its final part (the last 30 % of the run
 ``collapses``  the outcome is "collapsed": the output collapsed without a trip;
 ``tracks``     the outcome is "completed" and |v_ref - v_out| stayed within the map's
                tolerance band (default 2 % of V) over the final part;
-``saturates``  outside that band (or "out of band" as an outcome) with the command at the
-               converter's limits on more than 10 % of the final part's ticks (the converter
-               cannot deliver what the controller asks);
-``oscillates`` the outcome is "oscillating", or outside the band otherwise (a slow drift, or
-               "out of band" as an outcome).
+``saturates``  outside that band (or "out of band" or "oscillating" as an outcome) with the
+               command at the converter's limits on more than 10 % of the final part's ticks
+               (the converter cannot deliver what the controller asks);
+``oscillates`` outside the band otherwise: "oscillating" or "out of band" as an outcome, or a
+               slow drift in the final part.
 
 So a cell "tracks" only when its run would read "completed" (the one "ok" of a run), and the
 words of the map's legend say which outcome each cell word stands for (:data:`OUTCOME_WORDS`).
@@ -59,7 +59,8 @@ SYMBOLS = {"tracks": ".", "oscillates": "~", "saturates": "s", "trips": "T", "co
            "integration error": "!"}
 #: the run outcome (runtime/outcome.py status) each cell word stands for, shown in the legends
 OUTCOME_WORDS = {"tracks": "completed", "oscillates": "oscillating, or out of band",
-                 "saturates": "out of band at the command's limits", "trips": "tripped",
+                 "saturates": "out of band or oscillating, command at its limits",
+                 "trips": "tripped",
                  "collapses": "collapsed", "integration error": "integration error"}
 FINAL_PART = 0.3
 SATURATED_SHARE = 0.1
@@ -217,12 +218,12 @@ def cell_word(status: str, word: str) -> str:
         return "trips"
     if status == "integration error":
         return "integration error"
-    if status == "oscillating":
-        return "oscillates"
     if status == "completed" or status == "timing not met":
         return word
-    if status == "out of band":
-        return word if word != "tracks" else "oscillates"
+    if status in ("oscillating", "out of band"):
+        # at the command's limits the converter is the cause (a saturated command damps
+        # nothing): "saturates"; else the loop's own
+        return "saturates" if word == "saturates" else "oscillates"
     # collapsed (and no other end can come from a cell's SIL loop)
     return "collapses"
 

@@ -210,8 +210,9 @@ def test_an_envelope_cell_word_follows_the_run_outcome():
     assert env.cell_word("tripped", "tracks") == "trips"
     assert env.cell_word("integration error", "tracks") == "integration error"
     assert env.cell_word("collapsed", "tracks") == "collapses"
-    assert env.cell_word("oscillating", "saturates") == "oscillates"
-    assert env.cell_word("out of band", "tracks") == "oscillates"   # never "tracks"
+    assert env.cell_word("oscillating", "tracks") == "oscillates"   # never "tracks"
+    assert env.cell_word("oscillating", "saturates") == "saturates"
+    assert env.cell_word("out of band", "tracks") == "oscillates"
     assert env.cell_word("out of band", "saturates") == "saturates"
     assert env.cell_word("completed", "tracks") == "tracks"
     assert set(env.OUTCOMES) == set(env.SYMBOLS) == set(env.COLOURS) == set(env.OUTCOME_WORDS)
