@@ -218,3 +218,21 @@ def test_an_envelope_cell_word_follows_the_run_outcome():
     assert set(env.OUTCOMES) == set(env.SYMBOLS) == set(env.COLOURS) == set(env.OUTCOME_WORDS)
     assert env.legend_label("tracks") == "tracks (completed)"
     assert env.legend_label("integration error") == "integration error"
+
+
+def test_a_ramp_cut_by_a_trip_has_no_lag_and_says_where_it_was_cut():
+    # 24 V -> 28 V over 2 ms from 5 ms; the output follows 0.1 ms behind (a pure delay of two
+    # ticks: its lag is 0.1 ms by definition); a trip at 6 ms cuts the ramp in its middle
+    k = np.arange(N)
+    r = np.clip(24.0 + (k - 100) * (4.0 / 40), 24.0, 28.0)
+    y = np.concatenate(([24.0, 24.0], r[:-2]))
+    whole, _ = segment_metrics(T, y, r)
+    ramp = next(g for g in whole if g["kind"] == "ramp")
+    assert ramp["lag_s"] == pytest.approx(2 * TS)
+    segs, info = segment_metrics(T, y, r, cut=120, cut_reason="the first trip")
+    ramp = next(g for g in segs if g["kind"] == "ramp")
+    assert math.isnan(ramp["lag_s"]) and math.isnan(ramp["settling_time_s"])
+    assert ramp["cut_at_s"] == pytest.approx(120 * TS) == info["cut_at_s"]
+    assert ramp["note"] == "scored only up to the first trip at 6 ms"
+    # its largest error covers the samples before the cut only: 2 ticks of slope = 0.2 V
+    assert ramp["max_abs_error_V"] == pytest.approx(0.2)
