@@ -17,6 +17,9 @@ Variants:
   every float divisor for zero so that it can raise ZeroDivisionError (the runtime compiles
   with ``error_model="numpy"``: a division by zero gives inf or NaN, which the protect stage
   trips on); ``before`` has both, as the loop was compiled before this change;
+- ``fixed sub-steps``: the chunk as it was before the stiffness-aware integration (every
+  substep one RK4 step, no rate check, no energy check after the tick); nothing is stiff on
+  this scenario, so its recording must equal the generated loop's bit for bit, which is checked;
 - ``owned arrays``: the chunk without the borrowed views (every array argument counted by
   numba's reference counting, as before :mod:`hilrig.runtime.borrow`); its recording must equal
   the generated loop's bit for bit, which is checked;
@@ -25,7 +28,7 @@ Variants:
   record, no RK4). Removing a stage changes what the others compute (without the RK4 the plant
   stands still), so the differences are each stage's approximate cost and need not add up.
 
-Run: python bench/loop_stages.py [--reps 11] [--only generated,owned,bounds-checked]
+Run: python bench/loop_stages.py [--reps 11] [--only generated,owned,bounds-checked,fixed]
 The last printed line is JSON: {variant: median ns per tick}.
 """
 from __future__ import annotations
@@ -81,17 +84,27 @@ VARIANTS = {
                "        word = wword\n")],
     "without record": [_resub(r"        # 7 record\n(.*\n)*?        rec\[i, c \+ 1\] = code\n",
                               "        rec[i, 0] = word + code\n")],
-    "without RK4": [_sub("        advance(t, ts, nsub, pp, x, u, d)\n", "")],
-    "generic RK4": [lambda text: _sub("        s = plant_rk4_step(dt, pp, s, u, d)\n",
+    "without RK4": [_sub("        nref = advance(t, ts, nsub, zf, pp, x, u, d)\n", "        nref = 0\n")],
+    "generic RK4": [lambda text: _sub("    s = plant_rk4_step(dt, pp, s, u, d)\n",
                                       _generic_rk4() + "\n")(text)],
+    "fixed sub-steps (before the stiffness-aware rule)": [lambda text: fixed_substeps(text)],
     "bounds-checked (--checked)": [lambda text: _checked(text)],
     "zero-divisor checks": [_sub('@njit(cache=True, error_model="numpy")\ndef run_chunk',
                                  "@njit(cache=True)\ndef run_chunk")],
     "before (generic RK4 with zero-divisor checks)": [
-        lambda text: _sub("        s = plant_rk4_step(dt, pp, s, u, d)\n", _generic_rk4() + "\n")(text),
+        lambda text: _sub("    s = plant_rk4_step(dt, pp, s, u, d)\n", _generic_rk4() + "\n")(text),
         _sub('@njit(cache=True, error_model="numpy")\ndef run_chunk',
              "@njit(cache=True)\ndef run_chunk")],
 }
+
+
+def fixed_substeps(text):
+    """The loop as it was before the stiffness-aware integration: every substep one RK4 step
+    (no rate check), and no energy check after the tick."""
+    from hilrig.runtime.loop import _energy_text, _rk4_text
+    t = _sub(_rk4_text(4, True, True)["fast_step"], _rk4_text(4, True, False)["fast_step"])(text)
+    e = _energy_text(True)
+    return _sub(e["energy_check"], "")(_sub(e["energy_start"], "")(t))
 
 
 def _checked(text):
@@ -160,7 +173,8 @@ def main():
     for name, fn in fns.items():  # compile, and keep one whole recording for the check
         recs[name] = np.zeros((n, width))
         run(fn, recs[name])
-    for key in ("owned", "bounds-checked (--checked)"):
+    for key in ("owned", "bounds-checked (--checked)",
+                "fixed sub-steps (before the stiffness-aware rule)"):
         if key in fns and recs[key].tobytes() != recs["generated"].tobytes():
             raise SystemExit(f"{key}: the recording differs from the generated loop's")
     if "owned" in fns:

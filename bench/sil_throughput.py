@@ -11,6 +11,11 @@ The peer is what a practitioner would script today: the same plant and the same 
 with python-control's ``input_output_response`` over 0.02 s (its speed does not depend on the
 length). Steps per second = simulated control periods / wall time.
 
+Also measured, interleaved with the loop: the same loop as it was before the stiffness-aware
+integration (fixed RK4 sub-steps, no rate or energy check; ``bench/loop_stages.py``
+``fixed_substeps``), and the cost ratio of the new rule, time per step new / fixed (nothing is
+stiff on this scenario, so both compute the same recording).
+
 Also measured: start-up of a fresh process to the first tick, with the loop cache warm and cold
 (a new HILRIG_CACHE_DIR; numba's own cache of the plugin kernels stays warm in both).
 
@@ -64,31 +69,51 @@ debounce = 20
 """
 
 
+def fixed_loop(sc, tmp: Path):
+    """The SIL chunk as it was before the stiffness-aware integration (fixed RK4 sub-steps, no
+    rate check, no energy check: bench/loop_stages.py fixed_substeps), compiled here."""
+    from loop_stages import build, fixed_substeps
+    from hilrig.runtime import loop as L
+    path, _ = L.generate(sc.plant.plugin, sc.controller.plugin, sc.reference.plugin)
+    text = path.read_text()
+    jit = '@njit(cache=True, error_model="numpy")\n'
+    head, rest = text.split(jit + "def run_chunk", 1)
+    base = head + jit + "def run_chunk" + rest.split("\n\n\n@njit", 1)[0] + "\n"
+    return build(fixed_substeps(base), "hilrig_bench_fixed_substeps", tmp)
+
+
 def hilrig_runs(reps: int, tmp: Path):
     from hilrig.runtime import run as R
     from hilrig.runtime.scenario import parse_scenario
     sc = parse_scenario(SCENARIO, name="bench.toml")
     fn, _, _ = R.compile_loop(sc)
+    fixed = fixed_loop(sc, tmp)
     prep = R.prepare(sc)
     n = sc.n_ticks
     chunk = int(round(sc.recording["chunk"] / sc.Ts))
     rec = np.zeros((chunk, len(prep.signals)))
     R._call(fn, 0, 0, rec, prep.args)
+    R._call(fixed, 0, 0, rec, R.prepare(sc).args)
     R.run_scenario(sc, tmp / "warm")  # warm-up
-    loop_rates, e2e_rates = [], []
-    for i in range(reps):
-        # loop alone, same chunking as a run
+    loop_rates, e2e_rates, fixed_rates = [], [], []
+
+    def loop_alone(f):
         a = R.prepare(sc).args
         t = time.perf_counter()
         done = 0
         while done < n:
-            done += R._call(fn, done, min(chunk, n - done), rec, a)
-        loop_rates.append(n / (time.perf_counter() - t))
+            done += R._call(f, done, min(chunk, n - done), rec, a)
+        return n / (time.perf_counter() - t)
+
+    for i in range(reps):
+        # loop alone, same chunking as a run; and the loop as before the stiffness-aware rule
+        loop_rates.append(loop_alone(fn))
+        fixed_rates.append(loop_alone(fixed))
         # end to end: loop + HDF5 writes and flushes + metrics
         t = time.perf_counter()
         R.run_scenario(sc, tmp / f"run{i}")
         e2e_rates.append(n / (time.perf_counter() - t))
-    return loop_rates, e2e_rates, sc
+    return loop_rates, e2e_rates, fixed_rates, sc
 
 
 def peer_rate(sc, t_end=0.02, reps=3):
@@ -164,19 +189,22 @@ def main():
     args = ap.parse_args()
     tmp = Path(tempfile.mkdtemp(prefix="hilrig-bench-"))
     os.environ.setdefault("HILRIG_CACHE_DIR", str(tmp / "cache"))
-    loop_rates, e2e_rates, sc = hilrig_runs(args.reps, tmp)
+    loop_rates, e2e_rates, fixed_rates, sc = hilrig_runs(args.reps, tmp)
     peer = peer_rate(sc)
     # interleave once more so that both sides see the same machine load
     (tmp / "again").mkdir()
-    loop2, e2e2, _ = hilrig_runs(2, tmp / "again")
+    loop2, e2e2, fixed2, _ = hilrig_runs(2, tmp / "again")
     loop_rates += loop2
     e2e_rates += e2e2
+    fixed_rates += fixed2
     peer += peer_rate(sc, reps=2)
     warm = [startup(tmp, Path(os.environ["HILRIG_CACHE_DIR"]))[0] for _ in range(3)]
     cold = [startup(tmp, tmp / f"cold{i}")[0] for i in range(2)]
     med = st.median
     print(f"hilrig loop alone : {med(loop_rates):>14,.0f} steps/s (median of {len(loop_rates)}; "
           f"{1e9 / med(loop_rates):.0f} ns per step)")
+    print(f"hilrig loop, fixed: {med(fixed_rates):>14,.0f} steps/s (the loop before the stiffness-aware "
+          f"integration; new / fixed time per step: {med(fixed_rates) / med(loop_rates):.3f})")
     print(f"hilrig end to end : {med(e2e_rates):>14,.0f} steps/s (loop + HDF5 write/flush + metrics)")
     print(f"python-control    : {med(peer):>14,.0f} steps/s (input_output_response, median of {len(peer)})")
     print(f"ratio (loop with its record stage / peer): {med(loop_rates) / med(peer):,.0f}x; "
@@ -185,6 +213,8 @@ def main():
           f"cold loop cache {['%.2f' % c for c in cold]} s")
     print(json.dumps({
         "hilrig_steps_per_s": med(loop_rates), "hilrig_end_to_end_steps_per_s": med(e2e_rates),
+        "hilrig_fixed_substeps_steps_per_s": med(fixed_rates),
+        "stiffness_aware_cost_ratio": med(fixed_rates) / med(loop_rates),
         "peer_steps_per_s": med(peer), "ratio": med(loop_rates) / med(peer),
         "ratio_end_to_end": med(e2e_rates) / med(peer),
         "startup_warm_s": med(warm), "startup_cold_s": med(cold),

@@ -222,7 +222,7 @@ class StandIn:
         self.reset()
         # compile (or load) both kernels now, not in the middle of a session
         self.sample(0)
-        self.advance_k(0.0, sc.Ts, sc.substeps, self.pp, self.x.copy(), self.u, self.d.copy())
+        self.advance_k(0.0, sc.Ts, self.nsub, self.zf, self.pp, self.x.copy(), self.u, self.d.copy())
         self.reset()
 
     def welcome(self, mode: str) -> P.Welcome:
@@ -234,6 +234,8 @@ class StandIn:
     def reset(self):
         a = prepare(self.sc).args
         self.faults = (*fault_args(a), a["wd"])
+        # the same integration as a SIL run of the scenario (sub-steps and stiffness rule)
+        self.nsub, self.zf = a["nsub"], a["zf"]
         self.pp, self.x = a["pp"], a["x"].copy()
         self.load_t, self.load_v = a["load_t"], a["load_v"]
         self.lcur = np.zeros(1, dtype=np.int64)
@@ -263,7 +265,7 @@ class StandIn:
     def step(self, u: np.ndarray) -> bool:
         """Apply u for one period from tick k (load held as sampled), advance to k + 1."""
         self.u[:] = u
-        ok = self.advance_k(self.k * self.sc.Ts, self.sc.Ts, self.sc.substeps, self.pp, self.x,
+        ok = self.advance_k(self.k * self.sc.Ts, self.sc.Ts, self.nsub, self.zf, self.pp, self.x,
                             self.u, self.d)
         self.k += 1
         return bool(ok)
@@ -302,7 +304,7 @@ class _CompiledServer:
     def block(self, k: int, limit: int) -> int:
         """Serve ticks k .. limit-1 at most; return the status (the tick reached is sim.k)."""
         sim = self.sim
-        k_end = self.serve_k(k, limit, sim.sc.Ts, sim.sc.substeps, sim.pp, sim.x, sim.u,
+        k_end = self.serve_k(k, limit, sim.sc.Ts, sim.nsub, sim.zf, sim.pp, sim.x, sim.u,
                              sim.load_t, sim.load_v, sim.lcur, sim.d, sim.y, *sim.faults,
                              self.io, self.rbuf, self.sbuf, self.pfd, self.addr, self.alen)
         if k_end > k:

@@ -466,14 +466,17 @@ def _compare(console, args) -> None:
     from rich.table import Table
 
     from hilrig.runtime.compare import compare, json_view
-    from hilrig.runtime.scenario import load_scenario
+    from hilrig.runtime.scenario import plan_candidates
 
     names = [c.strip() for c in args.controllers.split(",") if c.strip()]
     out = Path(args.out) if args.out else Path("runs") / (
         _dt.datetime.now().strftime("%Y%m%d-%H%M%S") + "-compare")
     overrides = _overrides(args.set)
+    # every candidate and override checked before the caution and the runs (compare checks
+    # them again; an override no candidate takes is refused here, before anything is shown)
+    shared, _ = plan_candidates(args.scenario, overrides, names)
     if not args.json:
-        _show_caution(console, load_scenario(args.scenario, overrides=overrides))
+        _show_caution(console, shared)
     results = compare(Path(args.scenario), names, out, overwrite=args.overwrite,
                       overrides=overrides,
                       notice=None if args.json else (lambda m: console.print(m)),
@@ -556,7 +559,7 @@ def _envelope(console, args, plain: bool) -> None:
     from rich.markup import escape
 
     from hilrig.runtime import envelope as env
-    from hilrig.runtime.scenario import load_scenario
+    from hilrig.runtime.scenario import not_applied_lines, plan_candidates
     from hilrig.runtime.units import parse_quantity
 
     names = [c.strip() for c in (args.controllers or "").split(",") if c.strip()]
@@ -570,10 +573,9 @@ def _envelope(console, args, plain: bool) -> None:
     path = Path(args.scenario)
     overrides = _overrides(args.set)
     # validates the file and the --set overrides once, with run's messages, and every
-    # candidate before anything runs
-    sc = load_scenario(path, overrides=overrides)
-    for c in names:
-        load_scenario(path, overrides={**overrides, **env._controller_override(sc.text, c)})
+    # candidate before anything runs: a controller parameter reaches the candidates that
+    # have it (listed as not applied for the others; none taking it is an error)
+    sc, plans = plan_candidates(path, overrides, names)
     v_start = parse_quantity(args.v_start, "V", "--v-start") if args.v_start else None
     out = Path(args.out) if args.out else Path("runs") / (
         _dt.datetime.now().strftime("%Y%m%d-%H%M%S") + "-envelope")
@@ -585,10 +587,14 @@ def _envelope(console, args, plain: bool) -> None:
             print(f"notice: {note}", file=sys.stderr)
     else:
         _show_caution(console, sc, notes)
+    for line in not_applied_lines(plans):
+        print(line, file=sys.stderr) if args.json else console.print(line, markup=False, soft_wrap=True)
+    if not args.json:
         console.print(f"{len(names)} controller(s) x {len(grid.v)} x {len(grid.p)} operating points"
                       + (f" on the Dask cluster at {args.cluster}" if args.cluster else " on local processes"))
-    # the scenario's text with the overrides applied: what every candidate runs
-    tasks = env.tasks_for(sc.text, path.name, names, grid, tol_pct=args.tolerance, v_start=v_start)
+    # each candidate's scenario text with the overrides it takes: what its cells run
+    tasks = [t for c in names for t in env.tasks_for(plans[c].scenario.text, path.name, [c], grid,
+                                                     tol_pct=args.tolerance, v_start=v_start)]
     t0 = time.perf_counter()
     if not args.cluster:
         if not args.json:
@@ -615,11 +621,13 @@ def _envelope(console, args, plain: bool) -> None:
     worst = {}
     for c in names:
         w = env.worst_cell(rows, c)
+        # the candidate's own overrides (its controller, then what it takes), then the cell's
         worst[c] = None if w is None else {**w, "command": env.run_command(
-            args.scenario, args.set, env.cell_overrides(sc, c, w["v_ref_V"], w["p_load_W"], v_start))}
+            args.scenario, env.set_items(plans[c].overrides),
+            env.cell_overrides(plans[c].scenario, c, w["v_ref_V"], w["p_load_W"], v_start))}
     if args.json:
-        print(_json_text({c: {"outcomes": cnt[c], "trip_causes": why[c], "worst": worst[c]}
-                          for c in names}))
+        print(_json_text({c: {"outcomes": cnt[c], "trip_causes": why[c], "worst": worst[c],
+                              "overrides": plans[c].scenario.overrides} for c in names}))
         return
     order = env.causes(rows)
     for c in names:
@@ -656,7 +664,7 @@ def _envelope_cell(console, args, plain: bool, names: list[str]) -> None:
     import datetime as _dt
 
     from hilrig.runtime import envelope as env
-    from hilrig.runtime.scenario import load_scenario
+    from hilrig.runtime.scenario import plan_candidates
     from hilrig.runtime.units import parse_quantity
 
     parts = args.cell.split(",")
@@ -680,9 +688,11 @@ def _envelope_cell(console, args, plain: bool, names: list[str]) -> None:
     if not 0.0 < args.tolerance < 100.0:
         raise ValueError(f"--tolerance {args.tolerance:g} %: expected a value in (0, 100)")
     path = Path(args.scenario)
-    sc = load_scenario(path, overrides=_overrides(args.set))
+    # the cell's controller takes every override, or the command is refused (one candidate)
+    _, plans = plan_candidates(path, _overrides(args.set), [ctrl])
+    sets = env.set_items(plans[ctrl].overrides)  # its controller first, then its parameters
     v_start = parse_quantity(args.v_start, "V", "--v-start") if args.v_start else None
-    cell_ov = env.cell_overrides(sc, ctrl, v, p, v_start)
+    cell_ov = env.cell_overrides(plans[ctrl].scenario, ctrl, v, p, v_start)
     out = Path(args.out) if args.out else Path("runs") / (
         _dt.datetime.now().strftime("%Y%m%d-%H%M%S") + f"-{path.stem}-cell")
     if (out / "recording.h5").exists():
@@ -690,10 +700,10 @@ def _envelope_cell(console, args, plain: bool, names: list[str]) -> None:
                               f"(nothing was overwritten)")
     console.print(f"cell {v:g} V, {p / 1e3:g} kW with {ctrl} as a normal run, the same as", markup=False)
     import shlex
-    console.print("  " + env.run_command(args.scenario, args.set, cell_ov) + " --out "
+    console.print("  " + env.run_command(args.scenario, sets, cell_ov) + " --out "
                   + shlex.quote(str(out)),
                   markup=False, soft_wrap=True)
-    res = _run(console, plain, path, str(out), False, list(args.set) + env.set_items(cell_ov))
+    res = _run(console, plain, path, str(out), False, sets + env.set_items(cell_ov))
     cell = env.cell_of_run(res.folder, v, args.tolerance)
     details = []
     if cell.first_cause:

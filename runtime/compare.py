@@ -1,7 +1,10 @@
 """Side-by-side trial of candidate controllers on one scenario.
 
 Each candidate runs the same scenario (same plant, load, reference, interlocks, seed) with only
-the controller replaced; each gets its own run folder ``OUT/<controller>/``. The comparison
+the controller replaced; each gets its own run folder ``OUT/<controller>/``. An override of a
+controller parameter reaches the candidates that have it; the others' scenario.toml and
+summary list it as not applied, with the reason
+(:func:`hilrig.runtime.scenario.plan_candidates`). The comparison
 reports, per candidate, its outcome (:mod:`hilrig.runtime.outcome`), the characteristics of the
 largest reference step and the metrics of every reference segment (holds, steps, ramps; see
 :mod:`hilrig.runtime.metrics`), the tracking metrics over the time the run lasted, trips and the
@@ -17,6 +20,7 @@ from __future__ import annotations
 
 import math
 import re
+import sys
 from pathlib import Path
 from typing import Any, Callable
 
@@ -24,7 +28,7 @@ from .metrics import largest_change, largest_step
 from .outcome import coverage_text, judge, rank_key, time_text
 from .recording import dumps_json, finite_or_none, open_run
 from .run import run_scenario
-from .scenario import load_scenario
+from .scenario import not_applied_lines, plan_candidates
 
 JSON_KEYS = ("rise_time_s", "settling_time_s", "overshoot_pct", "steady_state_error_V", "iae_Vs",
              "rms_error_V", "max_abs_error_V", "saturation_time_s", "trips", "compute_ns_per_tick",
@@ -58,20 +62,21 @@ def compare(scenario: Path, candidates: list[str], out: Path, *, overwrite: bool
     if len(set(candidates)) != len(candidates):
         raise ValueError(f"--controllers: {','.join(candidates)} names a controller twice")
     out = Path(out)
-    base = load_scenario(scenario, overrides=overrides)
-    # check every candidate (and every target folder) before running any
-    scenarios = {}
+    # check every candidate (and every target folder) before running any; a controller
+    # parameter override goes to the candidates that have it, and is listed as not applied
+    # in the others' scenario.toml and summary (none taking it is an error)
+    _, plans = plan_candidates(scenario, overrides, candidates)
+    scenarios = {name: plan.scenario for name, plan in plans.items()}
     for name in candidates:
-        ov = dict(overrides or {})
-        if name != base.controller.plugin.name and name != base.controller.plugin.origin[1]:
-            # the scenario's controller parameters belong to its own controller: others run
-            # with their defaults
-            ov["controller"] = {"plugin": name}
-        scenarios[name] = load_scenario(scenario, overrides=ov)
         folder = out / folder_name(name)
         if (folder / "recording.h5").exists() and not overwrite:
             raise FileExistsError(f"{folder} already holds a recording; choose another --out, "
                                   f"or pass --overwrite to replace it (nothing was overwritten)")
+    for line in not_applied_lines(plans):
+        if notice:
+            notice(line)
+        else:
+            print(line, file=sys.stderr)
     results: dict[str, dict[str, Any]] = {}
     for name, sc in scenarios.items():
         if on_run:
@@ -101,6 +106,7 @@ def compare(scenario: Path, candidates: list[str], out: Path, *, overwrite: bool
             "change": largest_change(segments),
             "segments": segments,
             "folder": str(res.folder),
+            "overrides": sc.overrides,
         }
     results = ranked(results)
     (out / "comparison.json").write_text(dumps_json(results, indent=2) + "\n")

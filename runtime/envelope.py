@@ -78,7 +78,7 @@ class Cell:
 
     ``first_cause`` is the first trip's cause as the run's event log words it (empty without a
     trip), at ``first_cause_time_s``; ``end_event`` is the loop's own end of the run ("voltage
-    collapse", "non-finite plant state"; empty if it ran to the end), at ``end_event_time_s``.
+    collapse", "plant integration error"; empty if it ran to the end), at ``end_event_time_s``.
     A cell that trips and then collapses (the safe output let the load pull the voltage down)
     has both.
     """

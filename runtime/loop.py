@@ -47,12 +47,33 @@ from .version import installed as installed_version
 
 #: event codes written to ev[0]
 EV_NONE, EV_COLLAPSE, EV_NONFINITE, EV_STOPPED = 0, 1, 2, 3
-EVENT_TEXT = {EV_NONE: "", EV_COLLAPSE: "voltage collapse", EV_NONFINITE: "non-finite plant state",
+#: a non-finite plant state, a rise of stored energy the circuit cannot deliver, or a tick that
+#: needed more sub-steps than the limit all end the run with this one event (its reason in
+#: ev[EV_REASON]); EV_NONFINITE is this same event's code
+EV_INTEGRATION = EV_NONFINITE
+EVENT_TEXT = {EV_NONE: "", EV_COLLAPSE: "voltage collapse", EV_INTEGRATION: "plant integration error",
               EV_STOPPED: "stopped by the operator"}
+#: ev[EV_REASON] of a plant integration error
+WHY_NONFINITE, WHY_ENERGY, WHY_SUBSTEPS = 1, 2, 3
+INTEGRATION_REASONS = {
+    WHY_NONFINITE: "the plant state is not finite",
+    WHY_ENERGY: "the stored energy rose beyond what the DC source and the load can deliver in "
+                "one period",
+    WHY_SUBSTEPS: "the stiffness-aware step needed more sub-steps in one period than its limit",
+}
+#: the stiffness-aware integration (docs/design-notes.md): an RK4 sub-step dt is kept when
+#: dt * fast_rate(state) <= Z_FAST (the plant's state-dependent rate, e.g. a constant-power
+#: load's conductance over the capacitance); otherwise it is split into sub-steps that each
+#: meet it, the rate re-evaluated before each. The linear part's rate bound sets the number of
+#: sub-steps of a run: Ts / substeps * linear_rate <= Z_LINEAR (runtime/run.py).
+Z_FAST = 0.2
+Z_LINEAR = 0.5
+#: at most this many refined sub-steps in one period, else a plant integration error
+MAX_REFINE = 2_000_000
 
 
 _CHUNK = '''@njit(cache=True, error_model="numpy")
-def {fname}(k0, n, ts, nsub, v_collapse, i_vout,
+def {fname}(k0, n, ts, nsub, zf, v_collapse, i_vout,
               pp, x, load_t, load_v, lcur,
               pc, xc, iyc, yc, u, safe_u,
               pr, xr, iyr, yr, w,
@@ -62,7 +83,7 @@ def {fname}(k0, n, ts, nsub, v_collapse, i_vout,
               reset_t, reset_i, evlog, evn, wd,
               y, d, rec, ev{paced_params}):
     """{fdoc}"""
-{borrow}    for i in range(n):
+{borrow}{energy_start}    for i in range(n):
         kk = k0 + i
         t = kk * ts
 {paced_wait}        # 1 sample (load faults act on the load, as a real device would)
@@ -75,15 +96,27 @@ def {fname}(k0, n, ts, nsub, v_collapse, i_vout,
         apply_faults(1, kk, t, seed, f_stage, f_kind, f_sig, f_t0, f_t1, f_val, f_hold, f_cond, wd, y, u, d)
 {decide_8}
         # 6 actuate
-        advance(t, ts, nsub, pp, x, u, d)
+        nref = advance(t, ts, nsub, zf, pp, x, u, d)
 {record_8}
-{paced_stamp}        # end of tick: the run ends on a collapse or a non-finite plant state
+{paced_stamp}        # end of tick: the run ends on a plant integration error (a non-finite state, a
+        # rise of stored energy beyond what the circuit can deliver, too many sub-steps) or a
+        # collapse
+        if nref != 0:
+            if nref < 0:
+                ev[0] = {ev_nonfinite}
+                ev[1] = kk
+                ev[4] = {why_substeps}
+                return i + 1
+            ev[5] += nref
+            if ev[6] == 0.0:
+                ev[6] = kk + 1
         for j in range(NX):
             if not (x[j] - x[j] == 0.0):
                 ev[0] = {ev_nonfinite}
                 ev[1] = kk
+                ev[4] = {why_nonfinite}
                 return i + 1
-        if not (v_true >= v_collapse):
+{energy_check}        if not (v_true >= v_collapse):
             ev[0] = {ev_collapse}
             ev[1] = kk
             return i + 1
@@ -160,18 +193,31 @@ PLUGINS = {plugins!r}
 CHECKED = {checked!r}
 
 
+#: the stiffness-aware integration's rule (runtime/loop.py Z_FAST, MAX_REFINE)
+MAX_REFINE = {max_refine}
+
+
 @njit(inline="always")
-def advance(t, h, nsub, pp, x, u, d):
+def rk4(ta, dt, pp, s, u, d):
+    """One classic RK4 step of length dt from the state tuple s at time ta, u and d held."""
+{rk4_body}
+    return s
+
+
+@njit(inline="always")
+def advance(t, h, nsub, zf, pp, x, u, d):
     """RK4 with nsub substeps over one control period h; u and the load d held. A plant
     that brings its own ``rk4_step`` (the same method, arranged for its equations) is stepped
-    with it; otherwise the generic stages below run over its ``derivs``.
+    with it; otherwise the generic stages run over its ``derivs``.
+
+    Stiffness-aware: a substep dt with dt * fast_rate(state) > zf (the plant's state-dependent
+    rate bound; a plant without one is never refined) is split into shorter RK4 steps that
+    each meet the bound at their start, the rate re-evaluated before each, the last one
+    ending exactly on the substep's end. Returns the number of refined steps taken (0 on the
+    usual path), -1 when one period needed more than MAX_REFINE.
 
     The state travels as a tuple so that it stays in registers through the substeps."""
-    dt = h / nsub
-    s = ({x_items},)
-    for j in range(nsub):
-{rk4_body}
-{store}
+{advance_body}
 
 
 {run_chunk}
@@ -277,7 +323,7 @@ def bridge_chunk(k0, n, ts, v_collapse, i_vout,
 
 
 @njit(cache=True, error_model="numpy")
-def sim_serve(k, limit, ts, nsub, pp, x, u, load_t, load_v, lcur, d, y,
+def sim_serve(k, limit, ts, nsub, zf, pp, x, u, load_t, load_v, lcur, d, y,
               seed, f_stage, f_kind, f_sig, f_t0, f_t1, f_val, f_hold, f_cond, wd,
               io, rbuf, sbuf, pfd, addr, alen):
     """Stand-in simulator, lockstep, compiled: while k < limit, take the actuation of tick k,
@@ -315,7 +361,7 @@ def sim_serve(k, limit, ts, nsub, pp, x, u, load_t, load_v, lcur, d, y,
         # output disabled: the stage is switched off, modelled as 0 V applied
         for j in range(n_act):
             u[j] = ut[j] if enable else 0.0
-        advance(k * ts, ts, nsub, pp, x, u, d)
+        advance(k * ts, ts, nsub, zf, pp, x, u, d)
         k += 1
         for j in range(NX):
             if not (x[j] - x[j] == 0.0):
@@ -351,9 +397,10 @@ def sim_sample(kk, t, pp, x, u, load_t, load_v, lcur, d, y,
 
 
 @njit(cache=True, error_model="numpy")
-def sim_advance(t, ts, nsub, pp, x, u, d):
+def sim_advance(t, ts, nsub, zf, pp, x, u, d):
     """Stand-in simulator: advance the plant one period with u and the load d held."""
-    advance(t, ts, nsub, pp, x, u, d)
+    if advance(t, ts, nsub, zf, pp, x, u, d) < 0:
+        return False
     for j in range(NX):
         if not (x[j] - x[j] == 0.0):
             return False
@@ -415,7 +462,7 @@ rec[i, c + 1] = code"""
 
 
 #: the chunk functions' parameters that are not arrays (every other one is borrowed)
-_SCALAR_PARAMS = {"k0", "n", "ts", "nsub", "v_collapse", "i_vout", "slew", "seed",
+_SCALAR_PARAMS = {"k0", "n", "ts", "nsub", "zf", "v_collapse", "i_vout", "slew", "seed",
                   "c_ref", "k_ref", "cpt", "inv_f", "c_late", "c_comp", "base"}
 
 
@@ -484,9 +531,18 @@ def has_rk4_step(plant: Plugin) -> bool:
     return getattr(plant.module, "rk4_step", None) is not None
 
 
+def has_advance_period(plant: Plugin) -> bool:
+    """Whether the plant plugin integrates a whole period itself (optional kernel
+    ``advance_period``, e.g. a switching-level plant placing its switching instants)."""
+    return getattr(plant.module, "advance_period", None) is not None
+
+
 def _import_lines(plant: Plugin, ctrl: Plugin, ref: Plugin) -> str:
     lines = []
-    names = {"plant": ("derivs", "outputs") + (("rk4_step",) if has_rk4_step(plant) else ()),
+    names = {"plant": ("derivs", "outputs") + (("rk4_step",) if has_rk4_step(plant) else ())
+                       + (("advance_period",) if has_advance_period(plant) else ())
+                       + (("fast_rate",) if has_fast_rate(plant) else ())
+                       + (("energy", "energy_limit") if has_energy_check(plant) else ()),
              "ctrl": ("init", "step"), "ref": ("init", "step")}
     for tag, p in (("plant", plant), ("ctrl", ctrl), ("ref", ref)):
         how, where = p.origin
@@ -496,18 +552,25 @@ def _import_lines(plant: Plugin, ctrl: Plugin, ref: Plugin) -> str:
             lines.append("from hilrig.runtime.registry import load_file as _load_file")
             lines.append(f"_{tag} = _load_file({where!r})")
         for k in names[tag]:
+            if k == "advance_period":
+                # called, not inlined: a whole period's work dwarfs a call, and inlined it
+                # would be compiled anew into each chunk function of every combination
+                lines.append(f"{tag}_{k} = _{tag}.{k}")
+                continue
             # each kernel is inlined into the loop: a call across compiled functions passes
             # every array through reference counting and keeps values out of registers
             lines.append(f"{tag}_{k} = _inline(_{tag}.{k})")
     return "\n".join(lines)
 
 
-def _rk4_text(nx: int, own_step: bool) -> dict[str, str]:
-    """The RK4 substep, unrolled for nx states: the plant's own ``rk4_step`` if it has one,
-    else the generic stages over its ``derivs``."""
+def _rk4_text(nx: int, own_step: bool, fast: bool = False, period: bool = False) -> dict[str, str]:
+    """The RK4 step, unrolled for nx states (the plant's own ``rk4_step`` if it has one, else
+    the generic stages over its ``derivs``), and the body of ``advance``: the substep loop,
+    refined where the plant's ``fast_rate`` asks for it (``fast``), else one RK4 step per
+    substep; or, for a plant with ``advance_period`` (``period``), one call of it per period."""
     r = range(nx)
     if own_step:
-        body = "        s = plant_rk4_step(dt, pp, s, u, d)"
+        body = "    s = plant_rk4_step(dt, pp, s, u, d)"
     else:
         s_k1 = ", ".join(f"s[{i}] + 0.5 * dt * k1[{i}]" for i in r)
         s_k2 = ", ".join(f"s[{i}] + 0.5 * dt * k2[{i}]" for i in r)
@@ -515,14 +578,75 @@ def _rk4_text(nx: int, own_step: bool) -> dict[str, str]:
         s_new = ", ".join(f"s[{i}] + dt / 6.0 * (k1[{i}] + 2.0 * k2[{i}] + 2.0 * k3[{i}] + "
                           f"k4[{i}])" for i in r)
         body = "\n".join([
-            "        ta = t + j * dt",
-            "        k1 = plant_derivs(ta, pp, s, u, d)",
-            f"        k2 = plant_derivs(ta + 0.5 * dt, pp, ({s_k1},), u, d)",
-            f"        k3 = plant_derivs(ta + 0.5 * dt, pp, ({s_k2},), u, d)",
-            f"        k4 = plant_derivs(ta + dt, pp, ({s_k3},), u, d)",
-            f"        s = ({s_new},)"])
-    return dict(x_items=", ".join(f"x[{i}]" for i in r), rk4_body=body,
-                store="\n".join(f"    x[{i}] = s[{i}]" for i in r))
+            "    k1 = plant_derivs(ta, pp, s, u, d)",
+            f"    k2 = plant_derivs(ta + 0.5 * dt, pp, ({s_k1},), u, d)",
+            f"    k3 = plant_derivs(ta + 0.5 * dt, pp, ({s_k2},), u, d)",
+            f"    k4 = plant_derivs(ta + dt, pp, ({s_k3},), u, d)",
+            f"    s = ({s_new},)"])
+    if fast:
+        step = """        if dt * plant_fast_rate(pp, s, d) <= zf:
+            s = rk4(ta, dt, pp, s, u, d)
+        else:
+            # stiff here: RK4 steps of at most zf / rate each, the rate taken at each one's
+            # start; the remainder is split evenly, so the last step ends on the substep's end
+            rem = dt
+            while True:
+                q = rem * plant_fast_rate(pp, s, d) / zf
+                if q <= 1.0:
+                    s = rk4(ta, rem, pp, s, u, d)
+                    extra += 1
+                    break
+                if not (q < MAX_REFINE) or extra >= MAX_REFINE:
+                    return -1  # a non-finite rate, or more steps than the limit
+                hh = rem / np.ceil(q)
+                s = rk4(ta, hh, pp, s, u, d)
+                extra += 1
+                ta += hh
+                rem -= hh"""
+    else:
+        step = "        s = rk4(ta, dt, pp, s, u, d)"
+    x_items = ", ".join(f"x[{i}]" for i in r)
+    store = "\n".join(f"    x[{i}] = s[{i}]" for i in r)
+    if period:
+        # the plant integrates the whole period itself (switching instants, its own rule)
+        advance = f"    s = plant_advance_period(t, h, pp, ({x_items},), u, d)\n{store}\n    return 0"
+    else:
+        advance = (f"    dt = h / nsub\n    s = ({x_items},)\n    extra = 0\n"
+                   f"    for j in range(nsub):\n        ta = t + j * dt\n{step}\n{store}\n"
+                   f"    return extra")
+    return dict(x_items=x_items, rk4_body=body, fast_step=step, store=store, advance_body=advance)
+
+
+def _energy_text(checks: bool) -> dict[str, str]:
+    """The energy check after each tick of the in-process plant (plants with ``energy`` and
+    ``energy_limit``): the stored energy may not rise beyond what the circuit can deliver."""
+    if not checks:
+        return dict(energy_start="", energy_check="")
+    return dict(
+        energy_start="    e_now = plant_energy(pp, x)\n",
+        energy_check="""        e_next = plant_energy(pp, x)
+        e_lim = plant_energy_limit(ts, pp, e_now, d)
+        if not (e_next <= e_lim * (1.0 + 1e-9) + 1e-12):
+            ev[0] = {ev}
+            ev[1] = kk
+            ev[4] = {why}
+            ev[7] = e_next
+            ev[8] = e_lim
+            ev[9] = e_now
+            return i + 1
+        e_now = e_next
+""".format(ev=EV_INTEGRATION, why=WHY_ENERGY))
+
+
+def has_fast_rate(plant: Plugin) -> bool:
+    """Whether the plant has the optional kernel ``fast_rate`` (stiffness-aware sub-steps)."""
+    return getattr(plant.module, "fast_rate", None) is not None
+
+
+def has_energy_check(plant: Plugin) -> bool:
+    """Whether the plant has the optional kernels ``energy`` and ``energy_limit``."""
+    return (getattr(plant.module, "energy", None) is not None
+            and getattr(plant.module, "energy_limit", None) is not None)
 
 
 def plugin_ids(plant: Plugin, ctrl: Plugin, ref: Plugin) -> tuple:
@@ -547,7 +671,9 @@ def generate(plant: Plugin, ctrl: Plugin, ref: Plugin,
         return path, False
     nx = len(plant.declaration.states)
     parts = dict(ev_nonfinite=EV_NONFINITE, ev_collapse=EV_COLLAPSE,
-                 decide_8=_indent(_DECIDE, 8), record_8=_indent(_RECORD, 8))
+                 why_nonfinite=WHY_NONFINITE, why_substeps=WHY_SUBSTEPS,
+                 decide_8=_indent(_DECIDE, 8), record_8=_indent(_RECORD, 8),
+                 **_energy_text(has_energy_check(plant)))
     sil = _CHUNK.format(fname="run_chunk", paced_params="", paced_wait="", paced_stamp="",
                         borrow=_borrow_text(_chunk_params(False)),
                         fdoc="SIL: run ticks k0 .. k0+n-1; return how many ran (fewer if the "
@@ -568,7 +694,9 @@ def generate(plant: Plugin, ctrl: Plugin, ref: Plugin,
                             decide_8=parts["decide_8"], record_8=parts["record_8"],
                             run_chunk=sil, paced_chunk=paced,
                             plugins=plugin_ids(plant, ctrl, ref), checked=bool(checked),
-                            **_rk4_text(nx, has_rk4_step(plant)))
+                            max_refine=MAX_REFINE,
+                            **_rk4_text(nx, has_rk4_step(plant), has_fast_rate(plant),
+                                         has_advance_period(plant)))
     if checked:
         text = checked_text(text)
     # write then rename: concurrent workers never import a half-written file, and an existing
@@ -611,7 +739,7 @@ _STAGES = (
     ("supervise(", 12, "hilrig: trip latch and resets"),
     ("interp_rows(", 13, "hilrig: the load profile"),
     ("plant_outputs(", 14, "plant {plant}: kernel outputs"),
-    ("advance(", 15, "plant {plant}: kernel derivs or rk4_step (the RK4 stage)"),
+    ("advance(", 15, "plant {plant}: kernel derivs, rk4_step or advance_period (the RK4 stage)"),
     ("# 7 record", 16, "hilrig: the recording row"),
     ("keep_true(", 16, "hilrig: the recording row"),
     ("put_actuation(", 17, "hilrig: the bridge's frame codec"),
@@ -619,9 +747,12 @@ _STAGES = (
     ("read_vector(", 17, "hilrig: the bridge's frame codec"),
     ("for j in range(n_meas):", 17, "hilrig: the bridge's frame codec"),
 )
-#: slots of the event array ev: [event code, its tick, stage (checked build), tick (checked)]
+#: slots of the event array ev: [event code, its tick, stage (checked build), tick (checked),
+#: integration error's reason, refined sub-steps so far, first refined tick + 1 (0: none),
+#: energy after the failed tick, its limit, energy before it]
 EV_STAGE, EV_STAGE_TICK = 2, 3
-EV_SIZE = 4
+EV_REASON, EV_REFINED, EV_FIRST_REFINED, EV_E_AFTER, EV_E_LIMIT, EV_E_BEFORE = 4, 5, 6, 7, 8, 9
+EV_SIZE = 10
 #: functions of the generated module that receive ev (the others run on the simulator's side)
 _MARKED = ("run_chunk", "paced_chunk", "bridge_tick", "bridge_chunk")
 

@@ -27,6 +27,7 @@ KERNEL_ARGS = {
     ("plant", "derivs"): ("t", "p", "x", "u", "d"),
     ("plant", "outputs"): ("t", "p", "x", "u", "d", "y"),
     ("plant", "rk4_step"): ("dt", "p", "s", "u", "d"),
+    ("plant", "advance_period"): ("t", "h", "p", "s", "u", "d"),
     ("controller", "init"): ("p", "xc", "y", "r"),
     ("controller", "step"): ("t", "p", "xc", "y", "r", "u"),
     ("reference", "init"): ("p", "xr", "y"),

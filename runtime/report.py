@@ -125,6 +125,18 @@ def _segment_tables(segments: list[dict], info: dict) -> list[str]:
     return L[:-1]
 
 
+def _start_text(s: dict) -> str:
+    """The start voltage and the excitation (``[initial] v_out_offset``) the run started with."""
+    v0, off = s.get("v_out_start_V"), s.get("v_out_start_offset_V")
+    text = f"v_out {_metric(v0)} V"
+    if off is None:  # a run recorded before the excitation existed
+        return text
+    if off == 0.0:
+        return text + ", exactly at the plant's equilibrium (no start offset)"
+    return (text + f", plant's v_out state started {_metric(off)} V from its equilibrium "
+            f"(excitation, [initial] v_out_offset)")
+
+
 def write_report(run: Run, dest: Path | None = None) -> Path:
     """Write ``report.md`` (and its PNGs in ``report/``) for a finished run; return its path."""
     from .plots import overview_png
@@ -160,6 +172,7 @@ def write_report(run: Run, dest: Path | None = None) -> Path:
     rows = [("run folder", str(run.folder)), ("mode", s.get("mode")),
             ("plant / controller / reference", f"{s.get('plant')} / {s.get('controller')} / {s.get('reference')}"),
             ("tick period", f"{s.get('Ts_s', 0) * 1e6:g} us, {s.get('substeps')} RK4 substeps"),
+            ("start", _start_text(s)),
             ("simulated", f"{s.get('simulated_s', 0):.6g} s ({s.get('ticks_run')} of {s.get('ticks_planned')} ticks)"),
             ("outcome", outcome), ("status", oc["status"]), ("seed", s.get("seed")),
             ("first trip", "none" if not trip else

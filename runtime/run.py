@@ -4,6 +4,7 @@ by chunk, record every tick and summarise. Python runs only between chunks.
 from __future__ import annotations
 
 import datetime as _dt
+import math
 import platform
 import sys
 import threading
@@ -53,6 +54,8 @@ class Prepared:
     y_names: list[str]
     u_names: list[str]
     v0: float
+    #: the start offset applied to the plant's v_out state [V] (0: an exact equilibrium start)
+    v_out_offset: float = 0.0
 
 
 def process_age_s() -> float | None:
@@ -117,6 +120,65 @@ def _initial_v_out(sc: Scenario, pp, pr, iyr, n_xr, outputs) -> float:
     return float(w[0])
 
 
+def integration_plan(sc: Scenario) -> dict[str, Any]:
+    """How the embedded plant is integrated (runtime/loop.py; docs/design-notes.md).
+
+    Adaptive (the default): the substeps per period are the scenario's, raised if needed so
+    that Ts / substeps times the plant's ``linear_rate`` bound stays within Z_LINEAR; each
+    substep is refined where the plant's ``fast_rate`` asks for it. Fixed: the scenario's
+    substeps, never refined. A plant without ``linear_rate`` / ``fast_rate`` keeps its
+    substeps / is never refined."""
+    mod = sc.plant.plugin.module
+    asked = int(sc.substeps)
+    adaptive = sc.integration == "adaptive"
+    lin = getattr(mod, "linear_rate", None)
+    rate = float(lin(dict(sc.plant.values))) if lin is not None else None
+    n = asked
+    if adaptive and rate is not None and math.isfinite(rate) and rate > 0:
+        n = max(asked, int(math.ceil(sc.Ts * rate / loopgen.Z_LINEAR - 1e-9)))
+    refine = adaptive and loopgen.has_fast_rate(sc.plant.plugin)
+    if loopgen.has_advance_period(sc.plant.plugin):
+        # the plant integrates each period itself (its own instants and step rule): the loop's
+        # substeps and refinement do not apply; the energy check still does
+        return {"method": "the plant's own (advance_period)", "rule": "plant",
+                "substeps_asked": asked, "substeps": asked, "linear_rate_per_s": rate,
+                "z_linear": None, "refines_stiff_steps": False, "z_fast": math.inf,
+                "energy_check": loopgen.has_energy_check(sc.plant.plugin)}
+    return {"method": "RK4", "rule": "adaptive" if adaptive else "fixed",
+            "substeps_asked": asked, "substeps": n, "linear_rate_per_s": rate,
+            "z_linear": loopgen.Z_LINEAR if adaptive else None,
+            "refines_stiff_steps": refine, "z_fast": loopgen.Z_FAST if refine else math.inf,
+            "energy_check": loopgen.has_energy_check(sc.plant.plugin)}
+
+
+def integration_error(ev: np.ndarray, kk: int, ts: float) -> dict[str, Any]:
+    """The details of a plant integration error (loop event slots, runtime/loop.py)."""
+    why = int(ev[loopgen.EV_REASON])
+    reason = loopgen.INTEGRATION_REASONS.get(why, "the plant state is not finite")
+    out: dict[str, Any] = {"reason": reason}
+    if why == loopgen.WHY_ENERGY:
+        e0, e1, lim = (float(ev[loopgen.EV_E_BEFORE]), float(ev[loopgen.EV_E_AFTER]),
+                       float(ev[loopgen.EV_E_LIMIT]))
+        out.update(energy_before_J=e0, energy_after_J=e1, energy_limit_J=lim)
+        reason += f" ({e0:.4g} J -> {e1:.4g} J, at most {lim:.4g} J)"
+    elif why == loopgen.WHY_SUBSTEPS:
+        reason += f" ({loopgen.MAX_REFINE:,})"
+    out["detail"] = f"tick {kk} (t = {kk * ts:.6g} s): {reason}"
+    return out
+
+
+def integration_summary(a: dict) -> dict[str, Any] | None:
+    """The run's integration plan and what it did: how many refined sub-steps, first where."""
+    plan = a.get("_integration")
+    if plan is None:
+        return None
+    ev = a["ev"]
+    first = int(ev[loopgen.EV_FIRST_REFINED]) - 1
+    return {**plan, "z_fast": plan["z_fast"] if math.isfinite(plan["z_fast"]) else None,
+            "refined_steps": int(ev[loopgen.EV_REFINED]),
+            "first_refined_tick": first if first >= 0 else None}
+
+
 def prepare(sc: Scenario) -> Prepared:
     plant, ctrl, ref = sc.plant, sc.controller, sc.reference
     pdecl = plant.plugin.declaration
@@ -149,7 +211,9 @@ def prepare(sc: Scenario) -> Prepared:
     nx = x0.shape[0]
     if nx != len(pdecl.states):
         raise ScenarioError(f"plant {pdecl.name!r}: equilibrium gave {nx} states, declared {len(pdecl.states)}")
+    x_offset = _start_offset(sc, pdecl, v0, x0, where)
     ad, g1, g2, cr, dr = shaping.design(sc.shaping["order"], sc.shaping["pole"], sc.Ts)
+    integ = integration_plan(sc)
     table = InterlockTable.build(sc.interlocks, outputs + u_names + [d[0] for d in DERIVED])
     ny = len(outputs)
     out_units = {s.name: (s.unit, s.description) for s in pdecl.outputs}
@@ -170,7 +234,8 @@ def prepare(sc: Scenario) -> Prepared:
     if "v_out" not in outputs:
         raise ScenarioError(f"plant {pdecl.name!r} has no v_out output; the runtime needs it")
     args = dict(
-        ts=sc.Ts, nsub=sc.substeps, v_collapse=sc.v_collapse, i_vout=outputs.index("v_out"),
+        ts=sc.Ts, nsub=integ["substeps"], zf=integ["z_fast"], v_collapse=sc.v_collapse,
+        i_vout=outputs.index("v_out"),
         pp=pp, x=x0, load_t=sc.load_t, load_v=sc.load_v, lcur=np.zeros(1, dtype=np.int64),
         pc=pc, xc=np.zeros(n_xc), iyc=iyc, yc=np.zeros(max(len(iyc), 1)), u=np.zeros(nu),
         safe_u=np.full(nu, sc.safe_u),
@@ -188,6 +253,7 @@ def prepare(sc: Scenario) -> Prepared:
         evlog=new_event_log()[0], evn=new_event_log()[1],
         **fault_table(sc.faults, outputs),
     )
+    args["_integration"] = integ
     # what bind() checks the arrays against (kept beside them, never passed to the loop)
     args["_expect"] = dict(
         plugins=loopgen.plugin_ids(plant.plugin, ctrl.plugin, ref.plugin),
@@ -198,7 +264,26 @@ def prepare(sc: Scenario) -> Prepared:
             [f for f in sc.faults if f.kind not in LINK_KINDS]), n_true=len(true_names),
         rec_cols=len(signals))
     return Prepared(sc=sc, args=args, signals=signals, table=table, y_names=outputs,
-                    u_names=u_names, v0=v0)
+                    u_names=u_names, v0=v0, v_out_offset=x_offset)
+
+
+def _start_offset(sc: Scenario, pdecl, v0: float, x0: np.ndarray, where: str) -> float:
+    """Excite the start: move the plant's state named ``v_out`` by ``[initial] v_out_offset``
+    from its equilibrium (every other state stays there), so that an unstable equilibrium
+    cannot pass as tracking. Returns the offset applied [V]: 0 when switched off, or when the
+    plant declares no state named ``v_out`` (it then starts exactly at its equilibrium)."""
+    off = float(sc.offset_volts(v0))
+    names = [s.name for s in pdecl.states]
+    if off == 0.0 or "v_out" not in names:
+        return 0.0
+    from .scenario import V_OUT_OFFSET_MAX_PCT
+    if not abs(off) <= V_OUT_OFFSET_MAX_PCT / 100.0 * abs(v0):
+        raise ScenarioError(f"{where}: initial.v_out_offset = {off:g} V is more than "
+                            f"{V_OUT_OFFSET_MAX_PCT:g} % of the start voltage {v0:g} V; the "
+                            f"excitation is a small offset: use a smaller one, or set "
+                            f"initial.v_out to start elsewhere")
+    x0[names.index("v_out")] += off
+    return off
 
 
 def _latch(table: InterlockTable) -> np.ndarray:
@@ -266,7 +351,7 @@ def compile_error_text(sc: Scenario, report: str) -> str:
 
 def chunk_args(a: dict) -> tuple:
     """The arguments of ``run_chunk`` between ``n`` and ``rec``, in order."""
-    return (a["ts"], a["nsub"], a["v_collapse"], a["i_vout"],
+    return (a["ts"], a["nsub"], a["zf"], a["v_collapse"], a["i_vout"],
             a["pp"], a["x"], a["load_t"], a["load_v"], a["lcur"],
             a["pc"], a["xc"], a["iyc"], a["yc"], a["u"], a["safe_u"],
             a["pr"], a["xr"], a["iyr"], a["yr"], a["w"],
@@ -674,6 +759,8 @@ def execute(sc: Scenario, prep: Prepared, folder: Path,
         kk = int(a["ev"][1])
         e = {"event": loopgen.EVENT_TEXT[ev], "tick": kk, "time_s": kk * sc.Ts,
              "v_out_V": float(last_row[i_vout])}
+        if ev == loopgen.EV_INTEGRATION:
+            e.update(integration_error(a["ev"], kk, sc.Ts))
         if "true_v_out" in names:
             # a sensor fault on v_out: the event reports the plant's true voltage (the one the
             # collapse check reads), and the measurement beside it
@@ -708,14 +795,17 @@ def execute(sc: Scenario, prep: Prepared, folder: Path,
         "title": sc.title, "demo_data": sc.demo_data, "mode": sc.mode, "seed": sc.seed,
         "plant": sc.plant.plugin.name, "controller": sc.controller.plugin.name,
         "reference": sc.reference.plugin.name,
-        "Ts_s": sc.Ts, "substeps": sc.substeps,
+        "Ts_s": sc.Ts, "substeps": a.get("nsub", sc.substeps),
+        "integration": integration_summary(a),
         "ticks_planned": n_total, "ticks_run": done, "simulated_s": done * sc.Ts,
         "completed": done == n_total and end_event is None,
         "end_event": end_event,
         "events": events, "trip": trip,
         "faults": _fault_times(sc, a),
         "watchdogs": dict(sc.watchdogs),
+        "overrides": sc.overrides,
         "v_out_start_V": prep.v0,
+        "v_out_start_offset_V": prep.v_out_offset,
         "metrics": result,
         "segments": [],
         "segmentation": {},

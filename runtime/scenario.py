@@ -43,6 +43,9 @@ TOP_KEYS = {"title", "description", "demo_data", "mode", "seed", "timing", "plan
             "faults", "resets", "watchdogs", "paced"}
 TIMING = {"Ts": ("s", 50e-6, (1e-7, 1.0)), "substeps": ("-", 4, (1, 1000)),
           "duration": ("s", 1.0, (1e-6, 1e6))}
+#: "adaptive": RK4 sub-steps refined where the plant is stiff (runtime/loop.py); "fixed": the
+#: given substeps only, for comparison (a stiff run may then end in a plant integration error)
+TIMING_CHOICES = {"integration": ("adaptive", "fixed")}
 SHAPING = {"order": ("-", 5, (4, 12)), "pole": ("rad/s", 7500.0, (1.0, 1e7)),
            "slew_rate": ("V/s", 2e5, (1e-3, 1e9))}
 LIMITS = {"v_collapse": ("V", 25.0, (0.0, 1e5)), "safe_u": ("V", 0.0, (-1e5, 1e5))}
@@ -62,6 +65,15 @@ WATCHDOGS = {"overrun_budget": ("s", 0.0, (0.0, 10.0)), "overrun_ticks": ("-", 1
 PACED = {"miss_share_max": ("-", 0.01, (0.0, 1.0)), "max_lateness": ("s", 1e-3, (0.0, 10.0)),
          "realtime_priority": ("-", 49, (1, 99))}
 PACED_FLAGS = {"realtime": True}
+#: excitation: the plant's v_out state starts this far from its equilibrium (below: toward
+#: collapse, the dangerous direction for a constant-power load), so that an unstable
+#: equilibrium cannot pass as tracking; ``[initial] v_out_offset`` changes it, "0 V" = off
+V_OUT_OFFSET_DEFAULT_TEXT = "-0.25 %"
+V_OUT_OFFSET_DEFAULT = (-0.25, "%")
+#: the largest offset a scenario may ask for: in percent of the start voltage, and in volts
+#: (prepare() also refuses a voltage beyond V_OUT_OFFSET_MAX_PCT of the start voltage)
+V_OUT_OFFSET_MAX_PCT = 10.0
+V_OUT_OFFSET_MAX_V = 1e4
 MAX_TICKS = 2_000_000_000
 #: the deepest nesting of arrays and tables a scenario may have (its own tables need 4:
 #: [[faults]] entries with a table of rows); deeper input is refused with a clear message
@@ -98,6 +110,9 @@ class Scenario:
     safe_u: float
     interlocks: list[Interlock]
     v_out0: float | None
+    #: start offset of the plant's v_out state from its equilibrium: (value, "%") in percent of
+    #: the start voltage or (value, "V"); see V_OUT_OFFSET_DEFAULT and offset_volts()
+    v_out_offset: tuple[float, str] = V_OUT_OFFSET_DEFAULT
     recording: dict[str, Any] = field(default_factory=dict)
     faults: list[Fault] = field(default_factory=list)
     #: times [s] at which a reset of a latched trip is requested (an operator's intended reset)
@@ -108,12 +123,23 @@ class Scenario:
     #: paced settings (PACED and PACED_FLAGS keys, SI units): timing limits, real-time requests
     paced: dict[str, Any] = field(default_factory=lambda: {
         **{k: v[1] for k, v in PACED.items()}, **PACED_FLAGS})
+    #: "adaptive" (stiffness-aware RK4 sub-steps) or "fixed" (timing.integration)
+    integration: str = "adaptive"
+    #: the overrides this run took and those it did not (a candidate of compare or envelope
+    #: that lacks a controller parameter): {"applied": [{"key", "value"}], "not_applied":
+    #: [{"key", "value", "reason"}]}, values in TOML's notation; summary.json keeps it
+    overrides: dict[str, list] = field(default_factory=lambda: {"applied": [], "not_applied": []})
 
     @property
     def stale_limit_s(self) -> float:
         """The bridge staleness limit: as set, or 20 periods and at least 50 ms."""
         set_ = self.watchdogs.get("stale_limit", 0.0)
         return set_ if set_ > 0 else max(20 * self.Ts, 0.05)
+
+    def offset_volts(self, v_start: float) -> float:
+        """The start offset of v_out [V] for the start voltage ``v_start``."""
+        value, unit = self.v_out_offset
+        return value / 100.0 * v_start if unit == "%" else value
 
     @property
     def n_ticks(self) -> int:
@@ -126,6 +152,8 @@ class _Ctx:
     def __init__(self, name: str, base: Path = Path(".")):
         self.name = name
         self.base = base
+        #: the keys an override gave (a plugin key unknown there is refused naming it)
+        self.overridden: set[str] = set()
 
     def fail(self, key: str, msg: str) -> ScenarioError:
         return ScenarioError(f"{self.name}: {key}{msg}")
@@ -149,8 +177,9 @@ def _hint(name: str, known) -> str:
     return f"; did you mean {', '.join(repr(c) for c in close[:3])}?" if close else ""
 
 
-def load_scenario(path: str | Path, overrides: dict[str, Any] | None = None) -> Scenario:
-    """Read and validate a scenario file."""
+def load_scenario(path: str | Path, overrides: dict[str, Any] | None = None,
+                  not_applied: list[dict[str, str]] | None = None) -> Scenario:
+    """Read and validate a scenario file (``not_applied``: see :func:`parse_scenario`)."""
     path = Path(path)
     try:
         text = path.read_text(encoding="utf-8")
@@ -158,17 +187,23 @@ def load_scenario(path: str | Path, overrides: dict[str, Any] | None = None) -> 
         raise ScenarioError(f"scenario file {str(path)!r} does not exist") from None
     except (OSError, UnicodeDecodeError) as exc:
         raise ScenarioError(f"{path}: cannot read: {exc}") from None
-    return parse_scenario(text, name=path.name, path=str(path), overrides=overrides)
+    return parse_scenario(text, name=path.name, path=str(path), overrides=overrides,
+                          not_applied=not_applied)
 
 
 def parse_scenario(text: str, name: str = "scenario.toml", path: str = "",
-                   overrides: dict[str, Any] | None = None) -> Scenario:
+                   overrides: dict[str, Any] | None = None,
+                   not_applied: list[dict[str, str]] | None = None) -> Scenario:
     """Validate scenario text; ``overrides`` replaces top-level sections' keys (dotted names).
 
     With overrides, the returned scenario's ``text`` is the scenario that runs (the file with
     them applied, headed by a comment listing them), so that a run folder records it.
+    ``not_applied`` lists overrides given to the command that this scenario does not take
+    (``{"key", "value", "reason"}``, from :func:`plan_candidates`): the header lists them
+    apart, as not applied, and ``Scenario.overrides`` keeps both lists.
     """
     cx = _Ctx(name, Path(path).parent if path else Path("."))
+    cx.overridden = set(overrides or ())
     try:
         raw = tomllib.loads(text)
     except tomllib.TOMLDecodeError as exc:
@@ -188,10 +223,10 @@ def parse_scenario(text: str, name: str = "scenario.toml", path: str = "",
     for dotted, value in (overrides or {}).items():
         _set_dotted(cx, raw, dotted, value)
     _check_shape(cx, raw)
-    if overrides:
+    if overrides or not_applied:
         # what runs is the file with the overrides: the run folder's scenario.toml and the
         # recording's scenario_text hold that, so running them again repeats this run
-        text = _effective_text(cx, raw, overrides)
+        text = _effective_text(cx, raw, overrides or {}, not_applied or [])
     for k in raw:
         if k not in TOP_KEYS:
             raise cx.unknown("", k, TOP_KEYS)
@@ -213,8 +248,9 @@ def parse_scenario(text: str, name: str = "scenario.toml", path: str = "",
     if isinstance(seed, bool) or not isinstance(seed, int) or not (0 <= seed < 2**63):
         raise cx.fail("seed", f" = {seed!r} is not a whole number in [0, 2^63)")
 
-    timing = _section(cx, raw, "timing", TIMING)
+    timing = _section(cx, raw, "timing", TIMING, choices=TIMING_CHOICES)
     Ts, substeps, duration = timing["Ts"], int(timing["substeps"]), timing["duration"]
+    integration = timing.get("integration", "adaptive")
     if duration / Ts > MAX_TICKS:
         raise cx.fail("timing.duration", f" = {duration:g} s is {duration / Ts:.3g} ticks at Ts = "
                       f"{Ts:g} s; at most {MAX_TICKS:g} ticks: shorten the run or lengthen Ts")
@@ -233,9 +269,10 @@ def parse_scenario(text: str, name: str = "scenario.toml", path: str = "",
     load_t, load_v = _load(cx, raw)
     limits = _section(cx, raw, "limits", LIMITS)
     interlocks = _interlocks(cx, raw, plant, controller)
-    v_out0 = _initial(cx, raw)
+    v_out0, v_out_offset = _initial(cx, raw)
     faults = _faults(cx, raw, plant, duration, Ts)
-    _check_short_circuits(cx, faults, plant, Ts, substeps)
+    if integration == "fixed" or getattr(plant.plugin.module, "fast_rate", None) is None:
+        _check_short_circuits(cx, faults, plant, Ts, substeps)
     resets = _resets(cx, raw, Ts, duration)
     recording = _section(cx, raw, "recording", RECORDING, choices=RECORDING_CHOICES)
     recording.setdefault("compression", "none")
@@ -246,8 +283,12 @@ def parse_scenario(text: str, name: str = "scenario.toml", path: str = "",
                     plant=plant, controller=controller, reference=reference, shaping=shaping,
                     load_t=load_t, load_v=load_v, v_collapse=limits["v_collapse"],
                     safe_u=limits["safe_u"], interlocks=interlocks, v_out0=v_out0,
+                    v_out_offset=v_out_offset,
                     recording=recording, faults=faults, resets=resets, watchdogs=watchdogs,
-                    paced=paced)
+                    paced=paced, integration=integration,
+                    overrides={"applied": [{"key": k, "value": _inline(v)}
+                                           for k, v in (overrides or {}).items()],
+                               "not_applied": [dict(d) for d in not_applied or []]})
 
 
 def _check_shape(cx, raw: dict) -> None:
@@ -289,21 +330,26 @@ def _printable(text: str) -> str:
     return "".join(repr(ch)[1:-1] if unicodedata.category(ch) == "Cc" else ch for ch in text)
 
 
-def _effective_text(cx, raw: dict, overrides: dict[str, Any]) -> str:
+def _effective_text(cx, raw: dict, overrides: dict[str, Any],
+                    not_applied: list[dict[str, str]] = ()) -> str:
     """The scenario with overrides applied, as TOML text that parses to ``raw``.
 
     The file's comments and layout are not kept (the text is written from the parsed values);
-    a header names the file and the overrides.
+    a header names the file and the overrides, and apart from them those given to the command
+    that this scenario did not take, each with its reason.
     """
     import tomli_w
     try:
         body = tomli_w.dumps(raw)
-        given = "\n".join(f"#   {k} = {_inline(v)}" for k, v in overrides.items())
+        given = "\n".join(f"#   {k} = {_inline(v)}" for k, v in overrides.items()) or "#   (none)"
     except (TypeError, ValueError) as exc:
         raise ScenarioError(f"{cx.name}: an override cannot be written as TOML: {exc}") from None
+    skipped = "".join(f"\n#   {d['key']} = {d['value']}: {d['reason']}" for d in not_applied)
+    if skipped:
+        skipped = "\n# and these overrides NOT applied (given to the command, not taken here):" + skipped
     return (f"# {cx.name} with these overrides applied (the scenario that ran; written by "
             f"hilrig from the\n# parsed values, so the file's comments and layout are not "
-            f"kept):\n{given}\n\n{body}")
+            f"kept):\n{given}{skipped}\n\n{body}")
 
 
 def _inline(v: Any) -> str:
@@ -329,6 +375,85 @@ def _set_dotted(cx, raw: dict, dotted: str, value: Any) -> None:
             raise ScenarioError(f"{cx.name}: override {dotted!r}: {'.'.join(parts[:i + 1])} is a "
                                 f"{type(node).__name__}, not a table, so it has no key {parts[i + 1]!r}")
     node[parts[-1]] = value
+
+
+@dataclass
+class CandidatePlan:
+    """How one candidate controller of ``compare`` or ``envelope`` takes the command's
+    overrides: the scenario it runs, the overrides that made it (its own controller table when
+    it is not the scenario's, then every override it can take) and those it cannot take."""
+
+    scenario: Scenario
+    overrides: dict[str, Any]
+    not_applied: list[dict[str, str]]
+
+
+def plan_candidates(path: str | Path, overrides: dict[str, Any] | None,
+                    candidates: list[str]) -> tuple[Scenario, dict[str, CandidatePlan]]:
+    """The scenario with the overrides every candidate shares, and each candidate's plan.
+
+    Only the controller differs between candidates, so only ``controller.<param>`` overrides
+    can fit some and not others: each goes to the candidates that declare ``<param>`` and is
+    listed as not applied, with the reason, for the others (their scenario.toml header and
+    ``Scenario.overrides``). One that no candidate takes is refused, naming the candidates'
+    parameters; so is an override of ``controller`` or ``controller.plugin`` (the candidates
+    are the command's to choose). Every other override is checked here with run's messages.
+    Nothing runs; a mistake raises :class:`ScenarioError`.
+    """
+    name = Path(path).name
+    overrides = dict(overrides or {})
+    for k in overrides:
+        if k in ("controller", "controller.plugin"):
+            raise ScenarioError(
+                f"{name}: override {k!r}: the candidate controllers are chosen with "
+                f"--controllers, so an override cannot name one; set a controller parameter "
+                f"on its own, e.g. --set controller.NAME=VALUE (it reaches the candidates "
+                f"that have it)")
+    params = {k: v for k, v in overrides.items() if k.startswith("controller.")}
+    shared = {k: v for k, v in overrides.items() if k not in params}
+    base = load_scenario(path, overrides=shared)
+    own = base.controller.plugin
+    first: dict[str, tuple[dict[str, Any], list[str]]] = {}
+    for cand in candidates:
+        ov = dict(shared)
+        if cand not in (own.name, own.origin[1]):
+            # the scenario's controller parameters belong to its own controller: others run
+            # with their defaults and the overrides they take
+            ov["controller"] = {"plugin": cand}
+        sc = load_scenario(path, overrides=ov)
+        first[cand] = (ov, [p.name for p in sc.controller.plugin.declaration.params])
+    for k in params:
+        p = k.split(".")[1]
+        if not any(p in known for _, known in first.values()):
+            have = "; ".join(f"{c} has {', '.join(known) or 'no parameters'}"
+                             for c, (_, known) in first.items())
+            every = sorted({q for _, known in first.values() for q in known})
+            raise ScenarioError(
+                f"{name}: unknown key {k!r} (an override): no candidate controller has a "
+                f"parameter {p!r}{_hint(p, every)} ({have}); fix the key, or leave the "
+                f"override out")
+    plans = {}
+    for cand, (ov, known) in first.items():
+        taken = {k: v for k, v in params.items() if k.split(".")[1] in known}
+        skipped = [{"key": k, "value": _inline(v),
+                    "reason": f"controller {cand} has no parameter {k.split('.')[1]!r}"}
+                   for k, v in params.items() if k not in taken]
+        ov = {**ov, **taken}
+        plans[cand] = CandidatePlan(load_scenario(path, overrides=ov, not_applied=skipped),
+                                    ov, skipped)
+    return base, plans
+
+
+def not_applied_lines(plans: dict[str, CandidatePlan]) -> list[str]:
+    """One notice per override that some candidates do not take: which, and why."""
+    keys = dict.fromkeys(d["key"] for p in plans.values() for d in p.not_applied)
+    lines = []
+    for k in keys:
+        without = [(c, d["reason"]) for c, p in plans.items() for d in p.not_applied if d["key"] == k]
+        took = [c for c in plans if c not in dict(without)]
+        lines.append(f"notice: override {k} is not applied to {', '.join(c for c, _ in without)} "
+                     f"({'; '.join(r for _, r in without)}); applied to {', '.join(took)}")
+    return lines
 
 
 def _str(cx, raw, key, default):
@@ -418,6 +543,11 @@ def _plugin(cx, raw, key, default_name) -> PluginChoice:
     values = decl.defaults()
     for k, v in tab.items():
         if k not in known:
+            if f"{key}.{k}" in cx.overridden or key in cx.overridden:
+                raise ScenarioError(
+                    f"{cx.name}: unknown key '{key}.{k}' (an override): {key} {decl.name} has "
+                    f"no parameter {k!r}{_hint(str(k), known)} (its parameters: "
+                    f"{', '.join(known) or 'none'}); fix the key, or leave the override out")
             raise cx.unknown(key, k, known + ["plugin"])
         q = decl.param(k)
         where = f"{key}.{k}"
@@ -771,7 +901,9 @@ def _faults(cx, raw, plant: PluginChoice, duration: float, Ts: float) -> list[Fa
 def _check_short_circuits(cx, faults, plant: PluginChoice, Ts: float, substeps: int) -> None:
     """A short circuit across the output capacitance is a fast pole (tau = R C): explicit RK4
     needs substeps no longer than tau / 2, or the integration rings and the recorded voltage
-    is an artefact (it can even rise). Refuse such a scenario with the fix."""
+    is an artefact (it can even rise). With fixed sub-steps (timing.integration = "fixed", or a
+    plant without the ``fast_rate`` kernel) refuse such a scenario with the fix; the adaptive
+    integration shortens its steps by itself."""
     vals = plant.values
     cap = next((vals[k] for k in ("C2", "C") if isinstance(vals.get(k), float)), None)
     if cap is None:
@@ -789,14 +921,45 @@ def _check_short_circuits(cx, faults, plant: PluginChoice, Ts: float, substeps: 
 
 
 def _initial(cx, raw):
+    """``[initial]``: the start voltage (None = auto) and the start offset of the plant's v_out
+    state from its equilibrium, ``(value, "%")`` in percent of the start voltage or
+    ``(value, "V")`` (see :data:`V_OUT_OFFSET_DEFAULT`)."""
     tab = _table(cx, raw, "initial")
     for k in tab:
-        if k != "v_out":
-            raise cx.unknown("initial", k, ["v_out"])
+        if k not in ("v_out", "v_out_offset"):
+            raise cx.unknown("initial", k, ["v_out", "v_out_offset"])
+    offset = _v_out_offset(cx, tab.get("v_out_offset", V_OUT_OFFSET_DEFAULT_TEXT))
     v = tab.get("v_out", "auto")
     if v == "auto":
-        return None
+        return None, offset
     q = _quantity(cx, "initial.v_out", v, "V", (0.0, 1e5))
     if not math.isfinite(q):
         raise cx.fail("initial.v_out", " is not finite")
-    return q
+    return q, offset
+
+
+def _v_out_offset(cx, value) -> tuple[float, str]:
+    """``initial.v_out_offset``: ``"-0.25 %"`` (percent of the start voltage) or a voltage
+    (``"-0.5 V"``, a bare number in volts); 0 switches the excitation off."""
+    key = "initial.v_out_offset"
+    lim_pct, lim_v = V_OUT_OFFSET_MAX_PCT, V_OUT_OFFSET_MAX_V
+    fix = (f"write a percentage of the start voltage such as \"-0.25 %\" (at most "
+           f"{lim_pct:g} % either way) or a voltage such as \"-0.5 V\"; \"0 V\" starts "
+           f"exactly at the equilibrium")
+    if isinstance(value, str) and value.strip().endswith("%"):
+        text = value.strip()[:-1].strip()
+        try:
+            q = parse_quantity(text, "-", where=key)
+        except UnitError:
+            raise cx.fail(key, f" = {value!r} is not a percentage; {fix}") from None
+        if not abs(q) <= lim_pct:
+            raise cx.fail(key, f" = {value!r} is outside [-{lim_pct:g}, {lim_pct:g}] % of the "
+                          f"start voltage; {fix}")
+        return q, "%"
+    try:
+        q = parse_quantity(value, "V", where=key)
+    except UnitError:
+        raise cx.fail(key, f" = {value!r} is neither a percentage nor a voltage; {fix}") from None
+    if not abs(q) <= lim_v:
+        raise cx.fail(key, f" = {q:g} V is outside [-{lim_v:g}, {lim_v:g}] V; {fix}")
+    return q, "V"

@@ -24,13 +24,26 @@ from numba import njit
 from hilrig.plugins.base import Declaration, Param, Signal
 from hilrig.plugins.plants.loads import load_current
 
-# indices into p: the declared parameters in order, L and C stored as reciprocals
+# indices into p: the declared parameters in order, L and C stored as reciprocals; then
+# constants of the integration's checks (see below)
 V_DC, INV_L, R, INV_C, V_LOAD_MIN = range(5)
+SRC_K, VOUT_K, HL, HC = range(5, 9)
 
 
 def _build(values, ctx):
     v = values
-    return np.array([v["V_dc"], 1.0 / v["L"], v["R"], 1.0 / v["C"], v["v_load_min"]])
+    return np.array([v["V_dc"], 1.0 / v["L"], v["R"], 1.0 / v["C"], v["v_load_min"],
+                     v["V_dc"] * np.sqrt(2.0 / v["L"]), np.sqrt(2.0 / v["C"]),
+                     0.5 * v["L"], 0.5 * v["C"]])
+
+
+def linear_rate(values) -> float:
+    """A bound [1/s] on the magnitude of the eigenvalues of the filter's linear part (the
+    Jacobian without the load's conductance): Gershgorin's circle theorem in energy
+    coordinates (sqrt(L) i, sqrt(C) v), R/L + 1/sqrt(L C)."""
+    v = values
+    w = 1.0 / np.sqrt(v["L"] * v["C"])
+    return float(v["R"] / v["L"] + w)
 
 
 def _equilibrium(values, v_out, d):
@@ -86,3 +99,37 @@ def outputs(t, p, x, u, d, y):
     y[1] = load_current(x[1], d, p[V_LOAD_MIN])
     y[2] = x[0]
     y[3] = p[V_DC]
+
+
+@njit(cache=True)
+def fast_rate(p, s, d):
+    """The state-dependent part of the rate bound [1/s]: |g| / C, g the load's incremental
+    conductance at v_out (G - P / v_out^2; below v_load_min G + P / v_load_min^2)."""
+    v = s[1]
+    if v >= p[V_LOAD_MIN]:
+        g = d[1] - d[0] / (v * v)
+    else:
+        g = d[1] + d[0] / (p[V_LOAD_MIN] * p[V_LOAD_MIN])
+    return abs(g) * p[INV_C]
+
+
+@njit(cache=True)
+def energy(p, s):
+    """Stored energy [J]: 1/2 (L i_L^2 + C v_out^2)."""
+    return p[HL] * s[0] * s[0] + p[HC] * s[1] * s[1]
+
+
+@njit(cache=True)
+def energy_limit(h, p, e0, d):
+    """The most stored energy [J] after h seconds from e0, whatever the command, load d held:
+    dE/dt <= a + b sqrt(E) + c E with a = max(0, -P), b = V_dc sqrt(2/L) + |I| sqrt(2/C),
+    c = max(0, -G) 2/C (as two_stage_lc.energy_limit explains)."""
+    a = -d[0] if d[0] < 0.0 else 0.0
+    b = p[SRC_K] + abs(d[2]) * p[VOUT_K]
+    c = -2.0 * d[1] * p[INV_C] if d[1] < 0.0 else 0.0
+    al = 1.0 - h * c
+    if not (al > 0.0):
+        return np.inf
+    hb = h * b
+    r = (hb + np.sqrt(hb * hb + 4.0 * al * (e0 + h * a))) / (2.0 * al)
+    return r * r

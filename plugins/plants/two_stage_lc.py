@@ -32,14 +32,30 @@ from hilrig.plugins.plants.loads import load_current, power_current_scaled
 
 # indices into p: the declared parameters in order, except that inductances and capacitances
 # are stored as reciprocals (a multiplication is several times cheaper than a division in the
-# integrator's critical path)
+# integrator's critical path); then constants of the integration's checks (see below)
 V_DC, INV_L1, R1, INV_C1, INV_L2, R2, INV_C2, V_LOAD_MIN = range(8)
+SRC_K, VOUT_K, HL1, HC1, HL2, HC2 = range(8, 14)
 
 
 def _build(values, ctx):
     v = values
     return np.array([v["V_dc"], 1.0 / v["L1"], v["R1"], 1.0 / v["C1"], 1.0 / v["L2"], v["R2"],
-                     1.0 / v["C2"], v["v_load_min"]])
+                     1.0 / v["C2"], v["v_load_min"],
+                     v["V_dc"] * np.sqrt(2.0 / v["L1"]), np.sqrt(2.0 / v["C2"]),
+                     0.5 * v["L1"], 0.5 * v["C1"], 0.5 * v["L2"], 0.5 * v["C2"]])
+
+
+def linear_rate(values) -> float:
+    """A bound [1/s] on the magnitude of every eigenvalue of the filter's linear part (the
+    Jacobian without the load's conductance): Gershgorin's circle theorem on the Jacobian in
+    energy coordinates (sqrt(L) i, sqrt(C) v), where each inductor-capacitor coupling is
+    +-1/sqrt(L C) and each series resistance adds R/L on the diagonal. The runtime makes its
+    RK4 sub-steps short enough for this rate (runtime/loop.py)."""
+    v = values
+    w11 = 1.0 / np.sqrt(v["L1"] * v["C1"])
+    w21 = 1.0 / np.sqrt(v["L2"] * v["C1"])
+    w22 = 1.0 / np.sqrt(v["L2"] * v["C2"])
+    return float(max(v["R1"] / v["L1"] + w11, w11 + w21, v["R2"] / v["L2"] + w21 + w22, w22))
 
 
 def _equilibrium(values, v_out, d):
@@ -164,3 +180,45 @@ def _move(h, he, i1, v1, i2, vo, f, g, m, n, q):
     """The next stage's state s + h k, with v_out's part (v_out0 + h/C2 n) - q: only the
     subtraction of q waits for the division."""
     return i1 + h * f, v1 + h * g, i2 + h * m, (vo + he * n) - q
+
+
+@njit(cache=True)
+def fast_rate(p, s, d):
+    """The state-dependent part of the rate bound [1/s]: |g| / C2, with g the load's
+    incremental conductance at v_out (G - P / v_out^2; below v_load_min G + P / v_load_min^2,
+    the constant-power part's resistive stand-in). A constant-power load collapsing the output
+    or a short circuit makes it large: the runtime then shortens the RK4 sub-steps."""
+    v = s[3]
+    if v >= p[V_LOAD_MIN]:
+        g = d[1] - d[0] / (v * v)
+    else:
+        g = d[1] + d[0] / (p[V_LOAD_MIN] * p[V_LOAD_MIN])
+    return abs(g) * p[INV_C2]
+
+
+@njit(cache=True)
+def energy(p, s):
+    """Stored energy [J]: 1/2 (L1 i_L1^2 + C1 v_C1^2 + L2 i_L2^2 + C2 v_out^2)."""
+    return (p[HL1] * s[0] * s[0] + p[HC1] * s[1] * s[1]) + (p[HL2] * s[2] * s[2] + p[HC2] * s[3] * s[3])
+
+
+@njit(cache=True)
+def energy_limit(h, p, e0, d):
+    """The most stored energy [J] the circuit can hold h seconds after holding e0, whatever
+    the command and with the load d held.
+
+    dE/dt = u_c i_L1 - R1 i_L1^2 - R2 i_L2^2 - v_out i_load, with u_c in [0, V_dc]:
+    u_c i_L1 <= V_dc sqrt(2 E / L1); -v_out i_load <= max(0, -P) + |I| sqrt(2 E / C2)
+    + max(0, -G) 2 E / C2 (below v_load_min the constant-power part is -P v^2 / v_load_min^2,
+    at most max(0, -P) too). So dE/dt <= a + b sqrt(E) + c E, and E(h) <= E* with
+    (1 - h c) E* - h b sqrt(E*) - (e0 + h a) = 0 (each term bounded by its value at the
+    largest energy reached). Infinite when h c >= 1 (no bound from this argument)."""
+    a = -d[0] if d[0] < 0.0 else 0.0
+    b = p[SRC_K] + abs(d[2]) * p[VOUT_K]
+    c = -2.0 * d[1] * p[INV_C2] if d[1] < 0.0 else 0.0
+    al = 1.0 - h * c
+    if not (al > 0.0):
+        return np.inf
+    hb = h * b
+    r = (hb + np.sqrt(hb * hb + 4.0 * al * (e0 + h * a))) / (2.0 * al)
+    return r * r

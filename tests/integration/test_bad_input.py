@@ -24,6 +24,10 @@ CASES = {
     # terminal escape codes in the title (ESC [2J clears the screen)
     "escape": (lambda d: _demo_with(d, 'title = "', 'title = "\\u001b[2J\\u001b[31m'),
                r"escape\.toml: title holds the control character U\+001B at position 0"),
+    # a start excitation far beyond a small offset (docs/scenarios.md, [initial])
+    "offset": (lambda d: Path(d).read_text() + '\n[initial]\nv_out_offset = "-30 %"\n',
+               r"offset\.toml: initial\.v_out_offset = '-30 %' is outside \[-10, 10\] % of the "
+               r"start voltage; write a percentage"),
 }
 
 

@@ -434,11 +434,15 @@ def test_an_unknown_set_key_is_one_error_before_any_run(tmp_path):
     p = cli("envelope", MAP_SCENARIO, "--controllers", "cascaded_pi,flatness", "--grid", "2x2",
             "--set", bad, "--out", tmp_path / "map")
     assert p.returncode == 2
-    # the same message as run's, one line, nothing ran or was written
+    # run's words, naming every candidate's parameters; one message, nothing ran or was written
     r = cli("run", MAP_SCENARIO, "--set", bad, "--out", tmp_path / "run")
     assert r.returncode == 2
-    assert p.stdout == r.stdout and len(p.stdout.strip().splitlines()) == 1, p.stdout
-    assert "unknown key 'controller.kx'" in p.stdout and "Traceback" not in p.stderr
+    assert p.stdout.startswith("error: envelope.toml: unknown key 'controller.kx' (an "
+                               "override): no candidate controller has a parameter 'kx'"), p.stdout
+    assert "cascaded_pi has Kp_v," in p.stdout and "flatness has pole," in p.stdout
+    assert r.stdout.startswith("error: envelope.toml: unknown key 'controller.kx' (an "
+                               "override): controller cascaded_pi has no parameter 'kx'"), r.stdout
+    assert len(p.stdout.strip().splitlines()) == 1 and "Traceback" not in p.stderr + r.stderr
     assert not (tmp_path / "map").exists()
     p = cli("envelope", MAP_SCENARIO, "--controllers", "cascaded_pi", "--set", "no-equals-sign")
     assert p.returncode == 2 and p.stdout.startswith("error: --set 'no-equals-sign': write KEY=VALUE")

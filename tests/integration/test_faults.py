@@ -22,10 +22,12 @@ def _run(tmp_path, text, name="r"):
 
 
 def test_output_short_circuit_trips_over_current_on_the_first_tick_beyond_the_limit(tmp_path, demo_path):
-    # a bolted 10 mohm short across C2 = 680 uF (tau = 6.8 us) needs RK4 substeps of at most
-    # tau / 2 (the scenario check refuses fewer): 16 substeps of 3.1 us
+    # a bolted 10 mohm short across C2 = 680 uF (tau = 6.8 us): the default 4 substeps of
+    # 12.5 us, refined by the stiffness-aware integration where the short makes them too long
     text = _demo(demo_path, '[[faults]]\nkind = "short_circuit"\nstart = "0.2 s"\nvalue = "10 mohm"\n')
-    s, run = _run(tmp_path, text.replace("substeps = 4 ", "substeps = 16 "))
+    assert "substeps = 4 " in text
+    s, run = _run(tmp_path, text)
+    assert s["integration"]["refined_steps"] > 0 and s["integration"]["first_refined_tick"] == 4000
     trip = s["trip"]
     # the short shows first in the measured load current, on the tick it happens
     assert trip is not None and trip["cause"] == "interlock i_out > 500 A", s["events"]
@@ -43,10 +45,13 @@ def test_output_short_circuit_trips_over_current_on_the_first_tick_beyond_the_li
     assert np.all(np.diff(run.signals["v_out"][first:]) < 0)
 
 
-def test_too_few_substeps_for_a_short_circuit_are_refused(demo_path):
+def test_too_few_fixed_substeps_for_a_short_circuit_are_refused(demo_path):
+    # with fixed sub-steps (no refinement) a short's time constant needs substeps <= tau / 2
     text = _demo(demo_path, '[[faults]]\nkind = "short_circuit"\nstart = "0.2 s"\nvalue = "10 mohm"\n')
+    fixed = text.replace("substeps = 4 ", 'substeps = 4\nintegration = "fixed" ')
     with pytest.raises(ScenarioError, match="substeps to at least 15"):
-        parse_scenario(text, name="faults.toml")
+        parse_scenario(fixed, name="faults.toml")
+    parse_scenario(text, name="faults.toml")  # adaptive (the default): accepted
 
 
 def test_sensor_dropout_trips_on_its_tick_and_offset_shifts_the_true_voltage(tmp_path, demo_path):

@@ -44,7 +44,9 @@ def _kvl_residual(v_c1, v_out, i_l2):
 
 @pytest.mark.parametrize("n", [5, 41, 150, 400])
 def test_stuck_v_out_trips_the_frozen_check_within_its_count_even_once_u_saturates(tmp_path, n):
-    s, run = _run(tmp_path / "r", STEP, STUCK_AT_10MS + f'[[interlocks]]\nsignal = "v_out"\nfrozen = {n}\n')
+    # exact equilibrium start: the fault's own tick counts only if v_out did not move before it
+    s, run = _run(tmp_path / "r", STEP, STUCK_AT_10MS + f'[[interlocks]]\nsignal = "v_out"\nfrozen = {n}\n'
+                  '[initial]\nv_out_offset = "0 V"\n')
     trip = s["trip"]
     assert trip is not None and trip["cause_id"] == "v_out frozen", s["events"]
     # from the fault's tick on, every tick counts (the command moves, or sits at V_dc): the

@@ -512,3 +512,51 @@ def test_two_stage_equilibrium_without_jit(tmp_path):
                           timeout=120)
     assert proc.returncode == 0, proc.stderr
     assert proc.stdout.strip() == "ok"
+
+
+# --------------------------------------------------------------------------------------------
+# The integration's rate bounds and energy limit (runtime/loop.py, stiffness-aware RK4)
+# --------------------------------------------------------------------------------------------
+
+@pytest.mark.parametrize("v, P, G", [(400.0, 100e3, 0.0), (120.0, 200e3, 0.0), (30.0, 200e3, 0.0),
+                                     (5.0, 150e3, 0.0), (400.0, -80e3, 0.0), (400.0, 50e3, 100.0)])
+def test_rate_bounds_cover_every_eigenvalue(v, P, G):
+    # Gershgorin's circle theorem (any linear algebra text): linear_rate + fast_rate bounds the
+    # magnitude of every eigenvalue of the Jacobian; checked against numpy's eigenvalues of the
+    # kernel's finite-difference Jacobian (below v_load_min the load is resistive)
+    for module, values, rhs_jac in ((two_stage_lc, TWO, None), (single_lc, ONE, None)):
+        p = _pack(module, values)
+        d = _vec(P, G, 0.0)
+        x0 = np.asarray(module.DECLARATION.equilibrium(values, v, d), dtype=np.float64)
+        J = _fd_jacobian(module.derivs, p, x0, _vec(v), d)
+        eig = np.max(np.abs(np.linalg.eigvals(J)))
+        bound = module.linear_rate(values) + module.fast_rate(p, tuple(x0), d)
+        assert eig <= bound * (1 + 1e-6), (module.__name__, eig, bound)
+
+
+def test_fast_rate_is_the_loads_conductance_over_the_capacitance():
+    # the state-dependent rate: |d i_load / d v| / C_out, written out here from the load model
+    p = _pack(two_stage_lc, TWO)
+    for v, P, G in ((400.0, 100e3, 0.0), (100.0, 200e3, 1.0), (5.0, 200e3, 0.0)):
+        g = G - P / v ** 2 if v >= TWO["v_load_min"] else G + P / TWO["v_load_min"] ** 2
+        got = two_stage_lc.fast_rate(p, (0.0, 0.0, 0.0, v), _vec(P, G, 0.0))
+        assert got == pytest.approx(abs(g) / TWO["C2"], rel=1e-12)
+
+
+@pytest.mark.parametrize("P, G, I", [(100e3, 0.0, 0.0), (-80e3, 0.0, 0.0), (0.0, -0.05, -50.0)])
+def test_energy_limit_bounds_a_radau_trajectory_driven_hard(P, G, I):
+    # the limit holds for the exact dynamics whatever the command: the source at full V_dc from
+    # an energy-rich state with a load that feeds power back (P < 0, G < 0, I < 0 where given),
+    # solved with Radau; and it is not loose by orders of magnitude
+    c = TWO
+    p = _pack(two_stage_lc, c)
+    x0 = np.array([200.0, 390.0, 180.0, 380.0])
+    e = lambda x: 0.5 * (c["L1"] * x[0] ** 2 + c["C1"] * x[1] ** 2 + c["L2"] * x[2] ** 2
+                         + c["C2"] * x[3] ** 2)
+    sol = solve_ivp(_two_stage_rhs, (0.0, TS), x0, method="Radau", rtol=1e-10, atol=1e-9,
+                    args=(c["V_dc"], P, G, I, c), dense_output=True)
+    peak = max(e(sol.sol(t)) for t in np.linspace(0.0, TS, 101))
+    lim = two_stage_lc.energy_limit(TS, p, e(x0), _vec(P, G, I))
+    assert two_stage_lc.energy(p, tuple(x0)) == pytest.approx(e(x0), rel=1e-12)
+    assert peak <= lim
+    assert lim < 10.0 * peak

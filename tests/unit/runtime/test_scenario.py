@@ -248,6 +248,28 @@ CASES = [
     ("[paced] not a table",
      minimal("seed = 3", 'seed = 3\npaced = "fast"'),
      ["paced is a str", "expected a table [paced]"]),
+    # [initial] v_out_offset: the start excitation, percent of the start voltage or volts
+    ("excitation offset beyond 10 % of the start voltage",
+     MINIMAL + '[initial]\nv_out_offset = "-20 %"\n',
+     ["initial.v_out_offset = '-20 %'", "outside [-10, 10] % of the start voltage",
+      'such as "-0.25 %"', '"0 V" starts exactly at the equilibrium']),
+    ("excitation offset in the wrong unit",
+     MINIMAL + '[initial]\nv_out_offset = "-0.5 A"\n',
+     ["initial.v_out_offset = '-0.5 A'", "neither a percentage nor a voltage",
+      'a voltage such as "-0.5 V"']),
+    ("excitation percentage that is not a number",
+     MINIMAL + '[initial]\nv_out_offset = "small %"\n',
+     ["initial.v_out_offset = 'small %'", "is not a percentage"]),
+    ("excitation offset given as a switch",
+     MINIMAL + "[initial]\nv_out_offset = false\n",
+     ["initial.v_out_offset = False", "neither a percentage nor a voltage", '"0 V"']),
+    ("excitation offset of too many volts",
+     MINIMAL + '[initial]\nv_out_offset = "20 kV"\n',
+     ["initial.v_out_offset = 20000 V", "outside [-10000, 10000] V"]),
+    ("unknown key in [initial]",
+     MINIMAL + '[initial]\nv_out_ofset = "0 V"\n',
+     ["unknown key 'initial.v_out_ofset'", "did you mean 'v_out_offset'",
+      "allowed: v_out, v_out_offset"]),
 ]
 
 
@@ -458,6 +480,23 @@ def test_paced_defaults_values_and_overrides():
     assert "paced.max_lateness" in sc.text  # the run folder records what ran
 
 
+def test_the_start_excitation_key():
+    """[initial] v_out_offset: default 0.25 % of the start voltage below the equilibrium; a
+    percentage or a voltage (a bare number is volts, as every bare number is SI); 0 = off."""
+    sc = parse_scenario(MINIMAL, name=NAME)
+    assert sc.v_out_offset == (-0.25, "%") and sc.offset_volts(400.0) == -1.0
+    for given, spec, at_200 in (('"-0.5 V"', (-0.5, "V"), -0.5), ('"0 V"', (0.0, "V"), 0.0),
+                                ("0", (0.0, "V"), 0.0), ('"+1 %"', (1.0, "%"), 2.0),
+                                ('"-250 mV"', (-0.25, "V"), -0.25), ('" -2 % "', (-2.0, "%"), -4.0),
+                                ("-1.5", (-1.5, "V"), -1.5), ('"0 %"', (0.0, "%"), 0.0)):
+        sc = parse_scenario(MINIMAL + f"[initial]\nv_out_offset = {given}\n", name=NAME)
+        assert sc.v_out_offset == spec, given
+        assert sc.offset_volts(200.0) == at_200, given
+        assert sc.v_out0 is None  # the start voltage stays "auto"
+    sc = parse_scenario(MINIMAL + '[initial]\nv_out = "300 V"\nv_out_offset = "-3 V"\n', name=NAME)
+    assert sc.v_out0 == 300.0 and sc.v_out_offset == (-3.0, "V")
+
+
 def test_partly_given_section_keeps_the_other_defaults():
     sc = parse_scenario(demo('L1 = "150 uH"', 'L1 = "0.25 mH"').replace('C2 = "680 uF"\n', ""),
                         name=NAME)
@@ -494,6 +533,7 @@ _KEYS = ["title", "mode", "seed", "demo_data", "timing", "timing.Ts", "timing.su
          "timing.duration", "plant", "plant.plugin", "plant.L1", "plant.R2", "controller.Kp_v",
          "reference.plugin", "reference.points", "shaping.order", "shaping.pole", "load",
          "load.points", "load.interpolation", "limits.safe_u", "interlocks", "initial.v_out",
+         "initial.v_out_offset",
          "recording", "recording.chunk", "recording.compression", "paced", "paced.realtime",
          "paced.max_lateness", "paced.miss_share_max", "paced.realtime_priority", "unknown"]
 _scalars = (st.booleans() | st.integers(-2**63, 2**63 - 1) | st.floats()
