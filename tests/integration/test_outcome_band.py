@@ -24,7 +24,7 @@ from tests.unit.safety.test_caution import LOW_48V
 OSCILLATES = 'controller.u_max="26 V"'
 #: a sluggish voltage loop (tiny gains, no slope feed-forward): after the 24 V -> 28 V step at
 #: 10 ms the output creeps up and is still more than 5 % short of 28 V from 20 ms to the end
-SLUGGISH = {"plugin": "cascaded_pi", "Kp_v": 0.02, "Ki_v": 1.0, "C_ff": 0.0}
+SLUGGISH = {"controller.Kp_v": 0.02, "controller.Ki_v": 1.0, "controller.C_ff": 0.0}
 #: an early trip: the v_out sensor reads 15 V high from 8 ms (past the 36 V interlock), before
 #: the step at 10 ms; the safe output holds 26 V so the run goes on past the step until the
 #: 500 W load collapses the output (about 13 ms)
@@ -78,7 +78,7 @@ def test_a_loop_in_a_limit_cycle_is_oscillating_in_run(tmp_path):
 def test_a_sluggish_loop_is_out_of_band_in_compare(tmp_path, capsys):
     (tmp_path / "s.toml").write_text(LOW_48V)
     res = compare(tmp_path / "s.toml", ["cascaded_pi"], tmp_path / "cmp",
-                  overrides={"controller": SLUGGISH})
+                  overrides=SLUGGISH)
     oc = res["cascaded_pi"]["outcome"]
     assert oc["status"] == "out of band" and not oc["completed"]
     saved = json.loads((tmp_path / "cmp" / "comparison.json").read_text())
@@ -120,3 +120,29 @@ def test_a_candidate_that_trips_before_its_step_scores_no_rise_or_overshoot(tmp_
     # the hold before the step is scored up to the trip and says so
     hold = r["segments"][0]
     assert hold["cut_at_s"] == pytest.approx(t[k_trip]) and "scored only up to" in hold["note"]
+
+
+def test_a_run_that_ends_on_a_plant_integration_error_has_no_metrics(tmp_path):
+    """The stiff collapse case of the integration tests with the fixed sub-steps of before and
+    an unexcited start: the loop ends it as a plant integration error (its energy check) with
+    no trip before it. The verdict names it, and no number of the diverged run is kept: every
+    metric and every segment metric is null (None in summary.json), with the reason."""
+    from hilrig.runtime.run import run_scenario
+    from hilrig.runtime.scenario import parse_scenario
+    from tests.integration.test_stiff_plants import _scenario
+    text = _scenario("two_stage C2 220 uF, 200 kW").text.replace(
+        'substeps = 4', 'substeps = 4\nintegration = "fixed"') + '\n[initial]\nv_out_offset = "0 V"\n'
+    s = run_scenario(parse_scenario(text, name="stiff.toml"), tmp_path / "r").summary
+    assert s["end_event"] == "plant integration error" and s["trip"] is None
+    ev = next(e for e in s["events"] if e["event"] == "plant integration error")
+    oc = s["outcome"]
+    assert oc["status"] == "integration error" and not oc["completed"]
+    assert oc["first_cause_time_s"] == pytest.approx(ev["time_s"])
+    on_disk = json.loads((tmp_path / "r" / "summary.json").read_text())
+    assert all(v is None for k, v in on_disk["metrics"].items() if k not in ("trips", "warnings"))
+    assert on_disk["metrics_note"].startswith("the run ended on a plant integration error at ")
+    assert ev["detail"] in on_disk["metrics_note"]
+    assert on_disk["segments"] and all(g["note"].startswith("not scored: ") for g in on_disk["segments"])
+    for g in on_disk["segments"]:
+        for k in ("rise_time_s", "overshoot_pct", "lag_s", "max_abs_error_V"):
+            assert g.get(k) is None, (g["kind"], k)
