@@ -3,7 +3,8 @@
 User mistakes (a bad scenario, a missing run folder) print one message naming the file, key and
 value and exit with status 2; they never print a traceback. Nothing recorded is overwritten.
 A run's exit status follows its outcome (:mod:`hilrig.runtime.outcome`): 0 completed, 1 the run
-did not complete (tripped, collapsed, stopped, ended on an error of the link or the plant), 3 a
+did not complete (tripped, integration error, collapsed, stopped, ended on an error of the link,
+out of band, oscillating), 3 a
 paced run that did not hold its ``[paced]`` timing limits (``EXIT_TIMING_NOT_MET``), so that a
 script or a lab's CI can gate on it; 2 is a usage mistake, 130 an interruption.
 """
@@ -106,12 +107,32 @@ def _num(v, spec: str) -> str:
 
 def _run_status(s: dict) -> int:
     """The exit status of a run from its outcome: 0 completed, 3 timing not met (and nothing
-    worse), 1 any other run that did not complete."""
+    worse), 1 any other run that did not complete (out of band and oscillating too)."""
     from hilrig.runtime.outcome import judge
     oc = judge(s)
     if oc["completed"]:
         return 0
     return EXIT_TIMING_NOT_MET if oc["status"] == "timing not met" else EXIT_NOT_COMPLETED
+
+
+def _band_text(tr) -> str | None:
+    """The band check's rule and result in a line (None for a summary without one)."""
+    if not isinstance(tr, dict) or not _finite(tr.get("band_rel")):
+        return None
+    rule = (f"{tr['band_rel'] * 100:g} % of |v_ref_raw|, at least {_num(tr.get('band_floor_V'), 'g')} V, "
+            f"from {_num((tr.get('settle_delay_s') or 0) * 1e3, 'g')} ms after each change")
+    if not tr.get("windows"):
+        return f"{rule}: no settled window to check"
+    run = tr.get("out_of_band_run") or {}
+    if tr.get("oscillating"):
+        res = "oscillating"
+    elif tr.get("out_of_band"):
+        res = "left it"
+    else:
+        res = "inside"
+    longest = (f"; longest time outside {_num((run.get('duration_s') or 0) * 1e3, '.3g')} ms "
+               f"(limit {_num((tr.get('out_of_band_limit_s') or 0) * 1e3, 'g')} ms)" if run else "")
+    return f"{res} ({rule}{longest})"
 
 
 def _summary_table(console, s: dict, folder: Path | None) -> None:
@@ -131,6 +152,11 @@ def _summary_table(console, s: dict, folder: Path | None) -> None:
     t.add_row("outcome", escape(oc["text"]))
     if coverage_text(oc):
         t.add_row("metrics cover", f"only the run {coverage_text(oc)} (it ended early)")
+    if s.get("metrics_note"):
+        t.add_row("metrics", escape("none: " + s["metrics_note"]), style="bold red")
+    band = _band_text(s.get("tracking"))
+    if band:
+        t.add_row("tracking band", escape(band))
     tr = s["trip"]
     t.add_row("trip", "none" if not tr else f"{tr['cause']} at t = {tr['time_s']:.6g} s (tick {tr['tick']}), value {_num(tr.get('value'), '.6g')}")
     t.add_row(escape("RMS tracking error [V]"), _num(m["rms_error_V"], ".4g"))
@@ -227,6 +253,9 @@ def _segments_table(console, segments: list, info: dict | None,
     for i, seg in enumerate(segments):
         t.add_row(*[escape(c) for c in _segment_label(i + 1, seg)], *_segment_cells(seg))
     console.print(t)
+    for i, seg in enumerate(segments):
+        if seg.get("note"):
+            console.print(escape(f"  segment {i + 1}: {seg['note']}"))
     if not note:
         return
     text = _SEGMENT_NOTE
@@ -260,6 +289,10 @@ def _compare_segments(console, by_name: dict) -> None:
                           escape(str(name)), *_segment_cells(segs[i]),
                           end_section=j == len(by_name) - 1)
         console.print(t)
+        for name, segs in by_name.items():
+            for i, seg in enumerate(segs):
+                if seg.get("note"):
+                    console.print(escape(f"  segment {i + 1}, {name}: {seg['note']}"))
     else:
         for name, segs in by_name.items():
             _segments_table(console, segs, None, title=f"reference segments: {name}", note=False)
@@ -511,6 +544,8 @@ def _compare(console, args) -> None:
     for name, r in results.items():
         if not r["outcome"]["completed"]:
             console.print(f"{r['rank']}. {escape(labels[name])}: {escape(r['outcome']['text'])}")
+        if r.get("metrics_note"):
+            console.print(f"   no metrics: {escape(r['metrics_note'])}")
     console.print(escape(RANK_RULE) + ". * covers only the part of the run before it ended "
                   "(column covers). rise, settle, overshoot and ss error: of the largest "
                   "reference step of the run (10-90 % rise, 2 % settling band). Plots and run "
@@ -600,8 +635,9 @@ def _envelope(console, args, plain: bool) -> None:
         for line in env.text_map(rows, c, order):
             console.print(escape(line), highlight=False)
     # a cell that trips shows the letter of its first cause (the key below), else T
-    console.print("map: " + "  ".join(f"{sym} {o}" for o, sym in env.SYMBOLS.items()
-                                      if o != "trips" or not order))
+    console.print(escape("map: " + "  ".join(f"{sym} {env.legend_label(o)}"
+                                             for o, sym in env.SYMBOLS.items()
+                                             if o != "trips" or not order)))
     for line in env.cause_key(rows):
         console.print("     " + line, markup=False, soft_wrap=True)
     for c in names:

@@ -11,8 +11,9 @@ largest reference step and the metrics of every reference segment (holds, steps,
 loop's compute time per tick, and draws one figure per quantity with every candidate overlaid.
 
 Candidates are ranked by :func:`hilrig.runtime.outcome.rank_key`: every run that completed
-before every run that did not, whatever their metrics (a run that ended early has metrics of
-only the part it ran, often the best looking ones), then by IAE. Results, the table, the JSON
+(inside its tracking band) before every run that did not, whatever their metrics (a run that
+ended early has metrics of only the part it ran, often the best looking ones); then the runs
+that ran to their end without a trip but oscillated or left their band; then by IAE. Results, the table, the JSON
 and the plots' legends are in rank order.
 """
 from __future__ import annotations
@@ -33,13 +34,14 @@ JSON_KEYS = ("rise_time_s", "settling_time_s", "overshoot_pct", "steady_state_er
              "rms_error_V", "max_abs_error_V", "saturation_time_s", "trips", "compute_ns_per_tick",
              "segments")
 #: what ``--json`` gives per candidate besides the metrics
-JSON_FIELDS = ("rank", "outcome", "covers_s") + JSON_KEYS
+JSON_FIELDS = ("rank", "outcome", "covers_s", "metrics_note") + JSON_KEYS
 #: the metric that orders candidates of the same outcome class (smaller first)
 RANK_METRIC = "iae_Vs"
 #: the ranking rule in words, for the table's footer and the docs
-RANK_RULE = ("ranked: runs that completed first, by IAE (smaller first); then runs that did "
-             "not complete, whatever their metrics (those that reached the planned end first, "
-             "then the longest)")
+RANK_RULE = ("ranked: runs that completed first, by IAE (smaller first; completed: inside "
+             "the tracking band too); then runs that reached their end without a trip but "
+             "oscillated, left their band or missed their timing; then the others, whatever "
+             "their metrics (those that reached the planned end first, then the longest)")
 
 
 def folder_name(candidate: str) -> str:
@@ -90,6 +92,8 @@ def compare(scenario: Path, candidates: list[str], out: Path, *, overwrite: bool
             "outcome": oc,
             # the metrics describe the run up to here (the whole run when it reached its end)
             "covers_s": oc["end_time_s"],
+            # why there are no metrics at all (a plant integration error), else None
+            "metrics_note": s.get("metrics_note"),
             "rise_time_s": big["rise_time_s"] if big else math.nan,
             "settling_time_s": big["settling_time_s"] if big else math.nan,
             "overshoot_pct": big["overshoot_pct"] if big else math.nan,

@@ -8,16 +8,26 @@ run in SIL with its plant, controller, shaping, interlocks and timing, but with
   10 % of a shorter run) to V (the shaping stage turns the step into a smooth, slew-limited
   transition),
 
-and the run is classified from its final part (the last 30 % of the run):
+and the run is classified first by its outcome (``runtime/outcome.py`` ``judge``, on the
+cell's events and band check, exactly as a normal run of the cell is judged), then, for a run
+that reached its end without a trip, by its final part (the last 30 % of the run):
 
-``trips``      an interlock latched: the loop's event log holds a trip (whatever followed:
-               the safe output may let a constant-power load collapse the voltage afterwards,
-               a scheduled reset may clear the latch);
-``collapses``  the output collapsed (or the plant state became non-finite) without a trip;
-``tracks``     |v_ref - v_out| stayed within the tolerance band (default 2 % of V);
-``saturates``  outside the band with the command at the converter's limits on more than 10 %
-               of the ticks (the converter cannot deliver what the controller asks);
-``oscillates`` outside the band otherwise (a sustained oscillation or a slow drift).
+``trips``      the outcome is "tripped": an interlock latched (whatever followed: the safe
+               output may let a constant-power load collapse the voltage afterwards, a
+               scheduled reset may clear the latch);
+``integration error``  the outcome is "integration error": the plant's integration failed
+               (a non-finite or impossible state) without a trip before it;
+``collapses``  the outcome is "collapsed": the output collapsed without a trip;
+``tracks``     the outcome is "completed" and |v_ref - v_out| stayed within the map's
+               tolerance band (default 2 % of V) over the final part;
+``saturates``  outside that band (or "out of band" or "oscillating" as an outcome) with the
+               command at the converter's limits on more than 10 % of the final part's ticks
+               (the converter cannot deliver what the controller asks);
+``oscillates`` outside the band otherwise: "oscillating" or "out of band" as an outcome, or a
+               slow drift in the final part.
+
+So a cell "tracks" only when its run would read "completed" (the one "ok" of a run), and the
+words of the map's legend say which outcome each cell word stands for (:data:`OUTCOME_WORDS`).
 
 A cell that trips also keeps the first trip's cause and time, in the run's own words (the
 cause text of the run's event log), and a cell whose loop ended on a collapse (or a non-finite
@@ -43,13 +53,19 @@ from typing import Any, Callable, Iterable
 
 import numpy as np
 
-OUTCOMES = ("tracks", "oscillates", "saturates", "trips", "collapses")
+OUTCOMES = ("tracks", "oscillates", "saturates", "trips", "collapses", "integration error")
 #: one character per outcome for the terminal map
-SYMBOLS = {"tracks": ".", "oscillates": "~", "saturates": "s", "trips": "T", "collapses": "x"}
+SYMBOLS = {"tracks": ".", "oscillates": "~", "saturates": "s", "trips": "T", "collapses": "x",
+           "integration error": "!"}
+#: the run outcome (runtime/outcome.py status) each cell word stands for, shown in the legends
+OUTCOME_WORDS = {"tracks": "completed", "oscillates": "oscillating, or out of band",
+                 "saturates": "out of band or oscillating, command at its limits",
+                 "trips": "tripped",
+                 "collapses": "collapsed", "integration error": "integration error"}
 FINAL_PART = 0.3
 SATURATED_SHARE = 0.1
 #: outcomes from worst to best: the order in which a controller's worst cell is chosen
-SEVERITY = ("collapses", "trips", "saturates", "oscillates", "tracks")
+SEVERITY = ("integration error", "collapses", "trips", "saturates", "oscillates", "tracks")
 #: letters of the trip causes on the terminal map (a cause beyond them shows as "T")
 CAUSE_LETTERS = "ABCDEFGHIJKLMNOPQRSUVWYZ"
 #: hatches of the trip causes on the heat map (a cause beyond them has none)
@@ -194,6 +210,43 @@ def classify(n_planned: int, ran: int, event: int, tripped: bool, v_out, v_ref, 
     return "oscillates"
 
 
+def cell_word(status: str, word: str) -> str:
+    """A cell's word from its run's outcome ``status`` and the map's own classification of
+    the final part (``word``, :func:`classify` of a run that reached its end): see the module
+    docstring."""
+    if status == "tripped":
+        return "trips"
+    if status == "integration error":
+        return "integration error"
+    if status == "completed" or status == "timing not met":
+        return word
+    if status in ("oscillating", "out of band"):
+        # at the command's limits the converter is the cause (a saturated command damps
+        # nothing): "saturates"; else the loop's own
+        return "saturates" if word == "saturates" else "oscillates"
+    # collapsed (and no other end can come from a cell's SIL loop)
+    return "collapses"
+
+
+def _cell_status(ts: float, n: int, ran: int, trip: dict | None, end_event: str,
+                 end_tick: int | None, sig: dict) -> str:
+    """The outcome status of a cell's run, judged as run.execute's summary is (its events and
+    the band check on the recorded v_out and v_ref_raw, cut at the first trip or collapse)."""
+    from .metrics import band_check
+    from .outcome import COLLAPSE, judge
+    events = [dict(trip, event="trip")] if trip else []
+    if end_event:
+        events.append({"event": end_event, "tick": end_tick, "time_s": end_tick * ts})
+    cut = trip["tick"] if trip else (end_tick if end_event == COLLAPSE else None)
+    tracking = None
+    if "v_ref_raw" in sig:
+        t = np.arange(ran) * ts
+        tracking = band_check(t, sig["v_out"][:ran], sig["v_ref_raw"][:ran], cut=cut)
+    return judge({"Ts_s": ts, "ticks_planned": n, "ticks_run": ran, "simulated_s": ran * ts,
+                  "end_event": end_event or None, "events": events,
+                  "tracking": tracking})["status"]
+
+
 def run_row(task: Task) -> list[Cell]:
     """Cells of one grid row (one voltage, every power). Runs in any worker process."""
     from .run import _call, prepare
@@ -221,17 +274,20 @@ def _loop_cell(prep, n: int, ran: int, sig: dict, v_target: float, tol_pct: floa
 
     from .loop import EVENT_TEXT
     a, ts = prep.args, prep.sc.Ts
-    first_cause, first_t = "", None
+    first_cause, first_t, trip = "", None, None
     for row in a["evlog"][:min(int(a["evn"][0]), a["evlog"].shape[0])]:
         if int(row[1]) == EVT_TRIP:
             first_cause = prep.table.cause_text(int(row[2]), len(prep.y_names))
             first_t = int(row[0]) * ts
+            trip = {"tick": int(row[0]), "time_s": first_t, "cause": first_cause,
+                    "cause_id": prep.table.cause_id(int(row[2])), "value": float(row[3])}
             break
     ev = int(a["ev"][0])
     end_event, end_t = (EVENT_TEXT[ev], int(a["ev"][1]) * ts) if ev else ("", None)
-    return Cell(_classify_signals(n, ran, ev, first_t is not None, sig, prep.u_names[0],
-                                  v_target, tol_pct),
-                first_cause, first_t, end_event, end_t)
+    status = _cell_status(ts, n, ran, trip, end_event, int(a["ev"][1]) if ev else None, sig)
+    word = _classify_signals(n, ran, ev, first_t is not None, sig, prep.u_names[0], v_target,
+                             tol_pct)
+    return Cell(cell_word(status, word), first_cause, first_t, end_event, end_t)
 
 
 def _classify_signals(n, ran, event, tripped, sig, u_name, v_target, tol_pct) -> str:
@@ -339,8 +395,10 @@ def cell_of_run(folder: Path, v_target: float, tol_pct: float = 2.0) -> Cell:
     trip = s.get("trip")
     ends = [e for e in s.get("events", []) if e["event"] in set(EVENT_TEXT.values()) - {""}]
     ran = int(s["ticks_run"])
-    outcome = _classify_signals(int(s["ticks_planned"]), ran, 1 if ends else 0, trip is not None,
-                                run.signals, u_name, v_target, tol_pct)
+    word = _classify_signals(int(s["ticks_planned"]), ran, 1 if ends else 0, trip is not None,
+                             run.signals, u_name, v_target, tol_pct)
+    from .outcome import judge
+    outcome = cell_word(judge(s)["status"], word)
     return Cell(outcome, trip["cause"] if trip else "", trip["time_s"] if trip else None,
                 ends[0]["event"] if ends else "", ends[0]["time_s"] if ends else None)
 
@@ -524,7 +582,12 @@ def cause_key(rows: list[dict[str, Any]]) -> list[str]:
 
 #: colours of the heat map (our own choice: green good, warm colours worse)
 COLOURS = {"tracks": "#3a9a4a", "oscillates": "#e0c040", "saturates": "#e08a30",
-           "trips": "#8060c0", "collapses": "#c03030"}
+           "trips": "#8060c0", "collapses": "#c03030", "integration error": "#303030"}
+
+
+def legend_label(word: str) -> str:
+    """A cell word with the run outcome it stands for, for the legends: "tracks (completed)"."""
+    return word if OUTCOME_WORDS[word] == word else f"{word} ({OUTCOME_WORDS[word]})"
 
 
 def heat_map_figure(rows: list[dict[str, Any]], title: str = ""):
@@ -562,7 +625,7 @@ def heat_map_figure(rows: list[dict[str, Any]], title: str = ""):
         ax.set_title(c, fontsize=10)
         ax.set_xlabel("constant load power [kW]")
         ax.set_ylabel("target reference voltage [V]")
-    fig.legend(handles=[Patch(color=COLOURS[o], label=o) for o in OUTCOMES],
+    fig.legend(handles=[Patch(color=COLOURS[o], label=legend_label(o)) for o in OUTCOMES],
                loc="outside right upper" if hatch else "outside right center", fontsize=8)
     if hatch:
         fig.legend(handles=[Patch(facecolor=COLOURS["trips"], edgecolor="white", hatch=h,

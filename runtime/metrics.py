@@ -59,6 +59,43 @@ included, without counting the preceding transient twice. NaN when that response
 
 Samples whose output is not finite are left out of the largest errors.
 
+Cut at the first trip or collapse: a run's segments are scored only on the samples before the
+first trip (any latched trip: the safe output then drives the output, not the controller) or
+the collapse that ended the run (``cut`` of :func:`segment_metrics`). A step or ramp whose
+window reaches past that tick is scored on the part before it and says so (``cut_at_s``, and a
+``note``); one that starts at or after it gets no metrics (NaN, null in summary.json) and a
+``note``; so does a hold. A step cut before its output settled within 2 % of the step's size
+around its reference ``V2`` gets no metrics either (its final value, step_info's reference for
+rise and overshoot, would be the output as the trip found it).
+
+A run that ended on a plant integration error (:func:`withhold_metrics`): every metric is
+null, with ``summary["metrics_note"]`` saying why; a diverged state makes any number
+meaningless (an IAE of 1e180).
+
+Tracking band (:func:`band_check`, the outcomes "out of band" and "oscillating" of
+``runtime/outcome.py``): the band at a sample is ``max(BAND_REL |v_ref_raw|, BAND_FLOOR_V)``
+(5 %, at least 0.5 V). Settled windows start ``SETTLE_DELAY_S`` (10 ms, but at least
+``SETTLE_TICKS`` = 100 ticks) after the run's start and after the end of each step or ramp, and end at the next step or ramp (its last hold tick),
+at the run's end, or at the cut above, whichever comes first. In a settled window:
+
+- out of band: ``|v_ref_raw - v_out|`` above the band (a non-finite output counts as above)
+  on consecutive samples for longer than ``OUT_OF_BAND_S`` (2 ms, i.e. more than 2 ms / Ts
+  samples, and more than ``OUT_OF_BAND_TICKS`` = 20);
+- oscillating: with m the mean of v_out over the window and b the band at the window's mean
+  |v_ref_raw|, each sample is high (v_out > m + b), low (v_out < m - b) or neither; a
+  half-swing is a change from high to low or back, skipping the samples in between (a
+  hysteresis of +-b, so each half-swing moves v_out by more than 2 b peak to peak). At least
+  ``2 OSC_SWINGS`` half-swings (3 full periods) in the window, at least 2 of them in its last
+  half (sustained, not a ringing that dies out), is an oscillation.
+
+The 5 % band is the tracking band a trial of a voltage loop is judged by (common practice, no
+source); 10 ms covers several closed-loop time constants of the shipped controllers (about
+1 ms rise); 2 ms is a couple of those, so a load step's dip that recovers does not count. The
+tick floors are for slow-sampled loops (a 1 kHz test loop): a digital loop's bandwidth is a
+tenth to a twentieth of its sampling rate at best (common practice, no source), so its
+settling spans some tens of ticks whatever its period; at the usual 20 kHz (50 us) the
+millisecond figures rule (100 ticks = 5 ms, 20 ticks = 1 ms).
+
 References
 ----------
 K. J. Astrom and T. Hagglund, *Advanced PID Control*, ISA, 2006, sec. 4.2 (integral error
@@ -89,6 +126,21 @@ RAMP_MIN_TICKS = 3
 MAX_CHANGES = 50
 RISE_LIMITS = (0.1, 0.9)
 SETTLING_BAND = 0.02
+#: the tracking band and its windows (see the module docstring, "Tracking band")
+BAND_REL = 0.05
+BAND_FLOOR_V = 0.5
+SETTLE_DELAY_S = 10e-3
+OUT_OF_BAND_S = 2e-3
+#: ... and never fewer ticks than these (a slow-sampled loop settles in ticks, not ms)
+SETTLE_TICKS = 100
+OUT_OF_BAND_TICKS = 20
+OSC_SWINGS = 3
+#: the metric keys of each segment kind (NaN when a segment is not scored)
+_STEP_KEYS = ("rise_time_s", "settling_time_s", "overshoot_pct", "undershoot_pct", "peak_V",
+              "peak_time_s", "steady_state_V", "steady_state_error_V")
+_RAMP_KEYS = ("lag_s", "lag_steady_s", "max_abs_error_V", "time_of_max_abs_error_s",
+              "settling_time_s", "overshoot_pct", "steady_state_error_V")
+_HOLD_KEYS = ("settled_from_s", "max_abs_error_V", "time_of_max_abs_error_s")
 #: MAD to standard deviation of Gaussian noise: 1 / Phi^-1(3/4)
 _MAD_TO_SIGMA = 1.4826
 
@@ -354,14 +406,18 @@ def _ramp_segment(t, y, r, ch: Change, end: int, ts: float) -> tuple[dict, int]:
     return seg, settled
 
 
-def _hold_segment(t, y, r, i0: int, i1: int, t0: float, t1: float, settled: int) -> dict:
+def _hold_segment(t, y, r, i0: int, i1: int, t0: float, t1: float, settled: int,
+                  i_score: int | None = None) -> dict:
     """A hold over ticks i0..i1 (inclusive), shown from t0 to t1; its error is measured from
-    tick ``settled`` (where the preceding response settled; past i1 when it never did)."""
+    tick ``settled`` (where the preceding response settled; past i1 when it never did) to
+    ``i_score`` (i1 unless the run is cut before it)."""
     rf = r[i0:i1 + 1]
     rf = rf[np.isfinite(rf)]
     seg = dict(kind="hold", t_start_s=t0, t_end_s=t1, v_from_V=float(r[i0]),
                v_to_V=float(r[i1]), v_ref_min_V=float(rf.min()) if rf.size else math.nan,
                v_ref_max_V=float(rf.max()) if rf.size else math.nan)
+    if i_score is not None:
+        i1 = min(i1, i_score)
     lo = max(i0, settled)
     if lo <= i1:
         emax, temax = _max_abs_error(t[lo:i1 + 1], r[lo:i1 + 1] - y[lo:i1 + 1])
@@ -373,14 +429,21 @@ def _hold_segment(t, y, r, i0: int, i1: int, t0: float, t1: float, settled: int)
     return seg
 
 
-def segment_metrics(t: np.ndarray, v_out: np.ndarray,
-                    v_ref_raw: np.ndarray) -> tuple[list[dict], dict]:
+def segment_metrics(t: np.ndarray, v_out: np.ndarray, v_ref_raw: np.ndarray, *,
+                    cut: int | None = None, cut_reason: str = "the first trip"
+                    ) -> tuple[list[dict], dict]:
     """Every segment of a run's reference (holds, steps, ramps) with its metrics, in time order.
 
     See the module docstring for the metrics and :func:`split_reference` for the rule. Returns
     the segments (dicts with ``kind``, ``t_start_s``, ``t_end_s``, ``v_from_V``, ``v_to_V`` and
     the kind's metrics) and a dict with the rule's ``threshold_V``, ``changes_found`` and
-    ``changes_listed``.
+    ``changes_listed`` (and ``cut_at_s``, ``cut_reason`` when cut).
+
+    ``cut``: the index of the first sample not to score (the tick of the first trip, or of the
+    collapse that ended the run; ``cut_reason`` names it in the notes): the segments are still
+    listed whole, but scored only on the samples before it. A scored segment that reaches past
+    it gets ``cut_at_s`` and a ``note``; one that starts at or after it gets NaN metrics and a
+    ``note``.
     """
     t = np.asarray(t, dtype=float)
     y = np.asarray(v_out, dtype=float)
@@ -393,24 +456,161 @@ def segment_metrics(t: np.ndarray, v_out: np.ndarray,
         return [], info
     ts = float(t[1] - t[0]) if n > 1 else 0.0
     t_run_end = float(t[-1] + ts)
+    lim = n if cut is None else max(0, min(int(cut), n))
+    t_cut = float(t[lim]) if lim < n else t_run_end
+    if lim < n:
+        info.update(cut_at_s=t_cut, cut_reason=cut_reason)
+    when = f"{cut_reason} at {t_cut * 1e3:.4g} ms"
+
+    # samples from the cut on are not the controller's doing: NaN for every scoring function
+    # (a NaN sample never settles and is left out of the largest errors)
+    yc = y
+    if lim < n:
+        yc = y.copy()
+        yc[lim:] = math.nan
+
+    def scored(seg, first, end, keys):
+        # a segment whose scoring window [first, end) reaches the cut says so
+        if first >= lim:
+            seg.update(dict.fromkeys(keys, math.nan))
+            seg["note"] = f"not scored: starts at or after {when}"
+        elif end > lim:
+            seg["cut_at_s"] = t_cut
+            seg["note"] = f"scored only up to {when}"
+            span = abs(seg["v_to_V"] - seg["v_from_V"])
+            if seg["kind"] == "step" and not (
+                    math.isfinite(seg.get("settling_time_s", math.nan))
+                    and abs(float(y[lim - 1]) - seg["v_to_V"]) <= SETTLING_BAND * span):
+                # step_info's final value would be the output as the trip found it: a rise
+                # or an overshoot against it describes nothing the loop did
+                seg.update(dict.fromkeys(_STEP_KEYS, math.nan))
+                seg["note"] = f"not scored: cut by {when} before it settled"
+        return seg
+
     segs: list[dict] = []
     hold_from, shown_from, settled = 0, float(t[0]), 0
     for j, ch in enumerate(changes):
         start = ch.a if ch.kind == "ramp" else ch.a + 1
         # the hold before this change: ticks hold_from..ch.a
         if ch.a >= hold_from and float(t[start]) > shown_from:
-            segs.append(_hold_segment(t, y, r, hold_from, ch.a, shown_from, float(t[start]),
-                                      settled))
+            seg = _hold_segment(t, yc, r, hold_from, ch.a, shown_from, float(t[start]), settled,
+                                i_score=lim - 1)
+            segs.append(scored(seg, hold_from, ch.a + 1, _HOLD_KEYS))
         end = changes[j + 1].a + 1 if j + 1 < len(changes) else n
+        cend = max(min(end, lim), start + 1)
         if ch.kind == "step":
-            seg, settled = _step_segment(t, y, r, ch, end)
+            seg, settled = _step_segment(t, yc, r, ch, cend)
         else:
-            seg, settled = _ramp_segment(t, y, r, ch, end, ts)
-        segs.append(seg)
+            seg, settled = _ramp_segment(t, yc, r, ch, cend, ts)
+        if end > lim:
+            settled = n     # nothing after the cut settles
+        segs.append(scored(seg, start, end, _STEP_KEYS if ch.kind == "step" else _RAMP_KEYS))
         hold_from, shown_from = ch.b + 1, float(t[ch.b])
     if hold_from < n:
-        segs.append(_hold_segment(t, y, r, hold_from, n - 1, shown_from, t_run_end, settled))
+        seg = _hold_segment(t, yc, r, hold_from, n - 1, shown_from, t_run_end, settled,
+                            i_score=lim - 1)
+        segs.append(scored(seg, hold_from, n, _HOLD_KEYS))
     return segs, info
+
+
+def band_check(t: np.ndarray, v_out: np.ndarray, v_ref_raw: np.ndarray, *,
+               cut: int | None = None, changes: list[Change] | None = None) -> dict:
+    """The tracking-band verdict of a run (the module docstring's "Tracking band"), on whole
+    recorded signals, vectorized per settled window.
+
+    Returns a dict for ``summary["tracking"]``: the rule's constants (``band_rel``,
+    ``band_floor_V``, ``settle_delay_s``, ``out_of_band_limit_s``, ``oscillation_swings``),
+    ``windows`` (``[from_s, to_s]`` each), ``checked_s``, ``out_of_band`` and
+    ``out_of_band_run`` (the longest run outside the band: ``from_s``, ``duration_s``,
+    ``max_error_V``, ``band_V``; None when there is none), ``oscillating`` and ``oscillation``
+    (the window with the most half-swings: ``from_s``, ``to_s``, ``swings`` (full periods),
+    ``mean_V``, ``peak_to_peak_V``, ``band_V``; None when no window has a half-swing).
+    """
+    t = np.asarray(t, dtype=float)
+    y = np.asarray(v_out, dtype=float)
+    r = np.asarray(v_ref_raw, dtype=float)
+    n = t.size
+    out = dict(band_rel=BAND_REL, band_floor_V=BAND_FLOOR_V, settle_delay_s=SETTLE_DELAY_S,
+               out_of_band_limit_s=OUT_OF_BAND_S, oscillation_swings=OSC_SWINGS, windows=[],
+               checked_s=0.0, out_of_band=False, out_of_band_run=None, oscillating=False,
+               oscillation=None)
+    if n < 2:
+        return out
+    ts = float(t[1] - t[0])
+    lim = n if cut is None else max(0, min(int(cut), n))
+    if changes is None:
+        changes = split_reference(r)[0]
+    starts = [0] + [ch.b for ch in changes]
+    ends = [ch.a + 1 for ch in changes] + [n]
+    delay = max(int(math.ceil(SETTLE_DELAY_S / ts - 1e-9)), SETTLE_TICKS)
+    limit = max(int(math.floor(OUT_OF_BAND_S / ts + 1e-9)), OUT_OF_BAND_TICKS)   # more than
+    out.update(settle_delay_s=delay * ts, out_of_band_limit_s=limit * ts)
+    err = np.abs(r - y)
+    band = np.maximum(BAND_REL * np.abs(r), BAND_FLOOR_V)
+    outside = ~(err <= band)                             # NaN counts as outside
+    best_run, best_osc = None, None
+    for s0, e0 in zip(starts, ends):
+        i0, i1 = s0 + delay, min(e0, lim)
+        if i1 - i0 < 2:
+            continue
+        out["windows"].append([float(t[i0]), float(t[i1 - 1] + ts)])
+        out["checked_s"] += (i1 - i0) * ts
+        # runs of consecutive samples outside the band: rising and falling edges
+        o = np.concatenate(([False], outside[i0:i1], [False])).astype(np.int8)
+        d = np.diff(o)
+        up, down = np.flatnonzero(d == 1), np.flatnonzero(d == -1)
+        if up.size:
+            lens = down - up
+            q = int(np.argmax(lens))
+            if best_run is None or lens[q] > best_run[1]:
+                a = i0 + int(up[q])
+                seg_err = err[a:a + int(lens[q])]
+                fin = seg_err[np.isfinite(seg_err)]
+                best_run = (a, int(lens[q]), float(fin.max()) if fin.size else math.nan,
+                            float(band[a]))
+        # half-swings across the window's mean, with a hysteresis of +-band
+        yw = y[i0:i1]
+        fin = np.isfinite(yw)
+        if fin.sum() < 2:
+            continue
+        m = float(np.mean(yw[fin]))
+        b = max(BAND_REL * abs(float(np.mean(np.abs(r[i0:i1])))), BAND_FLOOR_V)
+        side = np.where(yw > m + b, 1, np.where(yw < m - b, -1, 0))
+        k = np.flatnonzero(side != 0)
+        flips = k[1:][np.diff(side[k]) != 0] if k.size > 1 else k[:0]
+        late = int(np.count_nonzero(flips >= (i1 - i0) // 2))
+        osc = dict(from_s=float(t[i0]), to_s=float(t[i1 - 1] + ts), swings=flips.size / 2.0,
+                   mean_V=m, peak_to_peak_V=float(np.max(yw[fin]) - np.min(yw[fin])), band_V=b,
+                   late_half_swings=late)
+        sustained = flips.size >= 2 * OSC_SWINGS and late >= 2
+        if flips.size and (best_osc is None or (sustained, flips.size) >
+                           (best_osc[0], best_osc[1]["swings"] * 2)):
+            best_osc = (sustained, osc)
+    if best_run is not None:
+        a, length, emax, b = best_run
+        out["out_of_band_run"] = dict(from_s=float(t[a]), duration_s=length * ts,
+                                      max_error_V=emax, band_V=b)
+        out["out_of_band"] = length > limit
+    if best_osc is not None:
+        out["oscillating"], out["oscillation"] = best_osc
+    return out
+
+
+def withhold_metrics(summary: dict, reason: str) -> None:
+    """Null every metric of a run's summary (a run that ended on a plant integration error):
+    the tracking metrics but the event counts (``trips``, ``warnings``), every segment's
+    metrics (the segments stay listed, each with a ``note``) and the band check; and say why in
+    ``summary["metrics_note"]``. In place."""
+    keep = {"trips", "warnings"}
+    summary["metrics"] = {k: (v if k in keep else None)
+                          for k, v in (summary.get("metrics") or {}).items()}
+    ident = {"kind", "t_start_s", "t_end_s", "v_from_V", "v_to_V", "v_ref_min_V", "v_ref_max_V",
+             "slope_V_per_s"}
+    summary["segments"] = [dict({k: (v if k in ident else None) for k, v in seg.items()},
+                                note="not scored: " + reason)
+                           for seg in summary.get("segments") or []]
+    summary["tracking"] = None
+    summary["metrics_note"] = reason
 
 
 def largest_step(segments: list[dict]) -> dict | None:

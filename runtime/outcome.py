@@ -5,7 +5,8 @@ and JSON file shows.
 the comparison (table, ``--json``, comparison.json, plots) and the live view's end state all
 show what it returns, and ``run.execute`` stores it as ``summary["outcome"]``. It reads only the
 summary (``ticks_planned``, ``ticks_run``, ``Ts_s``, ``simulated_s``, ``end_event``,
-``events``, ``paced``), so a summary.json written by an older version is judged the same way.
+``events``, ``paced``, ``tracking``), so a summary.json written by an older version is judged
+the same way (one without ``tracking`` is not judged on its band).
 
 Statuses, worst cause first (the status names the first abnormal thing; anything after it is
 in ``then``):
@@ -14,21 +15,44 @@ in ``then``):
     an interlock or watchdog tripped (the operator's stop request aside). The run may have
     ended early after it (a collapse once the safe output is applied) or held the safe output
     to its planned end: it is "tripped" either way.
+``integration error``
+    the plant's integration failed (end event "plant integration error": a non-finite state, or
+    one beyond the energy the circuit can hold; its ``detail`` names the tick) with no trip
+    before it. Every metric of such a run is null (``summary["metrics_note"]`` says why). A
+    summary written before the event was renamed ("non-finite plant state") is judged the
+    same way. A trip before it keeps "tripped", with the integration error in ``then``.
 ``collapsed``
     the output voltage fell below ``limits.v_collapse`` with no trip before it.
 ``stopped``
     the operator stopped the run (live view).
 ``ended``
     another abnormal end: a bridge error (stale, peer lost, protocol, timeout, stop not
-    acknowledged) or a non-finite plant state; ``first_cause`` names it.
+    acknowledged); ``first_cause`` names it.
 ``interrupted``
     the run stopped short of its planned end with no recorded cause (Ctrl-C, a killed
     process).
+``oscillating``
+    the run otherwise reached its planned end, but inside a settled window the output swung
+    across the window's mean at least ``metrics.OSC_SWINGS`` (3) full periods, each
+    half-swing from more than one band above the mean to more than one band below it (so
+    peak to peak above twice the band), with at least one full period in the window's last
+    half (sustained, not a decaying transient). Takes precedence over "out of band".
+``out of band``
+    the run otherwise reached its planned end, but inside a settled window
+    ``|v_ref_raw - v_out|`` stayed above the tracking band for longer than
+    ``metrics.OUT_OF_BAND_S`` (2 ms, and 20 ticks) without a break.
 ``timing not met``
     a paced run that otherwise completed, whose timing verdict
-    (``summary["paced"]["verdict"]["timing_met"]``) is false.
+    (``summary["paced"]["verdict"]["timing_met"]``) is false (after "oscillating" and "out of
+    band", which name a fault of the loop itself; "timing not met" is then listed in ``then``).
 ``completed``
-    the run reached its planned end with none of the above.
+    the run reached its planned end with none of the above: the only status that is "ok".
+
+The band and the settled windows (``runtime/metrics.py`` ``band_check``, stored by
+``run.execute`` as ``summary["tracking"]``): the band at a sample is
+``max(BAND_REL |v_ref_raw|, BAND_FLOOR_V)`` = max(5 % of the raw reference, 0.5 V); a settled
+window starts ``SETTLE_DELAY_S`` (10 ms, at least 100 ticks) after the run's start and after each step's or ramp's
+end, and lasts to the next step or ramp (or the run's end, or its first trip or collapse).
 
 Only "completed" counts as completed: a tripped run that held its safe output to the planned
 end has ``whole_run`` true (its metrics cover the whole run) but did not complete.
@@ -38,12 +62,19 @@ from __future__ import annotations
 import math
 from typing import Any, Mapping
 
-STATUSES = ("completed", "tripped", "collapsed", "stopped", "timing not met", "ended",
-            "interrupted")
+STATUSES = ("completed", "tripped", "integration error", "collapsed", "stopped",
+            "timing not met", "ended", "interrupted", "out of band", "oscillating")
+#: statuses of a run that reached its planned end without a trip or another abnormal end, but
+#: did not do its job: they rank right after the completed runs
+RAN_TO_END = ("oscillating", "out of band", "timing not met")
 
 #: the loop's end events (runtime/loop.py EVENT_TEXT) that have a status of their own
 COLLAPSE = "voltage collapse"
 STOPPED = "stopped by the operator"
+#: the loop's end event when the plant's integration failed (runtime/loop.py), and the name it
+#: had before (summaries written then are judged the same way)
+INTEGRATION_ERROR = "plant integration error"
+INTEGRATION_ERRORS = frozenset({INTEGRATION_ERROR, "non-finite plant state"})
 #: the cause id of the trip an operator's stop raises (it is the stop, not a fault)
 STOP_CAUSE = "stop requested"
 #: events of the interlocks' log that are not an end of the run (safety/interlocks.py
@@ -107,6 +138,42 @@ def timing_met(summary: Mapping) -> bool | None:
     return met if isinstance(met, bool) else None
 
 
+def band_verdict(tracking: Any) -> tuple[str, str, float | None] | None:
+    """("oscillating" or "out of band", the cause in words, from when) from a summary's
+    ``tracking`` dict (``metrics.band_check``); None when the run stayed in its band or the
+    summary has no such dict (written before it existed). Read defensively."""
+    if not isinstance(tracking, Mapping):
+        return None
+    osc = tracking.get("oscillation")
+    osc = osc if isinstance(osc, Mapping) else {}
+    if tracking.get("oscillating") is True:
+        t0, t1 = _num(osc.get("from_s")), _num(osc.get("to_s"))
+        n, mean = _num(osc.get("swings")), _num(osc.get("mean_V"))
+        pp, band = _num(osc.get("peak_to_peak_V")), _num(osc.get("band_V"))
+        text = "v_out oscillates"
+        if n is not None and mean is not None:
+            text += f": {n:g} full swings across {mean:.4g} V"
+        if t0 is not None and t1 is not None:
+            text += f" from {time_text(t0)} to {time_text(t1)}"
+        if pp is not None and band is not None:
+            text += f" (peak to peak {pp:.4g} V, band {band:.3g} V)"
+        return "oscillating", text, t0
+    run = tracking.get("out_of_band_run")
+    run = run if isinstance(run, Mapping) else {}
+    if tracking.get("out_of_band") is True:
+        t0, dur = _num(run.get("from_s")), _num(run.get("duration_s"))
+        err, band = _num(run.get("max_error_V")), _num(run.get("band_V"))
+        text = "|v_ref_raw - v_out| outside the tracking band"
+        if dur is not None:
+            text += f" for {time_text(dur)}"
+        if t0 is not None:
+            text += f" from {time_text(t0)}"
+        if err is not None and band is not None:
+            text += f" (up to {err:.4g} V, band {band:.3g} V)"
+        return "out of band", text, t0
+    return None
+
+
 def judge(summary: Mapping[str, Any]) -> dict[str, Any]:
     """The outcome of a run from its summary (see the module's docstring for the statuses).
 
@@ -135,11 +202,26 @@ def judge(summary: Mapping[str, Any]) -> dict[str, Any]:
         end_name = ending[0].get("event") if ending else None
     end_ev = next((e for e in events if e.get("event") == end_name), None) if end_name else None
     met = timing_met(summary)
+    band = band_verdict(summary.get("tracking"))
+    integ = end_name in INTEGRATION_ERRORS
+    if integ and real_trips:
+        # only a trip strictly before the integration error is a real cause: one on the same
+        # tick may have read the diverged state
+        t_int = _event_time(end_ev, ts) if end_ev is not None else None
+        def before(e):
+            t = _event_time(e, ts)
+            return t_int is None or (t is not None and t < t_int)
+        late = [e for e in real_trips if not before(e)]
+        real_trips = [e for e in real_trips if before(e)]
+    else:
+        late = []
 
     first: Mapping | None = None
     if real_trips:
         status, first = "tripped", real_trips[0]
         cause, cause_t = _trip_text(first), _event_time(first, ts)
+    elif integ:
+        status, first = "integration error", end_ev
     elif end_name == COLLAPSE:
         status, first = "collapsed", end_ev
     elif end_name == STOPPED or stop_trip:
@@ -148,12 +230,16 @@ def judge(summary: Mapping[str, Any]) -> dict[str, Any]:
         status, first = "ended", end_ev
     elif not whole or any(e.get("event") == "interrupted" for e in events):
         status = "interrupted"
+    elif band is not None:
+        status = band[0]
     elif met is False:
         status = "timing not met"
     else:
         status = "completed"
     if status != "tripped":
-        if first is not None:
+        if band is not None and status == band[0]:
+            cause, cause_t = band[1], band[2]
+        elif first is not None:
             cause, cause_t = _end_text(first), _event_time(first, ts)
         elif end_name:
             cause, cause_t = str(end_name), None
@@ -163,7 +249,7 @@ def judge(summary: Mapping[str, Any]) -> dict[str, Any]:
             cause, cause_t = "paced timing verdict: timing not met", None
         else:
             cause, cause_t = None, None
-        if cause_t is None and status in ("collapsed", "stopped", "ended"):
+        if cause_t is None and status in ("integration error", "collapsed", "stopped", "ended"):
             cause_t = end_s
 
     then: list[str] = []
@@ -183,7 +269,14 @@ def judge(summary: Mapping[str, Any]) -> dict[str, Any]:
                 then.append(f"{_end_text(e)} at {time_text(t if t is not None else end_s)}")
         if met is False:
             then.append("timing not met")
-    elif status in ("collapsed", "stopped", "ended", "interrupted") and met is False:
+    elif status == "integration error":
+        for e in late:
+            then.append(f"tripped on the same tick: {_trip_text(e)} at "
+                        f"{time_text(_event_time(e, ts))}")
+        if met is False:
+            then.append("timing not met")
+    elif status in ("collapsed", "stopped", "ended", "interrupted", "oscillating",
+                    "out of band") and met is False:
         then.append("timing not met")
     if status == "interrupted" and not whole and planned_s is not None:
         cause = f"interrupted at {time_text(end_s)} of {time_text(planned_s)}"
@@ -219,11 +312,13 @@ def coverage_text(outcome: Mapping[str, Any]) -> str | None:
 
 def rank_key(outcome: Mapping[str, Any], metric: float | None) -> tuple:
     """Sort key of candidates: every completed run before every run that did not complete;
-    among runs that did not complete, those that reached their planned end (tripped onto the
-    safe output, timing not met) first, then the longest; then ``metric`` (smaller is better,
-    a missing or non-finite value last). Sort with a stable sort to keep ties in their given
-    order."""
+    then the runs that reached their planned end with neither a trip nor another abnormal end
+    (:data:`RAN_TO_END`: oscillating, out of band, timing not met); then the others, those
+    that reached their planned end (tripped onto the safe output) first, then the longest;
+    within each class ``metric`` (smaller is better, a missing or non-finite value last). Sort
+    with a stable sort to keep ties in their given order."""
     m = metric if isinstance(metric, (int, float)) and math.isfinite(metric) else math.inf
     end = outcome.get("end_time_s")
     end = end if isinstance(end, (int, float)) and math.isfinite(end) else 0.0
-    return (not outcome.get("completed"), not outcome.get("whole_run"), -end, m)
+    cls = 0 if outcome.get("completed") else 1 if outcome.get("status") in RAN_TO_END else 2
+    return (cls, not outcome.get("whole_run"), -end, m)

@@ -112,11 +112,15 @@ def _segment_tables(segments: list[dict], info: dict) -> list[str]:
         rows = [(i + 1, g) for i, g in enumerate(segments) if g.get("kind") == kind]
         if not rows:
             continue
-        keys = [k for k in rows[0][1] if k != "kind"]
+        # every row's keys (a segment cut at a trip has cut_at_s); notes go below the table
+        keys = [k for k in dict.fromkeys(k for _, g in rows for k in g) if k not in ("kind", "note")]
         L += [SEGMENT_TEXT[kind], "", "| # | " + " | ".join(keys) + " |",
               "| " + " | ".join("---" for _ in range(len(keys) + 1)) + " |"]
         for i, g in rows:
             L.append(f"| {i} | " + " | ".join(_metric(g.get(k)) for k in keys) + " |")
+        notes = [f"- segment {i}: {g['note']}" for i, g in rows if g.get("note")]
+        if notes:
+            L += [""] + notes
         L.append("")
     return L[:-1]
 
@@ -181,6 +185,20 @@ def write_report(run: Run, dest: Path | None = None) -> Path:
     if coverage_text(oc):
         L.append(f"The run ended early ({oc['status']}): these metrics cover only the run "
                  f"{coverage_text(oc)}.")
+        L.append("")
+    if s.get("metrics_note"):
+        L.append(f"**No metrics**: {s['metrics_note']}.")
+        L.append("")
+    tr = s.get("tracking")
+    if isinstance(tr, dict) and tr.get("band_rel") is not None:
+        run_ = tr.get("out_of_band_run") or {}
+        L.append(f"Tracking band (outcomes \"out of band\" and \"oscillating\"): "
+                 f"{_fmt(tr['band_rel'] * 100)} % of |v_ref_raw|, at least "
+                 f"{_fmt(tr.get('band_floor_V'))} V, checked from {_fmt(tr.get('settle_delay_s'))} s "
+                 f"after the start and after each step or ramp ({_fmt(tr.get('checked_s'))} s "
+                 f"checked); longest time outside: {_fmt(run_.get('duration_s', 0.0))} s (limit "
+                 f"{_fmt(tr.get('out_of_band_limit_s'))} s); oscillating: "
+                 f"{'yes' if tr.get('oscillating') else 'no'}.")
         L.append("")
     L.append("| metric | value |")
     L.append("| --- | --- |")

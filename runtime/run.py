@@ -25,8 +25,8 @@ from . import loop as loopgen
 from . import sensors
 from . import shaping
 from .errors import PluginError, ScenarioError
-from .metrics import TrackingMetrics, segment_metrics
-from .outcome import judge
+from .metrics import TrackingMetrics, band_check, segment_metrics, withhold_metrics
+from .outcome import COLLAPSE, INTEGRATION_ERROR, INTEGRATION_ERRORS, judge, time_text
 from .recording import SCENARIO, SUMMARY, RunWriter, SignalSpec, clear_derived, dumps_json
 from .scenario import PluginChoice, Scenario
 from .version import installed as installed_version
@@ -871,10 +871,30 @@ def execute(sc: Scenario, prep: Prepared, folder: Path,
     # wall-clock figures of SIL runs stay out of the recording so that it is bit-identical
     writer.close(attrs)
     # per-segment metrics need whole signals: read the two back from the closed recording
+    # scored only up to the first trip (the safe output drives the plant after it) or the
+    # collapse that ended the run
     import h5py
+    cut, cut_reason = None, ""
+    if trips:
+        cut, cut_reason = trips[0]["tick"], "the first trip"
+    if end_event == COLLAPSE:
+        k_end = next(e["tick"] for e in events if e["event"] == COLLAPSE)
+        if cut is None or k_end < cut:
+            cut, cut_reason = k_end, "the voltage collapse"
     with h5py.File(folder / "recording.h5", "r") as f:
-        summary["segments"], summary["segmentation"] = segment_metrics(
-            f["time"][()], f["signals/v_out"][()], f["signals/v_ref_raw"][()])
+        tt, yy, rr = f["time"][()], f["signals/v_out"][()], f["signals/v_ref_raw"][()]
+    summary["segments"], summary["segmentation"] = segment_metrics(tt, yy, rr, cut=cut,
+                                                                   cut_reason=cut_reason)
+    # the tracking band (outcomes "out of band" and "oscillating"), over the same samples
+    summary["tracking"] = band_check(tt, yy, rr, cut=cut)
+    if end_event in INTEGRATION_ERRORS:
+        # a diverged plant state: no number of this run means anything
+        e_int = next((e for e in events if e["event"] == end_event), {})
+        withhold_metrics(summary, f"the run ended on a {INTEGRATION_ERROR} at "
+                         f"{time_text(e_int.get('time_s'))}"
+                         + (f" ({e_int['detail']})" if e_int.get("detail") else "")
+                         + ": the recorded plant state is not a solution of the circuit's "
+                         "equations, so no metric is computed")
     # the verdict every table, report and comparison shows (completed/end_event stay for
     # the code that reads them)
     summary["outcome"] = judge(summary)

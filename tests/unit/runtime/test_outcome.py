@@ -185,7 +185,6 @@ def test_a_trip_is_worse_than_timing_not_met(tripped_then_collapsed):
 @pytest.mark.parametrize("event, extra", [
     ("bridge peer lost", {"detail": "no reply for 2 s"}),
     ("bridge protocol error", {"detail": "bad frame"}),
-    ("non-finite plant state", {"time_s": 299 * TS, "v_out_V": math.nan}),
 ])
 def test_another_abnormal_end_is_ended_and_names_its_cause(completed, event, extra):
     # a bridge run's end (its events carry a tick, not a time) on a real summary, cut short
@@ -205,8 +204,102 @@ def test_a_run_short_of_its_end_with_no_cause_is_interrupted(completed):
 
 
 def test_every_status_is_one_of_the_documented_ones():
-    assert STATUSES == ("completed", "tripped", "collapsed", "stopped", "timing not met",
-                        "ended", "interrupted")
+    assert STATUSES == ("completed", "tripped", "integration error", "collapsed", "stopped",
+                        "timing not met", "ended", "interrupted", "out of band", "oscillating")
+
+
+INTEG = {"event": "plant integration error", "tick": 299, "time_s": 299 * TS,
+         "detail": "tick 299 (t = 14.95 ms): v_out not finite"}
+
+
+@pytest.mark.parametrize("event, extra", [
+    ("plant integration error", {"time_s": 299 * TS, "detail": INTEG["detail"]}),
+    # a summary written before the event was renamed
+    ("non-finite plant state", {"time_s": 299 * TS, "v_out_V": math.nan}),
+])
+def test_a_plant_integration_error_is_its_own_status(completed, event, extra):
+    s = dict(completed.summary, ticks_run=300, simulated_s=300 * TS, completed=False,
+             end_event=event, events=[{"event": event, "tick": 299, **extra}])
+    oc = judge(s)
+    assert oc["status"] == "integration error" and not oc["completed"] and not oc["whole_run"]
+    assert oc["first_cause_time_s"] == pytest.approx(299 * TS)
+    assert oc["first_cause"].startswith(event)
+    if "detail" in extra:
+        assert oc["first_cause"] == f"{event}: {extra['detail']}"
+        assert oc["text"] == f"integration error at 14.95 ms: {event}: {extra['detail']}"
+
+
+def test_a_trip_before_an_integration_error_keeps_tripped(completed):
+    trip = {"event": "trip", "tick": 100, "time_s": 100 * TS, "cause": "interlock v_out > 36 V",
+            "cause_id": "v_out_high", "value": 37.0}
+    s = dict(completed.summary, ticks_run=300, simulated_s=300 * TS, completed=False,
+             end_event=INTEG["event"], events=[trip, dict(INTEG)])
+    oc = judge(s)
+    assert oc["status"] == "tripped" and oc["first_cause_time_s"] == pytest.approx(100 * TS)
+    assert oc["then"] == f"plant integration error: {INTEG['detail']} at 14.95 ms"
+    # a trip on the integration error's own tick read the diverged state: not a cause
+    same = dict(trip, tick=299, time_s=299 * TS, value=1e87)
+    oc = judge(dict(s, events=[same, dict(INTEG)]))
+    assert oc["status"] == "integration error"
+    assert oc["then"] == "tripped on the same tick: interlock v_out > 36 V, value 1e+87 V at 14.95 ms"
+
+
+def _band(kind):
+    tr = {"band_rel": 0.05, "band_floor_V": 0.5, "windows": [[0.02, 0.04]],
+          "out_of_band": False, "out_of_band_run": None, "oscillating": False, "oscillation": None}
+    if kind in ("out", "both"):
+        tr["out_of_band"] = True
+        tr["out_of_band_run"] = {"from_s": 0.025, "duration_s": 0.004, "max_error_V": 3.0,
+                                 "band_V": 1.4}
+    if kind in ("osc", "both"):
+        tr["oscillating"] = True
+        tr["oscillation"] = {"from_s": 0.02, "to_s": 0.04, "swings": 8.5, "mean_V": 21.0,
+                             "peak_to_peak_V": 28.9, "band_V": 1.4}
+    return tr
+
+
+@pytest.mark.parametrize("kind, status", [("out", "out of band"), ("osc", "oscillating"),
+                                          ("both", "oscillating"), ("none", "completed")])
+def test_band_verdicts_of_a_run_that_reached_its_end(completed, kind, status):
+    oc = judge(dict(completed.summary, tracking=_band(kind)))
+    assert oc["status"] == status and oc["completed"] == (status == "completed")
+    assert oc["whole_run"]
+    if status == "out of band":
+        assert oc["first_cause_time_s"] == 0.025
+        assert oc["text"] == ("out of band at 25 ms: |v_ref_raw - v_out| outside the tracking "
+                              "band for 4 ms from 25 ms (up to 3 V, band 1.4 V)")
+    if status == "oscillating":
+        assert oc["first_cause_time_s"] == 0.02
+        assert oc["text"] == ("oscillating at 20 ms: v_out oscillates: 8.5 full swings across "
+                              "21 V from 20 ms to 40 ms (peak to peak 28.9 V, band 1.4 V)")
+
+
+def test_band_verdicts_come_after_trips_and_ends_and_before_timing(completed, tripped_then_collapsed):
+    # a trip, a collapse or an integration error names the run, whatever its band did
+    oc = judge(dict(tripped_then_collapsed.summary, tracking=_band("osc")))
+    assert oc["status"] == "tripped"
+    s = dict(completed.summary, ticks_run=300, simulated_s=300 * TS, completed=False,
+             end_event=INTEG["event"], events=[dict(INTEG)], tracking=_band("out"))
+    assert judge(s)["status"] == "integration error"
+    # a paced run that left its band: the band names it, timing not met follows
+    oc = judge(dict(completed.summary, tracking=_band("out"),
+                    paced={"verdict": {"timing_met": False}}))
+    assert oc["status"] == "out of band" and oc["then"] == "timing not met"
+
+
+def test_an_old_or_odd_tracking_key_is_read_defensively(completed):
+    # only a bool True is a verdict; a summary without the key (older versions) is not judged
+    # on its band; a verdict without its details still names the status
+    for tracking, want in ((None, "completed"), ("inside", "completed"),
+                           ({"oscillating": "yes"}, "completed"), ({"out_of_band": 1}, "completed"),
+                           ({"oscillating": True, "oscillation": "?"}, "oscillating"),
+                           ({"out_of_band": True}, "out of band")):
+        oc = judge(dict(completed.summary, tracking=tracking))
+        assert oc["status"] == want, tracking
+    assert judge(dict(completed.summary, tracking={"out_of_band": True}))["text"] == \
+        "out of band: |v_ref_raw - v_out| outside the tracking band"
+    old = {k: v for k, v in completed.summary.items() if k != "tracking"}
+    assert judge(old)["status"] == "completed"
 
 
 def test_a_run_that_did_not_complete_never_ranks_above_one_that_did(completed, tripped_then_collapsed):
@@ -219,3 +312,15 @@ def test_a_run_that_did_not_complete_never_ranks_above_one_that_did(completed, t
     held = dict(bad, whole_run=True, end_time_s=bad["planned_s"])
     shorter = dict(bad, end_time_s=bad["end_time_s"] / 2)
     assert rank_key(held, 1.0) < rank_key(bad, 0.1) < rank_key(shorter, 0.01)
+
+
+def test_out_of_band_and_oscillating_rank_after_completed_and_before_tripped(completed,
+                                                                            tripped_then_collapsed):
+    ok = completed.summary["outcome"]
+    out = judge(dict(completed.summary, tracking=_band("out")))
+    osc = judge(dict(completed.summary, tracking=_band("osc")))
+    held = dict(tripped_then_collapsed.summary["outcome"], whole_run=True,
+                end_time_s=ok["planned_s"])
+    assert rank_key(ok, 1e3) < rank_key(out, 1e-9) < rank_key(held, 1e-12)
+    assert rank_key(ok, 1e3) < rank_key(osc, 1e-9) < rank_key(held, 1e-12)
+    assert rank_key(osc, 1.0) < rank_key(out, 2.0)      # same class: by the metric
