@@ -237,3 +237,30 @@ def test_bad_parameters_are_named(over, words):
     values.update(over)
     with pytest.raises(ValueError, match=words):
         sw.DECLARATION.pack(values, BuildContext(Ts=TS))
+
+
+def test_blocked_gates_let_every_phase_freewheel_and_stop_at_zero():
+    # a trip's gate block reaches the plant as a NaN command: all switches off, each phase's
+    # current freewheels through its low-side diode against v_C1 (held by a huge C1, R = 0) and
+    # stops at zero after L i0 / v (Erickson and Maksimovic, ch. 2, from memory), then stays
+    values, p = _plant(phases=3.0, t_dead=0.0, R_phase=0.0, C1=1e3, L2=1.0, C2=1.0)
+    x = np.array(_held(values, 0.5))
+    i0 = (40.0, 80.0, 120.0)
+    x[sw.I1:sw.I1 + 3] = i0
+    v = x[VC1]
+    s = tuple(x)
+    blocked = np.array([np.nan])
+    h = T_SW / 100
+    out = [s]
+    for k in range(200):
+        s = sw.advance_period(k * h, h, p, s, blocked, NO_LOAD)
+        out.append(s)
+    xs = np.array(out)
+    t = np.arange(xs.shape[0]) * h
+    for j, i_start in enumerate(i0):
+        cur = xs[:, sw.I1 + j]
+        t_zero = L_PH * i_start / v
+        assert np.all(cur >= 0.0)
+        before = t < t_zero - 1e-12
+        assert np.allclose(cur[before], i_start - v / L_PH * t[before], rtol=0, atol=1e-5 * i_start)  # v_C1 drifts by ~1e-5 V
+        assert np.all(cur[t >= t_zero - 1e-12] == 0.0)
