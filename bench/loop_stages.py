@@ -88,7 +88,7 @@ VARIANTS = {
     "without record": [_resub(r"        # 7 record\n(.*\n)*?        rec\[i, c \+ 1\] = code\n",
                               "        rec[i, 0] = word + code\n")],
     "without sensor chain": [_resub(r"        # the sensor chain.*\n        sensor_chain\(.*\n", "")],
-    "without RK4": [_sub("        nref = advance(t, ts, nsub, zf, pp, x, u, d)\n", "        nref = 0\n")],
+    "without RK4": [_sub("        nref = actuate(t, ts, nsub, zf, pp, x, u, uq, latch, wd, d)\n", "        nref = 0\n")],
     "generic RK4": [lambda text: _sub("    s = plant_rk4_step(dt, pp, s, u, d)\n",
                                       _generic_rk4() + "\n")(text)],
     "fixed sub-steps (before the stiffness-aware rule)": [lambda text: fixed_substeps(text)],

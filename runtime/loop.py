@@ -223,15 +223,7 @@ def rk4(ta, dt, pp, s, u, d):
     return s
 
 
-@njit(inline="always")
-def step(ta, dt, pp, s, u, d, blocked):
-    """One RK4 step; with the converter's gates blocked (u NaN), a current through its diodes
-    that reaches zero within the step stops there: the step is redone to the crossing (located
-    by linear interpolation of that current over the step), the current set to zero, and the
-    rest of the step taken from there (where the plant holds it at zero)."""
-    s1 = rk4(ta, dt, pp, s, u, d)
-{gate_fixup}
-    return s1
+{step_defs}
 
 
 @njit(inline="always")
@@ -656,19 +648,36 @@ def _import_lines(plant: Plugin, ctrl: Plugin, ref: Plugin) -> str:
     return "\n".join(lines)
 
 
-def _gate_fixup_text(nx: int, currents: tuple[int, ...]) -> str:
-    """The zero-crossing stop of each current through the converter's diodes (the plant's
-    ``GATE_BLOCK_CURRENTS``) while its gates are blocked."""
+def _step_text(nx: int, currents: tuple[int, ...]) -> str:
+    """``step``, one RK4 step as the substep loop takes it. For a plant that models blocked
+    gates (``GATE_BLOCK_CURRENTS``) a blocked step goes to ``blocked_step``, compiled apart (it
+    is rare, and inlining it would multiply the loop's compile time): each current through the
+    converter's diodes that reaches zero within the step stops there (the step is redone to
+    the crossing, located by linear interpolation of that current over the step, the current
+    set to zero, and the rest of the step taken from there, where the plant holds it at zero)."""
     if not currents:
-        return ""
-    out = ["    if blocked:"]
+        return ('@njit(inline="always")\n'
+                "def step(ta, dt, pp, s, u, d, blocked):\n"
+                '    """One RK4 step (this plant does not model blocked gates)."""\n'
+                "    return rk4(ta, dt, pp, s, u, d)")
+    out = ['@njit(cache=True, error_model="numpy")',
+           "def blocked_step(ta, dt, pp, s, u, d):",
+           '    """One RK4 step with the gates blocked: a diode current stops at zero."""',
+           "    s1 = rk4(ta, dt, pp, s, u, d)"]
     for i in currents:
         items = ", ".join("0.0" if j == i else f"sa[{j}]" for j in range(nx))
-        out += [f"        if (s[{i}] > 0.0 and not (s1[{i}] > 0.0)) or (s[{i}] < 0.0 and not (s1[{i}] < 0.0)):",
-                f"            th = s[{i}] / (s[{i}] - s1[{i}])",
-                "            sa = rk4(ta, th * dt, pp, s, u, d)",
-                f"            sa = ({items},)",
-                "            s1 = rk4(ta + th * dt, (1.0 - th) * dt, pp, sa, u, d)"]
+        out += [f"    if (s[{i}] > 0.0 and not (s1[{i}] > 0.0)) or (s[{i}] < 0.0 and not (s1[{i}] < 0.0)):",
+                f"        th = s[{i}] / (s[{i}] - s1[{i}])",
+                "        sa = rk4(ta, th * dt, pp, s, u, d)",
+                f"        sa = ({items},)",
+                "        s1 = rk4(ta + th * dt, (1.0 - th) * dt, pp, sa, u, d)"]
+    out += ["    return s1", "", "",
+            '@njit(inline="always")',
+            "def step(ta, dt, pp, s, u, d, blocked):",
+            '    """One RK4 step; with the converter\'s gates blocked (u NaN), blocked_step."""',
+            "    if blocked:",
+            "        return blocked_step(ta, dt, pp, s, u, d)",
+            "    return rk4(ta, dt, pp, s, u, d)"]
     return "\n".join(out)
 
 
@@ -699,25 +708,27 @@ def _rk4_text(nx: int, own_step: bool, fast: bool = False, period: bool = False)
             f"    k4 = plant_derivs(ta + dt, pp, ({s_k3},), u, d)",
             f"    s = ({s_new},)"])
     if fast:
-        step = """        if dt * plant_fast_rate(pp, s, d) <= zf:
-            s = step(ta, dt, pp, s, u, d, blocked)
-        else:
-            # stiff here: RK4 steps of at most zf / rate each, the rate taken at each one's
-            # start; the remainder is split evenly, so the last step ends on the substep's end
-            rem = dt
-            while True:
-                q = rem * plant_fast_rate(pp, s, d) / zf
-                if q <= 1.0:
-                    s = step(ta, rem, pp, s, u, d, blocked)
-                    extra += 1
-                    break
-                if not (q < MAX_REFINE) or extra >= MAX_REFINE:
+        step = """        # the whole substep when dt * rate <= zf (the usual path); where it is stiff, RK4
+        # steps of at most zf / rate each, the rate taken at each one's start, the remainder
+        # split evenly so that the last step ends on the substep's end (one call site of step:
+        # each inlined copy of the plant's RK4 costs compile time)
+        rem = dt
+        split = False
+        while True:
+            q = rem * plant_fast_rate(pp, s, d)
+            hh = rem
+            if not (q <= zf):
+                if not (q < zf * MAX_REFINE) or extra >= MAX_REFINE:
                     return -1  # a non-finite rate, or more steps than the limit
-                hh = rem / np.ceil(q)
-                s = step(ta, hh, pp, s, u, d, blocked)
+                hh = rem / np.ceil(q / zf)
+                split = True
+            s = step(ta, hh, pp, s, u, d, blocked)
+            if split:
                 extra += 1
-                ta += hh
-                rem -= hh"""
+            if hh == rem:
+                break
+            ta += hh
+            rem -= hh"""
     else:
         step = "        s = step(ta, dt, pp, s, u, d, blocked)"
     x_items = ", ".join(f"x[{i}]" for i in r)
@@ -811,7 +822,7 @@ def generate(plant: Plugin, ctrl: Plugin, ref: Plugin,
                             run_chunk=sil, paced_chunk=paced,
                             plugins=plugin_ids(plant, ctrl, ref), checked=bool(checked),
                             max_refine=MAX_REFINE,
-                            gate_fixup=_gate_fixup_text(nx, gate_block_currents(plant)),
+                            step_defs=_step_text(nx, gate_block_currents(plant)),
                             gate_block=bool(gate_block_currents(plant)),
                             **_rk4_text(nx, has_rk4_step(plant), has_fast_rate(plant)))
     if checked:

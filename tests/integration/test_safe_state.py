@@ -52,6 +52,9 @@ I = "250 A"
 [[interlocks]]
 signal = "v_out"
 above = "400.05 V"
+[initial]
+# at equilibrium: with the default start 1 V low, 1 F would take longer than the run to rise
+v_out_offset = "0 V"
 {extra}
 """
 
