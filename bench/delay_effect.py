@@ -45,7 +45,8 @@ def compare(scenario: Path, delays, tmp: Path) -> list[str]:
         for dl, r in rows[name]:
             oc = r.get("outcome") or {}
             lines.append(f"| {name} | {dl:g} | {oc.get('text', oc.get('status', '?'))} | "
-                         f"{_fmt(r.get('overshoot_pct'))} | {_fmt(r.get('settling_s'), 1e3)} | "
+                         f"{_fmt(r.get('overshoot_pct'))} | "
+                         f"{_fmt(r.get('settling_time_s', r.get('settling_s')), 1e3)} | "
                          f"{_fmt(r.get('iae_Vs'))} |")
     return lines
 
@@ -62,11 +63,8 @@ def envelope(delays, tmp: Path) -> list[str]:
             raise SystemExit(p.stdout + p.stderr)
         data = json.loads(p.stdout[p.stdout.index("{"):])
         for name, res in sorted(data.items()):
-            cells = res.get("cells", []) if isinstance(res, dict) else []
-            counts = {}
-            for c in cells:
-                counts[c.get("outcome")] = counts.get(c.get("outcome"), 0) + 1
-            text = ", ".join(f"{k} {v}" for k, v in sorted(counts.items(), key=str)) or json.dumps(res)[:80]
+            counts = res.get("outcomes", {}) if isinstance(res, dict) else {}
+            text = ", ".join(f"{k} {v}" for k, v in counts.items() if v) or json.dumps(res)[:80]
             lines.append(f"| {name} | {dl:g} | {text} |")
     return lines
 

@@ -824,7 +824,8 @@ def generate(plant: Plugin, ctrl: Plugin, ref: Plugin,
                             max_refine=MAX_REFINE,
                             step_defs=_step_text(nx, gate_block_currents(plant)),
                             gate_block=bool(gate_block_currents(plant)),
-                            **_rk4_text(nx, has_rk4_step(plant), has_fast_rate(plant)))
+                            **_rk4_text(nx, has_rk4_step(plant), has_fast_rate(plant),
+                                         has_advance_period(plant)))
     if checked:
         text = checked_text(text)
     # write then rename: concurrent workers never import a half-written file, and an existing

@@ -350,3 +350,35 @@ def test_scenario_link_freeze_is_applied_by_the_stand_in(tmp_path, demo_path):
     assert s["trip"]["cause_id"] == "watchdog stale" and s["trip"]["tick"] == 201, s["events"]
     link = [f for f in s["faults"] if f["kind"] == "link_freeze"][0]
     assert link["applies_to"].startswith("the stand-in simulator") and link["active_from_s"] == 0.01
+
+
+def test_lockstep_applies_the_safe_state_and_the_delay_as_sil_does(tmp_path, demo_path):
+    """The stand-in simulator applies the scenario's actuation delay (half a period: the queue and
+    the mid-period switch; the demo's cascaded PI trips at once with 1.5) and, once the runtime's output-enable flag drops on a trip, its safe
+    state (gate block, and the output contactor 1 ms later): the lockstep recording equals the
+    SIL run's bit for bit, through the trip and the collapse that follows."""
+    scen = _scenario(tmp_path, demo_path)
+    text = scen.read_text().replace("substeps = 4", "substeps = 4\nactuation_delay = 0.5", 1)
+    assert "actuation_delay" in text
+    scen.write_text(text + '\n[safe_state]\ncontactor_delay = "1 ms"\n'
+                    '\n[[faults]]\nkind = "offset"\nsignal = "v_out"\nvalue = "100 V"\n'
+                    'start = "20 ms"\n')
+    address = f"ipc://{tmp_path}/safe.sock"
+    sim = serve(scen, address)
+    with reaped(sim):
+        p = subprocess.run(CLI + ["run", str(scen), "--bridge", address, "--out", str(tmp_path / "hil"),
+                                  "--headless", "--timeout", "60"], capture_output=True, text=True,
+                           timeout=600)
+        sim.communicate(timeout=120)
+    assert p.returncode == 1, p.stdout + p.stderr
+    sil = run_scenario(load_scenario(scen), tmp_path / "sil")
+    s = sil.summary
+    assert s["trip"]["tick"] == 400 and s["safe_state"]["applied"] == "gate_block"
+    assert s["actuation_delay_periods"] == 0.5
+    a, b = open_run(tmp_path / "hil"), open_run(sil.folder)
+    assert a.time.shape == b.time.shape and a.time.shape[0] > 420
+    for name in ("v_out", "i_out", "i_L1", "v_C1", "i_L2", "u"):
+        assert a.signals[name].tobytes() == b.signals[name].tobytes(), name
+    i_l1, i_out = b.signals["i_L1"], b.signals["i_out"]
+    assert np.all(i_l1[400:] >= 0.0) and i_l1[-1] == 0.0     # freewheeled and stopped
+    assert np.all(i_out[420:] == 0.0) and i_out[419] > 0.0   # the contactor opened at 1 ms

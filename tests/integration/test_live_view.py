@@ -34,6 +34,8 @@ def _live_scenario(demo_path: str, folder: Path) -> Path:
     s = s[:s.index("[[interlocks]]")]
     s += ('[[interlocks]]\nsignal = "v_out"\nabove = "480 V"\n\n'
           '[[faults]]\nkind = "dropout"\nsignal = "v_out"\nstart = "1 s"\nend = "2.5 s"\n')
+    # the safe output is a held command (zero_voltage action at safe_u), not a gate block
+    s += '\n[safe_state]\naction = "zero_voltage"\n'
     f = folder / "live.toml"
     f.write_text(s + GENEROUS_PACED)
     return f

@@ -30,6 +30,10 @@ SLUGGISH = {"controller.Kp_v": 0.02, "controller.Ki_v": 1.0, "controller.C_ff": 
 #: 500 W load collapses the output (about 13 ms)
 TRIPS_BEFORE_STEP = LOW_48V.replace('[limits]\nv_collapse = "5 V"\n',
                                     '[limits]\nv_collapse = "5 V"\nsafe_u = "26 V"\n') + """
+# the run goes on past the trip on a held safe command (not a gate block)
+[safe_state]
+action = "zero_voltage"
+
 [[faults]]
 kind = "offset"
 signal = "v_out"
