@@ -2,7 +2,7 @@
 its real-time requests to the operating system, next to a bare Python busy-wait loop of the
 same rate, all measured in the same run.
 
-Paced: ``hilrig.runtime.paced.run_paced`` on the demo scenario (demo data: two-stage LC plant,
+Paced: ``hilrig.runtime.live.paced.run_paced`` on the demo scenario (demo data: two-stage LC plant,
 cascaded PI, battery-model reference, inverter load steps) with Ts = 1/rate, recording every
 tick, for ``--seconds`` of wall clock, twice: with the real-time requests (SCHED_FIFO, locked
 memory; what the system granted is printed) and without them (``realtime=False``, as
@@ -41,7 +41,7 @@ import numpy as np
 
 
 def bare_loop(rate: float, seconds: float) -> np.ndarray:
-    from hilrig.runtime.paced import lower_timer_slack, wait_until
+    from hilrig.runtime.live.paced import lower_timer_slack, wait_until
     lower_timer_slack()
     n = int(rate * seconds)
     period = 1.0 / rate
@@ -54,7 +54,7 @@ def bare_loop(rate: float, seconds: float) -> np.ndarray:
 
 
 def paced_run(rate: float, seconds: float, folder: Path, realtime: bool = True):
-    from hilrig.runtime.paced import run_paced
+    from hilrig.runtime.live.paced import run_paced
     from hilrig.runtime.recording import open_run
     from hilrig.runtime.scenario import load_scenario
     demo = Path(__file__).resolve().parents[1] / "runtime" / "data" / "demo.toml"
@@ -93,7 +93,7 @@ def main() -> int:
     args = ap.parse_args()
     os.environ.setdefault("HILRIG_CACHE_DIR", tempfile.mkdtemp(prefix="hilrig-bench-"))
     out = {"seconds": args.seconds, "reps": args.reps, "cores": os.cpu_count(), "rates": {}}
-    from hilrig.runtime.paced import realtime_text
+    from hilrig.runtime.live.paced import realtime_text
     with tempfile.TemporaryDirectory() as tmp:
         _, pc = paced_run(20_000.0, 0.05, Path(tmp) / "warm")  # compile (or load) once, not timed
         granted = realtime_text(pc["realtime"], pc.get("pinned_core"))

@@ -59,7 +59,7 @@ def stop_viewer(v) -> None:
 
 
 def one_run(folder: Path, seconds: float, paced: bool, viewer: bool, tmux: bool) -> dict:
-    from hilrig.runtime.paced import run_paced
+    from hilrig.runtime.live.paced import run_paced
     from hilrig.runtime.run import run_scenario
     from hilrig.runtime.scenario import load_scenario
     sc = load_scenario(DEMO, overrides={"timing.duration": seconds})

@@ -150,7 +150,7 @@ class _Live:
     def __init__(self, sc, prep, address: str | None, allow_remote: bool, stats: "BridgeStats"):
         self.tel = None
         if address:
-            from hilrig.runtime.telemetry import Telemetry, telemetry_config
+            from hilrig.runtime.live.telemetry import Telemetry, telemetry_config
             self.tel = Telemetry(**telemetry_config(sc, prep, address, allow_remote))
         self.a, self.ts, self.stats = prep.args, sc.Ts, stats
         self.stop = False

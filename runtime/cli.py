@@ -177,7 +177,7 @@ def _summary_table(console, s: dict, folder: Path | None) -> None:
         t.add_row(escape("paced: lateness p50 / p99 / max [us]"), f"{la['p50']:.1f} / {la['p99']:.1f} / {la['max']:.0f}")
         t.add_row(escape("paced: compute p50 / p99 / max [us]"), f"{co['p50']:.1f} / {co['p99']:.1f} / {co['max']:.0f}")
         t.add_row("paced: late ticks / deadline misses", f"{pc['late_ticks']} / {pc['deadline_misses']} of {la['n']}")
-        from hilrig.runtime.paced import realtime_text, verdict_text
+        from hilrig.runtime.live.paced import realtime_text, verdict_text
         if pc.get("verdict"):
             t.add_row("paced: timing", escape(verdict_text(pc["verdict"])),
                       style=None if pc["verdict"]["timing_met"] else "bold red")
@@ -362,7 +362,7 @@ def _run(console, plain, scenario_path: Path, out: str | None, overwrite: bool, 
          allow_remote: bool = False, curve_keys: str | None = None, ack_hv: bool = False,
          paced: bool = False, view: bool = False, telemetry: str | None = None,
          realtime: bool = True, telemetry_keys: str | None = None):
-    from hilrig.runtime.plots import overview_png
+    from hilrig.runtime.trials.plots import overview_png
     from hilrig.runtime.recording import open_run
     from hilrig.runtime.run import run_scenario
     from hilrig.runtime.scenario import load_scenario
@@ -380,7 +380,7 @@ def _run(console, plain, scenario_path: Path, out: str | None, overwrite: bool, 
         tmpdir = tempfile.mkdtemp(prefix="hilrig-view-")
         telemetry = f"ipc://{tmpdir}/telemetry"
     if telemetry:
-        from hilrig.runtime import telemetry as _tel
+        from hilrig.runtime.live import telemetry as _tel
         _tel.check_telemetry_address(telemetry, allow_remote, telemetry_keys)
         if telemetry_keys:
             from hilrig.bridge.keys import server_keys
@@ -394,7 +394,7 @@ def _run(console, plain, scenario_path: Path, out: str | None, overwrite: bool, 
                                    "--exit-when-done"]
                                   + (["--allow-remote"] if allow_remote else [])
                                   + (["--curve-keys", telemetry_keys] if telemetry_keys else []))
-        from hilrig.runtime import telemetry as _tel
+        from hilrig.runtime.live import telemetry as _tel
         _tel.WAIT_FOR_VIEWER_S = 10.0  # the run starts once the viewer is there (or after 10 s)
         prog = _Progress(console, True, quiet=True)
     try:
@@ -406,7 +406,7 @@ def _run(console, plain, scenario_path: Path, out: str | None, overwrite: bool, 
                              notice=None if view else (lambda msg: console.print(msg)),
                              telemetry=telemetry)
         elif paced or sc.mode == "paced":
-            from hilrig.runtime.paced import run_paced
+            from hilrig.runtime.live.paced import run_paced
             # no progress bar: its redraws would compete with the loop for this process
             res = run_paced(sc, Path(out) if out else None, overwrite=overwrite,
                             notice=None if view else (lambda msg: console.print(msg)),
@@ -465,7 +465,7 @@ def _compare(console, args) -> None:
     from rich.markup import escape
     from rich.table import Table
 
-    from hilrig.runtime.compare import compare, json_view
+    from hilrig.runtime.trials.compare import compare, json_view
     from hilrig.runtime.scenario import plan_candidates
 
     names = [c.strip() for c in args.controllers.split(",") if c.strip()]
@@ -494,7 +494,7 @@ def _compare(console, args) -> None:
             ("IAE [V s]", "iae_Vs", 1.0, "{:.3g}"), ("RMS e [V]", "rms_error_V", 1.0, "{:.3g}"),
             ("max |e| [V]", "max_abs_error_V", 1.0, "{:.3g}"), ("saturated [ms]", "saturation_time_s", 1e3, "{:.3g}"),
             ("trips", "trips", 1.0, "{:.0f}"), ("loop [ns/tick]", "compute_ns_per_tick", 1.0, "{:.0f}")]
-    from hilrig.runtime.compare import RANK_RULE, folder_name
+    from hilrig.runtime.trials.compare import RANK_RULE, folder_name
     from hilrig.runtime.outcome import time_text
     labels = {name: folder_name(name) for name in results}
     # a metric of a run that ended early covers only the part it ran: marked with *
@@ -558,7 +558,7 @@ def _envelope(console, args, plain: bool) -> None:
 
     from rich.markup import escape
 
-    from hilrig.runtime import envelope as env
+    from hilrig.runtime.trials import envelope as env
     from hilrig.runtime.scenario import not_applied_lines, plan_candidates
     from hilrig.runtime.units import parse_quantity
 
@@ -663,7 +663,7 @@ def _envelope_cell(console, args, plain: bool, names: list[str]) -> None:
     outcome classified as the map classifies it."""
     import datetime as _dt
 
-    from hilrig.runtime import envelope as env
+    from hilrig.runtime.trials import envelope as env
     from hilrig.runtime.scenario import plan_candidates
     from hilrig.runtime.units import parse_quantity
 
@@ -841,6 +841,8 @@ def main(argv: list[str] | None = None) -> int:
                    help="run one cell (target voltage, load power) as a normal run into a run "
                         "folder (--out) with its recording, instead of the map")
     p.add_argument("--controller", metavar="NAME", help="the controller of --cell")
+    from hilrig.runtime.analysis.command import add_parser as _add_analyze
+    _add_analyze(sub)
     p = sub.add_parser("report", help="write a lab report of a run folder (report.md with plots)")
     p.add_argument("run", help="run folder")
     p.add_argument("--json", action="store_true", help="print summary.json (writes nothing)")
@@ -891,8 +893,8 @@ def main(argv: list[str] | None = None) -> int:
         elif args.cmd == "watch":
             from hilrig.bridge.errors import BridgeError as _BridgeError
             from hilrig.bridge.transport import check_address
-            from hilrig.runtime.telemetry import DEFAULT_ADDRESS, needs_keys
-            from hilrig.runtime.watch import watch
+            from hilrig.runtime.live.telemetry import DEFAULT_ADDRESS, needs_keys
+            from hilrig.runtime.live.watch import watch
             address = args.address or DEFAULT_ADDRESS
             check_address(address, args.allow_remote)
             if args.curve_keys is None and needs_keys(address):
@@ -938,6 +940,9 @@ def main(argv: list[str] | None = None) -> int:
             _compare(console, args)
         elif args.cmd == "envelope":
             _envelope(console, args, plain)
+        elif args.cmd == "analyze":
+            from hilrig.runtime.analysis.command import run as _analyze
+            return _analyze(console, args, plain, _overrides(args.set))
         elif args.cmd == "report":
             from hilrig.runtime.recording import open_run
             run = open_run(args.run)
@@ -946,7 +951,7 @@ def main(argv: list[str] | None = None) -> int:
             if args.json:
                 print(_json_text(run.summary))
             else:
-                from hilrig.runtime.report import write_report
+                from hilrig.runtime.trials.report import write_report
                 _summary_table(console, run.summary, run.folder)
                 for ev in run.summary.get("events", []):
                     console.print(f"event: {ev}")
@@ -968,7 +973,7 @@ def main(argv: list[str] | None = None) -> int:
             if dest.exists() and dest.resolve() != default.resolve():
                 raise FileExistsError(f"{dest} exists; choose another --out (nothing was overwritten)")
             if args.mf4:
-                from hilrig.runtime.report import export_mdf4
+                from hilrig.runtime.trials.report import export_mdf4
                 export_mdf4(run, dest)
                 console.print(f"wrote {dest} (ASAM MDF 4, {len(run.signals)} channels, "
                               f"{run.time.shape[0]} samples)")

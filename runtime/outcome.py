@@ -48,7 +48,7 @@ in ``then``):
 ``completed``
     the run reached its planned end with none of the above: the only status that is "ok".
 
-The band and the settled windows (``runtime/metrics.py`` ``band_check``, stored by
+The band and the settled windows (``runtime/trials/metrics.py`` ``band_check``, stored by
 ``run.execute`` as ``summary["tracking"]``): the band at a sample is
 ``max(BAND_REL |v_ref_raw|, BAND_FLOOR_V)`` = max(5 % of the raw reference, 0.5 V); a settled
 window starts ``SETTLE_DELAY_S`` (10 ms, at least 100 ticks) after the run's start and after each step's or ramp's

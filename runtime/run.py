@@ -25,7 +25,7 @@ from . import loop as loopgen
 from . import sensors
 from . import shaping
 from .errors import PluginError, ScenarioError
-from .metrics import TrackingMetrics, band_check, segment_metrics, withhold_metrics
+from .trials.metrics import TrackingMetrics, band_check, segment_metrics, withhold_metrics
 from .outcome import COLLAPSE, INTEGRATION_ERROR, INTEGRATION_ERRORS, judge, time_text
 from .recording import SCENARIO, SUMMARY, RunWriter, SignalSpec, clear_derived, dumps_json
 from .scenario import PluginChoice, Scenario
@@ -650,7 +650,7 @@ def run_scenario(sc: Scenario, folder: Path | None = None, *, overwrite: bool = 
         return execute(sc, prep, folder, lambda k0, n, rec: _call(fn, k0, n, rec, a),
                        timing={"compile_or_load_s": t_compile, "compiled_now": compiled},
                        progress=progress)
-    from .telemetry import Telemetry, telemetry_config
+    from .live.telemetry import Telemetry, telemetry_config
     tel = Telemetry(**telemetry_config(sc, prep, telemetry, allow_remote))
     live = LiveControl(tel, sc, a)
     try:

@@ -68,7 +68,7 @@ WATCHDOGS = {"overrun_budget": ("s", 0.0, (0.0, 10.0)), "overrun_ticks": ("-", 1
              "stale_limit": ("s", 0.0, (0.0, 60.0)), "max_gap": ("-", 10, (1, 1_000_000)),
              "peer_timeout": ("s", 1.0, (1e-3, 600.0))}
 #: paced runs: the timing limits a run is judged by (docs/scenarios.md says why these defaults)
-#: and the real-time requests to the operating system (SCHED_FIFO priority; see runtime/paced.py)
+#: and the real-time requests to the operating system (SCHED_FIFO priority; see runtime/live/paced.py)
 PACED = {"miss_share_max": ("-", 0.01, (0.0, 1.0)), "max_lateness": ("s", 1e-3, (0.0, 10.0)),
          "realtime_priority": ("-", 49, (1, 99))}
 PACED_FLAGS = {"realtime": True}

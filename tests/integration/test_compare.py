@@ -11,7 +11,7 @@ try:
 except ModuleNotFoundError:  # Python 3.10
     import tomli as tomllib
 
-from hilrig.runtime.compare import JSON_FIELDS, compare, curve_style, folder_name
+from hilrig.runtime.trials.compare import JSON_FIELDS, compare, curve_style, folder_name
 
 ROOT = Path(__file__).resolve().parents[2]
 SCENARIO = ROOT / "examples" / "step_100V.toml"

@@ -9,8 +9,7 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-from hilrig.runtime import envelope as env
-
+from hilrig.runtime.trials import envelope as env
 ROOT = Path(__file__).resolve().parents[2]
 SCENARIO = ROOT / "examples" / "step_100V.toml"
 

@@ -19,7 +19,7 @@ import re
 import numpy as np
 import pytest
 
-from hilrig.runtime import envelope as env
+from hilrig.runtime.trials import envelope as env
 from hilrig.runtime.recording import open_run
 from hilrig.runtime.run import prepare, run_scenario
 from hilrig.runtime.scenario import load_scenario, parse_scenario

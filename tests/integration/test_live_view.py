@@ -245,7 +245,7 @@ def test_bridge_run_publishes_link_statistics_and_obeys_stop(tmp_path, demo_path
 def test_view_renders_in_80_columns_and_freezes_the_trace():
     from rich.console import Console
 
-    from hilrig.runtime.watch import View
+    from hilrig.runtime.live.watch import View
     v = View()
     frame = {"v": 1, "title": "t (test data)", "mode": "sil", "demo_data": False, "caution": "x",
              "tick": 100, "n_total": 1000, "t": 0.005, "wall": 0.1,
@@ -288,7 +288,7 @@ def test_the_trip_line_is_readable_and_the_hazard_notice_is_an_orange_warning():
     memory) in the WARNING colour of ANSI Z535, orange (a terminal colour approximates it)."""
     from rich.color import Color
 
-    from hilrig.runtime.watch import View
+    from hilrig.runtime.live.watch import View
     v = View()
     v.frame = {"v": 1, "title": "t (test data)", "mode": "sil", "demo_data": False,
                "caution": "x", "tick": 100, "n_total": 1000, "t": 0.005, "wall": 0.1,

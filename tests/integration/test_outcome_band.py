@@ -15,7 +15,7 @@ import numpy as np
 import pytest
 from scipy.signal import find_peaks
 
-from hilrig.runtime.compare import compare
+from hilrig.runtime.trials.compare import compare
 from tests.integration.test_cli import run_cli
 from tests.unit.safety.test_caution import LOW_48V
 
@@ -65,9 +65,9 @@ def test_a_loop_in_a_limit_cycle_is_oscillating_in_run(tmp_path):
     assert peaks.size >= 3
     assert np.ptp(sig["v_out"][w]) > 2 * 0.05 * 28.0
     # the report and the envelope's reading of the same run use the same word
-    from hilrig.runtime import envelope as env
+    from hilrig.runtime.trials import envelope as env
     from hilrig.runtime.recording import open_run
-    from hilrig.runtime.report import write_report
+    from hilrig.runtime.trials.report import write_report
     md = write_report(open_run(tmp_path / "r")).read_text()
     assert "| status | oscillating |" in md and "oscillating: yes" in md
     # as an envelope cell: never "tracks"; "saturates" when the command sits at the

@@ -100,7 +100,7 @@ def test_compare_lists_a_controller_parameter_as_applied_only_where_it_acted(
 
     # the report shows the recorded header, so it says the same
     from hilrig.runtime.recording import open_run
-    from hilrig.runtime.report import write_report
+    from hilrig.runtime.trials.report import write_report
     report = write_report(open_run(out / "flatness")).read_text()
     assert f'controller.method = "lqr": {NOT_TAKEN}' in report
 

@@ -22,7 +22,7 @@ import numpy as np
 import pytest
 
 from hilrig.runtime import clock
-from hilrig.runtime.paced import RealtimeRequests, locked_kib, run_paced
+from hilrig.runtime.live.paced import RealtimeRequests, locked_kib, run_paced
 from hilrig.runtime.recording import dumps_json, open_run
 from hilrig.runtime.run import run_scenario
 from hilrig.runtime.scenario import load_scenario

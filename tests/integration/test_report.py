@@ -57,8 +57,8 @@ def test_report_md_has_outcome_metrics_events_plots_scenario(tripped_run):
 
 
 def test_paced_report_has_the_timing_histogram(demo_path, tmp_path):
-    from hilrig.runtime.paced import run_paced
-    from hilrig.runtime.report import write_report
+    from hilrig.runtime.live.paced import run_paced
+    from hilrig.runtime.trials.report import write_report
     from hilrig.runtime.scenario import load_scenario
     res = run_paced(load_scenario(demo_path, overrides={"timing.duration": 0.1}), tmp_path / "r")
     md = write_report(open_run(res.folder)).read_text()
@@ -94,7 +94,7 @@ def test_mf4_export_reads_back_bit_for_bit_with_asammdf(tripped_run, tmp_path):
 
 
 def test_mf4_export_without_asammdf_says_how_to_get_it(tripped_run, tmp_path, monkeypatch):
-    from hilrig.runtime.report import export_mdf4
+    from hilrig.runtime.trials.report import export_mdf4
     monkeypatch.setitem(sys.modules, "asammdf", None)  # makes "import asammdf" fail
     with pytest.raises(RecordingError, match=r"pip install 'hilrig\[mdf\]'"):
         export_mdf4(open_run(tripped_run), tmp_path / "x.mf4")

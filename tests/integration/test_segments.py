@@ -75,7 +75,7 @@ def test_the_lag_of_the_shaped_reference_matches_its_closed_form(ramp_run):
     lower incomplete gamma function [derived: the ramp response integrates the Erlang step
     response P(n, w t)]: the lag our ramp metrics read off the recorded shaped reference at the
     ramp's end (T = 1 ms) is that over a."""
-    from hilrig.runtime.metrics import segment_metrics
+    from hilrig.runtime.trials.metrics import segment_metrics
     _, run = ramp_run
     t, shaped, raw = run.time, run.signals["v_ref"], run.signals["v_ref_raw"]
     segs, _ = segment_metrics(t, shaped, raw)

@@ -128,7 +128,7 @@ def test_a_sensor_fault_acts_on_the_reading_after_the_chain(tmp_path, demo_path)
 
 
 def test_a_paced_run_applies_the_same_chain_as_sil(closed, tmp_path, demo_path):
-    from hilrig.runtime.paced import run_paced
+    from hilrig.runtime.live.paced import run_paced
     tmp, (_, sil), _ = closed
     sc = parse_scenario(_text(demo_path, CHAIN) + '\n[paced]\nmiss_share_max = 1.0\n'
                         'max_lateness = "10 s"\nrealtime = false\n', name="paced.toml")

@@ -16,8 +16,8 @@ import zmq
 
 from hilrig.bridge.errors import BridgeError
 from hilrig.bridge.keys import generate
-from hilrig.runtime.telemetry import Telemetry, check_telemetry_address
-from hilrig.runtime.watch import connect
+from hilrig.runtime.live.telemetry import Telemetry, check_telemetry_address
+from hilrig.runtime.live.watch import connect
 from hilrig.safety.interlocks import LATCH_SIZE, InterlockTable
 from tests.integration.test_live_view import _free_port
 

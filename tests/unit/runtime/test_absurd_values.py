@@ -10,7 +10,7 @@ import numpy as np
 import pytest
 
 from hilrig.runtime.errors import RecordingError
-from hilrig.runtime.plots import PLOT_LIMIT, _Shown, overview_png
+from hilrig.runtime.trials.plots import PLOT_LIMIT, _Shown, overview_png
 from hilrig.runtime.recording import Run, check_free_space, projected_bytes
 
 PNG_MAGIC = b"\x89PNG\r\n\x1a\n"  # the PNG signature (PNG specification, section 5.2)

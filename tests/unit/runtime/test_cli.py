@@ -6,8 +6,6 @@ import numpy as np
 from rich.console import Console
 
 from hilrig.runtime import cli
-
-
 class FakeClock:
     def __init__(self):
         self.now = 0.0
@@ -50,7 +48,7 @@ def test_long_run_prints_plain_progress_lines(monkeypatch):
 def _segments(tau=1e-3):
     """Demo data: hold, 50 V step, hold, 1 ms ramp of 50 V, hold, followed by a discrete
     first-order lag (time constant tau)."""
-    from hilrig.runtime.metrics import segment_metrics
+    from hilrig.runtime.trials.metrics import segment_metrics
     t = np.arange(800) * 50e-6
     r = np.interp(t, [0, 10e-3, 10e-3, 20e-3, 21e-3], [400, 400, 450, 450, 500])
     y = np.empty_like(r)

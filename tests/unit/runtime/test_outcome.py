@@ -169,7 +169,7 @@ def test_an_operator_stop_is_stopped_not_tripped(tmp_path):
     (None, "completed"),
 ])
 def test_the_paced_timing_verdict_is_read_defensively(completed, paced, status):
-    # the verdict is another module's field (runtime/paced.py): added here to a real summary
+    # the verdict is another module's field (runtime/live/paced.py): added here to a real summary
     s = dict(completed.summary, paced=paced)
     oc = judge(s)
     assert oc["status"] == status and oc["completed"] == (status == "completed")

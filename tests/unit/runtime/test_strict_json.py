@@ -47,7 +47,7 @@ def test_the_input_is_not_changed():
 def test_compare_json_view_and_comparison_json_are_strict(tmp_path, monkeypatch, demo_path):
     """comparison.json and compare --json of a candidate whose run had no reference step and a
     non-finite metric: null, not NaN (the runs themselves are stubbed: no loop is compiled)."""
-    from hilrig.runtime import compare as cmp
+    from hilrig.runtime.trials import compare as cmp
     from hilrig.runtime.run import RunResult
 
     def fake_run(sc, folder, **kw):

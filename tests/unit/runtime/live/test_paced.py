@@ -20,8 +20,8 @@ import sys
 
 import pytest
 
-from hilrig.runtime import paced
-from hilrig.runtime.paced import (RealtimeRequests, locked_kib, realtime_text, timing_verdict,
+from hilrig.runtime.live import paced
+from hilrig.runtime.live.paced import (RealtimeRequests, locked_kib, realtime_text, timing_verdict,
                                   verdict_text)
 
 LIMITS = {"miss_share_max": 0.01, "max_lateness": 1e-3}

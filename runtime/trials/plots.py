@@ -5,7 +5,7 @@ from pathlib import Path
 
 import numpy as np
 
-from .recording import Run
+from ..recording import Run
 
 #: the largest magnitude drawn as it is. Values beyond (a peer sending 1e308, a diverged
 #: state) are drawn at this bound, with a note on the figure: matplotlib cannot scale an axis
@@ -111,7 +111,7 @@ def _overview(plt, run: Run, dest: Path) -> Path:
     if run.summary:
         import textwrap
 
-        from .outcome import judge
+        from ..outcome import judge
         title += "\n" + textwrap.fill(judge(run.summary)["text"], 110)
     note = shown.note()
     if note:

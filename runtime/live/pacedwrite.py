@@ -16,8 +16,8 @@ from typing import Any
 
 import numpy as np
 
-from .errors import RecordingError
-from .recording import RunWriter, SignalSpec
+from ..errors import RecordingError
+from ..recording import RunWriter, SignalSpec
 
 #: control words in shared memory: rows published by the loop, rows written, no more rows,
 #: the child failed, the operator asked to stop (the paced kernel polls it every tick)
@@ -107,7 +107,7 @@ def _child(names, folder, signals, attrs, chunk_rows, compression, cap, ncols, t
                  if timing_cols else [])
         metrics = None
         if metric_cols:
-            from .metrics import TrackingMetrics
+            from ..trials.metrics import TrackingMetrics
             metrics = TrackingMetrics(ts)
 
         def append(t, r):
@@ -124,7 +124,7 @@ def _child(names, folder, signals, attrs, chunk_rows, compression, cap, ncols, t
         def live(first, r, ended=False):
             if tel is None:
                 return
-            from .loop import EVENT_TEXT
+            from ..loop import EVENT_TEXT
             from hilrig.safety.interlocks import L_RESET_NOW
             sa = shared.arrays
             for c in tel.commands():

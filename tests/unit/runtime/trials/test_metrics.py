@@ -6,7 +6,7 @@ import control
 import numpy as np
 import pytest
 
-from hilrig.runtime.metrics import (MAX_CHANGES, TrackingMetrics, segment_metrics,
+from hilrig.runtime.trials.metrics import (MAX_CHANGES, TrackingMetrics, segment_metrics,
                                     split_reference, step_response_info)
 
 

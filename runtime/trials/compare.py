@@ -7,7 +7,7 @@ summary list it as not applied, with the reason
 (:func:`hilrig.runtime.scenario.plan_candidates`). The comparison
 reports, per candidate, its outcome (:mod:`hilrig.runtime.outcome`), the characteristics of the
 largest reference step and the metrics of every reference segment (holds, steps, ramps; see
-:mod:`hilrig.runtime.metrics`), the tracking metrics over the time the run lasted, trips and the
+:mod:`hilrig.runtime.trials.metrics`), the tracking metrics over the time the run lasted, trips and the
 loop's compute time per tick, and draws one figure per quantity with every candidate overlaid.
 
 Candidates are ranked by :func:`hilrig.runtime.outcome.rank_key`: every run that completed
@@ -25,10 +25,10 @@ from pathlib import Path
 from typing import Any, Callable
 
 from .metrics import largest_change, largest_step
-from .outcome import coverage_text, judge, rank_key, time_text
-from .recording import dumps_json, finite_or_none, open_run
-from .run import run_scenario
-from .scenario import not_applied_lines, plan_candidates
+from ..outcome import coverage_text, judge, rank_key, time_text
+from ..recording import dumps_json, finite_or_none, open_run
+from ..run import run_scenario
+from ..scenario import not_applied_lines, plan_candidates
 
 JSON_KEYS = ("rise_time_s", "settling_time_s", "overshoot_pct", "steady_state_error_V", "iae_Vs",
              "rms_error_V", "max_abs_error_V", "saturation_time_s", "trips", "compute_ns_per_tick",

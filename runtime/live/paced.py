@@ -10,7 +10,7 @@ its deadline) and compute time are recorded. The overrun watchdog sees the last 
 (lateness + compute, from its deadline to its end) against ``watchdogs.overrun_budget``.
 
 The loop's process does nothing else between ticks: the recording is written by a child
-process through shared memory (:mod:`hilrig.runtime.pacedwrite`), and the live view runs in
+process through shared memory (:mod:`hilrig.runtime.live.pacedwrite`), and the live view runs in
 its own process.
 
 Where the operating system permits it, the loop's thread runs at a real-time priority
@@ -37,11 +37,11 @@ import numpy as np
 
 from hilrig.safety.interlocks import W_FORCED, W_HOST_TIME
 
-from . import clock
-from . import loop as loopgen
+from .. import clock
+from .. import loop as loopgen
 from .pacedwrite import LatencyStats, ProcessWriter
-from .recording import SignalSpec
-from .run import (RunResult, _call, check_folder, chunk_args, compile_loop, default_folder,
+from ..recording import SignalSpec
+from ..run import (RunResult, _call, check_folder, chunk_args, compile_loop, default_folder,
                   execute, first_call, prepare)
 
 #: sleep until this long before a deadline, then spin

@@ -99,7 +99,7 @@ class Grid:
 
     @classmethod
     def parse(cls, v_range: str, p_range: str, grid: str) -> "Grid":
-        from .units import parse_quantity
+        from ..units import parse_quantity
         try:
             nv, np_ = (int(x) for x in grid.lower().split("x"))
         except ValueError:
@@ -144,8 +144,8 @@ _CACHE: dict[tuple[str, str], Any] = {}
 
 
 def _base(task: Task):
-    from .run import compile_loop
-    from .scenario import parse_scenario
+    from ..run import compile_loop
+    from ..scenario import parse_scenario
     key = (hashlib.sha256(task.scenario_text.encode()).hexdigest(), task.controller)
     if key not in _CACHE:
         sc = parse_scenario(task.scenario_text, name=task.scenario_name,
@@ -160,7 +160,7 @@ def _base(task: Task):
         fn, _, _ = compile_loop(probe)
         # a call with zero ticks compiles (or loads) the loop now, so that forked workers
         # inherit the machine code instead of each loading it again
-        from .run import _call, first_call, prepare
+        from ..run import _call, first_call, prepare
         prep = prepare(probe)
         first_call(probe, lambda: _call(fn, 0, 0, np.empty((1, len(prep.signals))), prep.args))
         _CACHE[key] = (sc, fn, profile, v_start)
@@ -178,13 +178,13 @@ def _controller_override(text: str, controller: str) -> dict:
 
 
 def _profile_plugin():
-    from . import registry
+    from .. import registry
     return registry.load("reference", "profile")
 
 
 def point_scenario(sc, profile, v_start: float, v_target: float, p_load: float, t_step: float):
     """The scenario for one operating point (see the module docstring)."""
-    from .scenario import PluginChoice
+    from ..scenario import PluginChoice
     points = ((0.0, v_start), (t_step, v_start), (t_step, v_target))
     ref = PluginChoice(plugin=profile, values={"points": points})
     load_t = np.array([0.0])
@@ -233,7 +233,7 @@ def _cell_status(ts: float, n: int, ran: int, trip: dict | None, end_event: str,
     """The outcome status of a cell's run, judged as run.execute's summary is (its events and
     the band check on the recorded v_out and v_ref_raw, cut at the first trip or collapse)."""
     from .metrics import band_check
-    from .outcome import COLLAPSE, judge
+    from ..outcome import COLLAPSE, judge
     events = [dict(trip, event="trip")] if trip else []
     if end_event:
         events.append({"event": end_event, "tick": end_tick, "time_s": end_tick * ts})
@@ -249,7 +249,7 @@ def _cell_status(ts: float, n: int, ran: int, trip: dict | None, end_event: str,
 
 def run_row(task: Task) -> list[Cell]:
     """Cells of one grid row (one voltage, every power). Runs in any worker process."""
-    from .run import _call, prepare
+    from ..run import _call, prepare
     sc, fn, profile, v_scenario = _base(task)
     n = sc.n_ticks
     t_step = step_time(sc, task.t_step)
@@ -272,7 +272,7 @@ def _loop_cell(prep, n: int, ran: int, sig: dict, v_target: float, tol_pct: floa
     end event, as run.execute reads them into a run's summary."""
     from hilrig.safety.interlocks import EVT_TRIP
 
-    from .loop import EVENT_TEXT
+    from ..loop import EVENT_TEXT
     a, ts = prep.args, prep.sc.Ts
     first_cause, first_t, trip = "", None, None
     for row in a["evlog"][:min(int(a["evn"][0]), a["evlog"].shape[0])]:
@@ -312,7 +312,7 @@ def _start_voltage(sc) -> float:
         return sc.v_out0
     if sc.reference.plugin.name == "profile":
         return float(sc.reference.values["points"][0][1])
-    from .run import prepare
+    from ..run import prepare
     return prepare(sc).v0
 
 
@@ -322,7 +322,7 @@ def grid_notices(sc, grid: Grid, v_start: float | None = None) -> list[str]:
     its start voltage, named as the map's user gave them."""
     from hilrig.safety.caution import unreachable_voltages
 
-    from .scenario import PluginChoice
+    from ..scenario import PluginChoice
     profile = _profile_plugin()
     given = ("--v-start" if v_start is not None else
              "initial.v_out" if sc.v_out0 is not None else "the scenario's reference at t = 0")
@@ -367,7 +367,7 @@ def cell_overrides(sc, controller: str, v_target: float, p_load: float,
 def set_items(overrides: dict[str, Any]) -> list[str]:
     """Overrides as ``--set`` items (KEY=VALUE, the value in TOML's notation: floats are written
     exactly, so the run parses the same numbers)."""
-    from .scenario import _inline
+    from ..scenario import _inline
     return [f"{k}={_inline(v)}" for k, v in overrides.items()]
 
 
@@ -383,9 +383,9 @@ def run_command(scenario: str, sets: list[str], overrides: dict[str, Any]) -> st
 
 def cell_of_run(folder: Path, v_target: float, tol_pct: float = 2.0) -> Cell:
     """Classify a recorded run (a run folder) by the map's rules: the cell a re-run gave."""
-    from .loop import EVENT_TEXT
-    from .recording import open_run
-    from .scenario import parse_scenario
+    from ..loop import EVENT_TEXT
+    from ..recording import open_run
+    from ..scenario import parse_scenario
     run = open_run(folder)
     s = run.summary
     if not s:
@@ -397,7 +397,7 @@ def cell_of_run(folder: Path, v_target: float, tol_pct: float = 2.0) -> Cell:
     ran = int(s["ticks_run"])
     word = _classify_signals(int(s["ticks_planned"]), ran, 1 if ends else 0, trip is not None,
                              run.signals, u_name, v_target, tol_pct)
-    from .outcome import judge
+    from ..outcome import judge
     outcome = cell_word(judge(s)["status"], word)
     return Cell(outcome, trip["cause"] if trip else "", trip["time_s"] if trip else None,
                 ends[0]["event"] if ends else "", ends[0]["time_s"] if ends else None)

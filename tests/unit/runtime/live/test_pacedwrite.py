@@ -17,10 +17,12 @@ import numpy as np
 import pytest
 from numba import njit
 
-from hilrig.runtime import clock, pacedwrite
+from hilrig.runtime import clock
+
+from hilrig.runtime.live import pacedwrite
 from hilrig.runtime.errors import RecordingError
-from hilrig.runtime.metrics import TrackingMetrics
-from hilrig.runtime.pacedwrite import LatencyStats, ProcessWriter
+from hilrig.runtime.trials.metrics import TrackingMetrics
+from hilrig.runtime.live.pacedwrite import LatencyStats, ProcessWriter
 from hilrig.runtime.recording import RunWriter, SignalSpec, open_run
 
 BIN = LatencyStats.BIN

@@ -1,4 +1,4 @@
-"""The tracking band (runtime/metrics.py band_check: the outcomes "out of band" and
+"""The tracking band (runtime/trials/metrics.py band_check: the outcomes "out of band" and
 "oscillating"), segment metrics cut at the first trip or collapse, and metrics withheld after a
 plant integration error; on synthetic signals whose answer is known in closed form."""
 import math
@@ -7,7 +7,7 @@ import control
 import numpy as np
 import pytest
 
-from hilrig.runtime.metrics import (BAND_FLOOR_V, BAND_REL, OSC_SWINGS, OUT_OF_BAND_S,
+from hilrig.runtime.trials.metrics import (BAND_FLOOR_V, BAND_REL, OSC_SWINGS, OUT_OF_BAND_S,
                                     OUT_OF_BAND_TICKS, SETTLE_DELAY_S, SETTLE_TICKS, band_check,
                                     segment_metrics, withhold_metrics)
 from hilrig.runtime.outcome import judge
@@ -205,7 +205,7 @@ def test_metrics_are_withheld_after_a_plant_integration_error():
 
 
 def test_an_envelope_cell_word_follows_the_run_outcome():
-    from hilrig.runtime import envelope as env
+    from hilrig.runtime.trials import envelope as env
     # the map's own final-part word only refines a run that reached its end
     assert env.cell_word("tripped", "tracks") == "trips"
     assert env.cell_word("integration error", "tracks") == "integration error"

@@ -16,9 +16,9 @@ import numpy as np
 
 from hilrig.safety.caution import WARNING_TITLE
 
-from .errors import RecordingError
-from .outcome import coverage_text, judge
-from .recording import Run
+from ..errors import RecordingError
+from ..outcome import coverage_text, judge
+from ..recording import Run
 
 CAUTION = ("hilrig's interlocks and watchdogs are monitoring functions of a test tool, not "
            "safety-rated functions (IEC 61508, ISO 13849). This report documents a simulation "
@@ -32,7 +32,7 @@ def _hazard_text(run: Run) -> str | None:
     it must never be missing for a run above 60 V DC."""
     from hilrig.safety.caution import caution_text, scenario_voltages
 
-    from .scenario import parse_scenario
+    from ..scenario import parse_scenario
     try:
         sc = parse_scenario(run.attrs.get("scenario_text", ""), name="scenario.toml")
         return caution_text(scenario_voltages(sc))
@@ -101,7 +101,7 @@ def _segment_tables(segments: list[dict], info: dict) -> list[str]:
         return []
     L = ["", "## Reference segments", ""]
     line = ("The raw reference (what the scenario commands) split into holds, steps and ramps "
-            "(rule: `hilrig.runtime.metrics.split_reference`)")
+            "(rule: `hilrig.runtime.trials.metrics.split_reference`)")
     if info:
         line += f"; changes above {_metric(info.get('threshold_V'))} V count"
         left = (info.get("changes_found") or 0) - (info.get("changes_listed") or 0)
@@ -242,7 +242,7 @@ def write_report(run: Run, dest: Path | None = None) -> Path:
             L.append(f"| {k} | {_fmt(tm[k])} |")
     pc = s.get("paced")
     if pc:
-        from .paced import realtime_text, verdict_text
+        from ..live.paced import realtime_text, verdict_text
         if pc.get("verdict"):
             L.append(f"| paced timing | {verdict_text(pc['verdict'])} |")
         if pc.get("realtime"):

@@ -1,0 +1,1 @@
+"""Trials: compare candidates, envelope maps, metrics, reports and plots of finished runs."""
