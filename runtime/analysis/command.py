@@ -262,9 +262,8 @@ def _map(console, args, plain: bool, path: Path, scenarios: dict) -> int:
             a = agree[c]
             console.print(escape(
                 f"  against the envelope: {a['agree']} of {a['points']} points agree; stable "
-                f"but not tracking {len(a['stable_not_tracking'])}, unstable but tracking "
-                f"{len(a['unstable_tracking'])}, unstable and saturating "
-                f"{len(a['unstable_saturating'])}, no steady state {len(a['no_steady_state'])}"))
+                f"but not tracking {len(a['stable_not_tracking'])}, unstable (or no steady "
+                f"state) but tracking {len(a['unstable_tracking'])}"))
     out.mkdir(parents=True, exist_ok=True)
     gmod.write_csv(rows, out / "map.csv")
     wrote = [out / "map.csv"]
@@ -275,8 +274,7 @@ def _map(console, args, plain: bool, path: Path, scenarios: dict) -> int:
         from .plots import map_png
         first = next(iter(scenarios.values()))
         wrote.append(map_png(rows, out / "map.png", env_rows, title=(
-            f"{first.title or path.name}: " + ("envelope (SIL) with the linear stability limit "
-                                               "(line: largest |z| = 1; x: unstable)"
+            f"{first.title or path.name}: " + ("SIL envelope and the linear analysis"
                                                if env_rows else "largest closed-loop |z|"))))
     except ImportError:
         pass

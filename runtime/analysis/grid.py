@@ -149,20 +149,18 @@ def counts(rows: list[dict[str, Any]]) -> dict[str, dict[str, int]]:
     return out
 
 
-#: envelope outcomes that a linear analysis calling the point unstable predicts
-UNSTABLE_OUTCOMES = ("oscillates", "collapses", "trips", "integration error")
-
-
 def agreement(map_rows: list[dict[str, Any]], env_rows: list[dict[str, Any]]) -> dict[str, Any]:
     """How the analysis and an envelope of the same grid agree, per controller.
 
-    Agreement: "stable" with "tracks", or "unstable" with an envelope outcome of instability
-    (oscillates, collapses, trips, integration error). The rest are listed by kind:
-    ``stable_not_tracking`` (a large-signal effect the linear model cannot see: the transition
-    to the point trips or leaves the region of attraction, or the command saturates),
-    ``unstable_tracking`` (the simulation settles where the model predicts growth),
-    ``unstable_saturating``, and points without a steady state. Points are matched by (controller,
-    V, P) to 1e-9 relative."""
+    The two agree on a point where the analysis calls it "stable" and the envelope's cell
+    tracks, or where the analysis calls it "unstable" or finds no steady state (a limit of
+    the controller or converter cannot hold it) and the cell does not track. The points where
+    they differ are listed by kind: ``stable_not_tracking`` (a large-signal effect that a
+    linear model cannot see: the transition to the point trips or leaves the region of
+    attraction, or the command saturates) and ``unstable_tracking`` (the simulation settles
+    where the model predicts growth). ``no_steady_state`` lists the points without a steady
+    state, whatever the envelope says (they count as agreeing when the cell does not track).
+    Points are matched by (controller, V, P)."""
     def key(r):
         return (r["controller"], round(float(r["v_ref_V"]), 6), round(float(r["p_load_W"]), 3))
     env = {key(r): r for r in env_rows}
@@ -172,23 +170,19 @@ def agreement(map_rows: list[dict[str, Any]], env_rows: list[dict[str, Any]]) ->
         if e is None:
             continue
         c = out.setdefault(r["controller"], dict(points=0, agree=0, stable_not_tracking=[],
-                                                 unstable_tracking=[], unstable_saturating=[],
-                                                 no_steady_state=[]))
+                                                 unstable_tracking=[], no_steady_state=[]))
         c["points"] += 1
         where = dict(v_ref_V=r["v_ref_V"], p_load_W=r["p_load_W"], outcome=e["outcome"],
                      largest_pole_abs=r["largest_pole_abs"])
-        if r["status"] == "stable" and e["outcome"] == "tracks":
-            c["agree"] += 1
-        elif r["status"] == "unstable" and e["outcome"] in UNSTABLE_OUTCOMES:
+        tracks = e["outcome"] == "tracks"
+        if r["status"] == "no steady state":
+            c["no_steady_state"].append(where)
+        if (r["status"] == "stable") == tracks:
             c["agree"] += 1
         elif r["status"] == "stable":
             c["stable_not_tracking"].append(where)
-        elif r["status"] == "unstable" and e["outcome"] == "tracks":
-            c["unstable_tracking"].append(where)
-        elif r["status"] == "unstable":
-            c["unstable_saturating"].append(where)
         else:
-            c["no_steady_state"].append(where)
+            c["unstable_tracking"].append(where)
     return out
 
 

@@ -143,6 +143,7 @@ def map_figure(map_rows: list[dict[str, Any]], env_rows: list[dict[str, Any]] | 
             ax.set_ylabel("reference voltage [V]")
         if len(vs) > 1 and len(ps) > 1 and np.nanmin(g) < 1.0 < np.nanmax(g):
             ax.contour(pk, vs, g, levels=[1.0], colors="k", linewidths=1.6)
+            ax.plot([], [], "-", color="k", lw=1.6, label="largest |z| = 1")
         bad = [(r["p_load_W"] / 1e3, r["v_ref_V"]) for r in map_rows
                if r["controller"] == c and r["status"] == "unstable"]
         if bad:
@@ -154,8 +155,8 @@ def map_figure(map_rows: list[dict[str, Any]], env_rows: list[dict[str, Any]] | 
         if none:
             nx, ny = zip(*none)
             ax.plot(nx, ny, "o", mfc="none", color="k", ms=4, mew=0.8, label="no steady state")
-        if bad or none:
-            ax.legend(fontsize=7, loc="lower left")
+        if ax.get_legend_handles_labels()[0]:
+            ax.legend(fontsize=7, loc="lower left", framealpha=0.85)
     return fig
 
 
