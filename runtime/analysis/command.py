@@ -201,6 +201,9 @@ def _print_point(console, name: str, s: dict[str, Any]) -> None:
         soft_wrap=True)
     for n in s["notes"]:
         console.print(escape(f"  note: {n}"), soft_wrap=True)
+    for n in s["interlocks_beyond"]:
+        console.print(escape(f"  beyond an interlock at rest: {n}: a run here trips"),
+                      soft_wrap=True)
 
 
 def _map(console, args, plain: bool, path: Path, scenarios: dict) -> int:
@@ -261,9 +264,10 @@ def _map(console, args, plain: bool, path: Path, scenarios: dict) -> int:
         if agree and c in agree:
             a = agree[c]
             console.print(escape(
-                f"  against the envelope: {a['agree']} of {a['points']} points agree; stable "
-                f"but not tracking {len(a['stable_not_tracking'])}, unstable (or no steady "
-                f"state) but tracking {len(a['unstable_tracking'])}"))
+                f"  against the envelope: {a['agree']} of {a['points']} points agree; predicted "
+                f"to track but did not {len(a['stable_not_tracking'])}, predicted not to track "
+                f"(unstable, no steady state or beyond an interlock) but tracked "
+                f"{len(a['unstable_tracking'])}"))
     out.mkdir(parents=True, exist_ok=True)
     gmod.write_csv(rows, out / "map.csv")
     wrote = [out / "map.csv"]

@@ -5,7 +5,9 @@ like the envelope's rows), and its agreement with an envelope map of the same gr
 A point's row: ``controller``, ``v_ref_V``, ``p_load_W``, ``status`` (``stable``,
 ``unstable``, or ``no steady state`` with the reason in ``note``), ``largest_pole_abs``, the
 governing ``gain_margin_db`` and ``phase_margin_deg`` (when ``margins`` is asked for), and
-``note`` (the model's notes: a steady-state error, a command at its limit).
+``note`` (the model's notes: a steady-state error, a command at its limit), and
+``beyond_interlock`` (the scenario's trip interlocks whose condition holds at the steady state:
+the point is stable or not, but it trips there; empty when none).
 
 The load of a point is the scenario's load at t = 0 with its constant power set to the point's
 power; ``power_only`` drops the scenario's conductance and constant current, as the envelope's
@@ -24,7 +26,7 @@ import numpy as np
 
 STATUSES = ("stable", "unstable", "no steady state")
 CSV_COLUMNS = ("controller", "v_ref_V", "p_load_W", "status", "largest_pole_abs",
-               "gain_margin_db", "phase_margin_deg", "note")
+               "gain_margin_db", "phase_margin_deg", "beyond_interlock", "note")
 
 
 @dataclass(frozen=True)
@@ -74,7 +76,7 @@ def point_row(prep, kern, controller: str, v: float, p: float, margins: bool) ->
     from .linear import AnalysisError, linearize
     row: dict[str, Any] = dict(controller=controller, v_ref_V=float(v), p_load_W=float(p),
                                status="", largest_pole_abs=None, gain_margin_db=None,
-                               phase_margin_deg=None, note="")
+                               phase_margin_deg=None, beyond_interlock="", note="")
     try:
         m = linearize(prep, v, p, kern)
     except AnalysisError as exc:
@@ -82,7 +84,8 @@ def point_row(prep, kern, controller: str, v: float, p: float, margins: bool) ->
         return row
     top = point.largest_pole(m)
     row.update(status="stable" if top < point.STABLE_BELOW else "unstable",
-               largest_pole_abs=top, note="; ".join(m.op.notes))
+               largest_pole_abs=top, note="; ".join(m.op.notes),
+               beyond_interlock="; ".join(m.op.interlocks_beyond))
     if margins:
         mg = point.margins(m)
         if mg.get("available"):
@@ -152,15 +155,15 @@ def counts(rows: list[dict[str, Any]]) -> dict[str, dict[str, int]]:
 def agreement(map_rows: list[dict[str, Any]], env_rows: list[dict[str, Any]]) -> dict[str, Any]:
     """How the analysis and an envelope of the same grid agree, per controller.
 
-    The two agree on a point where the analysis calls it "stable" and the envelope's cell
-    tracks, or where the analysis calls it "unstable" or finds no steady state (a limit of
-    the controller or converter cannot hold it) and the cell does not track. The points where
-    they differ are listed by kind: ``stable_not_tracking`` (a large-signal effect that a
-    linear model cannot see: the transition to the point trips or leaves the region of
-    attraction, or the command saturates) and ``unstable_tracking`` (the simulation settles
-    where the model predicts growth). ``no_steady_state`` lists the points without a steady
-    state, whatever the envelope says (they count as agreeing when the cell does not track).
-    Points are matched by (controller, V, P)."""
+    The analysis predicts that a cell tracks when the point is "stable" and its steady state
+    is inside every trip interlock; it predicts that it does not when the point is "unstable",
+    has no steady state (a limit of the controller or converter cannot hold it) or rests
+    beyond an interlock. The two agree where the prediction and the cell's outcome match. The
+    points where they differ are listed by kind: ``stable_not_tracking`` (a large-signal
+    effect that a linear model cannot see: the transition to the point trips or leaves the
+    region of attraction, or the command saturates) and ``unstable_tracking`` (the simulation
+    settles where the model predicts otherwise). ``no_steady_state`` and ``beyond_interlock``
+    list those points, whatever the envelope says. Points are matched by (controller, V, P)."""
     def key(r):
         return (r["controller"], round(float(r["v_ref_V"]), 6), round(float(r["p_load_W"]), 3))
     env = {key(r): r for r in env_rows}
@@ -170,16 +173,20 @@ def agreement(map_rows: list[dict[str, Any]], env_rows: list[dict[str, Any]]) ->
         if e is None:
             continue
         c = out.setdefault(r["controller"], dict(points=0, agree=0, stable_not_tracking=[],
-                                                 unstable_tracking=[], no_steady_state=[]))
+                                                 unstable_tracking=[], no_steady_state=[],
+                                                 beyond_interlock=[]))
         c["points"] += 1
         where = dict(v_ref_V=r["v_ref_V"], p_load_W=r["p_load_W"], outcome=e["outcome"],
                      largest_pole_abs=r["largest_pole_abs"])
         tracks = e["outcome"] == "tracks"
         if r["status"] == "no steady state":
             c["no_steady_state"].append(where)
-        if (r["status"] == "stable") == tracks:
+        if r.get("beyond_interlock"):
+            c["beyond_interlock"].append({**where, "interlock": r["beyond_interlock"]})
+        predicted = r["status"] == "stable" and not r.get("beyond_interlock")
+        if predicted == tracks:
             c["agree"] += 1
-        elif r["status"] == "stable":
+        elif predicted:
             c["stable_not_tracking"].append(where)
         else:
             c["unstable_tracking"].append(where)
@@ -195,7 +202,8 @@ def write_csv(rows: list[dict[str, Any]], dest) -> Any:
         w = csv.DictWriter(fh, fieldnames=list(CSV_COLUMNS))
         w.writeheader()
         for r in rows:
-            w.writerow({k: (num(r[k]) if k not in ("controller", "status", "note") else r[k])
+            w.writerow({k: (num(r[k]) if k not in ("controller", "status", "note",
+                                                    "beyond_interlock") else r[k])
                         for k in CSV_COLUMNS})
     return dest
 

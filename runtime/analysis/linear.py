@@ -70,6 +70,9 @@ class OperatingPoint:
     #: the largest residual of the steady-state equations, relative to their scale
     residual: float
     notes: list[str] = field(default_factory=list)
+    #: the scenario's trip interlocks whose condition holds at this steady state (their
+    #: descriptions): the point is beyond the rating the scenario protects, whatever its stability
+    interlocks_beyond: list[str] = field(default_factory=list)
 
 
 @dataclass
@@ -275,7 +278,27 @@ def operating_point(prep, v_ref: float, p_load: float, kern: _Kernels | None = N
     if abs(v_out - v_ref) > 1e-6 * max(1.0, abs(v_ref)):
         notes.append(f"steady-state error: v_out = {v_out:.6g} V at v_ref = {v_ref:g} V")
     return OperatingPoint(v_ref=float(v_ref), p_load=float(p_load), d=d, x=xx, u=uu, xc=cc,
-                          y=yy, v_out=v_out, residual=rel, notes=notes)
+                          y=yy, v_out=v_out, residual=rel, notes=notes,
+                          interlocks_beyond=_beyond(prep, yy, uu))
+
+
+def _beyond(prep, y: np.ndarray, u: np.ndarray) -> list[str]:
+    """The trip interlocks (above, below, magnitude) whose condition holds at rest."""
+    from hilrig.safety.interlocks import SIDE_ABOVE, SIDE_BELOW, SIDE_MAGNITUDE
+    values = dict(zip(prep.y_names, y.tolist()))
+    values.update(zip(prep.u_names, u.tolist()))
+    if "v_out" in values and "i_out" in values:
+        values["p_out"] = values["v_out"] * values["i_out"]
+    values["dv_out_dt"] = 0.0
+    out = []
+    for il in prep.sc.interlocks:
+        if il.action != "trip" or il.signal not in values:
+            continue
+        x, side = values[il.signal], il.side_code
+        if ((side == SIDE_ABOVE and x > il.threshold) or (side == SIDE_BELOW and x < il.threshold)
+                or (side == SIDE_MAGNITUDE and abs(x) > il.threshold)):
+            out.append(f"{il.describe()} (at rest: {il.signal} = {x:.6g})")
+    return out
 
 
 def _plant_jacobians(k: _Kernels, op: OperatingPoint, d: np.ndarray):

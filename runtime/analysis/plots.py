@@ -149,14 +149,26 @@ def map_figure(map_rows: list[dict[str, Any]], env_rows: list[dict[str, Any]] | 
         if bad:
             bx, by = zip(*bad)
             ax.plot(bx, by, "x", color="k", ms=4, mew=0.9,
-                    label="linear analysis: unstable")
+                    label="unstable")
         none = [(r["p_load_W"] / 1e3, r["v_ref_V"]) for r in map_rows
                 if r["controller"] == c and r["status"] == "no steady state"]
         if none:
             nx, ny = zip(*none)
             ax.plot(nx, ny, "o", mfc="none", color="k", ms=4, mew=0.8, label="no steady state")
-        if ax.get_legend_handles_labels()[0]:
-            ax.legend(fontsize=7, loc="lower left", framealpha=0.85)
+        over = [(r["p_load_W"] / 1e3, r["v_ref_V"]) for r in map_rows
+                if r["controller"] == c and r["status"] == "stable" and r.get("beyond_interlock")]
+        if over:
+            ox, oy = zip(*over)
+            ax.plot(ox, oy, "+", color="k", ms=5, mew=0.9, label="stable, at rest beyond an interlock")
+    # one key of the analysis' marks for every panel, beside the panels (not over the cells)
+    seen: dict[str, Any] = {}
+    for ax in axes.values():
+        for h, lab in zip(*ax.get_legend_handles_labels()):
+            seen.setdefault(lab, h)
+    if seen:
+        fig.legend(list(seen.values()), list(seen), fontsize=7, title="linear analysis",
+                   title_fontsize=8, loc="outside right center" if env_rows is not None
+                   else "outside lower center", ncols=1 if env_rows is not None else len(seen))
     return fig
 
 

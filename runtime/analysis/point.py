@@ -187,6 +187,7 @@ def summary(m: LoopModel) -> dict[str, Any]:
         stable=bool(top < STABLE_BELOW), largest_pole_abs=top,
         poles=[_pole_json(p) for p in ps],
         margins=mg, middlebrook=mb, notes=list(op.notes),
+        interlocks_beyond=list(op.interlocks_beyond),
         loop_states=list(m.loop_states),
     )
 
