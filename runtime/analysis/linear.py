@@ -246,19 +246,25 @@ def operating_point(prep, v_ref: float, p_load: float, kern: _Kernels | None = N
         return np.concatenate([k.f(xx, uu, d), c2 - cc, u2 - uu])
 
     z = np.concatenate([x, xc, u])
+    # Newton's method, the Jacobian kept while the residual falls fast (the equations are
+    # affine but for the load and the controller's clamps, so one Jacobian usually serves)
+    J = None
+    last = np.inf
+    res = residual(z)
     for _ in range(NEWTON_MAX):
-        res = residual(z)
         if not np.all(np.isfinite(res)):
             raise AnalysisError(f"no steady state at {v_ref:g} V, {p_load:g} W: the plant or "
                                 f"controller gives a non-finite value")
-        J = _jac(residual, z, floor)
+        size = float(np.max(np.abs(res))) if res.size else 0.0
+        if J is None or not size < 0.1 * last:
+            J = _jac(residual, z, floor)
+        last = size
         dz = np.linalg.lstsq(J, -res, rcond=None)[0]
         z = z + dz
+        res = residual(z)
         if np.all(np.abs(dz) <= NEWTON_TOL * np.maximum(np.abs(z), floor)):
             break
     xx, cc, uu = split(z)
-    res = residual(z)
-    J = _jac(residual, z, floor)
     scale = np.maximum(np.abs(J) @ np.maximum(np.abs(z), floor), 1e-300)
     rel = float(np.max(np.abs(res) / scale)) if res.size else 0.0
     if not (rel < 1e-8):
