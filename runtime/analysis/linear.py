@@ -25,9 +25,10 @@ conductance and constant current at t = 0 stay as they are). At it:
    of ceil(delay/2) ticks ago, the second with floor(delay/2)), queue states for the delayed
    commands, and the measurement taken at the tick's start (before the command of that tick).
 
-Plant states whose derivative is identically zero and that nothing reads back (the records of
-a switching-level plant, unused phases) are left out: they are not part of the loop and would
-only add poles at z = 1.
+Plant states whose derivative is identically zero (the records of a switching-level plant,
+unused phases) and controller states that the step leaves unchanged (an integrator switched
+off) are left out: they never move from their steady values, and would only add poles at z = 1
+that are not the loop's.
 
 Limits: the model is linear, valid for small deviations; a command at its clamp has no small-
 signal effect (the model says so in ``notes``); the sensor chain (``[[sensors]]``) is not in the
@@ -362,30 +363,24 @@ def zoh(A: np.ndarray, B: np.ndarray, h: float) -> tuple[np.ndarray, np.ndarray]
 
 def _live_states(A: np.ndarray, B: np.ndarray, E: np.ndarray) -> np.ndarray:
     """Indices of the plant states that take part: a state whose derivative is identically
-    zero and that no other derivative reads is a record (module docstring)."""
+    zero (a record, an unused phase) never moves from its steady value, whatever reads it; it
+    is a constant input to the others, and its pole at z = 1 is not the loop's."""
     n = A.shape[0]
-    keep = []
-    for j in range(n):
-        dead_row = not (np.any(A[j, :]) or np.any(B[j, :]) or np.any(E[j, :]))
-        dead_col = not np.any(np.delete(A[:, j], j))
-        if not (dead_row and dead_col):
-            keep.append(j)
+    keep = [j for j in range(n) if np.any(A[j, :]) or np.any(B[j, :]) or np.any(E[j, :])]
     return np.array(keep, dtype=np.int64)
 
 
 def _live_controller_states(Ac: np.ndarray, Bc: np.ndarray) -> np.ndarray:
     """Indices of the controller states that take part: a state that the step leaves as it is
-    (xc' = xc, whatever the reads) and that no other state reads is a constant here (an
-    integrator switched off, a stored setting); it would only add a pole at z = 1."""
+    (xc' = xc, whatever the reads; an integrator switched off, a stored setting) is a constant
+    here; its pole at z = 1 is not the loop's."""
     n = Ac.shape[0]
     keep = []
     for j in range(n):
         row = Ac[j, :].copy()
         own = row[j]
         row[j] = 0.0
-        held = own == 1.0 and not np.any(row) and not np.any(Bc[j, :])
-        unread = not np.any(np.delete(Ac[:, j], j))
-        if not (held and unread):
+        if not (own == 1.0 and not np.any(row) and not np.any(Bc[j, :])):
             keep.append(j)
     return np.array(keep, dtype=np.int64)
 
