@@ -587,6 +587,11 @@ def cache_dir() -> Path:
     return base / "loops"
 
 
+#: runtime code that no compiled function imports (work on finished runs, beside a real-time
+#: run, the analysis, the command line): a change there must not recompile every loop
+_NOT_COMPILED = ("trials", "live", "analysis", "cli.py")
+
+
 def _sources(plugins: list[Plugin]) -> list[Path]:
     import hilrig.plugins
     import hilrig.runtime
@@ -594,7 +599,11 @@ def _sources(plugins: list[Plugin]) -> list[Path]:
     files = set()
     import hilrig.bridge
     for pkg in (hilrig.runtime, hilrig.plugins, hilrig.safety, hilrig.bridge):
-        files.update(Path(pkg.__file__).resolve().parent.rglob("*.py"))
+        root = Path(pkg.__file__).resolve().parent
+        for f in root.rglob("*.py"):
+            if pkg is hilrig.runtime and f.relative_to(root).parts[0] in _NOT_COMPILED:
+                continue
+            files.add(f)
     files.update(Path(p.source_file) for p in plugins)
     return sorted(files)
 
