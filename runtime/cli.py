@@ -361,7 +361,7 @@ def _run(console, plain, scenario_path: Path, out: str | None, overwrite: bool, 
          bridge: str | None = None, mode: str = "lockstep", timeout: float = 2.0,
          allow_remote: bool = False, curve_keys: str | None = None, ack_hv: bool = False,
          paced: bool = False, view: bool = False, telemetry: str | None = None,
-         realtime: bool = True, telemetry_keys: str | None = None):
+         realtime: bool = True, telemetry_keys: str | None = None, strict: bool = False):
     from hilrig.runtime.trials.plots import overview_png
     from hilrig.runtime.recording import open_run
     from hilrig.runtime.run import run_scenario
@@ -369,6 +369,7 @@ def _run(console, plain, scenario_path: Path, out: str | None, overwrite: bool, 
 
     sc = load_scenario(scenario_path, overrides=_overrides(sets))
     _show_caution(console, sc)
+    _stability_check(console, {sc.controller.plugin.name: sc}, strict)
     if bridge:
         _check_hv_acknowledged(sc, bridge, ack_hv, allow_remote)
     _check_disk(console, sc, out, paced=paced or sc.mode == "paced")
@@ -450,6 +451,52 @@ def _check_disk(console, sc, out: str | None, paced: bool) -> None:
         console.print(f"notice: {note}", markup=False, soft_wrap=True)
 
 
+class StabilityCheckError(ValueError):
+    """--strict: the stability check before a run found something (nothing ran)."""
+
+
+def _stability_check(console, scenarios: dict, strict: bool, to_stderr: bool = False) -> None:
+    """The operating-point analysis at each scenario's start (runtime/analysis/check.py): one
+    notice per finding; with ``strict`` an error before anything runs. A controller the
+    analysis cannot handle (an exception of its own) is said and skipped, never fatal."""
+    import numpy as np
+
+    from hilrig.runtime.analysis.check import start_check
+    from hilrig.runtime.run import prepare
+    found = []
+    for name, sc in scenarios.items():
+        try:
+            findings, _ = start_check(prepare(sc))
+        except (ArithmeticError, ValueError, IndexError, TypeError, np.linalg.LinAlgError) as exc:
+            line = f"stability check: {name}: not checked ({type(exc).__name__}: {exc})"
+            print(line, file=sys.stderr) if to_stderr else console.print(line, markup=False,
+                                                                         soft_wrap=True)
+            continue
+        found += findings
+    for f in found:
+        line = ("error: " if strict else "notice: ") + f.notice()
+        if not strict:
+            print(line, file=sys.stderr) if to_stderr else console.print(line, markup=False,
+                                                                         soft_wrap=True)
+    if strict and found:
+        raise StabilityCheckError("; ".join(f.notice() for f in found) + " (--strict: nothing "
+                                  "ran; without --strict this is a notice)")
+
+
+def _grid_check(console, scenarios: dict, path: Path, grid, args) -> None:
+    """The envelope's stability check: the analysis over its grid (runtime/analysis/check.py)."""
+    from hilrig.runtime.analysis.check import grid_check
+    found = grid_check(scenarios, path, grid, workers=args.workers)
+    for f in found:
+        line = f"{'error' if args.strict else 'notice'}: stability check: {f.controller}: {f.text}"
+        if not args.strict:
+            print(line, file=sys.stderr) if args.json else console.print(line, markup=False,
+                                                                         soft_wrap=True)
+    if args.strict and found:
+        raise StabilityCheckError("; ".join(f"{f.controller}: {f.text}" for f in found)
+                                  + " (--strict: nothing ran; without --strict this is a notice)")
+
+
 def _overrides(sets: list[str]) -> dict:
     out = {}
     for item in sets:
@@ -474,9 +521,11 @@ def _compare(console, args) -> None:
     overrides = _overrides(args.set)
     # every candidate and override checked before the caution and the runs (compare checks
     # them again; an override no candidate takes is refused here, before anything is shown)
-    shared, _ = plan_candidates(args.scenario, overrides, names)
+    shared, plans = plan_candidates(args.scenario, overrides, names)
     if not args.json:
         _show_caution(console, shared)
+    _stability_check(console, {c: plans[c].scenario for c in names}, args.strict,
+                     to_stderr=args.json)
     results = compare(Path(args.scenario), names, out, overwrite=args.overwrite,
                       overrides=overrides,
                       notice=None if args.json else (lambda m: console.print(m)),
@@ -589,6 +638,7 @@ def _envelope(console, args, plain: bool) -> None:
         _show_caution(console, sc, notes)
     for line in not_applied_lines(plans):
         print(line, file=sys.stderr) if args.json else console.print(line, markup=False, soft_wrap=True)
+    _grid_check(console, {c: plans[c].scenario for c in names}, path, grid, args)
     if not args.json:
         console.print(f"{len(names)} controller(s) x {len(grid.v)} x {len(grid.p)} operating points"
                       + (f" on the Dask cluster at {args.cluster}" if args.cluster else " on local processes"))
@@ -856,6 +906,12 @@ def main(argv: list[str] | None = None) -> int:
     fmt.add_argument("--mf4", action="store_true",
                      help="write recording.mf4 (ASAM MDF 4; needs the optional package asammdf)")
     p.add_argument("--out", help="file to write (default: RUN/recording.csv or RUN/recording.mf4)")
+    for name in ("demo", "run", "compare", "envelope"):
+        sub.choices[name].add_argument(
+            "--strict", action="store_true",
+            help="make the stability check before the run an error: a controller whose "
+                 "linearised loop is unstable, has no steady state, rests beyond an interlock "
+                 "or has little margin at the start (docs/analysis.md) does not run (exit 2)")
     for name in ("demo", "run", "interlock-test", "serve-sim", "compare", "envelope"):
         sub.choices[name].add_argument(
             "--checked", action="store_true",
@@ -880,7 +936,7 @@ def main(argv: list[str] | None = None) -> int:
             console.print("hilrig demo: invented demo data, not measurements of real equipment.")
             res = _run(console, plain, _demo_path(), args.out, args.overwrite, [],
                        paced=args.paced, view=_wants_view(args, plain), telemetry=args.telemetry,
-                       realtime=not args.no_realtime)
+                       realtime=not args.no_realtime, strict=args.strict)
             return _run_status(res.summary)
         elif args.cmd == "run":
             res = _run(console, plain, Path(args.scenario), args.out, args.overwrite, args.set,
@@ -888,7 +944,8 @@ def main(argv: list[str] | None = None) -> int:
                        allow_remote=args.allow_remote, curve_keys=args.curve_keys,
                        ack_hv=args.acknowledge_high_voltage, paced=args.paced,
                        view=_wants_view(args, plain), telemetry=args.telemetry,
-                       realtime=not args.no_realtime, telemetry_keys=args.telemetry_keys)
+                       realtime=not args.no_realtime, telemetry_keys=args.telemetry_keys,
+                       strict=args.strict)
             return _run_status(res.summary)
         elif args.cmd == "watch":
             from hilrig.bridge.errors import BridgeError as _BridgeError
