@@ -38,7 +38,7 @@ CONTROLLERS = ("cascaded_pi", "state_feedback", "flatness")
 RESULT_KEYS = {"scenario", "v_ref_V", "p_load_W", "controllers", "no_steady_state", "seconds"}
 SUMMARY_KEYS = {"plant", "controller", "Ts_s", "actuation_delay_periods", "v_ref_V", "p_load_W",
                 "v_out_V", "steady_state", "controller_model", "stable", "largest_pole_abs",
-                "poles", "margins", "middlebrook", "notes", "loop_states"}
+                "poles", "margins", "middlebrook", "notes", "interlocks_beyond", "loop_states"}
 POLE_KEYS = {"z_re", "z_im", "abs_z", "s_re", "s_im", "wn_rad_s", "f_n_hz", "damping"}
 
 
@@ -119,6 +119,8 @@ def test_every_shipped_scenario_analyses_stable_at_its_start(name, tmp_path, cap
     s = saved["controllers"][own]
     check_summary(s)
     assert s["stable"] is True, (name, s["largest_pole_abs"])
+    # and it rests inside every trip interlock of the scenario (its run does not trip)
+    assert s["interlocks_beyond"] == [], (name, s["interlocks_beyond"])
     assert f"{own}: stable, largest closed-loop |z| = {s['largest_pole_abs']:.4f}" in text
     # the start point: the scenario's start voltage and its load power at t = 0
     prep = prepare(sc)
@@ -216,6 +218,7 @@ def test_map_rows_are_the_point_by_point_analysis(tmp_path, capsys):
             top = point.largest_pole(m)
             assert float(r["largest_pole_abs"]) == top, r  # repr in the CSV: exact
             assert r["status"] == ("stable" if top < 1.0 else "unstable"), r
+            assert r["beyond_interlock"] == "; ".join(m.op.interlocks_beyond), r
     # the grid reaches both sides of the stability limit: 50 V and 60 kW is far beyond it for
     # both (an unstable pole or the cascaded PI's current limit), the 350-500 V rows inside
     assert "stable" in statuses and statuses & {"unstable", "no steady state"}
@@ -251,21 +254,24 @@ def test_map_over_an_envelope_counts_agreement(envelope_folder, tmp_path, capsys
     assert len(rows) == len(env_rows) == 18
     agree = json.loads((out / "agreement.json").read_text())
     assert set(agree) == {"cascaded_pi", "state_feedback"}
-    lists = ("stable_not_tracking", "unstable_tracking", "unstable_saturating", "no_steady_state")
     env_of = {(r["controller"], float(r["v_ref_V"]), float(r["p_load_W"])): r["outcome"]
               for r in env_rows}
     for c, a in agree.items():
+        # every point either agrees or is listed as one of the two ways to differ
         assert a["points"] == 9
-        assert a["agree"] + sum(len(a[k]) for k in lists) == a["points"]
-        # recount from the two tables: stable with "tracks", unstable with an outcome of
-        # instability
-        mine = 0
+        assert a["agree"] + len(a["stable_not_tracking"]) + len(a["unstable_tracking"]) == 9
+        # recount from the two tables: the analysis predicts tracking where the point is stable
+        # and rests inside every interlock, and not elsewhere (unstable, no steady state,
+        # beyond an interlock); they agree where the cell's outcome says the same
+        mine = nss = beyond = 0
         for r in (r for r in rows if r["controller"] == c):
             e = env_of[(c, float(r["v_ref_V"]), float(r["p_load_W"]))]
-            mine += (r["status"] == "stable" and e == "tracks") or (
-                r["status"] == "unstable" and e in ("oscillates", "collapses", "trips",
-                                                    "integration error"))
+            predicted = r["status"] == "stable" and not r["beyond_interlock"]
+            mine += predicted == (e == "tracks")
+            nss += r["status"] == "no steady state"
+            beyond += bool(r["beyond_interlock"])
         assert a["agree"] == mine
+        assert len(a["no_steady_state"]) == nss and len(a["beyond_interlock"]) == beyond
         assert f"{c}: " in text and f"against the envelope: {a['agree']} of 9 points agree" in text
     # at 300 and 450 V both controllers track and are stable (the design region), at 150 V and
     # 50 kW both collapse in the envelope and the analysis calls them unstable
@@ -336,7 +342,7 @@ def test_an_existing_analysis_is_not_overwritten(tmp_path, capsys):
 
 
 def test_a_point_beyond_the_current_limit_has_no_steady_state(tmp_path, capsys):
-    """cascaded_pi limits the inductor current (600 A on the demo plant's defaults); 60 kW at
+    """cascaded_pi clamps its current reference (I_max, 600 A by default); 60 kW at
     50 V needs 1.2 kA, so no steady state holds the point: exit 1 with the reason."""
     out = tmp_path / "a"
     rc, text = analyze(capsys, _demo(), "--at", "50,60e3", "--out", out, "--headless")
@@ -395,7 +401,7 @@ def test_a_user_plugin_is_linearised_from_its_kernel(tmp_path, capsys):
     # the governing margins against python-control (control 0.10) on the same sampled loop,
     # stability_margins of L = -Co (zI - Ao)^-1 Bo: its gain and phase margins and their
     # crossover frequencies [rad/s]
-    control = pytest.importorskip("control")
+    import control  # a test dependency (pyproject.toml [test])
     gm, pm, _, wpc, wgc, _ = control.stability_margins(control.ss(m.Ao, m.Bo, -m.Co, 0, m.Ts))
     assert mg["gain_margin_db"] == pytest.approx(20 * math.log10(gm), abs=1e-6)
     assert mg["phase_margin_deg"] == pytest.approx(pm, abs=1e-6)
@@ -480,6 +486,9 @@ def test_a_sil_run_at_the_point_grows_or_decays_at_the_dominant_pole(controller,
     # the point is clearly on one side of the limit, with a complex dominant pair
     assert (top["abs_z"] < 0.97) if stable else (top["abs_z"] > 1.015), top
     assert top["z"].imag != 0.0 and poles[1]["abs_z"] == pytest.approx(top["abs_z"])
+    # and it rests inside the interlocks: a trip in the run is the instability's, not the
+    # point's own current
+    assert m.op.interlocks_beyond == []
     res = run_scenario(sc, tmp_path / "run")
     s = res.summary
     run = open_run(res.folder)
