@@ -122,6 +122,12 @@ def _envelope(name, base):
                                "--checked", "--json", "--out", out))
 
 
+def _analyze(name, base):
+    out = base / f"analyze-{name}"
+    return dict(out=out, p=cli("analyze", SCENARIOS[name], "--controllers", CONTROLLERS,
+                               "--headless", "--out", out))
+
+
 def _bridge(name, base, mode):
     path = _scenario_file(name, base)
     folder = base / f"bridge-{mode}-{name}"
@@ -162,6 +168,7 @@ def matrix(tmp_path_factory):
     later = []
     for n in SCENARIOS:
         later += [(("compare", n), _compare, (n, base)), (("envelope", n), _envelope, (n, base)),
+                  (("analyze", n), _analyze, (n, base)),
                   (("lockstep", n), _bridge, (n, base, "lockstep")),
                   (("free-running", n), _bridge, (n, base, "free-running")),
                   (("paced", n), _paced, (n, base))]
@@ -190,6 +197,21 @@ def cell(matrix, command, name) -> dict:
     got = matrix[(command, name)]
     assert isinstance(got, dict), f"{command} on {name} failed to run:\n{got}"
     return got
+
+
+@pytest.mark.parametrize("name", sorted(SCENARIOS))
+def test_analyze(matrix, name):
+    """The operating-point analysis of every candidate at the scenario's start, its kernels
+    under bounds checks: each candidate is analysed (or said to have no steady state, exit 1),
+    with its figures and table written."""
+    c = cell(matrix, "analyze", name)
+    text = ok(c["p"], codes=(0, 1))
+    data = json.loads((c["out"] / "analysis.json").read_text())
+    assert set(data["controllers"]) | set(data["no_steady_state"]) == set(CONTROLLERS.split(","))
+    for ctrl, s in data["controllers"].items():
+        assert s["largest_pole_abs"] > 0.0 and s["poles"], ctrl
+        assert f"{ctrl}: " in text
+    assert (c["out"] / "analysis.png").stat().st_size > 10_000
 
 
 @pytest.mark.parametrize("name", sorted(SCENARIOS))
