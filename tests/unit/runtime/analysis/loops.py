@@ -205,15 +205,18 @@ def sampled_plant(m, iyc, delay_halves: int, *, lag_shift: int = 0, swap_halves:
     return control.series(tapped_delay_line(l1 + lag_shift, l2, Ts), P2)
 
 
-def loop_gain_system(m, iyc, **wrong) -> control.StateSpace:
-    """L(z) broken at the converter command, negative-feedback convention: L = -K(z) P(z)."""
-    P = sampled_plant(m, iyc, m.delay_halves, **wrong)
+def loop_gain_system(m, iyc, delay: float, **wrong) -> control.StateSpace:
+    """L(z) broken at the converter command, negative-feedback convention: L = -K(z) P(z);
+    ``delay``: the scenario's actuation delay [periods] (the test's own value, not the
+    model's)."""
+    P = sampled_plant(m, iyc, int(round(2 * delay)), **wrong)
     K = control.ss(m.Ac, m.Bc, m.Cc, m.Dc, m.Ts)
     return -control.series(P, K)
 
 
-def closed_loop_poles(m, iyc, **wrong) -> np.ndarray:
-    return np.asarray(control.poles(control.feedback(loop_gain_system(m, iyc, **wrong), 1)))
+def closed_loop_poles(m, iyc, delay: float, **wrong) -> np.ndarray:
+    return np.asarray(control.poles(control.feedback(loop_gain_system(m, iyc, delay, **wrong),
+                                                     1)))
 
 
 def match_poles(a, b) -> float:

@@ -61,9 +61,10 @@ def _model(plant, c, d, v, p):
 @pytest.mark.parametrize("case", CASES, ids=IDS)
 def test_closed_loop_poles_equal_python_controls(case):
     prep, m = _model(*case)
+    assert m.delay_halves == 2 * case[2]
     ours = np.linalg.eigvals(m.Acl)
     # python-control: feedback(L, 1) of L = -K(z) z^-n P_zoh(z) (loops.py)
-    theirs = closed_loop_poles(m, prep.args["iyc"])
+    theirs = closed_loop_poles(m, prep.args["iyc"], case[2])
     assert match_poles(ours, theirs) < 1e-9
     # and point.poles reports the same set, largest first
     ps = point.poles(m)
@@ -77,7 +78,7 @@ def test_loop_gain_equals_python_controls_frequency_response(case):
     prep, m = _model(*case)
     fn = 0.5 / m.Ts
     f = np.array([1.0, 30.0, 300.0, 1000.0, 0.3 * fn, 0.9 * fn])
-    L = loop_gain_system(m, prep.args["iyc"])
+    L = loop_gain_system(m, prep.args["iyc"], case[2])
     # control.frequency_response of a discrete system evaluates at z = exp(j w Ts)
     theirs = np.asarray(control.frequency_response(L, 2 * math.pi * f).complex).ravel()
     ours = point.loop_gain(m, f)
@@ -149,7 +150,7 @@ def test_governing_margins_equal_python_controls(case):
     assert ours["available"]
     for key in ("gain_margin_db", "phase_margin_deg"):
         assert isinstance(ours[key], float) and not math.isnan(ours[key])
-    L = loop_gain_system(m, prep.args["iyc"])
+    L = loop_gain_system(m, prep.args["iyc"], case[2])
     # control.stability_margins, governing margins (the gain margin closest to 0 dB, the
     # smallest |phase margin|), two ways: its default ("poly", roots of polynomials in z) on
     # the state-space L, and on python-control's frequency response of L (FRD). Each agrees
@@ -188,7 +189,7 @@ def test_a_stable_loop_loses_stability_at_its_gain_margins(case):
     if not _stable(m, 1.0):
         pytest.skip("unstable at k = 1: the gain margins do not bound a stable range")
     gms = [c["gain_margin"] for c in point.margins(m)["phase_crossovers"]]
-    L = loop_gain_system(m, prep.args["iyc"])
+    L = loop_gain_system(m, prep.args["iyc"], case[2])
     Ln = complex(np.asarray(control.frequency_response(L, [math.pi / m.Ts]).complex).ravel()[0])
     if Ln.real < 0:
         gms.append(1.0 / abs(Ln))
@@ -206,7 +207,7 @@ def test_a_stable_loop_loses_stability_at_its_gain_margins(case):
 def test_every_crossover_is_one_by_python_controls_frequency_response(case):
     prep, m = _model(*case)
     ours = point.margins(m)
-    L = loop_gain_system(m, prep.args["iyc"])
+    L = loop_gain_system(m, prep.args["iyc"], case[2])
 
     def at(f):
         return complex(np.asarray(control.frequency_response(L, [2 * math.pi * f]).complex)
@@ -238,8 +239,9 @@ def test_the_comparison_sees_a_delay_one_tick_off_halves_swapped_or_euler(contro
                          (1.5, dict(swap_halves=True)), (0.0, dict(euler=True))]:
         prep, m = _model("demo", controller, delay, 400.0, 50e3)
         iyc = prep.args["iyc"]
-        assert match_poles(np.linalg.eigvals(m.Acl), closed_loop_poles(m, iyc, **wrong)) > 1e-4
+        theirs = closed_loop_poles(m, iyc, delay, **wrong)
+        assert match_poles(np.linalg.eigvals(m.Acl), theirs) > 1e-4
         f = np.array([300.0, 3000.0])
         theirs = np.asarray(control.frequency_response(
-            loop_gain_system(m, iyc, **wrong), 2 * math.pi * f).complex).ravel()
+            loop_gain_system(m, iyc, delay, **wrong), 2 * math.pi * f).complex).ravel()
         assert np.max(np.abs(point.loop_gain(m, f) - theirs) / np.abs(theirs)) > 1e-3
