@@ -140,7 +140,8 @@ def margins(m: LoopModel, f_hz: np.ndarray | None = None) -> dict[str, Any]:
         L0 = loop_gain(m, np.array([0.0]))[0]
         if np.isfinite(L0) and L0.real < 0:
             gm = 1.0 / abs(L0)
-            phase_cross.append(dict(f_hz=0.0, gain_margin=gm, gain_margin_db=20 * math.log10(gm)))
+            phase_cross.append(dict(f_hz=0.0, gain_margin=gm,
+                                    gain_margin_db=20 * math.log10(gm)))
     im = L.imag
     for i in np.nonzero(np.sign(im[:-1]) * np.sign(im[1:]) < 0)[0]:
         fp = _refine(imag, f[i], f[i + 1])
