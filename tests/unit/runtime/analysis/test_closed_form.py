@@ -2,7 +2,7 @@
 the constant-power-load model (Middlebrook's view of the same loop).
 
 Single-stage LC filter with a constant-power load P and a conductance G at V (the plant's
-docstring, plugins/plants/single_lc.py; derivation in /work/shared/CHECKS.md, derived):
+docstring, plugins/plants/single_lc.py; derived from its two equations with i_load = P/v + G v):
 
     A = [[-R/L, -1/L], [1/C, P/(C V^2) - G/C]]
 
@@ -77,7 +77,7 @@ def test_single_stage_jacobian_and_eigenvalues_equal_the_closed_form(R, L, C, V_
 
 
 def test_the_worked_single_stage_numbers():
-    # /work/shared/CHECKS.md, "Worked numbers" (derived): L 200 uH, C 500 uF, V0 400 V,
+    # worked by hand from the quadratic formula above (derived): L 200 uH, C 500 uF, V0 400 V,
     # P 100 kW: R 20 mohm -> 575 +- j3089.40 1/s (unstable); R 0.5 ohm -> -625 +- j2546.44 1/s
     for R, want in ((20e-3, 575 + 3089.40j), (0.5, -625 + 2546.44j)):
         m = linear.linearize(_single(R=R), 400.0, 100e3)

@@ -53,8 +53,8 @@ def test_the_operating_point_is_at_rest(plant, controller, v, p, extra):
 
 
 def test_the_demo_equilibrium_is_the_circuits():
-    # Two-stage LC filter with a constant-power load P at v2 (/work/shared/CHECKS.md, derived
-    # from the averaged circuit; Erickson & Maksimovic, Fundamentals of Power Electronics,
+    # Two-stage LC filter with a constant-power load P at v2 (derived from the averaged
+    # circuit at rest; Erickson & Maksimovic, Fundamentals of Power Electronics,
     # 2nd ed., ch. 3, from memory): i1 = i2 = P/v2, v1 = v2 + R2 P/v2, u = v1 + R1 P/v2.
     # Demo plant R1 = 5 mohm, R2 = 3 mohm (demo.toml).
     for v, p in ((400.0, 50e3), (300.0, -40e3)):
