@@ -36,6 +36,8 @@ GRID_POINTS = 4000
 F_LOW_REL = 1e-6
 #: a pole with |z| at least this far below 1 counts as stable (round-off of the eigenvalues)
 STABLE_BELOW = 1.0 - 1e-9
+#: an open-loop pole closer than this to z = 1 is an integrator: no phase crossover at f = 0
+DC_POLE_TOL = 1e-6
 #: Middlebrook: the impedance ratio margin [dB] below which the summary warns (a common design
 #: target, 6 dB; common practice, no source)
 MIDDLEBROOK_MARGIN_DB = 6.0
@@ -131,6 +133,15 @@ def margins(m: LoopModel, f_hz: np.ndarray | None = None) -> dict[str, Any]:
         pm = 180.0 + math.degrees(math.atan2(Lc.imag, Lc.real))
         pm = (pm + 180.0) % 360.0 - 180.0
         gain_cross.append(dict(f_hz=fc, phase_margin_deg=pm))
+    # f = 0: L(1) is real; finite and negative, it is a phase crossover too (a real closed-loop
+    # pole passes z = 1 when the gain grows by 1/|L(1)|; python-control counts it). With an
+    # open-loop pole at z = 1 (an integrator) L(1) is infinite: none there.
+    if m.Ao.size == 0 or np.min(np.abs(np.linalg.eigvals(m.Ao) - 1.0)) > DC_POLE_TOL:
+        L0 = loop_gain(m, np.array([0.0]))[0]
+        if np.isfinite(L0) and L0.real < 0:
+            gm = 1.0 / abs(L0)
+            phase_cross.append(dict(f_hz=0.0, gain_margin=gm,
+                                    gain_margin_db=20 * math.log10(gm)))
     im = L.imag
     for i in np.nonzero(np.sign(im[:-1]) * np.sign(im[1:]) < 0)[0]:
         fp = _refine(imag, f[i], f[i + 1])
