@@ -25,6 +25,8 @@ from typing import Any, Callable
 import numpy as np
 
 STATUSES = ("stable", "unstable", "no steady state")
+#: a map of at most this many points runs in this process
+SMALL_MAP = 64
 CSV_COLUMNS = ("controller", "v_ref_V", "p_load_W", "status", "largest_pole_abs",
                "gain_margin_db", "phase_margin_deg", "beyond_interlock", "note")
 
@@ -125,7 +127,8 @@ def stability_map(tasks: list[MapTask], *, workers: int | None = None,
     total = sum(len(t.p) for t in tasks)
     results: list[list[dict[str, Any]] | None] = [None] * len(tasks)
     done = 0
-    if workers == 1 or len(tasks) == 1:
+    # a small map is done before a pool of processes would have started
+    if workers == 1 or len(tasks) == 1 or total <= SMALL_MAP:
         for i, t in enumerate(tasks):
             results[i] = run_row(t)
             done += len(t.p)
