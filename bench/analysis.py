@@ -11,7 +11,8 @@ series and feedback connections, ``poles``, ``stability_margins`` and ``frequenc
 of the output impedance's loop on 1000 frequencies, i.e. the figures hilrig computes.
 
 Then a 25 x 25 stability map of the three shipped controllers (1875 points) on all local cores
-(``grid.stability_map``), against python-control's per-point time times 1875 (one core).
+(``grid.stability_map``), against python-control's per-point time for the closed-loop poles
+(c2d, series, feedback, poles) times 1875 (one core).
 
 Demo plant (two-stage LC), demo scenario's timing; operating points over 300-500 V, 0-80 kW.
 
@@ -34,9 +35,10 @@ ROOT = Path(__file__).resolve().parents[1]
 CONTROLLERS = ("cascaded_pi", "state_feedback", "flatness")
 
 
-def control_per_point(m):
+def control_per_point(m, full=True):
     """python-control: the sampled loop, its poles, margins and output impedance from m's
-    matrices (the same figures as point.summary)."""
+    matrices (the same figures as point.summary); ``full=False``: the closed-loop poles only
+    (what a map point computes)."""
     import control
     Ts = m.Ts
     S = np.zeros((len(m.reads), m.C.shape[0]))
@@ -47,6 +49,8 @@ def control_per_point(m):
     L = control.series(plant, -ctrl)              # u_in -> -(u_out): the loop gain
     cl = control.feedback(L, 1)
     poles = cl.poles()
+    if not full:
+        return poles
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
         mg = control.stability_margins(L)
@@ -72,7 +76,7 @@ def per_point(args):
         point.summary(linear.linearize(prep, 400.0, 50e3, k))  # compile / warm
         models = [linear.linearize(prep, v, p, k) for v, p in pts]
         control_per_point(models[0])
-        full, mapw, pc = [], [], []
+        full, mapw, pc, pcm, opw = [], [], [], [], []
         for _ in range(args.repeat):  # interleaved: the three measured side by side
             t0 = time.perf_counter()
             for v, p in pts:
@@ -84,19 +88,31 @@ def per_point(args):
             for m in models:
                 control_per_point(m)
             t3 = time.perf_counter()
+            for m in models:
+                control_per_point(m, full=False)
+            t4 = time.perf_counter()
+            for v, p in pts:
+                linear.operating_point(prep, v, p, k)
+            t5 = time.perf_counter()
+            opw.append((t5 - t4) / len(pts))
             n = len(pts)
             full.append((t1 - t0) / n)
             mapw.append((t2 - t1) / n)
             pc.append((t3 - t2) / n)
+            pcm.append((t4 - t3) / n)
         out[c] = dict(hilrig_full_ms=st.median(full) * 1e3, hilrig_map_point_ms=st.median(mapw) * 1e3,
                       python_control_ms=st.median(pc) * 1e3,
+                      python_control_poles_ms=st.median(pcm) * 1e3,
+                      hilrig_steady_state_ms=st.median(opw) * 1e3,
                       ratio_full=st.median(pc) / st.median(full),
-                      ratio_map_point=st.median(pc) / st.median(mapw))
+                      ratio_map_point=st.median(pcm) / st.median(mapw))
         r = out[c]
-        print(f"{c:15s} hilrig whole analysis {r['hilrig_full_ms']:6.2f} ms/point, map point "
-              f"{r['hilrig_map_point_ms']:6.2f} ms; python-control (given the matrices) "
-              f"{r['python_control_ms']:6.2f} ms; ratio python-control / hilrig: "
-              f"{r['ratio_full']:.2f} (whole), {r['ratio_map_point']:.2f} (map point)")
+        print(f"{c:15s} whole analysis: hilrig {r['hilrig_full_ms']:6.2f} ms/point, python-control "
+              f"(given the matrices) {r['python_control_ms']:6.2f} ms, ratio "
+              f"{r['ratio_full']:.2f}; map point (poles): hilrig {r['hilrig_map_point_ms']:5.2f} ms, "
+              f"python-control {r['python_control_poles_ms']:5.2f} ms, ratio {r['ratio_map_point']:.2f} "
+              f"(hilrig's includes the steady state, {r['hilrig_steady_state_ms']:.2f} ms, and "
+              f"the linearisation, which python-control is given)")
     return out
 
 
@@ -111,10 +127,12 @@ def map_run(per):
     t0 = time.perf_counter()
     rows = grid.stability_map(tasks, workers=workers)
     wall = time.perf_counter() - t0
-    pc_serial = sum(per[c]["python_control_ms"] for c in CONTROLLERS) / len(CONTROLLERS) * len(rows) / 1e3
+    pc_serial = (sum(per[c]["python_control_poles_ms"] for c in CONTROLLERS) / len(CONTROLLERS)
+                 * len(rows) / 1e3)
     print(f"stability map 25 x 25 x {len(CONTROLLERS)} controllers ({len(rows)} points) on "
           f"{workers} worker(s): {wall:.2f} s wall (preparing the controllers included); "
-          f"python-control's per-point time x {len(rows)} on one core: {pc_serial:.2f} s; "
+          f"python-control's per-point time for the poles x {len(rows)} on one core (given the "
+          f"matrices): {pc_serial:.2f} s; "
           f"ratio {pc_serial / wall:.2f}")
     return dict(points=len(rows), workers=workers, wall_s=wall,
                 python_control_serial_s=pc_serial, ratio=pc_serial / wall)
