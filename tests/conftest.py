@@ -29,42 +29,29 @@ def demo_path():
 # -- two test processes at once (pytest-xdist, `-n 2` in pyproject.toml) -------------------------
 # Both processes share the loop cache above (HILRIG_CACHE_DIR, set before the workers start, so
 # a combination compiled by one is loaded by the other; numba and the loop writer replace cache
-# files atomically). Tests that judge wall-clock timing or wait on a peer process with a
-# timeout (paced runs, the bridge, the live view, watchdog suites, killed processes) run alone:
-# each takes an exclusive lock, every other test a shared one, and a waiting exclusive test
-# stops new shared ones from starting (a turnstile), so it is never starved.
-import fcntl  # noqa: E402
+# files atomically). Tests that judge wall-clock timing or wait on a peer process with a short
+# timeout run alone (tests/locks.py): the modules in ALONE, and elsewhere the tests whose names
+# say they are paced, lockstep, free-running or about a watchdog.
+from tests import locks  # noqa: E402
 
-_LOCKS = os.environ.setdefault("HILRIG_TEST_LOCKS", tempfile.mkdtemp(prefix="hilrig-test-locks-"))
-
-#: test modules that run alone (file names); a new module of this kind belongs here
+#: test modules whose every test runs alone (file names); a new module of this kind belongs here
 ALONE = {
     "test_bridge_bad_frames.py", "test_bridge_free_running.py", "test_bridge_lockstep.py",
-    "test_bridge_second_client.py", "test_cli.py", "test_interlock_suite.py", "test_kill.py",
+    "test_bridge_second_client.py", "test_interlock_suite.py", "test_kill.py",
     "test_live_view.py", "test_paced.py", "test_pacedwrite.py", "test_protocol_example.py",
-    "test_report.py", "test_sensor_chain.py", "test_smoke_matrix.py", "test_telemetry_keys.py",
-    "test_transport_pair.py", "test_protocol.py",
+    "test_telemetry_keys.py", "test_transport_pair.py", "test_protocol.py",
 }
+#: words in a test's name that make it run alone in any module
+ALONE_WORDS = ("paced", "lockstep", "free_running", "watchdog")
 
 
 def pytest_collection_modifyitems(config, items):
     for item in items:
-        if item.path.name in ALONE:
+        if item.path.name in ALONE or any(w in item.name for w in ALONE_WORDS):
             item.add_marker(pytest.mark.alone)
 
 
 @pytest.hookimpl(hookwrapper=True)
 def pytest_runtest_protocol(item, nextitem):
-    if not os.environ.get("PYTEST_XDIST_WORKER"):
+    with locks.held(item.get_closest_marker("alone") is not None):
         yield
-        return
-    alone = item.get_closest_marker("alone") is not None
-    with open(os.path.join(_LOCKS, "turnstile"), "a+") as turn, \
-            open(os.path.join(_LOCKS, "tests"), "a+") as lock:
-        fcntl.flock(turn, fcntl.LOCK_EX)
-        fcntl.flock(lock, fcntl.LOCK_EX if alone else fcntl.LOCK_SH)
-        fcntl.flock(turn, fcntl.LOCK_UN)
-        try:
-            yield
-        finally:
-            fcntl.flock(lock, fcntl.LOCK_UN)

@@ -137,7 +137,7 @@ def _point(console, args, path: Path, scenarios: dict) -> int:
     console.print(escape(f"operating point: v_ref = {v_show:g} V, constant load power "
                          f"{p / 1e3:g} kW ({path.name}, plant {first.plant.plugin.name}, "
                          f"Ts = {first.Ts * 1e6:g} us, actuation delay "
-                         f"{first.actuation_delay:g} periods)"))
+                         f"{first.actuation_delay:g} periods)"), soft_wrap=True)
     for name, s in sums.items():
         _print_point(console, name, s)
     for name, why in failed.items():
@@ -154,7 +154,7 @@ def _point(console, args, path: Path, scenarios: dict) -> int:
         except ImportError:
             pass
     console.print(escape(f"analysed in {wall * 1e3:.0f} ms; wrote "
-                         + ", ".join(str(w) for w in wrote)))
+                         + ", ".join(str(w) for w in wrote)), soft_wrap=True)
     return EXIT_NO_STEADY_STATE if failed else 0
 
 
@@ -260,14 +260,15 @@ def _map(console, args, plain: bool, path: Path, scenarios: dict) -> int:
                          seconds=wall)))
         return 0
     for c, n in cnt.items():
-        console.print(escape(f"{c}: " + ", ".join(f"{k} {v}" for k, v in n.items())))
+        console.print(escape(f"{c}: " + ", ".join(f"{k} {v}" for k, v in n.items())),
+                      soft_wrap=True)
         if agree and c in agree:
             a = agree[c]
             console.print(escape(
                 f"  against the envelope: {a['agree']} of {a['points']} points agree; predicted "
                 f"to track but did not {len(a['stable_not_tracking'])}, predicted not to track "
                 f"(unstable, no steady state or beyond an interlock) but tracked "
-                f"{len(a['unstable_tracking'])}"))
+                f"{len(a['unstable_tracking'])}"), soft_wrap=True)
     out.mkdir(parents=True, exist_ok=True)
     gmod.write_csv(rows, out / "map.csv")
     wrote = [out / "map.csv"]
@@ -283,7 +284,7 @@ def _map(console, args, plain: bool, path: Path, scenarios: dict) -> int:
     except ImportError:
         pass
     console.print(escape(f"{len(rows)} points in {wall:.1f} s; wrote "
-                         + ", ".join(str(w) for w in wrote)))
+                         + ", ".join(str(w) for w in wrote)), soft_wrap=True)
     return 0
 
 

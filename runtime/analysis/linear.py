@@ -457,12 +457,14 @@ def linearize(prep, v_ref: float, p_load: float, kern: _Kernels | None = None) -
     live_c = _live_controller_states(Ac, Bc)
     Ac, Bc, Cc = Ac[np.ix_(live_c, live_c)], Bc[live_c], Cc[:, live_c]
     cnames = [cnames[j] for j in live_c]
-    if np.any(op.u <= 0.0) or ("V_dc" in sc.plant.values
-                               and np.any(op.u >= float(sc.plant.values["V_dc"]))):
-        op.notes.append("the command is at the converter's limit: it has no small-signal effect "
-                        "in the model")
-    if not np.any(B):
-        op.notes.append("the command has no small-signal effect on the plant here")
+    at_limit = np.any(op.u <= 0.0) or ("V_dc" in sc.plant.values
+                                       and np.any(op.u >= float(sc.plant.values["V_dc"])))
+    if at_limit or not np.any(B):
+        u_txt = ", ".join(f"{u:.6g}" for u in op.u)
+        raise AnalysisError(f"no steady state inside the converter's range at {v_ref:g} V, "
+                            f"{p_load:g} W: the loop rests with the command at the converter's "
+                            f"limit (u = {u_txt} V), where it has no effect on the plant (the "
+                            f"loop is open; v_out = {op.v_out:.6g} V)")
     live = _live_states(A, B, E)
     names = [s.name for s in k.pdecl.states]
     A, B, E, C = A[np.ix_(live, live)], B[live], E[live], C[:, live]

@@ -34,6 +34,7 @@ except ModuleNotFoundError:  # Python 3.10
     import tomli as tomllib
 
 from hilrig.runtime.recording import open_run
+from tests import locks
 from tests.integration.standin import reaped, wait_listening
 
 ROOT = Path(__file__).resolve().parents[2]
@@ -188,8 +189,10 @@ def matrix(tmp_path_factory):
         results.update({key: f.result() for key, f in first.items()})
         rest = {key: pool.submit(guarded, fn, args) for key, fn, args in later}
         results.update({key: f.result() for key, f in rest.items()})
-    for key, fn, args in alone:
-        results[key] = guarded(fn, args)
+    # and alone across test processes too (tests/locks.py)
+    with locks.exclusive():
+        for key, fn, args in alone:
+            results[key] = guarded(fn, args)
     return results
 
 
