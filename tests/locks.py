@@ -54,7 +54,10 @@ def exclusive():
     if fh is None:
         yield
         return
-    _take(fh, fcntl.LOCK_EX)
+    # not through the turnstile: a test waiting there for its exclusive lock holds it, and
+    # waits for this test's shared lock, which the conversion gives up first (flock converts a
+    # lock by removing it, then waiting for the new one); that test runs, then this block
+    fcntl.flock(fh, fcntl.LOCK_EX)
     try:
         yield
     finally:
