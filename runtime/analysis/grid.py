@@ -117,33 +117,17 @@ def tasks_for(scenario_text: str, scenario_name: str, scenario_path: str, contro
 def stability_map(tasks: list[MapTask], *, workers: int | None = None,
                   progress: Callable[[int, int], None] | None = None) -> list[dict[str, Any]]:
     """Every task's rows, in task order. ``progress(done, total)`` counts points."""
-    import multiprocessing as mp
-    from concurrent.futures import ProcessPoolExecutor, as_completed
+    from hilrig.runtime.trials.pool import run_rows
     # prepare each controller here first: a mistake is one error before any worker starts, and
     # forked workers inherit the compiled kernels
     for c in dict.fromkeys(t.controller for t in tasks):
         _prepared(next(t for t in tasks if t.controller == c))
     workers = max(1, workers or os.cpu_count() or 1)
     total = sum(len(t.p) for t in tasks)
-    results: list[list[dict[str, Any]] | None] = [None] * len(tasks)
-    done = 0
     # a small map is done before a pool of processes would have started
-    if workers == 1 or len(tasks) == 1 or total <= SMALL_MAP:
-        for i, t in enumerate(tasks):
-            results[i] = run_row(t)
-            done += len(t.p)
-            if progress:
-                progress(done, total)
-    else:
-        methods = mp.get_all_start_methods()
-        ctx = mp.get_context("fork" if "fork" in methods else "spawn")
-        with ProcessPoolExecutor(max_workers=workers, mp_context=ctx) as pool:
-            futures = {pool.submit(run_row, t): i for i, t in enumerate(tasks)}
-            for fut in as_completed(futures):
-                results[futures[fut]] = fut.result()
-                done += len(tasks[futures[fut]].p)
-                if progress:
-                    progress(done, total)
+    if len(tasks) == 1 or total <= SMALL_MAP:
+        workers = 1
+    results = run_rows(run_row, tasks, workers, progress)
     return [row for rows in results for row in rows]
 
 

@@ -426,31 +426,9 @@ def warm_up(tasks: list[Task]) -> None:
 
 
 def _run_pool(tasks, workers, progress):
-    import multiprocessing as mp
-    from concurrent.futures import ProcessPoolExecutor
+    from .pool import run_rows
     warm_up(tasks)
-    workers = workers or os.cpu_count() or 1
-    results: list[list[Cell] | None] = [None] * len(tasks)
-    total = sum(len(t.p) for t in tasks)
-    done = 0
-    if workers == 1:
-        for i, t in enumerate(tasks):
-            results[i] = run_row(t)
-            done += len(t.p)
-            if progress:
-                progress(done, total)
-        return results
-    methods = mp.get_all_start_methods()
-    ctx = mp.get_context("fork" if "fork" in methods else "spawn")
-    with ProcessPoolExecutor(max_workers=workers, mp_context=ctx) as pool:
-        futures = {pool.submit(run_row, t): i for i, t in enumerate(tasks)}
-        from concurrent.futures import as_completed
-        for fut in as_completed(futures):
-            results[futures[fut]] = fut.result()
-            done += len(tasks[futures[fut]].p)
-            if progress:
-                progress(done, total)
-    return results
+    return run_rows(run_row, tasks, workers or os.cpu_count() or 1, progress)
 
 
 def _run_dask(tasks, address, progress):

@@ -9,35 +9,17 @@ from pathlib import Path
 
 from hilrig.runtime.analysis import linear, point
 from hilrig.runtime.scenario import load_scenario
+from tests.integration.test_analyze import held_point
 from tests.integration.test_cli import run_cli
 
 ROOT = Path(__file__).resolve().parents[2]
 
-BASE = """title = "start of a run (demo data)"
-demo_data = true
-[timing]
-Ts = "50 us"
-duration = "{duration}"
-[plant]
-plugin = "two_stage_lc"
-[controller]
-plugin = "{controller}"
-[reference]
-plugin = "profile"
-points = [[0, "{v} V"]]
-[load]
-[[load.points]]
-t = 0
-P = "{p} kW"
-[[interlocks]]
-signal = "v_out"
-above = "650 V"
-"""
-
-
 def _write(tmp_path, name, controller, v, p, duration="20 ms"):
+    """The held operating point of the analysis' SIL checks (demo plant, demo data), with its
+    duration set here; v [V], p [kW]."""
     f = tmp_path / name
-    f.write_text(BASE.format(controller=controller, v=v, p=p, duration=duration))
+    f.write_text(held_point(controller, v, p * 1e3).replace('duration = "20 ms"',
+                                                              f'duration = "{duration}"'))
     return f
 
 
@@ -62,7 +44,7 @@ def test_a_stable_start_says_nothing(tmp_path):
     f = _write(tmp_path, "stable.toml", "state_feedback", 400, 50, duration="2 ms")
     p = run_cli("run", f, "--out", tmp_path / "run", "--headless", "--strict")
     assert p.returncode == 0, p.stdout + p.stderr
-    assert "stability check:" not in p.stdout
+    assert "stability check:" not in p.stdout, p.stdout
 
 
 def test_compare_and_envelope_strict_refuse_before_anything_runs(tmp_path):
