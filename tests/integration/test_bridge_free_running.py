@@ -13,7 +13,7 @@ import pytest
 from hilrig.runtime.recording import open_run
 from tests.integration.standin import (CLI, free_tcp_port, reaped, serve, udp_address,
                                        wait_listening)
-from tests.integration.test_protocol_example import CONTROLLER, PLANT
+from tests.integration.test_protocol_example import shared_plugins
 
 
 SCENARIO = '''
@@ -41,13 +41,10 @@ v_collapse = 0
 
 
 @pytest.fixture(scope="module")
-def plugin_dir(tmp_path_factory):
-    # one folder for the plugin files of every test here: the compiled loop is keyed by the
-    # plugin files' paths, so sharing them compiles once
-    d = tmp_path_factory.mktemp("fr_plugins")
-    (d / "first_order.py").write_text(PLANT)
-    (d / "pi_v.py").write_text(CONTROLLER)
-    return d
+def plugin_dir():
+    # the test plugins' shared folder: the compiled loop is keyed by the plugin files' paths,
+    # so sharing them compiles once per session
+    return shared_plugins()
 
 
 def _files(tmp_path, plugin_dir, duration="0.4 s"):

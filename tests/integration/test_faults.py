@@ -147,10 +147,8 @@ def test_reset_is_refused_while_the_cause_persists_and_accepted_after(tmp_path):
     0.05 s to 0.15 s: the reset at 0.1 s is refused, the one at 0.2 s accepted. A first-order
     test plant keeps the example free of filter ringing while the output is off."""
     from hilrig.safety.interlocks import BIT_LATCHED, BIT_RESET_REFUSED, BIT_RESET_REQUESTED
-    from tests.integration.test_protocol_example import CONTROLLER, PLANT
-    (tmp_path / "first_order.py").write_text(PLANT)
-    (tmp_path / "pi_v.py").write_text(CONTROLLER)
-    (tmp_path / "reset.toml").write_text(RESET)
+    from tests.integration.test_protocol_example import with_shared_plugins
+    (tmp_path / "reset.toml").write_text(with_shared_plugins(RESET))
     from hilrig.runtime.scenario import load_scenario
     res = run_scenario(load_scenario(tmp_path / "reset.toml"), tmp_path / "r")
     s, run = res.summary, open_run(res.folder)

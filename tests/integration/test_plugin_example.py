@@ -18,13 +18,21 @@ def example_files() -> dict[str, str]:
     return {name: body for name, body in pat.findall(text)}
 
 
-def test_docs_worked_example_runs(tmp_path):
+@pytest.fixture(scope="module")
+def docs_example(tmp_path_factory) -> Path:
+    """The worked example's files, as written, in one folder for this module's tests that run
+    it unchanged (one compile of its loop: the cache is keyed by the plugin file's path)."""
     files = example_files()
     assert set(files) == {"voltage_pi.py", "example.toml"}
+    d = tmp_path_factory.mktemp("docs_example")
     for name, body in files.items():
-        (tmp_path / name).write_text(body)
+        (d / name).write_text(body)
+    return d
+
+
+def test_docs_worked_example_runs(tmp_path, docs_example):
     # the bumpless-start check below needs an exact equilibrium start (no excitation offset)
-    sc = load_scenario(tmp_path / "example.toml", overrides={"initial.v_out_offset": "0 V"})
+    sc = load_scenario(docs_example / "example.toml", overrides={"initial.v_out_offset": "0 V"})
     assert sc.controller.plugin.name == "voltage_pi"
     res = run_scenario(sc, tmp_path / "run")
     s = res.summary
@@ -144,18 +152,15 @@ def test_an_index_out_of_range_in_a_kernel_is_named_by_the_checked_build(tmp_pat
     assert "Traceback" not in p.stdout + p.stderr
 
 
-def test_arrays_of_another_plugin_combination_are_refused_before_the_first_tick(tmp_path):
+def test_arrays_of_another_plugin_combination_are_refused_before_the_first_tick(docs_example):
     """The compiled loop is bound to the plugins it was generated for: arrays prepared for
     another combination (what crashed the envelope of a battery-model scenario) are refused with
     a message naming both, and a wrong array size names the plugin and the array."""
     from hilrig.runtime.errors import PluginError
     from hilrig.runtime.run import _call, compile_loop, prepare
-    files = example_files()
-    for name, body in files.items():
-        (tmp_path / name).write_text(body)
-    sc = load_scenario(tmp_path / "example.toml")
+    sc = load_scenario(docs_example / "example.toml")
     fn, _, _ = compile_loop(sc)
-    other = load_scenario(tmp_path / "example.toml", overrides={"reference": {
+    other = load_scenario(docs_example / "example.toml", overrides={"reference": {
         "plugin": "battery_ecm", "n_series": 100}, "initial": {"v_out": "400 V"}})
     prep = prepare(other)
     with pytest.raises(PluginError) as info:

@@ -85,14 +85,38 @@ v_collapse = 0
 '''
 
 
+def shared_plugins() -> Path:
+    """The first-order test plant and its PI controller, written once per test session into one
+    folder that every test using them shares (the loop cache is keyed by the plugin files'
+    paths: one folder, one compile per combination; both test processes share the folder, so it
+    is written atomically and only when missing)."""
+    import os
+    import tempfile
+    d = Path(os.environ["HILRIG_CACHE_DIR"]) / "test-plugins"
+    d.mkdir(parents=True, exist_ok=True)
+    for name, text in (("first_order.py", PLANT), ("pi_v.py", CONTROLLER)):
+        f = d / name
+        if not f.exists() or f.read_text() != text:
+            fd, tmp = tempfile.mkstemp(dir=d, suffix=".tmp")
+            with os.fdopen(fd, "w") as fh:
+                fh.write(text)
+            os.replace(tmp, f)
+    return d
+
+
+def with_shared_plugins(scenario: str) -> str:
+    """The scenario text with the test plugins named by their shared paths."""
+    d = shared_plugins()
+    return (scenario.replace('"first_order.py"', f'"{d / "first_order.py"}"')
+            .replace('"pi_v.py"', f'"{d / "pi_v.py"}"'))
+
+
 def test_doc_simulator_example_against_the_runtime(tmp_path):
     text = DOC.read_text()
     block = text.split("<!-- example: simulator.py -->", 1)[1]
     code = re.search(r"```python\n(.*?)```", block, re.S).group(1)
     (tmp_path / "simulator.py").write_text(code)
-    (tmp_path / "first_order.py").write_text(PLANT)
-    (tmp_path / "pi_v.py").write_text(CONTROLLER)
-    (tmp_path / "scen.toml").write_text(SCENARIO)
+    (tmp_path / "scen.toml").write_text(with_shared_plugins(SCENARIO))
     ts = float(re.search(r"^TS = ([0-9.e-]+)", code, re.M).group(1))
     tau = float(re.search(r"^TAU = ([0-9.e-]+)", code, re.M).group(1))
     with subprocess.Popen([sys.executable, str(tmp_path / "simulator.py"), "0"],

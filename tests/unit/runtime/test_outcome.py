@@ -94,10 +94,8 @@ def test_a_trip_held_to_the_planned_end_is_still_tripped(tmp_path):
     trip at 0.05 s, a refused reset, an accepted one at 0.2 s, then the run goes on to its
     end. It reached its end, but it tripped: not completed."""
     from tests.integration.test_faults import RESET
-    from tests.integration.test_protocol_example import CONTROLLER, PLANT
-    (tmp_path / "first_order.py").write_text(PLANT)
-    (tmp_path / "pi_v.py").write_text(CONTROLLER)
-    (tmp_path / "reset.toml").write_text(RESET)
+    from tests.integration.test_protocol_example import with_shared_plugins
+    (tmp_path / "reset.toml").write_text(with_shared_plugins(RESET))
     from hilrig.runtime.scenario import load_scenario
     res = run_scenario(load_scenario(tmp_path / "reset.toml"), tmp_path / "r")
     oc = res.summary["outcome"]
