@@ -111,6 +111,46 @@ class Signal:
     description: str = ""
 
 
+@dataclass(frozen=True)
+class Tunable:
+    """A parameter that tuning and the design search may move, within [low, high] (a narrower
+    range than the parameter's bounds: where a search makes sense). ``scale`` "log" searches
+    the logarithm (gains spanning decades; low must be > 0), "linear" the value itself."""
+
+    name: str
+    low: float
+    high: float
+    scale: str = "log"
+
+    def __post_init__(self):
+        if self.scale not in ("log", "linear"):
+            raise ValueError(f"tunable {self.name!r}: scale {self.scale!r} is not 'log' or 'linear'")
+        if not (self.high > self.low) or (self.scale == "log" and not self.low > 0.0):
+            raise ValueError(f"tunable {self.name!r}: needs low < high"
+                             + (" and low > 0 on a log scale" if self.scale == "log" else ""))
+
+
+@dataclass(frozen=True)
+class DesignRange:
+    """The operating range a controller is designed for: output voltage [V] and constant load
+    power [W] (negative: regeneration)."""
+
+    v_lo: float
+    v_hi: float
+    p_lo: float
+    p_hi: float
+
+    @property
+    def v_mid(self) -> float:
+        return 0.5 * (self.v_lo + self.v_hi)
+
+    def points(self) -> list[tuple[float, float]]:
+        """The corners and the centre (duplicates removed when the range is a line or a point)."""
+        pts = [(self.v_lo, self.p_lo), (self.v_lo, self.p_hi), (self.v_hi, self.p_lo),
+               (self.v_hi, self.p_hi), (self.v_mid, 0.5 * (self.p_lo + self.p_hi))]
+        return list(dict.fromkeys(pts))
+
+
 @dataclass
 class BuildContext:
     """What a plugin's build hook may use: control period, other plugins' values."""
@@ -127,6 +167,9 @@ class BuildContext:
     #: the scenario's sample-to-actuation delay [control periods] (timing.actuation_delay): a
     #: controller that compensates delay (``Declaration.compensates_delay``) designs for it
     actuation_delay: float = 0.0
+    #: the operating range the controller is designed for (``[design]``, or derived from the
+    #: scenario); None when there is none (a plant or reference build)
+    design_range: DesignRange | None = None
 
 
 @dataclass
@@ -151,6 +194,19 @@ class Declaration:
     #: controller only: it compensates the actuation delay it is built for (a prediction over
     #: ``BuildContext.actuation_delay``); runs and comparisons say so beside the delay
     compensates_delay: bool = False
+    #: controller only: the parameters that tuning may move (``hilrig tune``) and, with
+    #: ``design_search``, that the design refines over the design range
+    tunable: Sequence[Tunable] = ()
+    #: controller only: design(values, ctx) -> candidate value sets, best first, for the
+    #: parameters the scenario does not give (see docs/plugins.md, "Designs from the plant").
+    #: The runtime keeps the first candidate whose worst closed-loop |z| over the design range
+    #: is below its target, else the lowest; with ``design_search`` it then minimises that
+    #: worst |z| over the tunables (runtime/analysis/design.py)
+    design: Callable[[Mapping[str, Any], BuildContext], list[dict[str, Any]]] | None = None
+    #: refine the design by minimising the worst-case |z| over the tunables (Nelder-Mead)
+    design_search: bool = False
+    #: the method of the design, in a line, with its published source (for the run record)
+    design_method: str = ""
 
     def __post_init__(self):
         if self.kind not in KINDS:
@@ -199,7 +255,10 @@ class Declaration:
                     states=[dict(name=s.name, unit=s.unit) for s in self.states],
                     reads=list(self.reads),
                     outputs=[dict(name=s.name, unit=s.unit) for s in self.outputs],
-                    source=self.source)
+                    source=self.source,
+                    tunable=[dict(name=t.name, low=t.low, high=t.high, scale=t.scale)
+                             for t in self.tunable],
+                    designed=bool(self.design), design_method=self.design_method)
 
 
 def table_array(rows) -> np.ndarray:

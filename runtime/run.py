@@ -3,6 +3,7 @@ by chunk, record every tick and summarise. Python runs only between chunks.
 """
 from __future__ import annotations
 
+import dataclasses
 import datetime as _dt
 import math
 import platform
@@ -57,6 +58,9 @@ class Prepared:
     v0: float
     #: the start offset applied to the plant's v_out state [V] (0: an exact equilibrium start)
     v_out_offset: float = 0.0
+    #: the controller's design from the plant (runtime/analysis/design.py), for the run record;
+    #: None when the controller has no design hook
+    design: dict[str, Any] | None = None
 
 
 def process_age_s() -> float | None:
@@ -119,6 +123,27 @@ def _initial_v_out(sc: Scenario, pp, pr, iyr, n_xr, outputs) -> float:
             break
         v = float(w[0])
     return float(w[0])
+
+
+def start_voltage(sc: Scenario) -> float:
+    """The run's start voltage [V] (``[initial] v_out``, or the reference at t = 0 with the
+    plant settled on it), without preparing the controller."""
+    if sc.v_out0 is not None:
+        return float(sc.v_out0)
+    pdecl = sc.plant.plugin.declaration
+    ctx = BuildContext(Ts=sc.Ts, plant=dict(sc.plant.values), plant_name=pdecl.name,
+                       plant_outputs=tuple(s.name for s in pdecl.outputs),
+                       plant_states=tuple(s.name for s in pdecl.states),
+                       plant_module=sc.plant.plugin.module, actuation_delay=sc.actuation_delay)
+    outputs = [s.name for s in pdecl.outputs]
+    try:
+        pp = pdecl.pack(sc.plant.values, ctx)
+        pr = sc.reference.plugin.declaration.pack(sc.reference.values, ctx)
+    except (ValueError, ArithmeticError, np.linalg.LinAlgError) as exc:
+        raise ScenarioError(f"{Path(sc.path).name or 'scenario'}: {exc}") from None
+    iyr = _resolve_reads(sc.reference, outputs)
+    n_xr = max(sc.reference.plugin.declaration.state_count(sc.reference.values), 1)
+    return _initial_v_out(sc, pp, pr, iyr, n_xr, outputs)
 
 
 def integration_plan(sc: Scenario) -> dict[str, Any]:
@@ -207,15 +232,35 @@ def prepare(sc: Scenario) -> Prepared:
             raise ScenarioError(f"{where}: [{key}] {choice.plugin.name}: {exc}") from None
 
     pp = pack("plant", plant)
-    pc = pack("controller", ctrl)
     pr = pack("reference", ref)
     iyc = _resolve_reads(ctrl, outputs)
     iyr = _resolve_reads(ref, outputs)
-    n_xc = max(ctrl.plugin.declaration.state_count(ctrl.values), 1)
     n_xr = max(ref.plugin.declaration.state_count(ref.values), 1)
     nu = max(len(pdecl.inputs), 1)
     u_names = [s.name for s in pdecl.inputs] or ["u"]
     v0 = _initial_v_out(sc, pp, pr, iyr, n_xr, outputs)
+    # the controller: its defaults designed for this plant over the design range, unless the
+    # scenario says [design] defaults = "declared" (runtime/analysis/design.py)
+    from .analysis import design as dmod
+    rng, rng_from = dmod.scenario_range(sc, v0)
+    ctx.design_range = rng
+    if sc.design["defaults"] == "plant":
+        cands, designed = dmod.candidates(ctrl, ctx)
+    else:
+        cands, designed = [dict(ctrl.values)], []
+    pc, first_error = None, None
+    for i, cand in enumerate(cands):
+        try:
+            pc = pack("controller", PluginChoice(plugin=ctrl.plugin, values=cand, given=ctrl.given))
+            cands = cands[i:]
+            break
+        except ScenarioError as exc:
+            first_error = first_error or exc
+    if pc is None:
+        raise first_error
+    if cands[0] != ctrl.values:
+        ctrl = PluginChoice(plugin=ctrl.plugin, values=cands[0], given=ctrl.given)
+    n_xc = max(ctrl.plugin.declaration.state_count(ctrl.values), 1)
     x0 = np.ascontiguousarray(pdecl.equilibrium(plant.values, v0, sc.load_v[:, 0].copy()), dtype=np.float64)
     nx = x0.shape[0]
     if nx != len(pdecl.states):
@@ -286,8 +331,21 @@ def prepare(sc: Scenario) -> Prepared:
             [f for f in sc.faults if f.kind not in LINK_KINDS]), n_true=len(true_names),
         n_sensors=len(sc.sensors), n_true_chain=len(chain_names),
         rec_cols=len(signals))
-    return Prepared(sc=sc, args=args, signals=signals, table=table, y_names=outputs,
+    if ctrl is not sc.controller:
+        sc = dataclasses.replace(sc, controller=ctrl)
+    prep = Prepared(sc=sc, args=args, signals=signals, table=table, y_names=outputs,
                     u_names=u_names, v0=v0, v_out_offset=x_offset)
+    if designed:
+        values, prep.design = dmod.design(prep, ctx, cands, designed, rng, rng_from)
+        ctrl = PluginChoice(plugin=ctrl.plugin, values=values, given=ctrl.given)
+        args["pc"] = pack("controller", ctrl)
+        prep.sc = dataclasses.replace(sc, controller=ctrl)
+    elif sc.controller.plugin.declaration.design is not None:
+        prep.design = dict(controller=ctrl.plugin.name, defaults=sc.design["defaults"],
+                           designed=[], given=sorted(ctrl.given),
+                           note="every designed parameter is given" if sc.design["defaults"]
+                           == "plant" else "[design] defaults = \"declared\": the plugin's numbers")
+    return prep
 
 
 def _start_offset(sc: Scenario, pdecl, v0: float, x0: np.ndarray, where: str) -> float:
@@ -707,6 +765,21 @@ class LiveControl:
                          end_event=judge(summary)["text"])
 
 
+def plain_values(values: dict[str, Any]) -> dict[str, Any]:
+    """Plugin values as JSON-ready data (tables as lists of rows)."""
+    return {k: (v if isinstance(v, (str, int, float, bool)) else [list(r) for r in v])
+            for k, v in values.items()}
+
+
+def stability_record(prep: Prepared) -> dict[str, Any]:
+    """The stability check at the run's start (runtime/analysis/check.py) for the run record."""
+    from .analysis.check import start_check
+    try:
+        return start_check(prep)[1]
+    except (ValueError, ArithmeticError, np.linalg.LinAlgError, IndexError) as exc:
+        return {"status": "not made", "note": f"{type(exc).__name__}: {exc}"}
+
+
 def execute(sc: Scenario, prep: Prepared, folder: Path,
             produce: Callable[[int, int, np.ndarray], int], *, timing: dict[str, Any],
             progress: Callable[[int, int], None] | None = None,
@@ -721,6 +794,7 @@ def execute(sc: Scenario, prep: Prepared, folder: Path,
     """
     a = prep.args
     n_total = sc.n_ticks
+    check = stability_record(prep)
     chunk = max(1, min(n_total, int(round((chunk_s or sc.recording["chunk"]) / sc.Ts))))
     ncols = len(prep.signals)
     rec = np.zeros((chunk, ncols))
@@ -848,6 +922,9 @@ def execute(sc: Scenario, prep: Prepared, folder: Path,
         "overrides": sc.overrides,
         "v_out_start_V": prep.v0,
         "v_out_start_offset_V": prep.v_out_offset,
+        "controller_values": plain_values(prep.sc.controller.values),
+        "design": prep.design,
+        "stability_check": check,
         "metrics": result,
         "segments": [],
         "segmentation": {},

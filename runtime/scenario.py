@@ -41,7 +41,10 @@ PLANNED_MODES = ("lockstep", "free-running")
 
 TOP_KEYS = {"title", "description", "demo_data", "mode", "seed", "timing", "plant", "controller",
             "reference", "shaping", "load", "limits", "interlocks", "initial", "recording",
-            "faults", "resets", "watchdogs", "paced", "safe_state", "sensors"}
+            "faults", "resets", "watchdogs", "paced", "safe_state", "sensors", "design"}
+#: ``[design] defaults``: designed from the plant, or the plugin's declared numbers
+DESIGN_DEFAULTS = ("plant", "declared")
+DESIGN_DEFAULT = {"v_range": None, "p_range": None, "defaults": "plant"}
 TIMING = {"Ts": ("s", 50e-6, (1e-7, 1.0)), "substeps": ("-", 4, (1, 1000)),
           "duration": ("s", 1.0, (1e-6, 1e6))}
 #: sample-to-actuation delay in control periods (docs/design-notes.md, "Digital-control delay")
@@ -91,6 +94,9 @@ MAX_NESTING = 8
 class PluginChoice:
     plugin: registry.Plugin
     values: dict[str, Any]
+    #: the parameters the scenario (or an override) gives; the others are the plugin's defaults,
+    #: which a controller's design may replace (runtime/analysis/design.py)
+    given: frozenset = frozenset()
 
 
 @dataclass
@@ -144,6 +150,10 @@ class Scenario:
     overrides: dict[str, list] = field(default_factory=lambda: {"applied": [], "not_applied": []})
     #: the sensor chain per measured signal (``[[sensors]]``; none: exact measurements)
     sensors: list[Sensor] = field(default_factory=list)
+    #: ``[design]``: the operating range a controller's defaults are designed for,
+    #: {"v_range": (lo, hi) V or None, "p_range": (lo, hi) W or None, "defaults": "plant" |
+    #: "declared"}; None ranges are derived from the scenario (runtime/analysis/design.py)
+    design: dict[str, Any] = field(default_factory=lambda: dict(DESIGN_DEFAULT))
 
     @property
     def stale_limit_s(self) -> float:
@@ -297,6 +307,7 @@ def parse_scenario(text: str, name: str = "scenario.toml", path: str = "",
     safe_state = _safe_state(cx, raw)
     paced = _paced(cx, raw)
     sensors = _sensors(cx, raw, plant, Ts, interlocks)
+    design = _design(cx, raw)
     return Scenario(path=path, text=text, title=title, description=description, demo_data=demo,
                     mode=mode, seed=seed, Ts=Ts, substeps=substeps, duration=duration,
                     plant=plant, controller=controller, reference=reference, shaping=shaping,
@@ -305,7 +316,7 @@ def parse_scenario(text: str, name: str = "scenario.toml", path: str = "",
                     v_out_offset=v_out_offset,
                     recording=recording, faults=faults, resets=resets, watchdogs=watchdogs,
                     paced=paced, integration=integration, actuation_delay=delay,
-                    safe_state=safe_state, sensors=sensors,
+                    safe_state=safe_state, sensors=sensors, design=design,
                     overrides={"applied": [{"key": k, "value": _inline(v)}
                                            for k, v in (overrides or {}).items()],
                                "not_applied": [dict(d) for d in not_applied or []]})
@@ -581,7 +592,7 @@ def _plugin(cx, raw, key, default_name) -> PluginChoice:
             values[k] = v
         else:
             values[k] = _table_param(cx, where, v, q)
-    return PluginChoice(plugin=plugin, values=values)
+    return PluginChoice(plugin=plugin, values=values, given=frozenset(tab))
 
 
 def _table_param(cx, where, rows, q: TableParam):
@@ -973,6 +984,38 @@ def _check_short_circuits(cx, faults, plant: PluginChoice, Ts: float, substeps: 
                           f"capacitance ({cap:g} F) has a time constant of {tau * 1e6:.3g} us; "
                           f"the plant's RK4 substeps ({Ts / substeps * 1e6:.3g} us) must not be "
                           f"longer than half of it: set timing.substeps to at least {need}")
+
+
+def _design(cx, raw) -> dict[str, Any]:
+    """``[design]``: the operating range that the controller's defaults are designed for
+    (``v_range = ["300 V", "500 V"]``, ``p_range = ["-40 kW", "80 kW"]``, constant load power,
+    negative = regeneration) and where the defaults come from: ``defaults = "plant"`` (designed
+    from the plant, the control period and the range; the default) or ``"declared"`` (the
+    plugin's declared numbers as they are)."""
+    tab = _table(cx, raw, "design")
+    keys = ["v_range", "p_range", "defaults"]
+    for k in tab:
+        if k not in keys:
+            raise cx.unknown("design", k, keys)
+    out = dict(DESIGN_DEFAULT)
+    for k, unit, lo_bound in (("v_range", "V", 0.0), ("p_range", "W", -1e9)):
+        if k not in tab:
+            continue
+        v = tab[k]
+        if not isinstance(v, list) or len(v) != 2:
+            raise cx.fail(f"design.{k}", f" = {v!r} is not a pair [low, high], e.g. "
+                          + ('["300 V", "500 V"]' if unit == "V" else '["-40 kW", "80 kW"]'))
+        lo = _quantity(cx, f"design.{k}", v[0], unit, (lo_bound, 1e9), lower_open=unit == "V")
+        hi = _quantity(cx, f"design.{k}", v[1], unit, (lo_bound, 1e9), lower_open=unit == "V")
+        if not hi >= lo:
+            raise cx.fail(f"design.{k}", f" = {v!r}: the high end is below the low end")
+        out[k] = (lo, hi)
+    d = tab.get("defaults", out["defaults"])
+    if d not in DESIGN_DEFAULTS:
+        raise cx.fail("design.defaults", f" = {d!r} is not one of "
+                      f"{', '.join(repr(c) for c in DESIGN_DEFAULTS)}")
+    out["defaults"] = d
+    return out
 
 
 def _initial(cx, raw):

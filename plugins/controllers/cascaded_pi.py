@@ -46,7 +46,7 @@ T. Hagglund, *Advanced PID Control*, ISA, 2006, sec. 3.5 (integrator windup).
 import numpy as np
 from numba import njit
 
-from hilrig.plugins.base import Declaration, Param, Signal
+from hilrig.plugins.base import Declaration, Param, Signal, Tunable
 
 TS, KPV, KIV, KPI, KII, KVD, KIC, CFF, IMAX, UMIN, UMAX, RSER = range(12)
 # indices into y (the order of DECLARATION.reads)
@@ -66,6 +66,46 @@ def _build(values, ctx):
     return np.array([ctx.Ts, values["Kp_v"], values["Ki_v"], values["Kp_i"], values["Ki_i"],
                      values["K_vd"], values["K_ic"], values["C_ff"], values["I_max"],
                      u_min, u_max, r_series])
+
+
+#: the loop-shaping start of the design (see _design): inner crossover w_ci = A_I / Ts, outer
+#: w_cv = R_V w_ci, integral corners w/KI_I_DIV and w/KI_V_DIV, damping gains K_VD, K_IC
+A_I, R_V, KI_I_DIV, KI_V_DIV, K_VD, K_IC = 0.667, 0.42, 7.6, 2.3, 3.7, 1.0
+
+
+def _filter(plant):
+    """(first inductance L1 [H], total capacitance [F]) of a two- or single-stage filter, or
+    None for a plant of other parameters."""
+    if "L1" in plant and "C1" in plant:
+        return float(plant["L1"]), float(plant["C1"]) + float(plant.get("C2", 0.0))
+    if "L" in plant and "C" in plant:
+        return float(plant["L"]), float(plant["C"])
+    return None
+
+
+def _design(values, ctx):
+    """Candidates for the design (runtime/analysis/design.py), which then minimises the worst
+    largest closed-loop |z| over the design range from the best of them.
+
+    The start is loop shaping from the plant (Erickson & Maksimovic ch. 18): the inner current
+    loop crosses over at w_ci = A_I / Ts with K_pi = w_ci L1 (the inductor's impedance at the
+    crossover), the outer voltage loop at w_cv = R_V w_ci with K_pv = w_cv (C1 + C2), each
+    integral corner a fraction of its crossover (K_ii = K_pi w_ci / KI_I_DIV, K_iv = K_pv w_cv /
+    KI_V_DIV); the damping gains start at K_VD, K_IC; C_ff = C1 + C2. The constants are the
+    demo plant's result of the search re-expressed, so that the start is close there. The
+    declared numbers are the second candidate."""
+    lc = _filter(ctx.plant)
+    if lc is None:
+        return [{}]
+    l1, ct = lc
+    w_ci = A_I / ctx.Ts
+    w_cv = R_V * w_ci
+    kpi, kpv = w_ci * l1, w_cv * ct
+    rule = dict(Kp_v=kpv, Ki_v=kpv * w_cv / KI_V_DIV, Kp_i=kpi, Ki_i=kpi * w_ci / KI_I_DIV,
+                K_vd=K_VD, K_ic=K_IC, C_ff=ct)
+    declared = {p.name: p.default for p in DECLARATION.params if p.name in rule}
+    declared["C_ff"] = ct
+    return [rule, declared]
 
 
 DECLARATION = Declaration(
@@ -92,6 +132,14 @@ DECLARATION = Declaration(
            "Dahono, IEEE PESC 2002 (virtual-resistor damping); Astrom & Hagglund, Advanced PID "
            "Control, 2006, sec. 3.5 (anti-windup)",
     build=_build,
+    tunable=(Tunable("Kp_v", 1e-3, 1e3), Tunable("Ki_v", 1e-1, 1e8),
+             Tunable("Kp_i", 1e-4, 1e3), Tunable("Ki_i", 1e-1, 1e8),
+             Tunable("K_vd", 1e-2, 50.0), Tunable("K_ic", 1e-2, 10.0)),
+    design=_design,
+    design_search=True,
+    design_method="loop-shaping start from L1, C1 + C2 and Ts, then Nelder-Mead minimising the "
+                  "worst largest closed-loop |z| of the sampled linearised loop over the design "
+                  "range (Erickson & Maksimovic ch. 18; Nelder & Mead 1965)",
 )
 #: signals this controller accepts in place of ones a plant does not have
 READ_FALLBACKS = {"v_C1": "v_out", "i_L2": "i_L1"}

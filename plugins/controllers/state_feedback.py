@@ -292,6 +292,24 @@ def _build(values, ctx):
     return p
 
 
+def _design(values, ctx):
+    """Candidates for the design from the plant (runtime/analysis/design.py keeps the first
+    whose worst largest closed-loop |z| over the design range is below its target, else the
+    lowest). The design point comes from the range instead of fixed numbers: its middle voltage
+    at half the highest load power, then its hardest corner (lowest voltage, highest power: the
+    largest constant-power conductance P/V^2). LQR first (over six test plants it held the range
+    where pole placement did not; docs/design-notes.md), then pole placement with the Bessel
+    pattern at 4000 and 2000 rad/s."""
+    rng = ctx.design_range
+    if rng is None:
+        return [{}]
+    mid = dict(V0=rng.v_mid, P0=0.5 * rng.p_hi)
+    corner = dict(V0=rng.v_lo, P0=rng.p_hi)
+    return [dict(method="lqr", **mid), dict(method="lqr", **corner),
+            dict(method="place", omega_c=4000.0, **mid), dict(method="place", omega_c=2000.0, **mid),
+            dict(method="place", omega_c=4000.0, **corner)]
+
+
 DECLARATION = Declaration(
     kind="controller",
     name="state_feedback",
@@ -332,6 +350,11 @@ DECLARATION = Declaration(
            "Control, 1975 (weights); Astrom & Hagglund, Advanced PID Control, 2006, sec. 3.5 "
            "(anti-windup)",
     build=_build,
+    design=_design,
+    design_method="design point and method chosen from the design range: LQR (Bryson's rule "
+                  "weights) or Bessel pole placement, at the range's middle or its hardest "
+                  "corner, the first whose worst largest closed-loop |z| over the range is "
+                  "below the target",
 )
 #: signals this controller accepts in place of ones a plant does not have; they are not plant
 #: states there, so they get zero gain

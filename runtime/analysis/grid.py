@@ -64,6 +64,9 @@ def _prepared(task: MapTask):
     if key not in _CACHE:
         sc = parse_scenario(task.scenario_text, name=task.scenario_name, path=task.scenario_path,
                             overrides=_overrides(task))
+        # the controller designed for the scenario's range, not for a point's start and load
+        from .design import pin
+        sc = pin(sc)
         if task.power_only:
             sc = dataclasses.replace(sc, load_t=np.array([0.0]),
                                      load_v=np.array([[0.0], [0.0], [0.0]]))

@@ -64,6 +64,32 @@ def largest_pole(m: LoopModel) -> float:
     return float(np.max(np.abs(np.linalg.eigvals(m.Acl)))) if m.Acl.size else 0.0
 
 
+#: a closed-loop pole this close (relative) to a pole of the sampled plant is a fixed mode
+FIXED_MODE_TOL = 1e-7
+
+
+def movable_poles(m: LoopModel) -> tuple[float, float]:
+    """(largest |z| of the closed-loop poles that feedback moves, largest |z| of the fixed
+    modes): a mode of the plant that the controller can neither excite nor see (the balance of
+    a multi-phase converter's phase currents, say) is a pole of the open and the closed loop
+    alike; no gain changes it, so a design's search leaves it out (0.0 when there is none)."""
+    if not m.Acl.size:
+        return 0.0, 0.0
+    cl = np.linalg.eigvals(m.Acl)
+    nz = m.Ao.shape[0] - m.Ac.shape[0]
+    ol = np.linalg.eigvals(m.Ao[:nz, :nz]) if nz else np.zeros(0)
+    fixed = np.zeros(cl.size, dtype=bool)
+    used = np.zeros(ol.size, dtype=bool)
+    for i, z in enumerate(cl):
+        for j, w in enumerate(ol):
+            if not used[j] and abs(z - w) <= FIXED_MODE_TOL * max(1.0, abs(w)):
+                fixed[i] = used[j] = True
+                break
+    mov = np.abs(cl[~fixed])
+    fix = np.abs(cl[fixed])
+    return (float(mov.max()) if mov.size else 0.0), (float(fix.max()) if fix.size else 0.0)
+
+
 def _response(A, B, C, D, theta: np.ndarray) -> np.ndarray:
     """C (e^{j theta} I - A)^-1 B + D for SISO (first input, first output), vectorised."""
     n = A.shape[0]

@@ -150,6 +150,9 @@ def _base(task: Task):
     if key not in _CACHE:
         sc = parse_scenario(task.scenario_text, name=task.scenario_name,
                             overrides=_controller_override(task.scenario_text, task.controller))
+        # every cell's controller is designed for the scenario's range, not each for its own
+        # start and load (runtime/analysis/design.py)
+        sc = pin(sc)
         profile = _profile_plugin()
         # every point runs with a profile reference (see point_scenario), whatever reference
         # the scenario names: the loop must be the one compiled for that reference. (It was
@@ -165,6 +168,16 @@ def _base(task: Task):
         first_call(probe, lambda: _call(fn, 0, 0, np.empty((1, len(prep.signals))), prep.args))
         _CACHE[key] = (sc, fn, profile, v_start)
     return _CACHE[key]
+
+
+def pin(sc):
+    from ..analysis.design import pin as _pin
+    return _pin(sc)
+
+
+def pinned_overrides(sc) -> dict:
+    from ..analysis.design import pinned_overrides as _po
+    return _po(sc)
 
 
 def _controller_override(text: str, controller: str) -> dict:
@@ -358,6 +371,8 @@ def cell_overrides(sc, controller: str, v_target: float, p_load: float,
     if sc.mode != "sil":
         ov["mode"] = "sil"  # every map point runs in SIL
     ov.update(_controller_override(sc.text, controller))
+    if sc.design.get("v_range") is None or sc.design.get("p_range") is None:
+        ov.update(pinned_overrides(sc))
     ov["reference"] = {"plugin": "profile", "points": [[0.0, vs], [ts, vs], [ts, float(v_target)]]}
     ov["load"] = {"points": [{"t": 0.0, "P": float(p_load)}]}
     ov["initial.v_out"] = vs

@@ -1,0 +1,370 @@
+"""Controller defaults designed for the plant at hand: the design range, the choice among a
+controller's candidate designs, and the worst-case eigenvalue search.
+
+A controller plugin that declares a ``design`` hook (plugins/base.py) gets its defaults from the
+plant's parameters, the control period and a **design range** (output voltage x constant load
+power) instead of fixed numbers. Parameters the scenario gives are kept as given.
+
+1. **Design range.** ``[design] v_range, p_range`` when the scenario has them; otherwise derived
+   from the scenario: the start voltage +-25 % (below 95 % of the DC link where the plant has
+   one) and the constant load powers of its load profile, with 0 included.
+2. **Candidates.** The hook returns candidate value sets from closed-form rules (a loop-shaping
+   start, design points inside the range, ...), best first. Each is scored by its worst
+   largest closed-loop |z| over the range's corners and centre (of the poles that feedback
+   moves: a plant mode no gain changes, point.movable_poles, is reported apart) (the operating-point analysis,
+   runtime/analysis/linear.py), and the first below ``TARGET`` is kept, else the lowest.
+3. **Search** (``design_search``; the cascaded PI): Nelder-Mead over the plugin's tunable
+   parameters (``Declaration.tunable``; log scale where declared), when the scenario gives
+   none of them (a scenario that gives some has made its own design), minimising that worst |z| (minimax of the spectral radius of the sampled linearised
+   loop). Afterwards a 5 x 5 grid of the range is checked; a grid point worse than the search's
+   points joins them and the search goes on (at most ``ROUNDS`` times).
+
+The result is cached in the cache folder (``HILRIG_CACHE_DIR``), keyed by everything it depends
+on, so a plant is designed once. It is recorded in the run (``summary.json`` ``design``).
+
+Methods: Nelder & Mead, "A simplex method for function minimization", Computer Journal 7(4),
+1965 (``scipy.optimize.minimize``); minimising the spectral radius of the closed-loop matrix
+over a set of plants is the classic simultaneous-stabilisation formulation (e.g. Blondel,
+*Simultaneous Stabilization of Linear Systems*, Springer, 1994).
+"""
+from __future__ import annotations
+
+import copy
+import dataclasses
+import hashlib
+import inspect
+import json
+import math
+import os
+import time
+from pathlib import Path
+from typing import Any, Callable
+
+import numpy as np
+
+from hilrig.plugins.base import DesignRange
+
+#: a candidate whose worst |z| over the range is below this is kept without looking further
+TARGET = 0.97
+#: the worst |z| charged to a point with no steady state or a fault during the search
+PENALTY = 5.0
+#: Nelder-Mead: evaluations per round, and rounds of adding the grid's worst point
+MAX_EVALS = 400
+ROUNDS = 3
+#: the check grid (n x n) after the search
+CHECK_GRID = 5
+#: the derived range: the start voltage times (1 -+ V_SPAN), below V_DC_SHARE of the DC link
+V_SPAN = 0.25
+V_DC_SHARE = 0.95
+#: bump when the method changes: cached designs are then made again
+VERSION = 1
+
+
+class DesignError(ValueError):
+    """A design that cannot be made (no candidate builds)."""
+
+
+def scenario_range(sc, v_start: float) -> tuple[DesignRange, str]:
+    """The design range of a scenario and where it comes from (module docstring, step 1)."""
+    d = sc.design
+    if d.get("v_range") is not None:
+        v_lo, v_hi = d["v_range"]
+        v_from = "[design] v_range"
+    else:
+        v_lo, v_hi = (1.0 - V_SPAN) * v_start, (1.0 + V_SPAN) * v_start
+        vdc = sc.plant.values.get("V_dc")
+        if isinstance(vdc, (int, float)) and vdc > 0:
+            v_hi = min(v_hi, V_DC_SHARE * float(vdc))
+            v_lo = min(v_lo, v_hi)
+        v_from = f"the start voltage {v_start:.6g} V +-{V_SPAN:.0%}"
+    if d.get("p_range") is not None:
+        p_lo, p_hi = d["p_range"]
+        p_from = "[design] p_range"
+    else:
+        powers = np.asarray(sc.load_v[0], dtype=np.float64)
+        p_lo, p_hi = min(0.0, float(powers.min())), max(0.0, float(powers.max()))
+        p_from = "the load profile's constant powers and 0"
+    return DesignRange(float(v_lo), float(v_hi), float(p_lo), float(p_hi)), f"{v_from}; {p_from}"
+
+
+def pin(sc):
+    """The scenario with its design range written out (``[design] v_range, p_range``), so that
+    scenarios made from it (an envelope's cells, a map's points) design the controller for the
+    same range, not each for its own start and load."""
+    if sc.design.get("v_range") is not None and sc.design.get("p_range") is not None:
+        return sc
+    from hilrig.runtime.run import start_voltage
+    rng, _ = scenario_range(sc, start_voltage(sc))
+    design = dict(sc.design, v_range=(rng.v_lo, rng.v_hi), p_range=(rng.p_lo, rng.p_hi))
+    return dataclasses.replace(sc, design=design)
+
+
+def pinned_overrides(sc) -> dict[str, Any]:
+    """``--set`` keys that pin a scenario's design range (for a command that reruns a cell)."""
+    p = pin(sc).design
+    return {"design.v_range": [f"{p['v_range'][0]!r} V", f"{p['v_range'][1]!r} V"],
+            "design.p_range": [f"{p['p_range'][0]!r} W", f"{p['p_range'][1]!r} W"]}
+
+
+def candidates(choice, ctx) -> tuple[list[dict[str, Any]], list[str]]:
+    """The controller's candidate value sets (the hook's, with the given parameters kept,
+    duplicates removed; the values as they are without a hook), and the names of the
+    parameters the design sets (the hook's and, with a search, the tunables), less those given."""
+    decl = choice.plugin.declaration
+    if decl.design is None:
+        return [dict(choice.values)], []
+    out, seen = [], set()
+    raw = decl.design(dict(choice.values), ctx) or [{}]
+    names = {k for c in raw for k in c}
+    if decl.design_search:
+        names |= {t.name for t in decl.tunable}
+    for cand in raw:
+        merged = dict(choice.values)
+        merged.update({k: v for k, v in cand.items() if k not in choice.given})
+        key = repr(sorted((k, repr(v)) for k, v in merged.items()))
+        if key not in seen:
+            seen.add(key)
+            out.append(merged)
+    return out, sorted(names - set(choice.given))
+
+
+# -- scoring ---------------------------------------------------------------------------------
+
+def _design_prep(prep):
+    """The prepared scenario with a load of constant power only (the range's P), no other load."""
+    dp = copy.copy(prep)
+    dp.sc = dataclasses.replace(prep.sc, load_t=np.array([0.0]), load_v=np.zeros((3, 1)))
+    return dp
+
+
+def worst_at(prep, kern, points, movable: bool = False) -> tuple[float, list[float | None]]:
+    """The largest closed-loop |z| at each point (None: no steady state or a fault) and the
+    worst of them (PENALTY for a point without one). ``movable``: of the poles that feedback
+    moves only (point.movable_poles), the search's measure."""
+    from . import point
+    from .linear import AnalysisError, linearize
+    zs: list[float | None] = []
+    for v, p in points:
+        try:
+            m = linearize(prep, v, p, kern)
+            z = point.movable_poles(m)[0] if movable else point.largest_pole(m)
+            zs.append(float(z) if math.isfinite(z) else None)
+        except (AnalysisError, np.linalg.LinAlgError, ValueError, ArithmeticError):
+            zs.append(None)
+    worst = max((PENALTY if z is None else z) for z in zs) if zs else PENALTY
+    return float(worst), zs
+
+
+class _Scorer:
+    """Scores value sets of one controller on one prepared scenario."""
+
+    def __init__(self, prep, ctx, points):
+        from .linear import kernels
+        self.prep = _design_prep(prep)
+        self.kern = kernels(self.prep)
+        self.decl = prep.sc.controller.plugin.declaration
+        self.ctx = ctx
+        self.points = list(points)
+        self.n_pc = self.kern.pc.size
+        self.evaluations = 0
+
+    def pack(self, values) -> np.ndarray | None:
+        try:
+            pc = self.decl.pack(values, self.ctx)
+        except (ValueError, ArithmeticError, np.linalg.LinAlgError):
+            return None
+        if pc.size != self.n_pc or not np.all(np.isfinite(pc)):
+            return None
+        return pc
+
+    def score(self, values, points=None, movable: bool = True) -> tuple[float, list[float | None]]:
+        self.evaluations += 1
+        pc = self.pack(values)
+        pts = self.points if points is None else points
+        if pc is None:
+            return PENALTY, [None] * len(pts)
+        self.kern.pc = pc
+        return worst_at(self.prep, self.kern, pts, movable)
+
+
+def _search(scorer: _Scorer, start: dict[str, Any], names: list[str], tunables,
+            progress: Callable[[int], None] | None = None) -> tuple[dict[str, Any], float, int]:
+    """Nelder-Mead over the named tunables from ``start``; returns (values, worst, evaluations)."""
+    import scipy.optimize
+    tun = {t.name: t for t in tunables}
+
+    def to_z(values):
+        z = []
+        for n in names:
+            t, v = tun[n], float(values[n])
+            v = min(max(v, t.low), t.high)
+            z.append(math.log(v) if t.scale == "log" else v)
+        return np.array(z)
+
+    def from_z(z):
+        out = dict(start)
+        for n, zi in zip(names, z):
+            t = tun[n]
+            v = math.exp(zi) if t.scale == "log" else float(zi)
+            out[n] = min(max(v, t.low), t.high)
+        return out
+
+    best = [math.inf, dict(start)]
+    n0 = scorer.evaluations
+
+    def objective(z):
+        vals = from_z(z)
+        w, _ = scorer.score(vals)
+        if w < best[0]:
+            best[0], best[1] = w, vals
+        if progress is not None:
+            progress(scorer.evaluations - n0)
+        return w
+
+    lo = [math.log(tun[n].low) if tun[n].scale == "log" else tun[n].low for n in names]
+    hi = [math.log(tun[n].high) if tun[n].scale == "log" else tun[n].high for n in names]
+    scipy.optimize.minimize(objective, to_z(start), method="Nelder-Mead",
+                            bounds=list(zip(lo, hi)),
+                            options=dict(maxfev=MAX_EVALS, xatol=1e-3, fatol=1e-5))
+    return best[1], best[0], scorer.evaluations - n0
+
+
+def _fixed_modes(scorer: _Scorer, values, rng: DesignRange) -> float | None:
+    """The largest |z| of the modes feedback cannot move, at the range's centre (None: none)."""
+    from . import point
+    from .linear import AnalysisError, linearize
+    pc = scorer.pack(values)
+    if pc is None:
+        return None
+    scorer.kern.pc = pc
+    try:
+        m = linearize(scorer.prep, rng.v_mid, 0.5 * (rng.p_lo + rng.p_hi), scorer.kern)
+    except (AnalysisError, np.linalg.LinAlgError, ValueError, ArithmeticError):
+        return None
+    fixed = point.movable_poles(m)[1]
+    return fixed if fixed > 0.0 else None
+
+
+def grid_points(rng: DesignRange, n: int = CHECK_GRID) -> list[tuple[float, float]]:
+    vs = np.linspace(rng.v_lo, rng.v_hi, n) if rng.v_hi > rng.v_lo else [rng.v_lo]
+    ps = np.linspace(rng.p_lo, rng.p_hi, n) if rng.p_hi > rng.p_lo else [rng.p_lo]
+    return list(dict.fromkeys((float(v), float(p)) for v in vs for p in ps))
+
+
+# -- the cache -------------------------------------------------------------------------------
+
+def _source(obj) -> str:
+    try:
+        return inspect.getsource(obj)
+    except (OSError, TypeError):
+        return repr(obj)
+
+
+def _key(prep, ctx, cands, rng) -> str:
+    sc = prep.sc
+    h = hashlib.sha256()
+    for part in (VERSION, _source(sc.controller.plugin.module), _source(sc.plant.plugin.module),
+                 Path(__file__).read_text(), (Path(__file__).parent / "linear.py").read_text(),
+                 repr(sorted((k, repr(v)) for k, v in sc.plant.values.items())),
+                 repr([sorted((k, repr(v)) for k, v in c.items()) for c in cands]),
+                 repr(sorted(sc.controller.given)), repr(dataclasses.astuple(rng)),
+                 repr((sc.Ts, sc.actuation_delay, sc.v_collapse)),
+                 prep.args["pp"].tobytes().hex(), np.asarray(prep.args["iyc"]).tobytes().hex()):
+        h.update(str(part).encode())
+        h.update(b"\0")
+    return h.hexdigest()[:32]
+
+
+def _cache_path(key: str) -> Path:
+    from hilrig.runtime.loop import cache_dir
+    return cache_dir() / "designs" / f"{key}.json"
+
+
+def _encode(values: dict[str, Any]) -> dict[str, Any]:
+    return {k: (v if isinstance(v, (str, int, float)) else [list(r) for r in v])
+            for k, v in values.items()}
+
+
+def _decode(values: dict[str, Any], like: dict[str, Any]) -> dict[str, Any]:
+    out = dict(like)
+    for k, v in values.items():
+        out[k] = tuple(tuple(r) for r in v) if isinstance(v, list) else v
+    return out
+
+
+# -- the design ------------------------------------------------------------------------------
+
+def design(prep, ctx, cands: list[dict[str, Any]], designed: list[str], rng: DesignRange,
+           rng_from: str, progress: Callable[[str], None] | None = None
+           ) -> tuple[dict[str, Any], dict[str, Any]]:
+    """Choose and refine the controller's values (module docstring). Returns (values, record)."""
+    sc = prep.sc
+    decl = sc.controller.plugin.declaration
+    record: dict[str, Any] = dict(
+        controller=decl.name, method=decl.design_method, defaults="plant",
+        range=dict(v_lo_V=rng.v_lo, v_hi_V=rng.v_hi, p_lo_W=rng.p_lo, p_hi_W=rng.p_hi),
+        range_from=rng_from, given=sorted(sc.controller.given), designed=designed)
+    key = _key(prep, ctx, cands, rng)
+    path = _cache_path(key)
+    try:
+        cached = json.loads(path.read_text())
+        record.update(cached["record"], cached=True)
+        return _decode(cached["values"], cands[0]), record
+    except (OSError, ValueError, KeyError):
+        pass
+    t0 = time.perf_counter()
+    scorer = _Scorer(prep, ctx, rng.points())
+    scored = []
+    chosen = None
+    for c in cands:
+        w, zs = scorer.score(c)
+        scored.append(dict(values=_encode({k: c[k] for k in designed if k in c}),
+                           worst_pole_abs=w if w < PENALTY else None))
+        if chosen is None and w < TARGET:
+            chosen = (c, w)
+    if chosen is None:
+        i = int(np.argmin([s["worst_pole_abs"] if s["worst_pole_abs"] is not None else PENALTY
+                           for s in scored]))
+        chosen = (cands[i], scored[i]["worst_pole_abs"] or PENALTY)
+    values, worst = chosen
+    record["candidates"] = scored
+    # a scenario that gives some of the tunables has made its own design: the rest keep the
+    # chosen candidate's values (a search would move them around the given ones)
+    names = [t.name for t in decl.tunable]
+    if decl.design_search and names and not set(names) & set(sc.controller.given):
+        start_worst = worst
+        evals = 0
+        for rnd in range(ROUNDS):
+            values, worst, n = _search(scorer, values, names, decl.tunable,
+                                       None if progress is None else
+                                       (lambda k: progress(f"designing {decl.name}: "
+                                                           f"{k} evaluations")))
+            evals += n
+            gw, gz = scorer.score(values, grid_points(rng))
+            if gw <= worst + 1e-4 or rnd == ROUNDS - 1:
+                break
+            bad = grid_points(rng)[int(np.argmax([PENALTY if z is None else z for z in gz]))]
+            scorer.points.append(bad)
+        record["search"] = dict(method="Nelder-Mead, minimax of the largest closed-loop |z|",
+                                parameters=names, start_worst_pole_abs=start_worst,
+                                evaluations=evals, points=[list(p) for p in scorer.points])
+    gw, gz = scorer.score(values, grid_points(rng), movable=False)
+    n_bad = sum(1 for z in gz if z is None or z >= 1.0)
+    record.update(worst_pole_abs=worst if worst < PENALTY else None,
+                  fixed_modes_abs=_fixed_modes(scorer, values, rng),
+                  grid=dict(n=len(gz), worst_pole_abs=gw if gw < PENALTY else None,
+                            unstable_or_none=n_bad),
+                  stable_over_range=n_bad == 0,
+                  values=_encode({k: values[k] for k in designed if k in values}),
+                  seconds=round(time.perf_counter() - t0, 3))
+    try:
+        path.parent.mkdir(parents=True, exist_ok=True)
+        tmp = path.with_suffix(f".{os.getpid()}.tmp")
+        tmp.write_text(json.dumps(dict(values=_encode(values),
+                                       record={k: v for k, v in record.items()
+                                               if k not in ("given",)}), indent=1))
+        os.replace(tmp, path)
+    except OSError:
+        pass  # a read-only cache: design again next time
+    record["cached"] = False
+    return values, record
