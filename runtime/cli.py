@@ -462,11 +462,17 @@ def _stability_check(console, scenarios: dict, strict: bool, to_stderr: bool = F
     import numpy as np
 
     from hilrig.runtime.analysis.check import start_check
+    from hilrig.runtime.analysis.design import design_line
     from hilrig.runtime.run import prepare
     found = []
     for name, sc in scenarios.items():
         try:
-            findings, _ = start_check(prepare(sc))
+            prep = prepare(sc)
+            line = design_line(prep.design)
+            if line:
+                print(line, file=sys.stderr) if to_stderr else console.print(
+                    line, markup=False, soft_wrap=True)
+            findings, _ = start_check(prep)
         except (ArithmeticError, ValueError, IndexError, TypeError, np.linalg.LinAlgError) as exc:
             line = f"stability check: {name}: not checked ({type(exc).__name__}: {exc})"
             print(line, file=sys.stderr) if to_stderr else console.print(line, markup=False,
@@ -776,6 +782,26 @@ def _literal(text: str):
         return text
 
 
+#: options whose value may start with a minus sign (a range or point with a negative power)
+_SIGNED_VALUE_FLAGS = ("--p-range", "--v-range", "--at", "--cell")
+
+
+def _join_negative(argv: list[str]) -> list[str]:
+    """``--p-range -40e3:80e3`` as ``--p-range=-40e3:80e3``: argparse reads a value that starts
+    with a minus sign and is not a plain number as an option of its own."""
+    out, i = [], 0
+    while i < len(argv):
+        a = argv[i]
+        if (a in _SIGNED_VALUE_FLAGS and i + 1 < len(argv) and len(argv[i + 1]) > 1
+                and argv[i + 1][0] == "-" and (argv[i + 1][1].isdigit() or argv[i + 1][1] == ".")):
+            out.append(f"{a}={argv[i + 1]}")
+            i += 2
+            continue
+        out.append(a)
+        i += 1
+    return out
+
+
 def main(argv: list[str] | None = None) -> int:
     import warnings
     # numpy's per-operation warnings on absurd values (a peer sending 1e308): the summary says
@@ -893,12 +919,20 @@ def main(argv: list[str] | None = None) -> int:
     p.add_argument("--controller", metavar="NAME", help="the controller of --cell")
     from hilrig.runtime.analysis.command import add_parser as _add_analyze
     _add_analyze(sub)
+    from hilrig.runtime.analysis.tune_command import add_parser as _add_tune
+    _add_tune(sub)
     p = sub.add_parser("report", help="write a lab report of a run folder (report.md with plots)")
     p.add_argument("run", help="run folder")
     p.add_argument("--json", action="store_true", help="print summary.json (writes nothing)")
     p.add_argument("--out", help="report file to write (default: RUN/report.md)")
-    p = sub.add_parser("plugins", help="list installed plugins with their parameters")
+    p = sub.add_parser("plugins", help="list installed plugins with their parameters, and the "
+                                       "controllers' defaults designed for a scenario's plant")
     p.add_argument("--json", action="store_true", help="machine-readable list")
+    p.add_argument("--scenario", metavar="FILE",
+                   help="design the controllers' defaults for this scenario's plant, control "
+                        "period and design range (default: the demo scenario)")
+    p.add_argument("--set", action="append", default=[], metavar="KEY=VALUE",
+                   help="override a scenario key for the design (repeatable)")
     p = sub.add_parser("export", help="export a run's recording")
     p.add_argument("run", help="run folder")
     fmt = p.add_mutually_exclusive_group(required=True)
@@ -918,7 +952,7 @@ def main(argv: list[str] | None = None) -> int:
             help="bounds-checked build of the compiled loop (slower, cached apart): an index "
                  "out of range in a plugin kernel stops the run with an error naming the kernel "
                  "(also HILRIG_CHECKED=1)")
-    args = ap.parse_args(argv)
+    args = ap.parse_args(_join_negative(sys.argv[1:] if argv is None else list(argv)))
     from hilrig.runtime import checked
     if getattr(args, "checked", False) or checked.requested():
         checked.enable()  # before numba loads; child processes inherit it
@@ -1000,6 +1034,9 @@ def main(argv: list[str] | None = None) -> int:
         elif args.cmd == "analyze":
             from hilrig.runtime.analysis.command import run as _analyze
             return _analyze(console, args, plain, _overrides(args.set))
+        elif args.cmd == "tune":
+            from hilrig.runtime.analysis.tune_command import run as _tune
+            return _tune(console, args, plain, _overrides(args.set))
         elif args.cmd == "report":
             from hilrig.runtime.recording import open_run
             run = open_run(args.run)
@@ -1017,6 +1054,10 @@ def main(argv: list[str] | None = None) -> int:
         elif args.cmd == "plugins":
             from hilrig.runtime.registry import all_plugins
             items = [p.declaration.describe() for p in all_plugins()]
+            path = Path(args.scenario) if args.scenario else _demo_path()
+            for it in items:
+                if it["kind"] == "controller" and it.get("designed"):
+                    it["designed_for"] = _designed_for(path, it["name"], _overrides(args.set))
             if args.json:
                 print(_json_text(items))
             else:
@@ -1097,21 +1138,71 @@ def _interlock_test(console, args) -> int:
     return 1 if failed else 0
 
 
+def _designed_for(path: Path, controller: str, overrides: dict) -> dict:
+    """The controller's defaults designed for the scenario's plant (runtime/analysis/design.py)."""
+    from hilrig.runtime.run import plain_values, prepare
+    from hilrig.runtime.scenario import load_scenario
+    out: dict = {"scenario": str(path)}
+    try:
+        sc = load_scenario(path, overrides={**overrides, "controller": {"plugin": controller}})
+        prep = prepare(sc)
+    except (ScenarioError, PluginError, ValueError) as exc:
+        out["error"] = str(exc)
+        return out
+    d = prep.design or {}
+    out.update(plant=sc.plant.plugin.name, Ts_s=sc.Ts, range=d.get("range"),
+               range_from=d.get("range_from"), values=plain_values(prep.sc.controller.values),
+               designed=d.get("designed", []), worst_pole_abs=d.get("worst_pole_abs"),
+               stable_over_range=d.get("stable_over_range"), note=d.get("note"))
+    return out
+
+
 def _plugins_table(console, items: list[dict]) -> None:
     from rich.markup import escape
     from rich.table import Table
     for it in items:
         t = Table(title=f"{it['kind']}: {it['name']} - {it['summary']}", title_justify="left",
                   header_style="bold")
-        for col in ("parameter", "unit", "default", "min", "max", "description"):
+        des = it.get("designed_for") or {}
+        dvals = des.get("values") or {}
+        cols = ["parameter", "unit", "declared" if des else "default"]
+        if dvals:
+            cols.append("designed")
+        for col in cols + ["min", "max", "description"]:
             t.add_column(col)
+
+        def num(v):
+            return (f"{v:.6g}" if isinstance(v, (int, float)) else v if isinstance(v, str)
+                    else f"{len(v)} rows")
         for p in it["params"]:
-            dflt = p["default"]
-            dtxt = (f"{dflt:g}" if isinstance(dflt, (int, float)) else dflt if isinstance(dflt, str)
-                    else f"{len(dflt)} rows")
-            t.add_row(escape(p["name"]), escape(p["unit"]), dtxt, "" if p["min"] is None else f"{p['min']:g}",
-                      "" if p["max"] is None else f"{p['max']:g}", escape(p["description"]))
+            row = [escape(p["name"]), escape(p["unit"]), num(p["default"])]
+            if dvals:
+                name = p["name"]
+                row.append(num(dvals[name]) + (" *" if name in des.get("designed", []) else "")
+                           if name in dvals else "")
+            row += ["" if p["min"] is None else f"{p['min']:g}",
+                    "" if p["max"] is None else f"{p['max']:g}", escape(p["description"])]
+            t.add_row(*row)
         console.print(t)
+        if des.get("error"):
+            console.print(f"  designed for {escape(des['scenario'])}: cannot be made: "
+                          f"{escape(des['error'])}", soft_wrap=True)
+        elif dvals:
+            r = des.get("range") or {}
+            w = des.get("worst_pole_abs")
+            rng = (f"{r['v_lo_V']:.6g}-{r['v_hi_V']:.6g} V, {r['p_lo_W'] / 1e3:.6g}.."
+                   f"{r['p_hi_W'] / 1e3:.6g} kW" if r else "")
+            console.print(f"  designed (*) for {escape(des['scenario'])}: plant {des['plant']}, "
+                          f"Ts = {des['Ts_s'] * 1e6:.6g} us" + (f", range {rng}" if rng else "")
+                          + (f"; worst closed-loop |z| over the range {w:.4f}" if w else "")
+                          + (" (stable over the range)" if des.get("stable_over_range")
+                             else " (NOT stable over the whole range)"
+                             if des.get("stable_over_range") is False else ""), soft_wrap=True)
+        if it.get("design_method"):
+            console.print(f"  design from the plant: {escape(it['design_method'])}")
+        if it.get("tunable"):
+            console.print("  tunable: " + ", ".join(
+                f"{x['name']} [{x['low']:g}, {x['high']:g}]" for x in it["tunable"]))
         if it.get("reads"):
             console.print(f"  reads: {', '.join(it['reads'])}")
         if it.get("source"):

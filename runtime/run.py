@@ -61,6 +61,9 @@ class Prepared:
     #: the controller's design from the plant (runtime/analysis/design.py), for the run record;
     #: None when the controller has no design hook
     design: dict[str, Any] | None = None
+    #: the build context the parameter arrays were made with (for a design or tuning that
+    #: packs the controller again)
+    ctx: Any = None
 
 
 def process_age_s() -> float | None:
@@ -334,7 +337,7 @@ def prepare(sc: Scenario) -> Prepared:
     if ctrl is not sc.controller:
         sc = dataclasses.replace(sc, controller=ctrl)
     prep = Prepared(sc=sc, args=args, signals=signals, table=table, y_names=outputs,
-                    u_names=u_names, v0=v0, v_out_offset=x_offset)
+                    u_names=u_names, v0=v0, v_out_offset=x_offset, ctx=ctx)
     if designed:
         values, prep.design = dmod.design(prep, ctx, cands, designed, rng, rng_from)
         ctrl = PluginChoice(plugin=ctrl.plugin, values=values, given=ctrl.given)

@@ -1005,8 +1005,8 @@ def _design(cx, raw) -> dict[str, Any]:
         if not isinstance(v, list) or len(v) != 2:
             raise cx.fail(f"design.{k}", f" = {v!r} is not a pair [low, high], e.g. "
                           + ('["300 V", "500 V"]' if unit == "V" else '["-40 kW", "80 kW"]'))
-        lo = _quantity(cx, f"design.{k}", v[0], unit, (lo_bound, 1e9), lower_open=unit == "V")
-        hi = _quantity(cx, f"design.{k}", v[1], unit, (lo_bound, 1e9), lower_open=unit == "V")
+        lo = _quantity(cx, f"design.{k}", v[0], unit, (lo_bound, 1e9))
+        hi = _quantity(cx, f"design.{k}", v[1], unit, (lo_bound, 1e9))
         if not hi >= lo:
             raise cx.fail(f"design.{k}", f" = {v!r}: the high end is below the low end")
         out[k] = (lo, hi)

@@ -368,3 +368,23 @@ def design(prep, ctx, cands: list[dict[str, Any]], designed: list[str], rng: Des
         pass  # a read-only cache: design again next time
     record["cached"] = False
     return values, record
+
+
+def design_line(rec: dict[str, Any] | None) -> str | None:
+    """One line for the terminal about a controller's design (None: nothing was designed)."""
+    if not rec or not rec.get("designed"):
+        return None
+    r = rec["range"]
+    rng = (f"{r['v_lo_V']:.6g}-{r['v_hi_V']:.6g} V, {r['p_lo_W'] / 1e3:.6g}.."
+           f"{r['p_hi_W'] / 1e3:.6g} kW")
+    w = rec.get("grid", {}).get("worst_pole_abs")
+    how = "cached" if rec.get("cached") else f"{rec.get('seconds', 0):.1f} s"
+    text = (f"design: {rec['controller']}: {', '.join(rec['designed'])} designed for the plant "
+            f"over {rng} ({how})")
+    if rec.get("stable_over_range"):
+        text += f"; worst closed-loop |z| {w:.4f}, stable over the range"
+    else:
+        text = ("notice: " + text + "; NO design of this controller is stable over the whole range"
+                + (f" (worst closed-loop |z| {w:.4f})" if w else "")
+                + "; hilrig analyze --map shows where")
+    return text

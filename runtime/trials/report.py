@@ -137,6 +137,50 @@ def _start_text(s: dict) -> str:
             f"(excitation, [initial] v_out_offset)")
 
 
+def _controller_section(s: dict) -> list[str]:
+    """The controller's values, where they came from (its design from the plant) and the
+    stability check at the start (absent in runs recorded before they existed)."""
+    vals, des, chk = s.get("controller_values"), s.get("design"), s.get("stability_check")
+    if vals is None and des is None and chk is None:
+        return []
+    L = ["## Controller", ""]
+    designed = set((des or {}).get("designed") or [])
+    if vals:
+        L += ["| parameter | value | from |", "| --- | --- | --- |"]
+        given = set((des or {}).get("given") or [])
+        for k, v in vals.items():
+            src = ("designed for the plant" if k in designed else "scenario" if k in given
+                   else "declared default")
+            L.append(f"| {k} | {_fmt(v) if not isinstance(v, float) else f'{v:.6g}'} | {src} |")
+        L.append("")
+    if des and designed:
+        r = des.get("range") or {}
+        g = des.get("grid") or {}
+        L.append(f"Design: {des.get('method', '')}. Range {_metric(r.get('v_lo_V'))}-"
+                 f"{_metric(r.get('v_hi_V'))} V, {_metric((r.get('p_lo_W') or 0) / 1e3)}.."
+                 f"{_metric((r.get('p_hi_W') or 0) / 1e3)} kW ({des.get('range_from', '')}); "
+                 f"worst largest closed-loop |z| on a {g.get('n', '?')}-point grid of it: "
+                 f"{_metric(g.get('worst_pole_abs'))}"
+                 + (" (stable over the range)." if des.get("stable_over_range")
+                    else " (NOT stable over the whole range)."))
+        L.append("")
+    elif des and des.get("note"):
+        L += [f"Design: none ({des['note']}).", ""]
+    if chk:
+        text = f"Stability check at the start ({_metric(chk.get('v_ref_V'))} V, " \
+               f"{_metric((chk.get('p_load_W') or 0) / 1e3)} kW): {chk.get('status')}"
+        if chk.get("largest_pole_abs") is not None:
+            text += f", largest closed-loop |z| {_metric(chk['largest_pole_abs'])}"
+        if chk.get("gain_margin_db") is not None or chk.get("phase_margin_deg") is not None:
+            text += (f", gain margin {_metric(chk.get('gain_margin_db'))} dB, phase margin "
+                     f"{_metric(chk.get('phase_margin_deg'))} deg")
+        L.append(text + ".")
+        for f in chk.get("findings") or []:
+            L.append(f"- {f}")
+        L.append("")
+    return L
+
+
 def write_report(run: Run, dest: Path | None = None) -> Path:
     """Write ``report.md`` (and its PNGs in ``report/``) for a finished run; return its path."""
     from .plots import overview_png
@@ -180,6 +224,7 @@ def write_report(run: Run, dest: Path | None = None) -> Path:
     for k, v in rows:
         L.append(f"| {k} | {_fmt(v)} |")
     L.append("")
+    L += _controller_section(s)
     L.append("## Tracking metrics")
     L.append("")
     if coverage_text(oc):
