@@ -462,16 +462,16 @@ def _stability_check(console, scenarios: dict, strict: bool, to_stderr: bool = F
     import numpy as np
 
     from hilrig.runtime.analysis.check import start_check
-    from hilrig.runtime.analysis.design import design_line
+    from hilrig.runtime.analysis.design import design_line, shaping_line
     from hilrig.runtime.run import prepare
     found = []
     for name, sc in scenarios.items():
         try:
             prep = prepare(sc)
-            line = design_line(prep.design)
-            if line:
-                print(line, file=sys.stderr) if to_stderr else console.print(
-                    line, markup=False, soft_wrap=True)
+            for line in (design_line(prep.design), shaping_line(prep.shaping)):
+                if line:
+                    print(line, file=sys.stderr) if to_stderr else console.print(
+                        line, markup=False, soft_wrap=True)
             findings, _ = start_check(prep)
         except (ArithmeticError, ValueError, IndexError, TypeError, np.linalg.LinAlgError) as exc:
             line = f"stability check: {name}: not checked ({type(exc).__name__}: {exc})"

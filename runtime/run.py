@@ -64,6 +64,8 @@ class Prepared:
     #: the build context the parameter arrays were made with (for a design or tuning that
     #: packs the controller again)
     ctx: Any = None
+    #: the reference shaping derived from the plant ("auto" keys of [shaping]), for the record
+    shaping: dict[str, Any] | None = None
 
 
 def process_age_s() -> float | None:
@@ -348,7 +350,22 @@ def prepare(sc: Scenario) -> Prepared:
                            designed=[], given=sorted(ctrl.given),
                            note="every designed parameter is given" if sc.design["defaults"]
                            == "plant" else "[design] defaults = \"declared\": the plugin's numbers")
+    if prep.shaping is None and prep.sc.shaping.get("from_plant"):
+        _shape_from_plant(prep, rng)
     return prep
+
+
+def _shape_from_plant(prep: Prepared, rng) -> None:
+    """The reference shaping's "auto" values from the plant and the designed loop
+    (runtime/analysis/design.py shaping_from_plant), into the arrays the loop runs with."""
+    from .analysis import design as dmod
+    sc = prep.sc
+    rec = dmod.shaping_from_plant(prep, rng)
+    sh = dict(sc.shaping, pole=rec["pole_rad_s"], slew_rate=rec["slew_rate_V_s"])
+    ad, g1, g2, cr, dr = shaping.design(sh["order"], sh["pole"], sc.Ts)
+    prep.args.update(ad=ad, g1=g1, g2=g2, cr=cr, dr=dr, slew=sh["slew_rate"])
+    prep.sc = dataclasses.replace(sc, shaping=sh)
+    prep.shaping = rec
 
 
 def _start_offset(sc: Scenario, pdecl, v0: float, x0: np.ndarray, where: str) -> float:
@@ -927,6 +944,9 @@ def execute(sc: Scenario, prep: Prepared, folder: Path,
         "v_out_start_offset_V": prep.v_out_offset,
         "controller_values": plain_values(prep.sc.controller.values),
         "design": prep.design,
+        "shaping": {"order": prep.sc.shaping["order"], "pole_rad_s": prep.sc.shaping["pole"],
+                    "slew_rate_V_s": prep.sc.shaping["slew_rate"],
+                    "derived": prep.shaping},
         "stability_check": check,
         "metrics": result,
         "segments": [],

@@ -58,6 +58,9 @@ DEFAULT_SAFE_ACTION = "gate_block"
 TIMING_CHOICES = {"integration": ("adaptive", "fixed")}
 SHAPING = {"order": ("-", 5, (4, 12)), "pole": ("rad/s", 7500.0, (1.0, 1e7)),
            "slew_rate": ("V/s", 2e5, (1e-3, 1e9))}
+#: [shaping] keys that default to "auto" (derived from the plant; the numbers above are the
+#: fallback where the plant or the loop gives nothing to derive them from)
+SHAPING_AUTO = ("pole", "slew_rate")
 LIMITS = {"v_collapse": ("V", 25.0, (0.0, 1e5)), "safe_u": ("V", 0.0, (-1e5, 1e5))}
 RECORDING = {"chunk": ("s", 1.0, (1e-4, 3600.0))}
 RECORDING_CHOICES = {"compression": ("none", "gzip")}
@@ -288,8 +291,7 @@ def parse_scenario(text: str, name: str = "scenario.toml", path: str = "",
     plant = _plugin(cx, raw, "plant", "two_stage_lc")
     controller = _plugin(cx, raw, "controller", "cascaded_pi")
     reference = _plugin(cx, raw, "reference", "profile")
-    shaping = _section(cx, raw, "shaping", SHAPING)
-    shaping["order"] = int(shaping["order"])
+    shaping = _shaping(cx, raw)
     if shaping["pole"] * Ts > 1.0:
         raise cx.fail("shaping.pole", f" = {shaping['pole']:g} rad/s is too fast for Ts = {Ts:g} s "
                       f"(pole * Ts = {shaping['pole'] * Ts:.2f} > 1); use at most {1.0 / Ts:g} rad/s")
@@ -984,6 +986,21 @@ def _check_short_circuits(cx, faults, plant: PluginChoice, Ts: float, substeps: 
                           f"capacitance ({cap:g} F) has a time constant of {tau * 1e6:.3g} us; "
                           f"the plant's RK4 substeps ({Ts / substeps * 1e6:.3g} us) must not be "
                           f"longer than half of it: set timing.substeps to at least {need}")
+
+
+def _shaping(cx, raw) -> dict[str, Any]:
+    """``[shaping]``: order, pole and slew rate. ``pole`` and ``slew_rate`` may be ``"auto"``
+    (their default): derived from the plant and the controller's loop when the scenario is
+    prepared (runtime/analysis/design.py ``shaping_from_plant``); until then they hold
+    SHAPING's fixed numbers, and ``from_plant`` names the keys to derive."""
+    tab = dict(_table(cx, raw, "shaping"))
+    auto = [k for k in SHAPING_AUTO if tab.get(k, "auto") == "auto"]
+    for k in auto:
+        tab.pop(k, None)
+    out = _section(cx, {"shaping": tab}, "shaping", SHAPING)
+    out["order"] = int(out["order"])
+    out["from_plant"] = auto
+    return out
 
 
 def _design(cx, raw) -> dict[str, Any]:

@@ -388,3 +388,111 @@ def design_line(rec: dict[str, Any] | None) -> str | None:
                 + (f" (worst closed-loop |z| {w:.4f})" if w else "")
                 + "; hilrig analyze --map shows where")
     return text
+
+
+# -- the reference shaping from the plant ----------------------------------------------------
+
+#: share of the spare current (limit minus the hardest load current) the slew rate may spend
+#: on charging the output capacitance (headroom for the loop; common practice, no source)
+SLEW_SHARE = 0.5
+#: the shaping pole as a share of the loop's highest gain crossover (rad/s), and its cap x Ts
+POLE_PER_CROSSOVER = 0.4
+POLE_CAP_TS = 0.5
+
+
+def _current_limit(sc) -> tuple[float | None, str]:
+    """The current the converter may carry: the scenario's |i_L1| trip interlock, else the
+    controller's I_max."""
+    from hilrig.safety.interlocks import SIDE_ABOVE, SIDE_MAGNITUDE
+    for il in sc.interlocks:
+        if (il.action == "trip" and il.signal == "i_L1"
+                and il.side_code in (SIDE_ABOVE, SIDE_MAGNITUDE) and il.threshold > 0):
+            return float(il.threshold), f"the i_L1 interlock ({il.threshold:g} A)"
+    imax = sc.controller.values.get("I_max")
+    if isinstance(imax, (int, float)) and imax > 0:
+        return float(imax), f"the controller's I_max ({imax:g} A)"
+    return None, ""
+
+
+def _capacitance(plant: dict) -> float | None:
+    if "C1" in plant:
+        return float(plant["C1"]) + float(plant.get("C2", 0.0))
+    if "C" in plant:
+        return float(plant["C"])
+    return None
+
+
+def shaping_from_plant(prep, rng: DesignRange) -> dict[str, Any]:
+    """The reference shaping's slew rate and filter pole from what the plant can deliver:
+
+    - slew rate S = SLEW_SHARE (I_lim - max(P_hi, 0) / V_lo) / C_total: the spare current at the
+      range's hardest point (highest load power at the lowest voltage) charging the output
+      capacitance C1 + C2;
+    - pole w = min(POLE_PER_CROSSOVER x 2 pi f_gc, POLE_CAP_TS / Ts), f_gc the highest gain
+      crossover of the loop (broken at the converter command) at the range's centre: the
+      filter follows what the loop can follow, so the loop is not asked for more.
+
+    Where an input is missing (no current limit, no capacitances, no crossover) the fixed
+    numbers of ``[shaping]`` stay, and the record says why."""
+    from hilrig.runtime.scenario import SHAPING
+
+    from . import point
+    from .linear import AnalysisError, linearize
+    sc = prep.sc
+    todo = list(sc.shaping.get("from_plant") or [])
+    out: dict[str, Any] = dict(order=sc.shaping["order"], pole_rad_s=sc.shaping["pole"],
+                               slew_rate_V_s=sc.shaping["slew_rate"], from_plant=todo, notes=[])
+    if "slew_rate" in todo:
+        i_lim, i_from = _current_limit(sc)
+        c = _capacitance(sc.plant.values)
+        i_load = max(rng.p_hi, 0.0) / rng.v_lo if rng.v_lo > 0 else math.inf
+        if i_lim is None or c is None:
+            out["notes"].append("slew rate: " + ("no current limit (an |i_L1| interlock or the "
+                                                 "controller's I_max)" if i_lim is None else
+                                                 "the plant has no capacitances C1, C2 or C")
+                                + f"; the fixed {SHAPING['slew_rate'][1]:g} V/s")
+        elif not i_lim > i_load:
+            out["notes"].append(f"slew rate: the current limit {i_lim:g} A is not above the load "
+                                f"current at the range's hardest point ({i_load:.4g} A): the "
+                                f"range cannot be held; the fixed {SHAPING['slew_rate'][1]:g} V/s")
+        else:
+            out["slew_rate_V_s"] = SLEW_SHARE * (i_lim - i_load) / c
+            out.update(current_limit_A=i_lim, current_limit_from=i_from, load_current_A=i_load,
+                       capacitance_F=c)
+    if "pole" in todo:
+        cap = POLE_CAP_TS / sc.Ts
+        f_gc = None
+        try:
+            m = linearize(_design_prep(prep), rng.v_mid, 0.5 * (rng.p_lo + rng.p_hi))
+            mg = point.margins(m)
+            fs = [g["f_hz"] for g in mg.get("gain_crossovers") or [] if g["f_hz"] > 0]
+            f_gc = max(fs) if fs else None
+        except (AnalysisError, np.linalg.LinAlgError, ValueError, ArithmeticError) as exc:
+            out["notes"].append(f"pole: no loop model at the range's centre ({exc})")
+        if f_gc is None:
+            out["pole_rad_s"] = min(SHAPING["pole"][1], cap)
+            out["notes"].append(f"pole: no gain crossover; the fixed {out['pole_rad_s']:g} rad/s")
+        else:
+            out["pole_rad_s"] = min(POLE_PER_CROSSOVER * 2 * math.pi * f_gc, cap)
+            out["crossover_hz"] = f_gc
+    return out
+
+
+def shaping_line(rec: dict[str, Any] | None) -> str | None:
+    """One line for the terminal about a shaping derived from the plant."""
+    if not rec or not rec.get("from_plant"):
+        return None
+    parts = []
+    if "pole" in rec["from_plant"]:
+        parts.append(f"pole {rec['pole_rad_s']:.5g} rad/s"
+                     + (f" (0.4 x the loop's {rec['crossover_hz']:.4g} Hz crossover)"
+                        if rec.get("crossover_hz") else ""))
+    if "slew_rate" in rec["from_plant"]:
+        parts.append(f"slew rate {rec['slew_rate_V_s'] / 1e3:.4g} kV/s"
+                     + (f" (half of {rec['current_limit_A'] - rec['load_current_A']:.4g} A "
+                        f"spare current into {rec['capacitance_F'] * 1e6:.4g} uF)"
+                        if rec.get("capacitance_F") else ""))
+    text = "shaping from the plant: " + ", ".join(parts)
+    if rec.get("notes"):
+        text += "; " + "; ".join(rec["notes"])
+    return text

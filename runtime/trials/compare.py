@@ -179,4 +179,51 @@ def plot_comparison(out: Path, results: dict[str, dict[str, Any]]) -> list[Path]
         fig.savefig(out / fname, dpi=90)
         plt.close(fig)
         written.append(out / fname)
+    rng = wide_range(runs)
+    if rng is not None:
+        written.append(_range_plot(plt, out / "compare_range.png", runs, results))
     return written
+
+
+#: a trial whose reference spans at least this share of its highest value gets compare_range.png
+WIDE_RANGE_SHARE = 0.3
+
+
+def wide_range(runs) -> tuple[float, float] | None:
+    """(lowest, highest) reference of a wide-range trial (WIDE_RANGE_SHARE), else None."""
+    import numpy as np
+    r0 = next(iter(runs.values()))
+    v = np.asarray(r0.signals["v_ref"])
+    if v.size == 0:
+        return None
+    lo, hi = float(np.min(v)), float(np.max(v))
+    return (lo, hi) if hi > 0 and hi - lo >= WIDE_RANGE_SHARE * hi else None
+
+
+def _range_plot(plt, dest: Path, runs, results) -> Path:
+    """Tracking error against the reference voltage, one curve per candidate, the design range
+    shaded: where over the range each controller tracks, and where it stops."""
+    import numpy as np
+    fig, ax = plt.subplots(figsize=(8, 4), constrained_layout=True)
+    shaded = False
+    for name, run in runs.items():
+        des = (run.summary or {}).get("design") or {}
+        r = des.get("range")
+        if r and not shaded:
+            ax.axvspan(r["v_lo_V"], r["v_hi_V"], color="0.9", zorder=0,
+                       label=f"design range {r['v_lo_V']:.4g}-{r['v_hi_V']:.4g} V")
+            shaded = True
+        v_ref = np.asarray(run.signals["v_ref"])
+        err = np.abs(v_ref - np.asarray(run.signals["v_out"]))
+        label, ls = curve_style(name, results[name])
+        line, = ax.semilogy(v_ref, np.maximum(err, 1e-3), lw=0.9, ls=ls, label=label)
+        if not results[name]["outcome"]["completed"] and v_ref.size:
+            ax.plot(v_ref[-1], max(err[-1], 1e-3), "x", ms=9, color=line.get_color())
+    ax.set_xlabel("reference v_ref [V]")
+    ax.set_ylabel("|v_ref - v_out| [V]")
+    ax.set_title("tracking error over the reference's range (x: the run ended there)", fontsize=9)
+    ax.grid(True, which="both", lw=0.3)
+    ax.legend(fontsize=8, loc="best")
+    fig.savefig(dest, dpi=90)
+    plt.close(fig)
+    return dest
