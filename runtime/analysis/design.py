@@ -146,7 +146,7 @@ def worst_at(prep, kern, points, movable: bool = False) -> tuple[float, list[flo
     zs: list[float | None] = []
     for v, p in points:
         try:
-            m = linearize(prep, v, p, kern)
+            m = linearize(prep, v, p, kern, loop_only=True)
             z = point.movable_poles(m)[0] if movable else point.largest_pole(m)
             zs.append(float(z) if math.isfinite(z) else None)
         except (AnalysisError, np.linalg.LinAlgError, ValueError, ArithmeticError):

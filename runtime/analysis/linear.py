@@ -158,6 +158,8 @@ class _Kernels:
         self.nu = a["u"].shape[0]
         self.ny = a["y"].shape[0]
         self.n_reads = len(self.cdecl.reads)
+        #: sampled plants of loop_only linearisations (see _zoh_cached)
+        self.zoh_cache: dict = {}
 
     def f(self, x, u, d) -> np.ndarray:
         return np.array(self.plant_mod.derivs(0.0, self.pp, x, u, d), dtype=np.float64)
@@ -385,7 +387,22 @@ def _live_controller_states(Ac: np.ndarray, Bc: np.ndarray) -> np.ndarray:
     return np.array(keep, dtype=np.int64)
 
 
-def _sampled_plant(A, B, C, D, E, F, Ts: float, delay_halves: int):
+def _zoh_cached(cache: dict | None, A, BE, h):
+    """zoh(), remembered for matrices equal to single precision (a search linearises the same
+    plant at the same points again and again: only the controller changes). The key rounds
+    to about 7 digits; the value is the exact result for the first matrix seen."""
+    if cache is None:
+        return zoh(A, BE, h)
+    key = (h, A.shape, BE.shape, A.astype(np.float32).tobytes(), BE.astype(np.float32).tobytes())
+    out = cache.get(key)
+    if out is None:
+        if len(cache) > 4096:
+            cache.clear()
+        out = cache[key] = zoh(A, BE, h)
+    return out
+
+
+def _sampled_plant(A, B, C, D, E, F, Ts: float, delay_halves: int, cache: dict | None = None):
     """The plant's sampled model from the tick's command u_k (and the held injected current
     i_k) to the tick's measurement y_k, with the actuation delay's queue.
 
@@ -399,10 +416,10 @@ def _sampled_plant(A, B, C, D, E, F, Ts: float, delay_halves: int):
     Ep = np.zeros((nz, E.shape[1]))
     BE = np.hstack([B, E])
     if l1 == l2:
-        Phi, G = zoh(A, BE, Ts)
+        Phi, G = _zoh_cached(cache, A, BE, Ts)
         parts = [(l1, G[:, :nu])]
     else:
-        Phih, Gh = zoh(A, BE, Ts / 2)
+        Phih, Gh = _zoh_cached(cache, A, BE, Ts / 2)
         Phi = Phih @ Phih
         G = np.hstack([Phih @ Gh[:, :nu] + Gh[:, :nu], Phih @ Gh[:, nu:] + Gh[:, nu:]])
         parts = [(l1, Phih @ Gh[:, :nu]), (l2, Gh[:, :nu])]
@@ -436,21 +453,29 @@ def _close(Ap, Bp, Ep, Cp, Fp, Ac, Bc, Cc, Dc, S):
     return Ao, Bo, Co, Acl, Bi
 
 
-def linearize(prep, v_ref: float, p_load: float, kern: _Kernels | None = None) -> LoopModel:
-    """The linear model of the sampled loop at (v_ref, p_load) (module docstring)."""
+def linearize(prep, v_ref: float, p_load: float, kern: _Kernels | None = None, *,
+              loop_only: bool = False) -> LoopModel:
+    """The linear model of the sampled loop at (v_ref, p_load) (module docstring).
+    ``loop_only``: the loop alone (poles, loop gain), without the output impedance's model
+    (``As, Cs, Es, Fs, Az, Bz, Cz, Dz`` empty, ``y_load`` NaN): for searches that only need the
+    closed-loop poles (runtime/analysis/design.py)."""
     k = kern or _Kernels(prep)
     sc = prep.sc
     op = operating_point(prep, v_ref, p_load, k)
     A, B, C, D, E, F = _plant_jacobians(k, op, op.d)
-    # the emulator alone: the load replaced by a current sink of the same current
     from hilrig.plugins.plants.loads import load_current
     v_min = float(sc.plant.values.get("v_load_min", 0.0))
-    i_op = float(load_current(op.v_out, op.d, v_min))
-    d_sink = np.array([0.0, 0.0, i_op])
-    As, _, Cs, _, Es, Fs = _plant_jacobians(k, op, d_sink)
-    hv = 1e-6 * max(abs(op.v_out), 1.0)
-    y_load = float((load_current(op.v_out + hv, op.d, v_min)
-                    - load_current(op.v_out - hv, op.d, v_min)) / (2 * hv))
+    if loop_only:
+        As = Cs = Es = Fs = None
+        y_load = float("nan")
+    else:
+        # the emulator alone: the load replaced by a current sink of the same current
+        i_op = float(load_current(op.v_out, op.d, v_min))
+        d_sink = np.array([0.0, 0.0, i_op])
+        As, _, Cs, _, Es, Fs = _plant_jacobians(k, op, d_sink)
+        hv = 1e-6 * max(abs(op.v_out), 1.0)
+        y_load = float((load_current(op.v_out + hv, op.d, v_min)
+                        - load_current(op.v_out - hv, op.d, v_min)) / (2 * hv))
     Ac, Bc, Cc, Dc, how = _controller_jacobians(k, op)
     cnames = [s.name for s in k.cdecl.states][:k.nc]
     cnames += [f"x{j}" for j in range(len(cnames), k.nc)]
@@ -468,18 +493,23 @@ def linearize(prep, v_ref: float, p_load: float, kern: _Kernels | None = None) -
     live = _live_states(A, B, E)
     names = [s.name for s in k.pdecl.states]
     A, B, E, C = A[np.ix_(live, live)], B[live], E[live], C[:, live]
-    As, Es, Cs = As[np.ix_(live, live)], Es[live], Cs[:, live]
+    if not loop_only:
+        As, Es, Cs = As[np.ix_(live, live)], Es[live], Cs[:, live]
     delay = int(round(2 * sc.actuation_delay))
     S = np.zeros((max(k.n_reads, 0), C.shape[0]))
     for row, j in enumerate(k.iyc[:k.n_reads]):
         S[row, j] = 1.0
-    Ap, Bp, Ep, Cp, Fp, q = _sampled_plant(A, B, C, D, E, F, sc.Ts, delay)
+    Ap, Bp, Ep, Cp, Fp, q = _sampled_plant(A, B, C, D, E, F, sc.Ts, delay,
+                                           k.zoh_cache if loop_only else None)
     Ao, Bo, Co, Acl, _ = _close(Ap, Bp, Ep, Cp, Fp, Ac, Bc, Cc, Dc, S)
-    Aps, Bps, Eps, Cps, Fps, _ = _sampled_plant(As, B, Cs, D, Es, Fs, sc.Ts, delay)
-    _, _, _, Az, Bz = _close(Aps, Bps, Eps, Cps, Fps, Ac, Bc, Cc, Dc, S)
     iv = prep.y_names.index("v_out")
-    Cz = np.hstack([Cps[iv:iv + 1, :], np.zeros((1, Ac.shape[0]))])
-    Dz = Fps[iv:iv + 1, :]
+    if loop_only:
+        As = Cs = Es = Fs = Az = Bz = Cz = Dz = np.zeros((0, 0))
+    else:
+        Aps, Bps, Eps, Cps, Fps, _ = _sampled_plant(As, B, Cs, D, Es, Fs, sc.Ts, delay)
+        _, _, _, Az, Bz = _close(Aps, Bps, Eps, Cps, Fps, Ac, Bc, Cc, Dc, S)
+        Cz = np.hstack([Cps[iv:iv + 1, :], np.zeros((1, Ac.shape[0]))])
+        Dz = Fps[iv:iv + 1, :]
     u_names = prep.u_names
     loop_states = ([names[j] for j in live]
                    + [f"{u_names[j]}[k-{m}]" for m in range(1, q + 1) for j in range(k.nu)]

@@ -14,7 +14,8 @@
    impedance to the load's are reported at the grid's hardest point.
 3. **Confirmation (compiled simulation).** The stability map (analysis) and the envelope (SIL:
    a step from the start voltage to every point of the grid, with the start excitation of the
-   envelope) before and after, so that a tuned set is never taken on the analysis' word alone.
+   envelope) before and after, and a ramp down over the range at its highest power
+   (tune_command.ramp_check), so that a tuned set is never taken on the analysis' word alone.
 
 The result is a TOML snippet for the scenario's ``[controller]``, the maps and a report.
 """

@@ -32,7 +32,11 @@ def add_parser(sub) -> None:
                    help=f"search starts, run in parallel (default {tmod.STARTS})")
     p.add_argument("--workers", type=int, help="local worker processes (default: all cores)")
     p.add_argument("--no-confirm", action="store_true",
-                   help="skip the SIL envelopes before and after (the analysis only)")
+                   help="skip the SIL confirmation before and after (envelopes and ramps; the "
+                        "analysis only)")
+    p.add_argument("--cluster", metavar="ADDRESS",
+                   help="run the confirming envelopes on this Dask scheduler (as envelope "
+                        "--cluster); the search runs on local processes")
     p.add_argument("--tolerance", type=float, default=2.0,
                    help="envelope: tracking band in %% of the target (default 2)")
     p.add_argument("--out", help="folder for tuned.toml, tune.json, the maps and report.md "
@@ -163,7 +167,8 @@ def run(console, args, plain: bool, overrides: dict[str, Any]) -> int:
         prog = None if args.json else _Progress(console, plain, unit="operating points")
         try:
             allt = tasks["before"] + tasks["after"]
-            results = env.run_envelope(allt, workers=workers, progress=prog)
+            results = env.run_envelope(allt, cluster=args.cluster, workers=workers,
+                                       progress=prog)
         finally:
             if prog:
                 prog.close()
@@ -175,6 +180,11 @@ def run(console, args, plain: bool, overrides: dict[str, Any]) -> int:
                 r["controller"] = labels[key]
             erows += rows
         ecount = env.counts(erows)
+        say("confirming in SIL: a ramp over the range at its highest power, before and after ...")
+        ramps = {key: ramp_check(text, path, vr, pr, out / f"ramp_{key}")
+                 for key, text in (("before", before_text), ("after", after_text))}
+    else:
+        ramps = None
     wall = time.perf_counter() - t0
     snippet = res.snippet(ref)
     result = dict(
@@ -186,6 +196,7 @@ def run(console, args, plain: bool, overrides: dict[str, Any]) -> int:
         worst_pole_abs=dict(before=res.before_worst, tuned=res.after_worst),
         stability_map={k: mcount.get(v, {}) for k, v in labels.items()},
         envelope={k: ecount.get(v, {}) for k, v in labels.items()} if ecount else None,
+        ramp=ramps,
         margins=res.checks, starts=res.starts, evaluations=res.evaluations,
         search_s=res.search_s, seconds=wall, snippet=snippet)
     out.mkdir(parents=True, exist_ok=True)
@@ -214,6 +225,10 @@ def run(console, args, plain: bool, overrides: dict[str, Any]) -> int:
     if ecount:
         console.print(escape(f"envelope (SIL): before {_counts(ecount.get(labels['before']))}; "
                              f"tuned {_counts(ecount.get(labels['after']))}"), soft_wrap=True)
+    if ramps:
+        console.print(escape("ramp (SIL, " + ramps["before"]["description"] + "): before "
+                             + ramps["before"]["outcome"] + "; tuned " + ramps["after"]["outcome"]),
+                      soft_wrap=True)
     ma = res.checks.get("margins_after") or {}
     if ma.get("available"):
         console.print(escape(
@@ -226,6 +241,41 @@ def run(console, args, plain: bool, overrides: dict[str, Any]) -> int:
     console.print(escape(f"{wall:.1f} s; wrote " + ", ".join(str(w) for w in wrote)),
                   soft_wrap=True)
     return 0
+
+
+#: the confirming ramp: a hold, then the ramp over the range, then a hold [s]
+RAMP_HOLD_S = 0.01
+RAMP_S = 0.05
+
+
+def ramp_check(text: str, path: Path, vr, pr, folder: Path) -> dict[str, Any]:
+    """One SIL run: the reference ramps from the range's top to its bottom in RAMP_S at the
+    range's highest load power (down at constant power: the hard direction), with the
+    scenario's start excitation; its outcome and largest tracking error after the first hold."""
+    import numpy as np
+
+    from hilrig.runtime.outcome import judge
+    from hilrig.runtime.recording import open_run
+    from hilrig.runtime.run import run_scenario
+    from hilrig.runtime.scenario import parse_scenario
+    hi, lo, p = float(vr[1]), float(vr[0]), float(pr[1])
+    t1, t2 = RAMP_HOLD_S, RAMP_HOLD_S + RAMP_S
+    ov = {"mode": "sil",
+          "reference": {"plugin": "profile", "points": [[0.0, hi], [t1, hi], [t2, lo],
+                                                        [t2 + RAMP_HOLD_S, lo]]},
+          "load": {"points": [{"t": 0.0, "P": p}]}, "initial.v_out": hi,
+          "timing.duration": t2 + RAMP_HOLD_S}
+    sc = parse_scenario(text, name=path.name, path=str(path), overrides=ov)
+    res = run_scenario(sc, folder, overwrite=True)
+    oc = judge(res.summary)
+    run = open_run(folder)
+    t = np.asarray(run.time)
+    err = np.abs(np.asarray(run.signals["v_ref_raw"]) - np.asarray(run.signals["v_out"]))
+    after = err[t >= t1] if np.any(t >= t1) else err
+    return dict(description=f"{hi:.6g} -> {lo:.6g} V in {RAMP_S * 1e3:g} ms at "
+                            f"{p / 1e3:.6g} kW", outcome=oc["text"], status=oc["status"],
+                completed=bool(oc["completed"]),
+                max_error_V=float(np.max(after)) if after.size else None, folder=str(folder))
 
 
 def _plugin_ref(text: str) -> str:
@@ -267,6 +317,11 @@ def _report(dest: Path, r: dict[str, Any], wrote: list[Path]) -> Path:
         key = "before" if k == "before" else "after"
         lines.append(f"| {k} | {_counts(r['stability_map'].get(key))} | "
                      f"{_counts((r['envelope'] or {}).get(key))} |")
+    if r.get("ramp"):
+        rb, ra = r["ramp"]["before"], r["ramp"]["after"]
+        lines += ["", f"Ramp ({rb['description']}, SIL): before {rb['outcome']} (largest error "
+                  f"{_f(rb['max_error_V'], ' V')}); tuned {ra['outcome']} (largest error "
+                  f"{_f(ra['max_error_V'], ' V')})."]
     lines += ["", "Starts of the search (grid worst |z| of each end; margins at its hardest "
               "point):", ""]
     for s in r["starts"]:

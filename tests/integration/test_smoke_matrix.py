@@ -129,6 +129,12 @@ def _analyze(name, base):
                                "--headless", "--out", out))
 
 
+def _tune(name, base):
+    out = base / f"tune-{name}"
+    return dict(out=out, p=cli("tune", SCENARIOS[name], "--grid", "2x2", "--starts", "1",
+                               "--workers", "1", "--no-confirm", "--headless", "--out", out))
+
+
 def _bridge(name, base, mode):
     path = _scenario_file(name, base)
     folder = base / f"bridge-{mode}-{name}"
@@ -169,7 +175,7 @@ def matrix(tmp_path_factory):
     later = []
     for n in SCENARIOS:
         later += [(("compare", n), _compare, (n, base)), (("envelope", n), _envelope, (n, base)),
-                  (("analyze", n), _analyze, (n, base)),
+                  (("analyze", n), _analyze, (n, base)), (("tune", n), _tune, (n, base)),
                   (("lockstep", n), _bridge, (n, base, "lockstep")),
                   (("free-running", n), _bridge, (n, base, "free-running")),
                   (("paced", n), _paced, (n, base))]
@@ -215,6 +221,21 @@ def test_analyze(matrix, name):
         assert s["largest_pole_abs"] > 0.0 and s["poles"], ctrl
         assert f"{ctrl}: " in text
     assert (c["out"] / "analysis.png").stat().st_size > 10_000
+
+
+@pytest.mark.parametrize("name", sorted(SCENARIOS))
+def test_tune(matrix, name):
+    """Tuning the scenario's controller over its design range (analysis only here): the tuned
+    set is stable at the grid's points, or no worse than the scenario's own (a tuned set may
+    trade |z| for margins, never stability), and the snippet is TOML."""
+    c = cell(matrix, "tune", name)
+    text = ok(c["p"])
+    data = json.loads((c["out"] / "tune.json").read_text())
+    w = data["worst_pole_abs"]
+    assert w["tuned"] < 1.0 or w["tuned"] <= w["before"] + 1e-9, w
+    snip = tomllib.loads((c["out"] / "tuned.toml").read_text())
+    assert set(data["tuned"]) <= set(snip["controller"])
+    assert "tuned set for the scenario" in text
 
 
 @pytest.mark.parametrize("name", sorted(SCENARIOS))

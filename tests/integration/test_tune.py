@@ -142,6 +142,10 @@ def test_tuning_the_800V_plant_where_the_demo_gains_fail(tmp_path, capsys):
     assert res["stability_map"]["after"].get("stable", 0) == 9
     assert res["envelope"]["before"].get("tracks", 0) <= 1
     assert res["envelope"]["after"].get("tracks", 0) == 9
+    # the ramp over the range at its highest power: the demo gains do not finish it, the tuned
+    # set does
+    assert not res["ramp"]["before"]["completed"]
+    assert res["ramp"]["after"]["completed"], res["ramp"]["after"]
     for fn in ("tuned.toml", "tune.json", "map.csv", "envelope.csv", "report.md"):
         assert (out / fn).exists(), fn
     assert "tuned set for the scenario" in text
@@ -176,3 +180,21 @@ def test_mistakes_exit_2_with_one_message(tmp_path, capsys, args, words):
     assert rc == 2
     assert words in text, text
     assert not (out / "tune.json").exists()
+
+
+def test_tuning_the_demo_keeps_its_tracked_region(tmp_path, capsys):
+    """On the demo plant (the envelope example, demo data) the cascaded PI tuned over a grid
+    wider than its design range tracks at least where the designed one does."""
+    root = Path(__file__).resolve().parents[2]
+    out = tmp_path / "t"
+    rc = cli.main(["tune", str(root / "examples" / "envelope.toml"), "--v-range", "250:550",
+                   "--p-range", "-40e3:100e3", "--grid", "3x3", "--starts", "2",
+                   "--workers", "2", "--headless", "--out", str(out)])
+    text = capsys.readouterr().out
+    assert rc == 0, text
+    res = json.loads((out / "tune.json").read_text())
+    assert res["worst_pole_abs"]["tuned"] <= res["worst_pole_abs"]["before"] + 1e-9
+    before = res["envelope"]["before"].get("tracks", 0)
+    after = res["envelope"]["after"].get("tracks", 0)
+    assert after >= before, (before, after)
+    assert after >= 8, res["envelope"]
