@@ -74,8 +74,8 @@ def current_limit(sc) -> float:
     return float(sc.controller.values["I_max"])
 
 
-def highest_crossover_hz(m) -> float:
-    """The highest frequency below Nyquist where |L(e^{j w Ts})| = 1, L = -Co (zI - Ao)^-1 Bo.
+def crossovers_hz(m) -> list[float]:
+    """Every frequency below Nyquist where |L(e^{j w Ts})| = 1, L = -Co (zI - Ao)^-1 Bo, ascending.
 
     Source: python-control (``control.ss`` discrete-time, evaluated at z = e^{j w Ts}) on a fine
     log grid, each sign change of log|L| refined with scipy.optimize.brentq."""
@@ -91,20 +91,29 @@ def highest_crossover_hz(m) -> float:
     cross = [brentq(g, f[i], f[i + 1], xtol=1e-9, rtol=1e-12)
              for i in np.nonzero(np.sign(lg[:-1]) * np.sign(lg[1:]) < 0)[0]]
     assert cross, "no gain crossover below Nyquist"
-    return max(cross)
+    return sorted(cross)
 
 
-#: the examples' numbers written out by hand (the files, and the demo plant's declared defaults
-#: for step_100V.toml, which gives no plant values): I_lim [A], V_lo [V], P_hi [W], C1 + C2 [F]
-BY_HAND = {"step_100V": (600.0, 300.0, 80e3, 220e-6 + 680e-6),
-           "step_100V_800V": (600.0, 500.0, 150e3, 100e-6 + 220e-6)}
+#: the cases: (example, controller, plant overrides, the numbers written out by hand: I_lim [A],
+#: V_lo [V], P_hi [W], C1 + C2 [F], from the files and, for step_100V.toml, which gives no plant
+#: values, the demo plant's declared defaults). "smallC": the demo plant with small capacitors
+#: (DEMO DATA, invented), where flatness's loop has crossovers far below its highest one, so
+#: that taking another crossover than the highest shows.
+FORMULA_CASES = {
+    "demo-cascaded_pi": (DEMO, "cascaded_pi", {}, (600.0, 300.0, 80e3, 220e-6 + 680e-6)),
+    "demo-flatness": (DEMO, "flatness", {}, (600.0, 300.0, 80e3, 220e-6 + 680e-6)),
+    "800V-cascaded_pi": (HV, "cascaded_pi", {}, (600.0, 500.0, 150e3, 100e-6 + 220e-6)),
+    "800V-flatness": (HV, "flatness", {}, (600.0, 500.0, 150e3, 100e-6 + 220e-6)),
+    "demo_smallC-flatness": (DEMO, "flatness", {"plant.C1": "47 uF", "plant.C2": "100 uF"},
+                             (600.0, 300.0, 80e3, 47e-6 + 100e-6)),
+}
 
 
-@pytest.mark.parametrize("path", [DEMO, HV], ids=lambda p: p.stem)
-@pytest.mark.parametrize("controller", ["cascaded_pi", "flatness"])
-def test_formula_against_outside_computation(path, controller):
+@pytest.mark.parametrize("case", sorted(FORMULA_CASES))
+def test_formula_against_outside_computation(case):
     from hilrig.runtime.analysis import design as dmod  # (here: #22's module, not at collection)
-    sc = load_scenario(path, overrides={"controller.plugin": controller})
+    path, controller, plant_over, by_hand = FORMULA_CASES[case]
+    sc = load_scenario(path, overrides={"controller.plugin": controller, **plant_over})
     prep = prepare(sc)
     rec = prep.shaping
     assert rec is not None and sorted(rec["from_plant"]) == ["pole", "slew_rate"], rec
@@ -116,17 +125,21 @@ def test_formula_against_outside_computation(path, controller):
     p_lo, p_hi = sc.design["p_range"]
     c_tot = float(sc.plant.values["C1"]) + float(sc.plant.values["C2"])
     s_expect = 0.5 * (current_limit(sc) - max(p_hi, 0.0) / v_lo) / c_tot
-    i_lim, v_lo_h, p_hi_h, c_h = BY_HAND[path.stem]
+    i_lim, v_lo_h, p_hi_h, c_h = by_hand
     s_hand = 0.5 * (i_lim - p_hi_h / v_lo_h) / c_h
     assert s_expect == pytest.approx(s_hand, rel=1e-9)
     assert rec["slew_rate_V_s"] == pytest.approx(s_expect, rel=3e-3)
 
     # pole w = min(0.4 x 2 pi f_gc, 0.5 / Ts), f_gc the highest crossover at the range centre
     # with the load reduced to constant power (design._design_prep: the range's P only);
-    # f_gc found with python-control + scipy brentq (highest_crossover_hz), not point.margins
+    # f_gc found with python-control + scipy brentq (crossovers_hz), not point.margins
     m = linearize(dmod._design_prep(prep), 0.5 * (v_lo + v_hi), 0.5 * (p_lo + p_hi))
-    f_gc = highest_crossover_hz(m)
+    cross = crossovers_hz(m)
+    f_gc = cross[-1]
+    if "smallC" in case:  # the case is there for its lower crossovers (FORMULA_CASES)
+        assert len(cross) > 1 and cross[0] < 0.2 * f_gc, cross
     w_expect = min(0.4 * 2 * math.pi * f_gc, 0.5 / sc.Ts)
+    assert rec["crossover_hz"] == pytest.approx(f_gc, rel=3e-3), rec
     assert rec["pole_rad_s"] == pytest.approx(w_expect, rel=3e-3), (f_gc, rec)
     # and the loop runs with those numbers: the arrays of runtime/shaping.py design()
     assert prep.args["slew"] == pytest.approx(rec["slew_rate_V_s"], rel=1e-12)
