@@ -200,7 +200,8 @@ class Declaration:
     #: controller only: design(values, ctx) -> candidate value sets, best first, for the
     #: parameters the scenario does not give (see docs/plugins.md, "Designs from the plant").
     #: The runtime keeps the first candidate whose worst closed-loop |z| over the design range
-    #: is below its target, else the lowest; with ``design_search`` it then minimises that
+    #: is below its target, else the first stable one, else the lowest; with ``design_search``
+    #: it then minimises that
     #: worst |z| over the tunables (runtime/analysis/design.py)
     design: Callable[[Mapping[str, Any], BuildContext], list[dict[str, Any]]] | None = None
     #: refine the design by minimising the worst-case |z| over the tunables (Nelder-Mead)

@@ -662,8 +662,9 @@ def _step_text(nx: int, currents: tuple[int, ...]) -> str:
     gates (``GATE_BLOCK_CURRENTS``) a blocked step goes to ``blocked_step``, compiled apart (it
     is rare, and inlining it would multiply the loop's compile time): each current through the
     converter's diodes that reaches zero within the step stops there (the step is redone to
-    the crossing, located by linear interpolation of that current over the step, the current
-    set to zero, and the rest of the step taken from there, where the plant holds it at zero)."""
+    the crossing, located on the Euler line from the step's start, or else by linear
+    interpolation of that current over the RK4 step, the current set to zero, and the rest of
+    the step taken from there, where the plant holds it at zero)."""
     if not currents:
         return ('@njit(inline="always")\n'
                 "def step(ta, dt, pp, s, u, d, blocked):\n"
@@ -672,11 +673,21 @@ def _step_text(nx: int, currents: tuple[int, ...]) -> str:
     out = ['@njit(cache=True, error_model="numpy")',
            "def blocked_step(ta, dt, pp, s, u, d):",
            '    """One RK4 step with the gates blocked: a diode current stops at zero."""',
-           "    s1 = rk4(ta, dt, pp, s, u, d)"]
+           "    s1 = rk4(ta, dt, pp, s, u, d)",
+           # the Euler line from the step's start as well: in the diode phase the current falls
+           # almost linearly, and RK4's stages that straddle zero (each on the other diode) can
+           # cancel and hide the crossing (the current then hung just above zero)
+           "    k1 = plant_derivs(ta, pp, s, u, d)"]
     for i in currents:
         items = ", ".join("0.0" if j == i else f"sa[{j}]" for j in range(nx))
-        out += [f"    if (s[{i}] > 0.0 and not (s1[{i}] > 0.0)) or (s[{i}] < 0.0 and not (s1[{i}] < 0.0)):",
+        out += [f"    e = s[{i}] + dt * k1[{i}]",
+                f"    if (s[{i}] > 0.0 and not (e > 0.0)) or (s[{i}] < 0.0 and not (e < 0.0)):",
+                f"        th = s[{i}] / (s[{i}] - e)",
+                f"    elif (s[{i}] > 0.0 and not (s1[{i}] > 0.0)) or (s[{i}] < 0.0 and not (s1[{i}] < 0.0)):",
                 f"        th = s[{i}] / (s[{i}] - s1[{i}])",
+                "    else:",
+                "        th = -1.0",
+                "    if th >= 0.0:",
                 "        sa = rk4(ta, th * dt, pp, s, u, d)",
                 f"        sa = ({items},)",
                 "        s1 = rk4(ta + th * dt, (1.0 - th) * dt, pp, sa, u, d)"]

@@ -21,11 +21,15 @@ Active damping: with a constant-power load the output stage of the two-stage fil
 negatively damped. A plain cascaded PI on i_L1 and v_out then leaves the second filter stage
 (L2, C2) undamped in continuous time; the two damping terms, feedback of the output capacitor
 current i_L2 - i_out into the current reference and of the L2 voltage v_C1 - v_out into the
-converter voltage, act as virtual resistances. The default gains were chosen by minimising the
-largest closed-loop eigenvalue magnitude of the sampled (ZOH, Ts = 50 us) linearised loop over
-300-500 V and -40..80 kW on the demo plant: it is 0.89-0.92 there, and the loop loses
-stability below about 250 V at 100 kW or about 180 V at 50 kW (a linear controller far from its
-design point).
+converter voltage, act as virtual resistances.
+
+Gains: the gains a scenario does not give are designed for its plant (``_design`` below and
+runtime/analysis/design.py): a loop-shaping start from L1, C1 + C2 and Ts, then the largest
+closed-loop eigenvalue magnitude of the sampled (ZOH) linearised loop minimised over the
+scenario's design range. The declared numbers are that method's result on the demo plant at
+Ts = 50 us over 300-500 V and -40..80 kW, found by hand (``[design] defaults = "declared"``
+runs them): the largest |z| is 0.89-0.92 there, and the loop loses stability below about 250 V
+at 100 kW or about 180 V at 50 kW (a linear controller far from its design point).
 
 Anti-windup: conditional integration (an integrator holds while its output is clamped and its
 error pushes further into the clamp). In the cascade the outer integrator also holds whenever

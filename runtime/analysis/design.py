@@ -10,9 +10,10 @@ power) instead of fixed numbers. Parameters the scenario gives are kept as given
    one) and the constant load powers of its load profile, with 0 included.
 2. **Candidates.** The hook returns candidate value sets from closed-form rules (a loop-shaping
    start, design points inside the range, ...), best first. Each is scored by its worst
-   largest closed-loop |z| over the range's corners and centre (of the poles that feedback
-   moves: a plant mode no gain changes, point.movable_poles, is reported apart) (the operating-point analysis,
-   runtime/analysis/linear.py), and the first below ``TARGET`` is kept, else the lowest.
+   largest closed-loop |z| over the range's corners and centre (the operating-point analysis,
+   runtime/analysis/linear.py; of the poles that feedback moves: a plant mode no gain changes,
+   point.movable_poles, is reported apart). The first below ``TARGET`` is kept; if none
+   reaches it, the first that is stable (the rule's order of preference); else the lowest.
 3. **Search** (``design_search``; the cascaded PI): Nelder-Mead over the plugin's tunable
    parameters (``Declaration.tunable``; log scale where declared), when the scenario gives
    none of them (a scenario that gives some has made its own design), minimising that worst |z| (minimax of the spectral radius of the sampled linearised
@@ -322,10 +323,14 @@ def design(prep, ctx, cands: list[dict[str, Any]], designed: list[str], rng: Des
                            worst_pole_abs=w if w < PENALTY else None))
         if chosen is None and w < TARGET:
             chosen = (c, w)
+    ws = [s["worst_pole_abs"] if s["worst_pole_abs"] is not None else PENALTY for s in scored]
     if chosen is None:
-        i = int(np.argmin([s["worst_pole_abs"] if s["worst_pole_abs"] is not None else PENALTY
-                           for s in scored]))
-        chosen = (cands[i], scored[i]["worst_pole_abs"] or PENALTY)
+        # none reaches the target (a slow mode of the scenario's own, e.g. an integral pole it
+        # gives, may keep every candidate above it): the first that is stable, in the rule's
+        # order of preference, else the least unstable
+        stable = [i for i, w in enumerate(ws) if w < 1.0]
+        i = stable[0] if stable else int(np.argmin(ws))
+        chosen = (cands[i], ws[i])
     values, worst = chosen
     record["candidates"] = scored
     # a scenario that gives some of the tunables has made its own design: the rest keep the

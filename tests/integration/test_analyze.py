@@ -425,6 +425,9 @@ duration = "20 ms"
 plugin = "two_stage_lc"
 [controller]
 plugin = "{controller}"
+[design]
+# the points below were chosen about the declared numbers' stability limit
+defaults = "declared"
 [reference]
 plugin = "profile"
 points = [[0, "{v:g} V"]]

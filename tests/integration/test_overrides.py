@@ -29,7 +29,7 @@ STEP = ROOT / "examples" / "step_100V.toml"
 # 12 ms: the step at 10 ms is inside the run, so that different controllers give different
 # recordings (before it the plant rests at its equilibrium under any of them)
 SHORT = "timing.duration=0.012"
-METHOD = 'controller.method="lqr"'
+METHOD = 'controller.method="place"'
 NOT_TAKEN = "controller flatness has no parameter 'method'"
 
 
@@ -78,23 +78,23 @@ def test_compare_lists_a_controller_parameter_as_applied_only_where_it_acted(
 
     # state_feedback takes it: listed as applied, and in the scenario that ran
     applied, skipped = header(out / "state_feedback" / "scenario.toml")
-    assert 'controller.method = "lqr"' in applied and skipped == []
+    assert 'controller.method = "place"' in applied and skipped == []
     ran = tomllib.loads((out / "state_feedback" / "scenario.toml").read_text())
-    assert ran["controller"] == {"plugin": "state_feedback", "method": "lqr"}
+    assert ran["controller"] == {"plugin": "state_feedback", "method": "place"}
     s = json.loads((out / "state_feedback" / "summary.json").read_text())
-    assert {"key": "controller.method", "value": '"lqr"'} in s["overrides"]["applied"]
+    assert {"key": "controller.method", "value": '"place"'} in s["overrides"]["applied"]
     assert s["overrides"]["not_applied"] == []
 
     # flatness does not: never listed as applied, listed as not applied with the reason
     applied, skipped = header(out / "flatness" / "scenario.toml")
     assert not any(a.startswith("controller.method") for a in applied), applied
-    assert skipped == [f'controller.method = "lqr": {NOT_TAKEN}']
+    assert skipped == [f'controller.method = "place": {NOT_TAKEN}']
     ran = tomllib.loads((out / "flatness" / "scenario.toml").read_text())
     assert ran["controller"] == {"plugin": "flatness"}
     s = json.loads((out / "flatness" / "summary.json").read_text())
     assert "controller.method" not in [a["key"] for a in s["overrides"]["applied"]]
     assert s["overrides"]["not_applied"] == [
-        {"key": "controller.method", "value": '"lqr"', "reason": NOT_TAKEN}]
+        {"key": "controller.method", "value": '"place"', "reason": NOT_TAKEN}]
     saved = json.loads((out / "comparison.json").read_text())
     assert saved["flatness"]["overrides"] == s["overrides"]
 
@@ -102,7 +102,7 @@ def test_compare_lists_a_controller_parameter_as_applied_only_where_it_acted(
     from hilrig.runtime.recording import open_run
     from hilrig.runtime.trials.report import write_report
     report = write_report(open_run(out / "flatness")).read_text()
-    assert f'controller.method = "lqr": {NOT_TAKEN}' in report
+    assert f'controller.method = "place": {NOT_TAKEN}' in report
 
     # and the record is true: without the override flatness runs bit for bit the same, while
     # state_feedback's run changes (the override acted there)
@@ -163,15 +163,15 @@ def test_an_envelope_cell_refuses_an_override_its_controller_cannot_take(tmp_pat
 def test_envelope_plans_each_candidates_overrides(sf_scenario):
     """No runs: the plan the envelope and compare build their candidates from."""
     from hilrig.runtime.scenario import plan_candidates
-    base, plans = plan_candidates(sf_scenario, {"controller.method": "lqr",
+    base, plans = plan_candidates(sf_scenario, {"controller.method": "place",
                                                 "timing.duration": 0.012},
                                   ["state_feedback", "flatness"])
     assert base.duration == 0.012
-    assert plans["state_feedback"].scenario.controller.values["method"] == "lqr"
+    assert plans["state_feedback"].scenario.controller.values["method"] == "place"
     assert plans["state_feedback"].not_applied == []
     assert list(plans["flatness"].overrides) == ["timing.duration", "controller"]
     assert plans["flatness"].not_applied == [
-        {"key": "controller.method", "value": '"lqr"', "reason": NOT_TAKEN}]
+        {"key": "controller.method", "value": '"place"', "reason": NOT_TAKEN}]
     # the candidates are the command's: an override cannot name one
     for k, v in (("controller.plugin", "flatness"), ("controller", {"plugin": "flatness"})):
         with pytest.raises(ScenarioError, match=f"override '{k}': the candidate controllers are "
@@ -195,9 +195,9 @@ def test_envelope_lists_a_controller_parameter_as_not_applied_where_it_cannot_ac
             f"applied to state_feedback") in " ".join(p.stderr.split())
     doc = json.loads(p.stdout)
     assert doc["flatness"]["overrides"]["not_applied"] == [
-        {"key": "controller.method", "value": '"lqr"', "reason": NOT_TAKEN}]
+        {"key": "controller.method", "value": '"place"', "reason": NOT_TAKEN}]
     assert "controller.method" not in [a["key"] for a in doc["flatness"]["overrides"]["applied"]]
-    assert {"key": "controller.method", "value": '"lqr"'} in \
+    assert {"key": "controller.method", "value": '"place"'} in \
         doc["state_feedback"]["overrides"]["applied"]
     assert doc["state_feedback"]["overrides"]["not_applied"] == []
     # a worst cell's rerun command gives its controller only what it takes (at 300 kW the
@@ -211,5 +211,5 @@ def test_envelope_lists_a_controller_parameter_as_not_applied_where_it_cannot_ac
         assert cli.main(words[1:] + ["--out", str(tmp_path / c), "--headless"]) in (0, 1)
         s = json.loads((tmp_path / c / "summary.json").read_text())
         assert s["controller"] == c and s["overrides"]["not_applied"] == []
-        assert ({"key": "controller.method", "value": '"lqr"'} in s["overrides"]["applied"]) \
+        assert ({"key": "controller.method", "value": '"place"'} in s["overrides"]["applied"]) \
             == (c == "state_feedback")

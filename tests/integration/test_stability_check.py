@@ -1,8 +1,8 @@
 """The stability check before run, compare and envelope (runtime/analysis/check.py): a notice at
 an unstable start, none at a stable one, and --strict makes it an error before anything runs.
 
-The unstable start: state_feedback's default design (400 V, 50 kW) on the demo plant started
-at 200 V with 100 kW, where the linearised loop's largest closed-loop |z| is above 1 (the map of
+The unstable start: state_feedback's declared design (400 V, 50 kW; held_point's scenarios say
+``[design] defaults = "declared"``) on the demo plant started at 200 V with 100 kW, where the linearised loop's largest closed-loop |z| is above 1 (the map of
 docs/analysis.md; checked here with the analysis itself and by the run's own outcome).
 """
 from pathlib import Path

@@ -56,6 +56,13 @@ plugin = "{plant}"
 {plant_values}
 [controller]
 plugin = "cascaded_pi"
+[design]
+# the trials were set up on the declared gains and the fixed shaping (a designed controller
+# holds some of them)
+defaults = "declared"
+[shaping]
+pole = "7500 rad/s"
+slew_rate = "200 kV/s"
 [reference]
 plugin = "profile"
 points = {points}

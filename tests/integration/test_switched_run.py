@@ -45,8 +45,12 @@ def runs(tmp_path_factory):
     avg_path = tmp / "averaged.toml"
     avg_path.write_text(head + '[plant]\nplugin = "two_stage_lc"\nL1 = "150 uH"\nR1 = "5 mohm"\n\n'
                         "[controller]" + rest)
-    averaged = open_run(run_scenario(load_scenario(avg_path), tmp / "avg").folder)
-    ideal = open_run(run_scenario(load_scenario(SCENARIO, overrides={"plant.t_dead": "0 s"}),
+    # the same controller on every plant: the switched run's (designed for its plant) given to
+    # the others, which would otherwise be designed for their own
+    same = {f"controller.{k}": v for k, v in first.summary["controller_values"].items()}
+    averaged = open_run(run_scenario(load_scenario(avg_path, overrides=same), tmp / "avg").folder)
+    ideal = open_run(run_scenario(load_scenario(SCENARIO, overrides={"plant.t_dead": "0 s",
+                                                                     **same}),
                                   tmp / "no_dead_time").folder)
     return sc, first, again, averaged, ideal
 
