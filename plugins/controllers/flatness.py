@@ -137,7 +137,7 @@ from math import comb
 import numpy as np
 from numba import njit
 
-from hilrig.plugins.base import Declaration, Param, Signal
+from hilrig.plugins.base import Declaration, Param, Signal, Tunable
 
 # indices into p
 (TS, ORDER, L1, R1, C1, L2, R2, C2, K0, K1, K2, K3, KI, V_DC, V_GUARD, U_GAIN, E_BAND) = range(17)
@@ -254,6 +254,7 @@ DECLARATION = Declaration(
            "Isidori, Nonlinear Control Systems, 3rd ed., 1995, ch. 4 (input-output "
            "linearisation); Astrom & Hagglund, Advanced PID Control, 2006, sec. 3.5 (anti-windup)",
     build=_build,
+    tunable=(Tunable("pole", 100.0, 1e5),),
     design=_design,
     design_method="error pole p = 0.25 / Ts (then 0.15 / Ts, 0.35 / Ts), the first whose worst "
                   "largest closed-loop |z| over the design range is below the target",

@@ -110,7 +110,7 @@ import scipy.signal
 from numba import njit
 
 from hilrig.plugins.base import (BuildContext, ChoiceParam, Declaration, Param, Signal,
-                                 TableParam, table_array)
+                                 TableParam, Tunable, table_array)
 
 #: the controller's reads, in the order of y
 READS = ("v_out", "i_out", "i_L1", "v_C1", "i_L2")
@@ -350,6 +350,10 @@ DECLARATION = Declaration(
            "Control, 1975 (weights); Astrom & Hagglund, Advanced PID Control, 2006, sec. 3.5 "
            "(anti-windup)",
     build=_build,
+    # tuning moves the LQR weights (the method the design chooses first); with method = "place"
+    # they have no effect: tune omega_c with --params omega_c:LOW:HIGH then
+    tunable=(Tunable("lqr_dv", 1e-3, 1e3), Tunable("lqr_di", 1e-2, 1e4),
+             Tunable("lqr_dxi", 1e-7, 1.0), Tunable("lqr_du", 0.1, 1e4)),
     design=_design,
     design_method="design point and method chosen from the design range: LQR (Bryson's rule "
                   "weights) or Bessel pole placement, at the range's middle or its hardest "

@@ -152,6 +152,9 @@ def worst_at(prep, kern, points, movable: bool = False) -> tuple[float, list[flo
             zs.append(float(z) if math.isfinite(z) else None)
         except (AnalysisError, np.linalg.LinAlgError, ValueError, ArithmeticError):
             zs.append(None)
+        except Exception:  # noqa: BLE001 - a plugin's kernel that fails otherwise (a typing
+            # mistake): the point counts as failed; the loop reports the mistake itself
+            zs.append(None)
     worst = max((PENALTY if z is None else z) for z in zs) if zs else PENALTY
     return float(worst), zs
 
@@ -472,8 +475,10 @@ def shaping_from_plant(prep, rng: DesignRange) -> dict[str, Any]:
             mg = point.margins(m)
             fs = [g["f_hz"] for g in mg.get("gain_crossovers") or [] if g["f_hz"] > 0]
             f_gc = max(fs) if fs else None
-        except (AnalysisError, np.linalg.LinAlgError, ValueError, ArithmeticError) as exc:
-            out["notes"].append(f"pole: no loop model at the range's centre ({exc})")
+        except Exception as exc:  # noqa: BLE001 - a plugin's own kernels may fail any way;
+            # the loop's first call reports a kernel mistake as one clear error later
+            out["notes"].append(f"pole: no loop model at the range's centre "
+                                f"({type(exc).__name__}: {str(exc).splitlines()[0][:200]})")
         if f_gc is None:
             out["pole_rad_s"] = min(SHAPING["pole"][1], cap)
             out["notes"].append(f"pole: no gain crossover; the fixed {out['pole_rad_s']:g} rad/s")

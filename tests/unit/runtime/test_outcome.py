@@ -29,6 +29,12 @@ from tests.unit.safety.test_caution import LOW_48V
 #: detuned PI stays under 23 A and completes (with a large overshoot: the larger IAE).
 TRIP_48V = LOW_48V.replace('plugin = "cascaded_pi"\n',
                            'plugin = "cascaded_pi"\nKp_v = 1.0\nKi_v = 1500.0\nC_ff = 0.0\n') + """
+# the trial was set up on the declared numbers and the fixed reference shaping
+[design]
+defaults = "declared"
+[shaping]
+pole = "7500 rad/s"
+slew_rate = "200 kV/s"
 [[interlocks]]
 signal = "i_L1"
 above = "23 A"

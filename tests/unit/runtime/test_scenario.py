@@ -449,7 +449,9 @@ def test_defaults_fill_in_and_text_is_kept():
     assert (sc.mode, sc.seed, sc.title, sc.demo_data) == ("sil", 0, "", False)
     # the defaults declared by the format and by each plugin, converted to SI
     assert (sc.Ts, sc.substeps, sc.duration) == tuple(TIMING[k][1] for k in ("Ts", "substeps", "duration"))
-    assert sc.shaping == {k: v[1] for k, v in SHAPING.items()}
+    # pole and slew rate "auto": derived from the plant when prepared; these numbers stand in
+    assert sc.shaping == {**{k: v[1] for k, v in SHAPING.items()},
+                          "from_plant": ["pole", "slew_rate"]}
     assert (sc.v_collapse, sc.safe_u) == (LIMITS["v_collapse"][1], LIMITS["safe_u"][1])
     assert sc.recording == {"chunk": RECORDING["chunk"][1], "compression": "none"}
     for choice, name in ((sc.plant, "two_stage_lc"), (sc.controller, "cascaded_pi"),
