@@ -90,6 +90,39 @@ def movable_poles(m: LoopModel) -> tuple[float, float]:
     return (float(mov.max()) if mov.size else 0.0), (float(fix.max()) if fix.size else 0.0)
 
 
+#: the loop-gain perturbations of guarded_radius: +-3 dB of gain and +-20 degrees of phase
+#: (the stability check's margin thresholds, runtime/analysis/check.py)
+GUARD_GAINS = (10 ** (-3 / 20), 10 ** (3 / 20), np.exp(1j * np.radians(20.0)),
+               np.exp(-1j * np.radians(20.0)))
+
+
+def guarded_radius(m: LoopModel, gains=GUARD_GAINS) -> float:
+    """The largest closed-loop |z| (of the poles that feedback moves) over the loop with its
+    gain multiplied by 1 and by each of ``gains``: Acl(g) = Ao + g Bo Co. All inside the unit
+    circle for g = 10^(+-3/20) and e^(+-j 20 deg) means a gain margin of at least 3 dB either
+    way and a phase margin of at least 20 degrees at every crossover (a complex gain e^(j phi)
+    rotates the Nyquist curve by phi: the loop stays stable for every rotation up to the phase
+    margin; Astrom & Murray, Feedback Systems, 2008, sec. 9.3, from memory). A search that
+    minimises this cannot buy a fast decay with a loop on the edge of its margins."""
+    top = movable_poles(m)[0]
+    if not m.Acl.size:
+        return top
+    nz = m.Ao.shape[0] - m.Ac.shape[0]
+    ol = np.linalg.eigvals(m.Ao[:nz, :nz]) if nz else np.zeros(0)
+    BC = m.Bo @ m.Co
+    for g in gains:
+        cl = np.linalg.eigvals(m.Ao + g * BC)
+        keep = np.ones(cl.size, dtype=bool)
+        for w in ol:  # the fixed modes, as in movable_poles
+            d = np.abs(cl - w)
+            j = int(np.argmin(d)) if d.size else -1
+            if j >= 0 and keep[j] and d[j] <= FIXED_MODE_TOL * max(1.0, abs(w)):
+                keep[j] = False
+        if np.any(keep):
+            top = max(top, float(np.max(np.abs(cl[keep]))))
+    return top
+
+
 def _response(A, B, C, D, theta: np.ndarray) -> np.ndarray:
     """C (e^{j theta} I - A)^-1 B + D for SISO (first input, first output), vectorised."""
     n = A.shape[0]

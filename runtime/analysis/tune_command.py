@@ -34,6 +34,9 @@ def add_parser(sub) -> None:
     p.add_argument("--no-confirm", action="store_true",
                    help="skip the SIL confirmation before and after (envelopes and ramps; the "
                         "analysis only)")
+    p.add_argument("--unguarded", action="store_true",
+                   help="minimise the plain worst |z| (default: guarded, the loop also stable "
+                        "with its gain off by 3 dB and its phase by 20 degrees)")
     p.add_argument("--cluster", metavar="ADDRESS",
                    help="run the confirming envelopes on this Dask scheduler (as envelope "
                         "--cluster); the search runs on local processes")
@@ -133,9 +136,13 @@ def run(console, args, plain: bool, overrides: dict[str, Any]) -> int:
         f"{pr[0] / 1e3:.6g}..{pr[1] / 1e3:.6g} kW ({len(gv)} x {len(gp)} points)")
     t0 = time.perf_counter()
     res = tmod.tune(prep, tunables, gv, gp, starts=args.starts, workers=workers,
-                    progress=None if args.json else say)
+                    progress=None if args.json else say, guard=not args.unguarded)
+    ob = res.checks["objective"]
     say(f"worst closed-loop |z| over the grid: {res.before_worst:.4f} before, "
-        f"{res.after_worst:.4f} tuned ({res.evaluations} evaluations, {res.search_s:.1f} s)")
+        f"{res.after_worst:.4f} tuned; " + ("with the gain off by 3 dB and the phase by "
+                                            "20 deg: " if ob["guarded"] else "searched: ")
+        + f"{ob['before']:.4f} before, {ob['tuned']:.4f} tuned ({res.evaluations} "
+        f"evaluations, {res.search_s:.1f} s)")
     # the scenario with the tuned values, as text: what the maps, envelope and snippet run
     sets = {f"controller.{t.name}": float(res.after[t.name]) for t in tunables}
     before_text = sc.text if not args.controller else parse_scenario(
@@ -187,6 +194,17 @@ def run(console, args, plain: bool, overrides: dict[str, Any]) -> int:
         ramps = None
     wall = time.perf_counter() - t0
     snippet = res.snippet(ref)
+    # the SIL confirmation has the last word: a tuned set that tracks at fewer cells than the
+    # scenario's own, or fails the ramp the scenario's own finishes, is not recommended
+    rejected = []
+    if ecount:
+        nb = ecount.get(labels["before"], {}).get("tracks", 0)
+        na = ecount.get(labels["after"], {}).get("tracks", 0)
+        if na < nb:
+            rejected.append(f"the tuned set tracks at {na} envelope cells, the scenario's own at {nb}")
+    if ramps and ramps["before"]["completed"] and not ramps["after"]["completed"]:
+        rejected.append(f"the tuned set does not finish the ramp ({ramps['after']['outcome']}); "
+                        f"the scenario's own does")
     result = dict(
         scenario=str(path), controller=name, parameters=[dataclass_dict(t) for t in tunables],
         range=dict(v_lo_V=vr[0], v_hi_V=vr[1], p_lo_W=pr[0], p_hi_W=pr[1]),
@@ -194,16 +212,21 @@ def run(console, args, plain: bool, overrides: dict[str, Any]) -> int:
         before=plain_values({t.name: res.before[t.name] for t in tunables}),
         tuned=plain_values({t.name: res.after[t.name] for t in tunables}),
         worst_pole_abs=dict(before=res.before_worst, tuned=res.after_worst),
+        objective=res.checks["objective"],
         stability_map={k: mcount.get(v, {}) for k, v in labels.items()},
         envelope={k: ecount.get(v, {}) for k, v in labels.items()} if ecount else None,
         ramp=ramps,
         margins=res.checks, starts=res.starts, evaluations=res.evaluations,
-        search_s=res.search_s, seconds=wall, snippet=snippet)
+        search_s=res.search_s, seconds=wall, snippet=snippet, guarded=not args.unguarded,
+        confirmed=None if args.no_confirm else not rejected, rejected_because=rejected)
     out.mkdir(parents=True, exist_ok=True)
-    (out / "tuned.toml").write_text(snippet)
+    wrote = []
+    if not rejected:
+        (out / "tuned.toml").write_text(snippet)
+        wrote.append(out / "tuned.toml")
     (out / "tune.json").write_text(json.dumps(_plain(result), indent=1) + "\n")
     gmod.write_csv(mrows, out / "map.csv")
-    wrote = [out / "tuned.toml", out / "tune.json", out / "map.csv"]
+    wrote += [out / "tune.json", out / "map.csv"]
     if erows:
         env.write_csv(erows, out / "envelope.csv")
         wrote.append(out / "envelope.csv")
@@ -219,7 +242,7 @@ def run(console, args, plain: bool, overrides: dict[str, Any]) -> int:
     wrote.append(_report(out / "report.md", result, wrote))
     if args.json:
         print(json.dumps(_plain(result), indent=1))
-        return 0
+        return 1 if rejected else 0
     console.print(escape(f"stability map (analysis): before {_counts(mcount.get(labels['before']))}; "
                          f"tuned {_counts(mcount.get(labels['after']))}"), soft_wrap=True)
     if ecount:
@@ -236,11 +259,18 @@ def run(console, args, plain: bool, overrides: dict[str, Any]) -> int:
             f"margin {_f(ma['gain_margin_db'], ' dB')}, phase margin "
             f"{_f(ma['phase_margin_deg'], ' deg')}, Middlebrook margin "
             f"{_f(ma['middlebrook_margin_db'], ' dB')}"), soft_wrap=True)
-    console.print("tuned set for the scenario:")
-    console.print(snippet, markup=False, highlight=False)
+    if rejected:
+        console.print(escape("REJECTED by the SIL confirmation: " + "; ".join(rejected)
+                             + ". The tuned set is not recommended (tuned.toml not written; "
+                             "tune.json keeps it). Try a narrower range, more starts, or the "
+                             "scenario's own values."), soft_wrap=True)
+    else:
+        console.print("tuned set for the scenario" + (" (analysis only, not confirmed in SIL)"
+                                                      if args.no_confirm else "") + ":")
+        console.print(snippet, markup=False, highlight=False)
     console.print(escape(f"{wall:.1f} s; wrote " + ", ".join(str(w) for w in wrote)),
                   soft_wrap=True)
-    return 0
+    return 1 if rejected else 0
 
 
 #: the confirming ramp: a hold, then the ramp over the range, then a hold [s]
@@ -327,6 +357,9 @@ def _report(dest: Path, r: dict[str, Any], wrote: list[Path]) -> Path:
     for s in r["starts"]:
         lines.append(f"- {s['grid_worst_pole_abs']}: margins "
                      f"{'met' if s['margins_ok'] else 'NOT met'}")
+    if r.get("rejected_because"):
+        lines += ["", "**REJECTED by the SIL confirmation**: " + "; ".join(r["rejected_because"])
+                  + ". The set below is not recommended."]
     lines += ["", "Tuned set for the scenario:", "", "```toml", r["snippet"].rstrip(), "```", "",
               "Files: " + ", ".join(p.name for p in wrote), "",
               "The analysis is linear (small deviations around each operating point); the SIL "

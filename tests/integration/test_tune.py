@@ -92,9 +92,10 @@ def test_user_plugin_reaches_the_deadbeat_gains(tmp_path, capsys):
     (worked out from the ZOH model, module docstring), and scipy.optimize agrees."""
     f = _first_order(tmp_path)
     out = tmp_path / "t"
+    # unguarded: the plain worst |z|, whose optimum is the deadbeat design
     rc = cli.main(["tune", str(f), "--params", "Kp:0.1:100,Ki:10:1e6", "--v-range", "1:2",
                    "--p-range", "0:0", "--grid", "2x1", "--starts", "2", "--workers", "1",
-                   "--no-confirm", "--headless", "--out", str(out)])
+                   "--no-confirm", "--unguarded", "--headless", "--out", str(out)])
     text = capsys.readouterr().out
     assert rc == 0, text
     res = json.loads((out / "tune.json").read_text())
@@ -109,7 +110,7 @@ def test_user_plugin_reaches_the_deadbeat_gains(tmp_path, capsys):
     sc = parse_scenario(f.read_text(), name="first_order.toml", path=str(f))
     prep = prepare(sc)
     tun = [Tunable("Kp", 0.1, 100.0), Tunable("Ki", 10.0, 1e6)]
-    obj = tmod.objective(prep, tun, (1.0, 2.0), (0.0,))
+    obj = tmod.objective(prep, tun, (1.0, 2.0), (0.0,), guard=False)
     r = scipy.optimize.minimize(lambda z: obj(np.exp(z)), np.log([5.0, 5e4]),
                                 method="Nelder-Mead",
                                 options=dict(xatol=1e-6, fatol=1e-9, maxfev=2000))
@@ -120,6 +121,39 @@ def test_user_plugin_reaches_the_deadbeat_gains(tmp_path, capsys):
     # the snippet is TOML for the scenario's [controller], with the tuned numbers
     snip = tomllib.loads((out / "tuned.toml").read_text())
     assert snip["controller"]["Kp"] == pytest.approx(res["tuned"]["Kp"], rel=1e-12)
+
+
+def test_the_guarded_search_keeps_margins_and_agrees_with_scipy(tmp_path, capsys):
+    """Guarded (the default): the deadbeat gains, with no margin to spare, are not the optimum
+    any more; the tuned loop keeps 3 dB of gain and 20 degrees of phase margin (checked with
+    python-control's stability_margins on the linearised loop), and scipy.optimize minimising
+    the same guarded objective from another start ends at the same value."""
+    import control
+    import scipy.optimize
+    f = _first_order(tmp_path)
+    out = tmp_path / "t"
+    rc = cli.main(["tune", str(f), "--params", "Kp:0.1:100,Ki:10:1e6", "--v-range", "1:2",
+                   "--p-range", "0:0", "--grid", "2x1", "--starts", "2", "--workers", "1",
+                   "--no-confirm", "--headless", "--out", str(out)])
+    assert rc == 0, capsys.readouterr().out
+    res = json.loads((out / "tune.json").read_text())
+    assert res["guarded"] and res["objective"]["guarded"]
+    kp, ki = res["tuned"]["Kp"], res["tuned"]["Ki"]
+    assert abs(kp / _deadbeat()[0] - 1.0) > 0.05          # not the deadbeat design
+    sc = parse_scenario(f.read_text(), name="first_order.toml", path=str(f),
+                        overrides={"controller.Kp": kp, "controller.Ki": ki})
+    from hilrig.runtime.analysis import linear
+    m = linear.linearize(prepare(sc), 1.0, 0.0)
+    # the loop gain L = -Co (zI - Ao)^-1 Bo as a python-control system; its margins
+    gm, pm = control.stability_margins(control.ss(m.Ao, m.Bo, -m.Co, 0, m.Ts))[:2]
+    assert (math.isinf(gm) or 20 * math.log10(gm) >= 3.0 - 1e-6) and pm >= 20.0 - 1e-3, (gm, pm)
+    tun = [Tunable("Kp", 0.1, 100.0), Tunable("Ki", 10.0, 1e6)]
+    obj = tmod.objective(prepare(parse_scenario(f.read_text(), name="first_order.toml",
+                                                path=str(f))), tun, (1.0, 2.0), (0.0,))
+    r = scipy.optimize.minimize(lambda z: obj(np.exp(z)), np.log([5.0, 5e4]),
+                                method="Nelder-Mead",
+                                options=dict(xatol=1e-6, fatol=1e-9, maxfev=2000))
+    assert r.fun == pytest.approx(res["objective"]["tuned"], abs=2e-3)
 
 
 def test_tuning_the_800V_plant_where_the_demo_gains_fail(tmp_path, capsys):
@@ -137,7 +171,8 @@ def test_tuning_the_800V_plant_where_the_demo_gains_fail(tmp_path, capsys):
     name = "cascaded_pi"
     assert res["controller"] == name
     assert res["worst_pole_abs"]["before"] > 1.0
-    assert res["worst_pole_abs"]["tuned"] < 0.97
+    assert res["worst_pole_abs"]["tuned"] < 0.98
+    assert res["confirmed"] is True and res["rejected_because"] == []
     assert res["stability_map"]["before"].get("unstable", 0) == 9
     assert res["stability_map"]["after"].get("stable", 0) == 9
     assert res["envelope"]["before"].get("tracks", 0) <= 1
@@ -193,7 +228,8 @@ def test_tuning_the_demo_keeps_its_tracked_region(tmp_path, capsys):
     text = capsys.readouterr().out
     assert rc == 0, text
     res = json.loads((out / "tune.json").read_text())
-    assert res["worst_pole_abs"]["tuned"] <= res["worst_pole_abs"]["before"] + 1e-9
+    # the search's own (guarded) measure does not get worse; the nominal |z| may, for margin
+    assert res["objective"]["tuned"] <= res["objective"]["before"] + 1e-9
     before = res["envelope"]["before"].get("tracks", 0)
     after = res["envelope"]["after"].get("tracks", 0)
     assert after >= before, (before, after)
