@@ -244,11 +244,20 @@ def tune(prep, tunables: list[Tunable], grid_v, grid_p, *, starts: int = STARTS,
     for e in ends:
         e["margins"] = _margins_at(prep, ctx, e["values"], e["worst_point"])
         e["margins_ok"] = _margins_ok(e["margins"])
-    ends.sort(key=lambda e: (not e["margins_ok"], e["grid_worst"]))
+    # nominally unstable somewhere on the grid: last (the guarded measure can stay above 1
+    # where no set holds the margins, and then prefer a set that is not even stable)
+    for e in ends:
+        e["nominal"], _ = scorer.score(e["values"], full, movable=False)
+    ends.sort(key=lambda e: (e["nominal"] >= 1.0, not e["margins_ok"], e["grid_worst"]))
     best = ends[0]
     after = dict(before)
     after.update({t.name: float(best["values"][t.name]) for t in tunables})
     after_worst, _ = scorer.score(after, full, movable=False)
+    b_obj, _ = scorer.score(before, full, movable=True)
+    a_obj, _ = scorer.score(after, full, movable=True)
+    if (after_worst >= 1.0 > before_worst) or a_obj > b_obj:
+        # nothing better than the scenario's own: keep it
+        after, after_worst = dict(before), before_worst
     # the search's own measure (guarded, of the poles feedback moves) before and after
     before_obj, _ = scorer.score(before, full, movable=True)
     after_obj, _ = scorer.score(after, full, movable=True)

@@ -163,6 +163,12 @@ def _controller_section(s: dict) -> list[str]:
                  f"{_metric(g.get('worst_pole_abs'))}"
                  + (" (stable over the range)." if des.get("stable_over_range")
                     else " (NOT stable over the whole range)."))
+        mg = des.get("margins") or {}
+        if mg.get("points_short_of_margin"):
+            L.append("")
+            L.append(f"Margins: less than {mg['gain_db']:g} dB of gain or {mg['phase_deg']:g} "
+                     f"degrees of phase margin at {mg['points_short_of_margin']} of "
+                     f"{g.get('n', '?')} points of the range (`hilrig tune` searches for margin).")
         L.append("")
     elif des and des.get("note"):
         L += [f"Design: none ({des['note']}).", ""]
