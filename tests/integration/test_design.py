@@ -323,7 +323,7 @@ def test_the_declared_cascaded_pi_gains_are_unstable_somewhere_on_these_plants(p
 
 DESIGN_KEYS = {"controller", "method", "defaults", "range", "range_from", "given", "designed",
                "candidates", "search", "worst_pole_abs", "fixed_modes_abs", "grid",
-               "stable_over_range", "values", "seconds", "cached"}
+               "stable_over_range", "values", "seconds", "cached", "margins"}
 
 
 def test_a_runs_summary_keeps_the_design_the_values_and_the_stability_check(tmp_path, capsys):
@@ -337,6 +337,10 @@ def test_a_runs_summary_keeps_the_design_the_values_and_the_stability_check(tmp_
     assert set(d) == DESIGN_KEYS, set(d) ^ DESIGN_KEYS
     assert set(d["range"]) == {"v_lo_V", "v_hi_V", "p_lo_W", "p_hi_W"}
     assert set(d["grid"]) == {"n", "worst_pole_abs", "unstable_or_none"}
+    assert set(d["margins"]) == {"guarded_worst_pole_abs", "points_short_of_margin", "gain_db",
+                                 "phase_deg"}
+    # the demo plant's design keeps 3 dB / 20 degrees of margin over its whole range
+    assert d["margins"]["points_short_of_margin"] == 0 and d["margins"]["guarded_worst_pole_abs"] < 1
     assert all(set(c) == {"values", "worst_pole_abs"} for c in d["candidates"])
     assert d["controller"] == "cascaded_pi" and d["stable_over_range"] is True
     assert d["range"] == dict(v_lo_V=300.0, v_hi_V=500.0, p_lo_W=-40e3, p_hi_W=80e3)
