@@ -250,6 +250,19 @@ def tune(prep, tunables: list[Tunable], grid_v, grid_p, *, starts: int = STARTS,
         e["nominal"], _ = scorer.score(e["values"], full, movable=False)
     ends.sort(key=lambda e: (e["nominal"] >= 1.0, not e["margins_ok"], e["grid_worst"]))
     best = ends[0]
+    if guard and not best["grid_worst"] < 1.0:
+        # no set found keeps the margins at every point (the guarded |z| stays above 1): the
+        # guarded optimum then need not even be stable; tune for the plain |z| instead, and say so
+        if progress:
+            progress("search: no set keeps 3 dB / 20 deg of margin over the grid; searching "
+                     "the plain worst |z| instead")
+        res = tune(prep, tunables, grid_v, grid_p, starts=starts, workers=workers,
+                   progress=progress, guard=False)
+        res.checks["objective"]["fallback"] = ("no set keeps 3 dB of gain and 20 degrees of "
+                                               "phase margin at every point: tuned for the "
+                                               "plain worst |z|")
+        res.evaluations += evals
+        return res
     after = dict(before)
     after.update({t.name: float(best["values"][t.name]) for t in tunables})
     after_worst, _ = scorer.score(after, full, movable=False)

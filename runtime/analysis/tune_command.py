@@ -138,6 +138,8 @@ def run(console, args, plain: bool, overrides: dict[str, Any]) -> int:
     res = tmod.tune(prep, tunables, gv, gp, starts=args.starts, workers=workers,
                     progress=None if args.json else say, guard=not args.unguarded)
     ob = res.checks["objective"]
+    if ob.get("fallback"):
+        say("notice: " + ob["fallback"])
     say(f"worst closed-loop |z| over the grid: {res.before_worst:.4f} before, "
         f"{res.after_worst:.4f} tuned; " + ("with the gain off by 3 dB and the phase by "
                                             "20 deg: " if ob["guarded"] else "searched: ")

@@ -234,3 +234,31 @@ def test_tuning_the_demo_keeps_its_tracked_region(tmp_path, capsys):
     after = res["envelope"]["after"].get("tracks", 0)
     assert after >= before, (before, after)
     assert after >= 8, res["envelope"]
+
+
+def test_where_no_set_keeps_the_margins_the_search_falls_back_to_the_plain_measure(
+        tmp_path, capsys):
+    """The demo plant with small capacitors (C1 47 uF, C2 100 uF; demo data): no cascaded PI
+    keeps 3 dB / 20 degrees of margin over 300-500 V, -40..80 kW (the guarded optimum is
+    unstable at some points); the search says so and tunes the plain worst |z|, which is stable
+    at every point. From the declared numbers (unstable at every point there)."""
+    text = P800.replace('V_dc = "1000 V"', 'V_dc = "800 V"').replace(
+        'L1 = "400 uH"', 'L1 = "150 uH"').replace('R1 = "10 mohm"', 'R1 = "5 mohm"').replace(
+        'C1 = "100 uF"', 'C1 = "47 uF"').replace('L2 = "250 uH"', 'L2 = "100 uH"').replace(
+        'R2 = "8 mohm"', 'R2 = "3 mohm"').replace('C2 = "220 uF"', 'C2 = "100 uF"').replace(
+        'v_range = ["500 V", "900 V"]', 'v_range = ["300 V", "500 V"]').replace(
+        'p_range = ["-75 kW", "150 kW"]', 'p_range = ["-40 kW", "80 kW"]').replace(
+        'points = [[0, "700 V"]]', 'points = [[0, "400 V"]]')
+    f = tmp_path / "small_c.toml"
+    f.write_text(text)
+    out = tmp_path / "t"
+    rc = cli.main(["tune", str(f), "--grid", "3x3", "--starts", "2", "--workers", "2",
+                   "--no-confirm", "--headless", "--out", str(out)])
+    printed = capsys.readouterr().out
+    assert rc == 0, printed
+    res = json.loads((out / "tune.json").read_text())
+    assert "plain worst |z|" in res["objective"].get("fallback", ""), res["objective"]
+    assert "no set keeps 3 dB" in printed
+    assert res["worst_pole_abs"]["before"] > 1.0
+    assert res["worst_pole_abs"]["tuned"] < 1.0
+    assert res["stability_map"]["after"].get("stable", 0) == 9
