@@ -11,9 +11,10 @@
    design candidates, and seeded random perturbations of them. The search starts on the
    grid's corners and centre; a grid point worse than those joins them and the search goes on.
    A user's plugin with no model written is linearised numerically from its compiled ``step``.
-2. **Ranking.** Each start's result is checked on the whole grid; results whose worst point has
-   the gain and phase margins of the stability check (runtime/analysis/check.py) come first,
-   then by their worst |z|. The winner's margins and the Middlebrook ratio of its output
+2. **Ranking.** Each start's result is checked on the whole grid; results stable at every
+   point come first, then those whose worst point has the gain and phase margins of the
+   stability check (runtime/analysis/check.py), then those whose output impedance stays below
+   the load's there (Middlebrook's criterion), then by their worst |z|. The winner's margins and the Middlebrook ratio of its output
    impedance to the load's are reported at the grid's hardest point.
 3. **Confirmation (compiled simulation).** The stability map (analysis) and the envelope (SIL:
    a step from the start voltage to every point of the grid, with the start excitation of the
@@ -248,7 +249,10 @@ def tune(prep, tunables: list[Tunable], grid_v, grid_p, *, starts: int = STARTS,
     # where no set holds the margins, and then prefer a set that is not even stable)
     for e in ends:
         e["nominal"], _ = scorer.score(e["values"], full, movable=False)
-    ends.sort(key=lambda e: (e["nominal"] >= 1.0, not e["margins_ok"], e["grid_worst"]))
+    # then the output impedance against the load's at the hardest point (Middlebrook: a margin
+    # that holds whatever the load's dynamics), then the measure itself
+    ends.sort(key=lambda e: (e["nominal"] >= 1.0, not e["margins_ok"],
+                             not e["margins"].get("middlebrook_met", False), e["grid_worst"]))
     best = ends[0]
     if guard and not best["grid_worst"] < 1.0:
         # no set found keeps the margins at every point (the guarded |z| stays above 1): the
@@ -284,7 +288,9 @@ def tune(prep, tunables: list[Tunable], grid_v, grid_p, *, starts: int = STARTS,
                  starts=[dict(start={t.name: e["start"][t.name] for t in tunables},
                               end={t.name: e["values"][t.name] for t in tunables},
                               grid_worst_pole_abs=e["grid_worst"] if e["grid_worst"] < dmod.PENALTY
-                              else None, margins_ok=e["margins_ok"], margins=e["margins"])
+                              else None, nominal_worst_pole_abs=e["nominal"]
+                              if e["nominal"] < dmod.PENALTY else None,
+                              margins_ok=e["margins_ok"], margins=e["margins"])
                          for e in ends],
                  evaluations=evals, search_s=search_s, checks=checks)
 

@@ -173,6 +173,13 @@ def test_tuning_the_800V_plant_where_the_demo_gains_fail(tmp_path, capsys):
     assert res["worst_pole_abs"]["before"] > 1.0
     assert res["worst_pole_abs"]["tuned"] < 0.98
     assert res["confirmed"] is True and res["rejected_because"] == []
+    # the ends of the starts in their ranked order: stable everywhere first, then the margins,
+    # then Middlebrook's criterion at the hardest point, then the search's measure
+    keys = [(s["nominal_worst_pole_abs"] is None or s["nominal_worst_pole_abs"] >= 1.0,
+             not s["margins_ok"], not s["margins"].get("middlebrook_met", False),
+             s["grid_worst_pole_abs"] if s["grid_worst_pole_abs"] is not None else 5.0)
+            for s in res["starts"]]
+    assert keys == sorted(keys), keys
     assert res["stability_map"]["before"].get("unstable", 0) == 9
     assert res["stability_map"]["after"].get("stable", 0) == 9
     assert res["envelope"]["before"].get("tracks", 0) <= 1
