@@ -130,16 +130,22 @@ def _initial_v_out(sc: Scenario, pp, pr, iyr, n_xr, outputs) -> float:
     return float(w[0])
 
 
+def build_context(sc: Scenario) -> BuildContext:
+    """What the plugins' build hooks see of the scenario (the design range is set later)."""
+    pdecl = sc.plant.plugin.declaration
+    return BuildContext(Ts=sc.Ts, plant=dict(sc.plant.values), plant_name=pdecl.name,
+                        plant_outputs=tuple(s.name for s in pdecl.outputs),
+                        plant_states=tuple(s.name for s in pdecl.states),
+                        plant_module=sc.plant.plugin.module, actuation_delay=sc.actuation_delay)
+
+
 def start_voltage(sc: Scenario) -> float:
     """The run's start voltage [V] (``[initial] v_out``, or the reference at t = 0 with the
     plant settled on it), without preparing the controller."""
     if sc.v_out0 is not None:
         return float(sc.v_out0)
     pdecl = sc.plant.plugin.declaration
-    ctx = BuildContext(Ts=sc.Ts, plant=dict(sc.plant.values), plant_name=pdecl.name,
-                       plant_outputs=tuple(s.name for s in pdecl.outputs),
-                       plant_states=tuple(s.name for s in pdecl.states),
-                       plant_module=sc.plant.plugin.module, actuation_delay=sc.actuation_delay)
+    ctx = build_context(sc)
     outputs = [s.name for s in pdecl.outputs]
     try:
         pp = pdecl.pack(sc.plant.values, ctx)
@@ -222,10 +228,7 @@ def prepare(sc: Scenario) -> Prepared:
     plant, ctrl, ref = sc.plant, sc.controller, sc.reference
     pdecl = plant.plugin.declaration
     outputs = [s.name for s in pdecl.outputs]
-    ctx = BuildContext(Ts=sc.Ts, plant=dict(plant.values), plant_name=pdecl.name,
-                       plant_outputs=tuple(outputs),
-                       plant_states=tuple(s.name for s in pdecl.states),
-                       plant_module=plant.plugin.module, actuation_delay=sc.actuation_delay)
+    ctx = build_context(sc)
     where = Path(sc.path).name if sc.path else "scenario"
 
     def pack(key, choice):

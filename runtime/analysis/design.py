@@ -291,8 +291,8 @@ def _cache_path(key: str) -> Path:
 
 
 def _encode(values: dict[str, Any]) -> dict[str, Any]:
-    return {k: (v if isinstance(v, (str, int, float)) else [list(r) for r in v])
-            for k, v in values.items()}
+    from hilrig.runtime.run import plain_values
+    return plain_values(values)
 
 
 def _decode(values: dict[str, Any], like: dict[str, Any]) -> dict[str, Any]:
@@ -460,10 +460,31 @@ def shaping_from_plant(prep, rng: DesignRange) -> dict[str, Any]:
 
     Where an input is missing (no current limit, no capacitances, no crossover) the fixed
     numbers of ``[shaping]`` stay, and the record says why."""
+    sc = prep.sc
+    # the same inputs give the same shaping: an envelope prepares every cell of a scenario
+    # (same plant, controller, range and limits; only the reference and load differ, which the
+    # derivation does not use), and the loop model at the range's centre costs milliseconds
+    memo_key = (sc.controller.plugin.name, repr(sorted((k, repr(v)) for k, v in
+                                                       sc.controller.values.items())),
+                sc.plant.plugin.name, repr(sorted((k, repr(v)) for k, v in
+                                                  sc.plant.values.items())),
+                sc.Ts, sc.actuation_delay, dataclasses.astuple(rng), _current_limit(sc),
+                repr(sc.shaping), np.asarray(prep.args["iyc"]).tobytes())
+    got = _SHAPING_MEMO.get(memo_key)
+    if got is None:
+        got = _SHAPING_MEMO[memo_key] = _shaping_from_plant(prep, rng)
+    return copy.deepcopy(got)
+
+
+#: shaping_from_plant's results in this process
+_SHAPING_MEMO: dict = {}
+
+
+def _shaping_from_plant(prep, rng: DesignRange) -> dict[str, Any]:
     from hilrig.runtime.scenario import SHAPING
 
     from . import point
-    from .linear import AnalysisError, linearize
+    from .linear import linearize
     sc = prep.sc
     todo = list(sc.shaping.get("from_plant") or [])
     out: dict[str, Any] = dict(order=sc.shaping["order"], pole_rad_s=sc.shaping["pole"],

@@ -149,8 +149,7 @@ def run(console, args, plain: bool, overrides: dict[str, Any]) -> int:
     sets = {f"controller.{t.name}": float(res.after[t.name]) for t in tunables}
     before_text = sc.text if not args.controller else parse_scenario(
         sc.text, name=path.name, path=str(path), overrides={"controller": {"plugin": ref}}).text
-    pinned = {"design.v_range": [f"{sc.design['v_range'][0]!r} V", f"{sc.design['v_range'][1]!r} V"],
-              "design.p_range": [f"{sc.design['p_range'][0]!r} W", f"{sc.design['p_range'][1]!r} W"]}
+    pinned = dmod.pinned_overrides(sc)
     before_text = parse_scenario(before_text, name=path.name, path=str(path),
                                  overrides=pinned).text
     after_text = parse_scenario(before_text, name=path.name, path=str(path), overrides=sets).text
