@@ -651,20 +651,28 @@ def _import_lines(plant: Plugin, ctrl: Plugin, ref: Plugin) -> str:
                 # would be compiled anew into each chunk function of every combination
                 lines.append(f"{tag}_{k} = _{tag}.{k}")
                 continue
+            if getattr(p.module, "NOT_INLINED", False):
+                # a generated plugin of paralleled units (runtime/multi): its kernels already
+                # inline each unit's; inlined again into every chunk function they would
+                # multiply the compile time by the number of those functions
+                lines.append(f"{tag}_{k} = _{tag}.{k}")
+                continue
             # each kernel is inlined into the loop: a call across compiled functions passes
             # every array through reference counting and keeps values out of registers
             lines.append(f"{tag}_{k} = _inline(_{tag}.{k})")
     return "\n".join(lines)
 
 
-def _step_text(nx: int, currents: tuple[int, ...]) -> str:
+def _step_text(nx: int, currents: tuple[int, ...], enables: tuple[int, ...] = ()) -> str:
     """``step``, one RK4 step as the substep loop takes it. For a plant that models blocked
     gates (``GATE_BLOCK_CURRENTS``) a blocked step goes to ``blocked_step``, compiled apart (it
     is rare, and inlining it would multiply the loop's compile time): each current through the
     converter's diodes that reaches zero within the step stops there (the step is redone to
     the crossing, located on the Euler line from the step's start, or else by linear
     interpolation of that current over the RK4 step, the current set to zero, and the rest of
-    the step taken from there, where the plant holds it at zero)."""
+    the step taken from there, where the plant holds it at zero). With ``enables`` (a plant of
+    paralleled units, ``GATE_BLOCK_ENABLE``) each current stops only while the input at its
+    index is not above 0.5 (its unit's gates blocked; the runtime's trip makes it NaN)."""
     if not currents:
         return ('@njit(inline="always")\n'
                 "def step(ta, dt, pp, s, u, d, blocked):\n"
@@ -678,9 +686,15 @@ def _step_text(nx: int, currents: tuple[int, ...]) -> str:
            # almost linearly, and RK4's stages that straddle zero (each on the other diode) can
            # cancel and hide the crossing (the current then hung just above zero)
            "    k1 = plant_derivs(ta, pp, s, u, d)"]
-    for i in currents:
+    for n_i, i in enumerate(currents):
         items = ", ".join("0.0" if j == i else f"sa[{j}]" for j in range(nx))
-        out += [f"    e = s[{i}] + dt * k1[{i}]",
+        pad = ""
+        if enables:
+            # a unit that runs: its current is not stopped
+            out += ["    th = -1.0", f"    if not (u[{enables[n_i]}] > 0.5):"]
+            pad = "    "
+        out += [pad + line for line in [
+                f"    e = s[{i}] + dt * k1[{i}]",
                 f"    if (s[{i}] > 0.0 and not (e > 0.0)) or (s[{i}] < 0.0 and not (e < 0.0)):",
                 f"        th = s[{i}] / (s[{i}] - e)",
                 f"    elif (s[{i}] > 0.0 and not (s1[{i}] > 0.0)) or (s[{i}] < 0.0 and not (s1[{i}] < 0.0)):",
@@ -690,7 +704,7 @@ def _step_text(nx: int, currents: tuple[int, ...]) -> str:
                 "    if th >= 0.0:",
                 "        sa = rk4(ta, th * dt, pp, s, u, d)",
                 f"        sa = ({items},)",
-                "        s1 = rk4(ta + th * dt, (1.0 - th) * dt, pp, sa, u, d)"]
+                "        s1 = rk4(ta + th * dt, (1.0 - th) * dt, pp, sa, u, d)"]]
     out += ["    return s1", "", "",
             '@njit(inline="always")',
             "def step(ta, dt, pp, s, u, d, blocked):",
@@ -707,7 +721,19 @@ def gate_block_currents(plant: Plugin) -> tuple[int, ...]:
     return tuple(int(i) for i in getattr(plant.module, "GATE_BLOCK_CURRENTS", ()))
 
 
-def _rk4_text(nx: int, own_step: bool, fast: bool = False, period: bool = False) -> dict[str, str]:
+def gate_block_enables(plant: Plugin) -> tuple[int, ...]:
+    """For each of ``GATE_BLOCK_CURRENTS``, the input whose value blocks it when not above 0.5
+    (optional ``GATE_BLOCK_ENABLE``: paralleled units, each blocked on its own); empty: the
+    currents stop while the command is NaN (the runtime's trip)."""
+    en = tuple(int(i) for i in getattr(plant.module, "GATE_BLOCK_ENABLE", ()))
+    if en and len(en) != len(gate_block_currents(plant)):
+        raise ValueError(f"plant {plant.name!r}: GATE_BLOCK_ENABLE has {len(en)} entries, "
+                         f"GATE_BLOCK_CURRENTS {len(gate_block_currents(plant))}")
+    return en
+
+
+def _rk4_text(nx: int, own_step: bool, fast: bool = False, period: bool = False,
+              enables: tuple[int, ...] = ()) -> dict[str, str]:
     """The RK4 step, unrolled for nx states (the plant's own ``rk4_step`` if it has one, else
     the generic stages over its ``derivs``), and the body of ``advance``: the substep loop,
     refined where the plant's ``fast_rate`` asks for it (``fast``), else one RK4 step per
@@ -752,13 +778,16 @@ def _rk4_text(nx: int, own_step: bool, fast: bool = False, period: bool = False)
     else:
         step = "        s = step(ta, dt, pp, s, u, d, blocked)"
     x_items = ", ".join(f"x[{i}]" for i in r)
+    # gates blocked: the runtime's trip (every input NaN), or a paralleled unit's own block
+    blocked = (" or ".join(f"not (u[{e}] > 0.5)" for e in dict.fromkeys(enables))
+               if enables else "not (u[0] == u[0])")
     store = "\n".join(f"    x[{i}] = s[{i}]" for i in r)
     if period:
         # the plant integrates the whole period itself (switching instants, its own rule)
         advance = f"    s = plant_advance_period(t, h, pp, ({x_items},), u, d)\n{store}\n    return 0"
     else:
         advance = (f"    dt = h / nsub\n    s = ({x_items},)\n    extra = 0\n"
-                   f"    blocked = not (u[0] == u[0])\n"
+                   f"    blocked = {blocked}\n"
                    f"    for j in range(nsub):\n        ta = t + j * dt\n{step}\n{store}\n"
                    f"    return extra")
     return dict(x_items=x_items, rk4_body=body, fast_step=step, store=store, advance_body=advance)
@@ -842,10 +871,11 @@ def generate(plant: Plugin, ctrl: Plugin, ref: Plugin,
                             run_chunk=sil, paced_chunk=paced,
                             plugins=plugin_ids(plant, ctrl, ref), checked=bool(checked),
                             max_refine=MAX_REFINE,
-                            step_defs=_step_text(nx, gate_block_currents(plant)),
+                            step_defs=_step_text(nx, gate_block_currents(plant),
+                                                 gate_block_enables(plant)),
                             gate_block=bool(gate_block_currents(plant)),
                             **_rk4_text(nx, has_rk4_step(plant), has_fast_rate(plant),
-                                         has_advance_period(plant)))
+                                         has_advance_period(plant), gate_block_enables(plant)))
     if checked:
         text = checked_text(text)
     # write then rename: concurrent workers never import a half-written file, and an existing

@@ -378,7 +378,12 @@ def _start_offset(sc: Scenario, pdecl, v0: float, x0: np.ndarray, where: str) ->
     plant declares no state named ``v_out`` (it then starts exactly at its equilibrium)."""
     off = float(sc.offset_volts(v0))
     names = [s.name for s in pdecl.states]
-    if off == 0.0 or "v_out" not in names:
+    # the states of the output node (paralleled units: the bus, or every unit's output
+    # capacitor where they form one node)
+    moved = getattr(sc.plant.plugin.module, "V_OUT_STATES", None)
+    if moved is None:
+        moved = (names.index("v_out"),) if "v_out" in names else ()
+    if off == 0.0 or not moved:
         return 0.0
     from .scenario import V_OUT_OFFSET_MAX_PCT
     if not abs(off) <= V_OUT_OFFSET_MAX_PCT / 100.0 * abs(v0):
@@ -386,7 +391,8 @@ def _start_offset(sc: Scenario, pdecl, v0: float, x0: np.ndarray, where: str) ->
                             f"{V_OUT_OFFSET_MAX_PCT:g} % of the start voltage {v0:g} V; the "
                             f"excitation is a small offset: use a smaller one, or set "
                             f"initial.v_out to start elsewhere")
-    x0[names.index("v_out")] += off
+    for i in moved:
+        x0[i] += off
     return off
 
 
@@ -789,9 +795,17 @@ class LiveControl:
 
 
 def plain_values(values: dict[str, Any]) -> dict[str, Any]:
-    """Plugin values as JSON-ready data (tables as lists of rows)."""
-    return {k: (v if isinstance(v, (str, int, float, bool)) else [list(r) for r in v])
-            for k, v in values.items()}
+    """Plugin values as JSON-ready data (tables as lists of rows; the values of paralleled
+    units, nested dicts and lists, as the same)."""
+    def plain(v):
+        if isinstance(v, (str, int, float, bool)) or v is None:
+            return v
+        if isinstance(v, dict):
+            return {str(k): plain(w) for k, w in v.items()}
+        if isinstance(v, np.generic):
+            return v.item()
+        return [plain(w) for w in v]
+    return {k: plain(v) for k, v in values.items()}
 
 
 def stability_record(prep: Prepared) -> dict[str, Any]:

@@ -41,7 +41,7 @@ PLANNED_MODES = ("lockstep", "free-running")
 
 TOP_KEYS = {"title", "description", "demo_data", "mode", "seed", "timing", "plant", "controller",
             "reference", "shaping", "load", "limits", "interlocks", "initial", "recording",
-            "faults", "resets", "watchdogs", "paced", "safe_state", "sensors", "design"}
+            "faults", "resets", "watchdogs", "paced", "safe_state", "sensors", "design", "units"}
 #: ``[design] defaults``: designed from the plant, or the plugin's declared numbers
 DESIGN_DEFAULTS = ("plant", "declared")
 DESIGN_DEFAULT = {"v_range": None, "p_range": None, "defaults": "plant"}
@@ -157,6 +157,8 @@ class Scenario:
     #: {"v_range": (lo, hi) V or None, "p_range": (lo, hi) W or None, "defaults": "plant" |
     #: "declared"}; None ranges are derived from the scenario (runtime/analysis/design.py)
     design: dict[str, Any] = field(default_factory=lambda: dict(DESIGN_DEFAULT))
+    #: ``[units]``: paralleled units on one bus (runtime/multi/spec.py UnitsSpec), or None
+    units: Any = None
 
     @property
     def stale_limit_s(self) -> float:
@@ -297,6 +299,18 @@ def parse_scenario(text: str, name: str = "scenario.toml", path: str = "",
                       f"(pole * Ts = {shaping['pole'] * Ts:.2f} > 1); use at most {1.0 / Ts:g} rad/s")
     load_t, load_v = _load(cx, raw)
     limits = _section(cx, raw, "limits", LIMITS)
+    units = None
+    if "units" in raw:
+        # paralleled units: [plant] and [controller] describe each unit; the runtime runs
+        # the generated bus plant and units' controller (runtime/multi)
+        from .loop import cache_dir
+        from .multi import spec as units_spec
+        defaults = {"plant": "two_stage_lc", "controller": "cascaded_pi"}
+        plant, controller, units, _, _ = units_spec.build(
+            cx, raw, plant, controller, Ts, duration, seed, limits["safe_u"],
+            quantity=lambda k, v, u, b, integer=False: _quantity(cx, k, v, u, b, integer=integer),
+            plugin_parse=lambda r, kind, key: _plugin(cx, r, kind, defaults[kind]),
+            folder=cache_dir())
     interlocks = _interlocks(cx, raw, plant, controller)
     v_out0, v_out_offset = _initial(cx, raw)
     faults = _faults(cx, raw, plant, duration, Ts)
@@ -318,7 +332,7 @@ def parse_scenario(text: str, name: str = "scenario.toml", path: str = "",
                     v_out_offset=v_out_offset,
                     recording=recording, faults=faults, resets=resets, watchdogs=watchdogs,
                     paced=paced, integration=integration, actuation_delay=delay,
-                    safe_state=safe_state, sensors=sensors, design=design,
+                    safe_state=safe_state, sensors=sensors, design=design, units=units,
                     overrides={"applied": [{"key": k, "value": _inline(v)}
                                            for k, v in (overrides or {}).items()],
                                "not_applied": [dict(d) for d in not_applied or []]})

@@ -85,6 +85,10 @@ def _clamp_u(p, u):
     return uc
 
 
+#: the output node, for paralleled units (runtime/multi): the state that is the output
+#: capacitor's voltage, and the parameter that is its capacitance
+OUTPUT_NODE = (1, "C")
+
 #: the state that is the current through the converter's switches: with the gates blocked
 #: (u NaN) it flows through a diode and stops at zero (runtime/loop.py ``step``)
 GATE_BLOCK_CURRENTS = (0,)

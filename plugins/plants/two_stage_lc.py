@@ -97,6 +97,10 @@ DECLARATION = Declaration(
 )
 
 
+#: the output node, for paralleled units (runtime/multi): the state that is the output
+#: capacitor's voltage, and the parameter that is its capacitance
+OUTPUT_NODE = (3, "C2")
+
 #: the states that are currents through the converter's switches: with the gates blocked
 #: (u NaN) each one flows through a diode and stops at zero (runtime/loop.py ``step``)
 GATE_BLOCK_CURRENTS = (0,)
