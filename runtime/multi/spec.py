@@ -30,8 +30,8 @@ UNIT_KEYS = {"cable_R": ("ohm", 0.0, (0.0, 10.0)), "cable_L": ("H", 0.0, (0.0, 1
              "I_trip": ("A", 0.0, (0.0, 1e6)), "V_trip": ("V", 0.0, (0.0, 1e5))}
 BUS_KEYS = {"C_bus": ("F", 0.0, (0.0, 1.0)), "trip_ticks": ("-", 2, (1, 100000))}
 EXCHANGE_KEYS = {"period": ("s", 1e-3, (1e-7, 10.0)), "delay": ("s", 0.0, (0.0, 10.0)),
-                 "loss": ("-", 0.0, (0.0, 1.0)), "share_bw": ("rad/s", 30.0, (0.0, 1e5)),
-                 "restore_bw": ("rad/s", 20.0, (0.0, 1e5)), "stale": ("s", 0.0, (0.0, 100.0)),
+                 "loss": ("-", 0.0, (0.0, 1.0)), "share_bw": ("rad/s", 60.0, (0.0, 1e5)),
+                 "restore_bw": ("rad/s", 60.0, (0.0, 1e5)), "stale": ("s", 0.0, (0.0, 100.0)),
                  "correction_max": ("V", 50.0, (0.0, 1e5))}
 TOP = {"count", "sharing", "load_current", "exchange", "resets", "faults", *UNIT_KEYS, *BUS_KEYS}
 #: the largest ring of messages in flight per unit (delay / period + 2)
