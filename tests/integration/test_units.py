@@ -9,6 +9,7 @@ Plugin combinations (each costs a loop compile): the single two_stage_lc + casca
 merged units and 2 cabled units of them; the checked build of the 2 cabled units.
 """
 import os
+import re
 import subprocess
 import sys
 
@@ -417,3 +418,111 @@ def test_a_reset_while_the_over_current_holds_is_refused(tmp_path):
     assert not np.any(trip[:kf] & 32) and not np.any(trip[kf + 1:] & 32)
     en = rec.signals["unit2_enable"]
     assert np.all(en[kf:kr] == 0.0) and np.all(en[kr:] == 1.0)
+
+
+# -- 5 bad input: one clear line, exit 2, through the command line -----------------------------
+
+BAD = {
+    "count_0": ("count = 0", r"units\.count = 0 is not a whole number from 1 to 16"),
+    "count_17": ("count = 17", r"units\.count = 17 is not a whole number from 1 to 16"),
+    "count_word": ('count = "four"', r"units\.count = 'four' is not a whole number from 1 to 16"),
+    "unknown_key": ('count = 4\ndrop_R = "20 mohm"',
+                    r"unknown key 'units\.drop_R'; did you mean 'droop_R'\?"),
+    "no_unit_9": ('count = 4\n[units.unit9]\nL1 = "160 uH"',
+                  r"units\.unit9: there is no unit 9 \(units\.count = 4\)"),
+    "cabled_without_bus_capacitance": (
+        'count = 2\ncable_R = "5 mohm"\ncable_L = "2 uH"',
+        r"units\.C_bus = 0 F with cables of inductance: the bus needs a capacitance"),
+    "one_cable_without_inductance": (
+        'count = 2\nC_bus = "2 mF"\n[units.unit2]\ncable_R = "5 mohm"\ncable_L = "2 uH"',
+        r"units\.unit1\.cable_L = 0 H while another cable has an impedance: give every cable "
+        r"an inductance"),
+    "exchange_without_droop": ('count = 2\nsharing = "exchange"',
+                               r"units\.unit1\.droop_R = 0 ohm: the exchange's sharing builds on "
+                               r"droop; give droop_R > 0"),
+    "droop_without_sharing": ('count = 2\nsharing = "none"\ndroop_R = "20 mohm"',
+                              r"units\.droop_R is set but units\.sharing = \"none\"; set "
+                              r"units\.sharing = \"droop\""),
+    "unknown_plant_parameter": ('count = 2\n[units.unit2]\nL3 = "100 uH"',
+                                r"unknown key '[a-z0-9_.]*L3' .*L1, L2.*units\.unit2"),
+    "unknown_fault_kind": ('count = 2\n[[units.faults]]\nunit = 1\nkind = "gone"\nat = "1 ms"',
+                           r"units\.faults\[0\]\.kind = 'gone' is not one of 'lost', 'trip'"),
+    "reset_of_unit_7": ('count = 4\n[[units.resets]]\nunit = 7\nat = "1 ms"',
+                        r"units\.resets\[0\]\.unit = 7 is not a unit number from 1 to 4"),
+}
+
+
+def _bad_run(tmp_path, name, text):
+    path = tmp_path / f"{name}.toml"
+    path.write_text(text)
+    p = subprocess.run(HILRIG + ["run", str(path), "--out", str(tmp_path / "r"), "--headless"],
+                       capture_output=True, text=True, timeout=300,
+                       env=dict(os.environ, COLUMNS="120"))
+    assert p.returncode == 2, p.stdout + p.stderr
+    assert "Traceback" not in p.stdout + p.stderr
+    errors = [line for line in p.stdout.splitlines() if line.startswith("error:")]
+    assert len(errors) == 1, p.stdout
+    assert not (tmp_path / "r").exists()
+    return errors[0]
+
+
+@pytest.mark.parametrize("case", sorted(BAD))
+def test_bad_units_input_is_one_clear_line(tmp_path, case):
+    """Each mistake in [units] ends `hilrig run` with exit 2 and one line naming the file, the
+    key and the value and what to do (the project's rule for bad input)."""
+    units, pattern = BAD[case]
+    line = _bad_run(tmp_path, case, scenario(units=units))
+    assert f"{case}.toml" in line
+    assert re.search(pattern, line), line
+
+
+@pytest.mark.xfail(strict=True, reason="runtime/multi/spec.py passes an unknown key of "
+                   "[units.unitK] to the plant's parser: the message names 'plant.droop_r', "
+                   "lists only the plant's parameters and gives no hint for droop_R")
+def test_a_misspelt_per_unit_key_is_named_with_a_hint(tmp_path):
+    """A misspelt per-unit key in [units.unit3] (droop_r for droop_R): the line names the key
+    as written, units.unit3.droop_r, and suggests droop_R (the hint every other unknown key
+    gets, runtime/scenario.py ``_hint``)."""
+    line = _bad_run(tmp_path, "unit3_key", scenario(units='count = 4\nsharing = "droop"\n'
+                                                          '[units.unit3]\ndroop_r = "20 mohm"'))
+    assert "units.unit3.droop_r" in line and "did you mean 'droop_R'" in line, line
+
+
+def test_a_unit_plant_without_an_output_node_is_refused(tmp_path):
+    """switched_two_stage integrates its own switching periods and declares no OUTPUT_NODE:
+    it cannot be a paralleled unit; the line says which plants can."""
+    text = scenario(plant={}, units="count = 2").replace('plugin = "two_stage_lc"',
+                                                         'plugin = "switched_two_stage"')
+    line = _bad_run(tmp_path, "switched", text)
+    assert re.search(r"switched\.toml: plant\.plugin = 'switched_two_stage' cannot be a "
+                     r"paralleled unit.*two_stage_lc and single_lc can", line), line
+
+
+# -- 6 the bounds-checked build ----------------------------------------------------------------
+
+
+def test_units_run_the_same_in_the_bounds_checked_build(tmp_path):
+    """Two cabled units with the exchange (messages lost at random, delayed), a unit's trip
+    and its reset, through `hilrig run --checked` (HILRIG_CHECKED=1: every index of the
+    generated bus plant and units' controller is checked, runtime/checked.py): the run
+    completes and its recording equals the normal build's to the bit (the checks change no
+    arithmetic)."""
+    units = (EXCHANGE.replace("{loss}", "0.3")
+             + '[[units.faults]]\nunit = 2\nkind = "trip"\nat = "10 ms"\n'
+               '[[units.resets]]\nunit = 2\nat = "20 ms"\n')
+    text = scenario(units=units, duration="30 ms", seed=3)
+    path = tmp_path / "checked.toml"
+    path.write_text(text)
+    env = dict(os.environ, HILRIG_CHECKED="1", COLUMNS="120")
+    p = subprocess.run(HILRIG + ["run", str(path), "--checked", "--headless", "--out",
+                                 str(tmp_path / "checked")], capture_output=True, text=True,
+                       timeout=900, env=env)
+    assert p.returncode == 0, p.stdout[-3000:] + p.stderr[-3000:]
+    assert "Traceback" not in p.stdout + p.stderr
+    checked = open_run(tmp_path / "checked")
+    assert checked.summary["outcome"]["status"] == "completed", checked.summary["outcome"]
+    _, _, plain = run(tmp_path, text, "plain")
+    assert set(checked.signals) == set(plain.signals)
+    assert np.any(checked.signals["unit2_enable"] == 0.0)  # the trip ran
+    for name in plain.signals:
+        assert np.array_equal(checked.signals[name], plain.signals[name], equal_nan=True), name
