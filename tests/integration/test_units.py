@@ -357,9 +357,12 @@ def test_a_lost_unit_leaves_the_others_tracking_within_their_rating(tmp_path):
     (8), its converter current stops at zero (blocked gates: the diode stops a falling inductor
     current at zero, Erickson and Maksimovic ch. 2, from memory); the other three never reach
     I_trip and hold the bus within the band, each carrying a third of the load (droop: equal
-    droop lines share equally, the droop check's argument)."""
+    droop lines share equally, the droop check's argument). A lost unit is never reset: its
+    reset at 30 ms is refused (bit 32 on that tick)."""
     sc, s, rec = four_run(tmp_path, f'[[units.faults]]\nunit = 3\nkind = "lost"\n'
-                                    f'at = "{T_FAULT * 1e3:g} ms"\n', "lost")
+                                    f'at = "{T_FAULT * 1e3:g} ms"\n'
+                                    f'[[units.resets]]\nunit = 3\nat = "{T_RESET * 1e3:g} ms"\n',
+                          "lost")
     assert s["outcome"]["status"] == "completed", s["outcome"]
     kf = _at(rec, T_FAULT)
     assert rec.time[kf] == pytest.approx(T_FAULT)
@@ -367,6 +370,9 @@ def test_a_lost_unit_leaves_the_others_tracking_within_their_rating(tmp_path):
     assert np.all(en[:kf] == 1.0) and np.all(en[kf:] == 0.0)
     assert np.all(rec.signals["unit3_trip"][kf:].astype(int) & 8)
     assert np.all(rec.signals["unit3_trip"][:kf] == 0.0)
+    trip = rec.signals["unit3_trip"].astype(int)
+    kr = _at(rec, T_RESET)
+    assert trip[kr] & 32 and not np.any(np.delete(trip, kr) & 32)
     # its converter current: 112 A before, zero within a millisecond and from then on
     assert rec.signals["unit3_i_L1"][kf - 1] > 100.0
     assert np.all(np.abs(rec.signals["unit3_i_L1"][_at(rec, T_FAULT + 1e-3):]) < 1e-6)
@@ -418,6 +424,51 @@ def test_a_reset_while_the_over_current_holds_is_refused(tmp_path):
     assert not np.any(trip[:kf] & 32) and not np.any(trip[kf + 1:] & 32)
     en = rec.signals["unit2_enable"]
     assert np.all(en[kf:kr] == 0.0) and np.all(en[kr:] == 1.0)
+
+
+def test_a_unit_over_its_current_trips_after_the_debounce_and_alone(tmp_path):
+    """Unit 4's own I_trip (130 A) below the current a load step asks of it (240 kW: 150 A a
+    unit), trip_ticks 3: unit 4's enable goes to 0 on the third tick in a row on which its
+    recorded |i_L1| is above 130 A (the debounce, runtime/multi/control.py stage 2), with the
+    over-current bit 1; the other three then carry 200 A each, below their 300 A, and hold
+    the bus within the band."""
+    load = '[[load.points]]\nt = 0\nP = "120 kW"\n[[load.points]]\nt = "15 ms"\nP = "240 kW"\n'
+    sc, s, rec = run(tmp_path, scenario(units=FOUR_DROOP + 'trip_ticks = 3\n[units.unit4]\n'
+                                        'I_trip = "130 A"\n', duration="40 ms",
+                                        points='[[0, "400 V"]]', load=load), "over_current")
+    assert s["outcome"]["status"] == "completed", s["outcome"]
+    over = np.abs(rec.signals["unit4_i_L1"]) > 130.0
+    first = int(np.argmax(over))
+    assert over[first] and rec.time[first] >= 15e-3
+    assert np.all(over[first:first + 3])
+    en = rec.signals["unit4_enable"]
+    k_trip = first + 2
+    assert np.all(en[:k_trip] == 1.0) and np.all(en[k_trip:] == 0.0)
+    trip = rec.signals["unit4_trip"].astype(int)
+    assert np.all(trip[k_trip:] == 1) and np.all(trip[:k_trip] == 0)
+    _check_others_carry_on(rec, 4, 30e-3, 40e-3)
+    for j in (1, 2, 3):
+        assert np.max(np.abs(rec.signals[f"unit{j}_i_L1"])) < I_TRIP
+
+
+def test_a_unit_over_its_voltage_trips_alone(tmp_path):
+    """Unit 1's own V_trip (430 V) below a 450 V reference step at 10 ms: unit 1 trips on its
+    terminal voltage (bit 2) when the bus passes 430 V, the others carry on to 450 V."""
+    sc, s, rec = run(tmp_path, scenario(units=FOUR_DROOP + '[units.unit1]\nV_trip = "430 V"\n',
+                                        duration="40 ms"), "over_voltage")
+    assert s["outcome"]["status"] == "completed", s["outcome"]
+    en = rec.signals["unit1_enable"]
+    k = int(np.argmin(en))
+    assert en[k] == 0.0 and np.all(en[k:] == 0.0) and rec.time[k] > 10e-3
+    assert np.all(rec.signals["unit1_trip"][k:].astype(int) == 2)
+    # the debounce of 2 ticks (the default): the terminal voltage above 430 V on the trip's
+    # tick and the one before, not on the tick before those
+    v1 = rec.signals["unit1_v_out"]
+    assert v1[k] > 430.0 and v1[k - 1] > 430.0 and not v1[k - 2] > 430.0
+    for j in (2, 3, 4):
+        assert np.all(rec.signals[f"unit{j}_enable"] == 1.0)
+    kk = _at(rec, 30e-3)
+    assert np.all(np.abs(rec.signals["v_out"][kk:] - 450.0) < 0.05 * 450.0)
 
 
 # -- 5 bad input: one clear line, exit 2, through the command line -----------------------------

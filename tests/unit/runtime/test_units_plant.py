@@ -14,6 +14,8 @@ The reference is the single two_stage_lc plugin with the scaled values (the unit
 equations, Erickson and Maksimovic, Fundamentals of Power Electronics, 2nd ed., ch. 3 and 7);
 the integration check uses scipy.integrate.solve_ivp (DOP853) on both systems.
 
+Also: blocked gates scale the same way; the cabled bus plant follows its circuit equations.
+
 These tests need ``[units]`` in a scenario: on the code before branch units16 the scenario
 reader refuses the key ``units`` (ScenarioError), so every test here fails there.
 """
@@ -32,7 +34,7 @@ UNIT = dict(V_dc=760.0, L1=163e-6, R1=6.5e-3, C1=237e-6, L2=91e-6, R2=2.7e-3, C2
 TS = 50e-6
 
 
-def units_text(n: int) -> str:
+def units_text(n: int, units_extra: str = "") -> str:
     vals = "\n".join(f"{k} = {v!r}" for k, v in UNIT.items())
     return f"""
 title = "merged units, kernel test (test data)"
@@ -48,6 +50,7 @@ plugin = "cascaded_pi"
 defaults = "declared"
 [units]
 count = {n}
+{units_extra}
 [reference]
 plugin = "profile"
 points = [[0, "400 V"]]
@@ -64,7 +67,7 @@ def scaled(n: int) -> dict:
     return v
 
 
-@pytest.fixture(scope="module", params=[2, 4, 8])
+@pytest.fixture(scope="module", params=[1, 2, 4, 8])
 def bus(request):
     n = request.param
     sc = parse_scenario(units_text(n), name=f"units{n}.toml")
@@ -144,3 +147,71 @@ def test_merged_units_integrate_as_the_scaled_single_unit(bus):
         np.testing.assert_allclose(xb[4 * k + 1], xs[1], rtol=0, atol=1e-7 * scale[1])
         np.testing.assert_allclose(n * xb[4 * k], xs[0], rtol=0, atol=1e-7 * scale[0])
         np.testing.assert_allclose(n * xb[4 * k + 2], xs[2], rtol=0, atol=1e-7 * scale[2])
+
+
+def test_merged_units_with_blocked_gates_are_the_blocked_single_unit(bus):
+    """Every unit's enable 0 (gates blocked: its command reaches its plant as NaN and its
+    diodes decide the switch node, plugins/plants/two_stage_lc.py) against the single unit with
+    a NaN command, at a positive, a negative and a zero converter current: the same scaling."""
+    n, mod, p, ps = bus
+    d = np.array([80e3, 0.0, 0.0])
+    u = _u(n, 400.0)
+    u[n:2 * n] = 0.0
+    for i1 in (120.0, -80.0, 0.0):
+        xs = (i1, 398.0, 150.0, 396.0)
+        f = np.array(mod.derivs(0.0, p, _unit_x(xs, n), u, d))
+        fs = np.array(single.derivs(0.0, ps, xs, np.array([np.nan]), d))
+        assert np.all(np.isfinite(fs))
+        for k in range(n):
+            fk = f[4 * k:4 * k + 4]
+            np.testing.assert_allclose(fk[[1, 3]], fs[[1, 3]], rtol=1e-12, atol=0)
+            np.testing.assert_allclose(n * fk[[0, 2]], fs[[0, 2]], rtol=1e-12, atol=1e-9)
+
+
+#: two units on cables (test data)
+CABLES = """C_bus = "1.5 mF"
+[units.unit1]
+cable_R = "4 mohm"
+cable_L = "2 uH"
+[units.unit2]
+cable_R = "11 mohm"
+cable_L = "3.5 uH"
+"""
+
+
+def test_cabled_bus_plant_follows_the_circuit_equations():
+    """Two units on cables: each cable's current and the bus voltage follow Kirchhoff's laws
+    for the circuit of runtime/multi/plant.py's docstring (circuit theory, common practice, no
+    source): L_c,k di_c,k/dt = v_k - R_c,k i_c,k - v_bus, C_bus dv_bus/dt = sum_k i_c,k -
+    i_load(v_bus); each unit's own states follow the single two_stage_lc with its cable current
+    as its load (the plugin's equations with the load current i_c,k). At random states."""
+    sc = parse_scenario(units_text(2, CABLES), name="cabled.toml")
+    assert sc.units.topology == "cabled"
+    mod = sc.plant.plugin.module
+    p = sc.plant.plugin.declaration.pack(sc.plant.values, BuildContext(Ts=TS))
+    pu = single.DECLARATION.pack(UNIT, BuildContext(Ts=TS))
+    rc, lc, cb = (4e-3, 11e-3), (2e-6, 3.5e-6), 1.5e-3
+    rng = np.random.default_rng(7)
+    for _ in range(5):
+        xu = [tuple(rng.uniform([0, 380, 0, 380], [300, 420, 300, 420])) for _ in range(2)]
+        ic = rng.uniform(0, 300, 2)
+        vb = rng.uniform(380, 420)
+        d = np.array([rng.uniform(0, 200e3), rng.uniform(0, 0.2), rng.uniform(-20, 20)])
+        cmd = rng.uniform(350, 450, 2)
+        x = xu[0] + xu[1] + (ic[0], ic[1], vb)
+        u = np.concatenate([cmd, np.ones(2), np.zeros(4)])
+        f = np.array(mod.derivs(0.0, p, x, u, d))
+        assert f.shape == (11,)
+        for k in range(2):
+            fu = np.array(single.derivs(0.0, pu, xu[k], cmd[k:k + 1], np.array([0.0, 0.0, ic[k]])))
+            np.testing.assert_allclose(f[4 * k:4 * k + 4], fu, rtol=1e-13)
+            vk = xu[k][3]
+            assert f[8 + k] == pytest.approx((vk - rc[k] * ic[k] - vb) / lc[k], rel=1e-12)
+        il = d[0] / vb + d[1] * vb + d[2]
+        assert f[10] == pytest.approx((ic[0] + ic[1] - il) / cb, rel=1e-12, abs=1e-6)
+        # outputs: the bus voltage, the load current, each unit's output current is its cable's
+        y = np.zeros(2 + 12)
+        mod.outputs(0.0, p, np.array(x), u, d, y)
+        assert y[0] == vb and y[1] == pytest.approx(il, rel=1e-14)
+        assert y[2 + 1] == ic[0] and y[8 + 1] == ic[1]
+        assert y[2 + 0] == xu[0][3] and y[8 + 0] == xu[1][3]
