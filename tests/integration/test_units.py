@@ -16,6 +16,7 @@ import sys
 import numpy as np
 import pytest
 
+from hilrig.runtime.errors import ScenarioError
 from hilrig.runtime.recording import open_run
 from hilrig.runtime.run import run_scenario
 from hilrig.runtime.scenario import parse_scenario
@@ -547,6 +548,53 @@ def test_a_unit_plant_without_an_output_node_is_refused(tmp_path):
     line = _bad_run(tmp_path, "switched", text)
     assert re.search(r"switched\.toml: plant\.plugin = 'switched_two_stage' cannot be a "
                      r"paralleled unit.*two_stage_lc and single_lc can", line), line
+
+
+#: more mistakes, read in-process (the same reader as the command line's, a second each saved)
+_EXCH = 'count = 2\nsharing = "exchange"\ndroop_R = "20 mohm"\n[units.exchange]\n'
+BAD_MORE = {
+    "loss_above_1": (_EXCH + "loss = 1.5", r"units\.exchange\.loss = 1\.5 is outside \[0, 1\]"),
+    "period_not_whole_ticks": (_EXCH + 'period = "70 us"',
+                               r"units\.exchange\.period = 7e-05 s is not a whole number of "
+                               r"control periods Ts = 5e-05 s"),
+    "exchange_key": (_EXCH + 'periode = "1 ms"',
+                     r"unknown key 'units\.exchange\.periode'; did you mean 'period'\?"),
+    "delay_beyond_ring": (_EXCH + 'period = "50 us"\ndelay = "1 s"',
+                          r"units\.exchange\.delay = 1 s is more than 4094 exchange periods"),
+    "sharing_word": ('count = 2\nsharing = "average"',
+                     r"units\.sharing = 'average' is not one of 'none', 'droop', 'exchange'"),
+    "load_current_word": ('count = 2\nload_current = "bus"',
+                          r"units\.load_current = 'bus' is not one of 'share', 'none', 'own'"),
+    "reset_without_time": ("count = 2\n[[units.resets]]\nunit = 1",
+                           r"units\.resets\[0\] needs exactly unit = K and at = TIME"),
+    "fault_after_the_end": ('count = 2\n[[units.faults]]\nunit = 1\nkind = "lost"\nat = "2 s"',
+                            r"units\.faults\[0\]\.at = 2 s is outside \[0, 0\.04\] s"),
+    "unit_controller_key": ("count = 2\n[units.unit2]\ncontroller = { Kpv = 2.0 }",
+                            r"unknown key 'controller\.Kpv'; did you mean 'Kp_v'\?.*"
+                            r"\(in units\.unit2\.controller\)"),
+    "unit_not_a_table": ("count = 2\nunit2 = 5", r"units\.unit2 is not a table"),
+}
+
+
+@pytest.mark.parametrize("case", sorted(BAD_MORE))
+def test_more_bad_units_input_is_named(case):
+    units, pattern = BAD_MORE[case]
+    with pytest.raises(ScenarioError) as exc:
+        parse_scenario(scenario(units=units), name=f"{case}.toml")
+    assert str(exc.value).startswith(f"{case}.toml: ")
+    assert re.search(pattern, str(exc.value)), str(exc.value)
+
+
+@pytest.mark.xfail(strict=True, raises=TypeError,
+                   reason="runtime/multi/spec.py iterates units.resets and units.faults "
+                   "without checking that each is an array of tables: TypeError, a traceback "
+                   "and exit 1 from hilrig run")
+@pytest.mark.parametrize("key", ["resets", "faults"])
+def test_units_resets_or_faults_that_are_not_arrays_are_named(key):
+    """`units.resets = 3` (or faults): one message naming the key, as every other shape
+    mistake gets (runtime/scenario.py ``_check_shape``)."""
+    with pytest.raises(ScenarioError, match=rf"units\.{key}"):
+        parse_scenario(scenario(units=f"count = 2\n{key} = 3"), name="shape.toml")
 
 
 # -- 6 the bounds-checked build ----------------------------------------------------------------
