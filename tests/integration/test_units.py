@@ -297,6 +297,27 @@ def test_exchange_without_loss_shares_equally(exchange_pair):
     assert v_mean == pytest.approx(V_REF, abs=1e-4)
 
 
+def test_exchange_shares_by_weight_with_a_long_delay(tmp_path):
+    """Weights 2 : 1 (unit 1's share 2/3), messages every 1 ms arriving 2.5 ms late (a ring of
+    several messages in flight), no loss. Steady state of the sharing law (algebra, as in the
+    equal case): with x_k = w_k n - i_k, n = mean_j i_j / w_j, the x_k / w_k sum to zero, and
+    R_d,1 x_1 = R_d,2 x_2 (both equal -omega_r / omega_s (v_ref - v_mean)); so x_1 = x_2 = 0:
+    i_1 / i_2 = w_1 / w_2 = 2 and v_mean = v_ref. Measured after 600 ms: 5e-14 and 0 V; tolerance
+    1e-6 relative and 1e-4 V."""
+    units = (EXCHANGE.replace("{loss}", "0.0").replace('delay = "0.5 ms"', 'delay = "2.5 ms"')
+             .replace("[units.unit1]\n", "[units.unit1]\nweight = 2.0\n"))
+    load = f'[[load.points]]\nt = 0\nP = "{P_LOAD:g} W"\n'
+    sc, s, rec = run(tmp_path, scenario(units=units, duration="600 ms", points='[[0, "400 V"]]',
+                                        load=load), "weighted")
+    assert s["outcome"]["status"] == "completed", s["outcome"]
+    assert sc.units.shares == pytest.approx([2 / 3, 1 / 3])
+    k = len(rec.time) - 1
+    i1, i2 = rec.signals["unit1_i_out"][k], rec.signals["unit2_i_out"][k]
+    assert i1 / i2 == pytest.approx(2.0, rel=1e-6)
+    v_mean = 0.5 * (rec.signals["unit1_v_out"][k] + rec.signals["unit2_v_out"][k])
+    assert v_mean == pytest.approx(V_REF, abs=1e-4)
+
+
 def test_exchange_with_loss_repeats_with_its_seed_and_differs_with_another(tmp_path):
     """0 < loss < 1: which messages are lost comes from the scenario's seed; the same seed
     gives the same run to the bit (every recorded signal), another seed another run."""
