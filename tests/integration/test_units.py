@@ -222,6 +222,13 @@ def test_two_droop_units_share_in_the_closed_form_ratio(droop2):
             assert rec.signals[f"unit{j}_v_out"][k] - rc * ij == pytest.approx(v_bus, abs=1e-4)
         # the bus current balance (Kirchhoff): the units' output currents add to the load's
         assert i1 + i2 == pytest.approx(rec.signals["i_out"][k], rel=1e-6)
+    # the run starts in that steady state (the droop's, runtime/multi/plant.py ``droop_bus``),
+    # its bus moved by the start's excitation (initial.v_out_offset, -0.25 % by default)
+    assert rec.signals["unit1_i_out"][0] / rec.signals["unit2_i_out"][0] == pytest.approx(
+        ratio, rel=1e-12)
+    assert s["v_out_start_offset_V"] == pytest.approx(-1.0)
+    assert rec.signals["v_out"][0] == pytest.approx(
+        droop_bus_voltage(V_REF, g_eq, R=1.0) + s["v_out_start_offset_V"], abs=1e-9)
 
 
 # -- 4 the exchange: loss 1 against loss 0; seeds ----------------------------------------------
@@ -295,6 +302,27 @@ def test_exchange_without_loss_shares_equally(exchange_pair):
         assert abs(rec.signals[f"unit{j}_i_out"][k] - 0.5 * il) < 1e-6 * il
     v_mean = 0.5 * (rec.signals["unit1_v_out"][k] + rec.signals["unit2_v_out"][k])
     assert v_mean == pytest.approx(V_REF, abs=1e-4)
+
+
+def test_exchange_after_a_lost_unit_restores_the_other_alone(tmp_path):
+    """Unit 2 lost at 50 ms under the exchange (no loss): it publishes nothing more, its last
+    message goes stale (10 periods plus the delay, the default), and unit 1 then averages only
+    itself, as with every message lost: it restores its own terminal voltage to v_ref and
+    carries the whole load (unit 2's converter current stopped, its output current decayed
+    to zero). Measured at 800 ms: unit 1's voltage within 1e-9 V of v_ref, unit 2's output
+    current below 1e-6 A; tolerance 1e-4 V and 1e-3 of the load current."""
+    units = EXCHANGE.replace("{loss}", "0.0") + ('[[units.faults]]\nunit = 2\nkind = "lost"\n'
+                                                 'at = "50 ms"\n')
+    load = f'[[load.points]]\nt = 0\nP = "{P_LOAD:g} W"\n'
+    sc, s, rec = run(tmp_path, scenario(units=units, duration="800 ms", points='[[0, "400 V"]]',
+                                        load=load), "lost_exchange")
+    assert s["outcome"]["status"] == "completed", s["outcome"]
+    k = len(rec.time) - 1
+    il = rec.signals["i_out"][k]
+    assert rec.signals["unit1_v_out"][k] == pytest.approx(V_REF, abs=1e-4)
+    assert rec.signals["unit1_i_out"][k] == pytest.approx(il, rel=1e-3)
+    assert abs(rec.signals["unit2_i_out"][k]) < 1e-3 * il
+    assert np.all(rec.signals["unit2_enable"][_at(rec, 50e-3):] == 0.0)
 
 
 def test_exchange_shares_by_weight_with_a_long_delay(tmp_path):
