@@ -1145,12 +1145,18 @@ def _designed_for(path: Path, controller: str, overrides: dict) -> dict:
     out: dict = {"scenario": str(path)}
     try:
         sc = load_scenario(path, overrides={**overrides, "controller": {"plugin": controller}})
+        bus = sc.plant.plugin.name
+        if sc.units is not None:
+            # paralleled units: each unit's controller is designed as a single unit; show unit 1
+            from hilrig.runtime.multi.design import unit_scenario
+            sc = unit_scenario(sc, 0)
+            bus = f"{sc.plant.plugin.name} (unit 1 of {bus}, its share of the load)"
         prep = prepare(sc)
     except (ScenarioError, PluginError, ValueError) as exc:
         out["error"] = str(exc)
         return out
     d = prep.design or {}
-    out.update(plant=sc.plant.plugin.name, Ts_s=sc.Ts, range=d.get("range"),
+    out.update(plant=bus, Ts_s=sc.Ts, range=d.get("range"),
                range_from=d.get("range_from"), values=plain_values(prep.sc.controller.values),
                designed=d.get("designed", []), worst_pole_abs=d.get("worst_pole_abs"),
                stable_over_range=d.get("stable_over_range"), note=d.get("note"))

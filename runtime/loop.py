@@ -687,7 +687,7 @@ def _step_text(nx: int, currents: tuple[int, ...], enables: tuple[int, ...] = ()
            # cancel and hide the crossing (the current then hung just above zero)
            "    k1 = plant_derivs(ta, pp, s, u, d)"]
     for n_i, i in enumerate(currents):
-        items = ", ".join("0.0" if j == i else f"sa[{j}]" for j in range(nx))
+        items = tuple_text(["0.0" if j == i else f"sa[{j}]" for j in range(nx)])
         pad = ""
         if enables:
             # a unit that runs: its current is not stopped
@@ -703,7 +703,7 @@ def _step_text(nx: int, currents: tuple[int, ...], enables: tuple[int, ...] = ()
                 "        th = -1.0",
                 "    if th >= 0.0:",
                 "        sa = rk4(ta, th * dt, pp, s, u, d)",
-                f"        sa = ({items},)",
+                f"        sa = {items}",
                 "        s1 = rk4(ta + th * dt, (1.0 - th) * dt, pp, sa, u, d)"]]
     out += ["    return s1", "", "",
             '@njit(inline="always")',
@@ -719,6 +719,20 @@ def gate_block_currents(plant: Plugin) -> tuple[int, ...]:
     """The plant's states that are currents through the converter's switches (optional module
     attribute ``GATE_BLOCK_CURRENTS``): with the gates blocked each one stops at zero."""
     return tuple(int(i) for i in getattr(plant.module, "GATE_BLOCK_CURRENTS", ()))
+
+
+#: the most items a generated tuple display holds: CPython builds a longer one through a list,
+#: which numba's bytecode reader cannot always take back to a tuple (many states: paralleled
+#: units)
+TUPLE_CHUNK = 24
+
+
+def tuple_text(items: list[str]) -> str:
+    """A tuple display of ``items`` for generated code: ``(a, b,)``, or for more than
+    TUPLE_CHUNK items the concatenation of displays of at most that many each."""
+    parts = ["(" + ", ".join(items[i:i + TUPLE_CHUNK]) + ",)"
+             for i in range(0, len(items), TUPLE_CHUNK)] or ["()"]
+    return parts[0] if len(parts) == 1 else "(" + " + ".join(parts) + ")"
 
 
 def gate_block_enables(plant: Plugin) -> tuple[int, ...]:
@@ -742,17 +756,17 @@ def _rk4_text(nx: int, own_step: bool, fast: bool = False, period: bool = False,
     if own_step:
         body = "    s = plant_rk4_step(dt, pp, s, u, d)"
     else:
-        s_k1 = ", ".join(f"s[{i}] + 0.5 * dt * k1[{i}]" for i in r)
-        s_k2 = ", ".join(f"s[{i}] + 0.5 * dt * k2[{i}]" for i in r)
-        s_k3 = ", ".join(f"s[{i}] + dt * k3[{i}]" for i in r)
-        s_new = ", ".join(f"s[{i}] + dt / 6.0 * (k1[{i}] + 2.0 * k2[{i}] + 2.0 * k3[{i}] + "
-                          f"k4[{i}])" for i in r)
+        s_k1 = tuple_text([f"s[{i}] + 0.5 * dt * k1[{i}]" for i in r])
+        s_k2 = tuple_text([f"s[{i}] + 0.5 * dt * k2[{i}]" for i in r])
+        s_k3 = tuple_text([f"s[{i}] + dt * k3[{i}]" for i in r])
+        s_new = tuple_text([f"s[{i}] + dt / 6.0 * (k1[{i}] + 2.0 * k2[{i}] + 2.0 * k3[{i}] + "
+                            f"k4[{i}])" for i in r])
         body = "\n".join([
             "    k1 = plant_derivs(ta, pp, s, u, d)",
-            f"    k2 = plant_derivs(ta + 0.5 * dt, pp, ({s_k1},), u, d)",
-            f"    k3 = plant_derivs(ta + 0.5 * dt, pp, ({s_k2},), u, d)",
-            f"    k4 = plant_derivs(ta + dt, pp, ({s_k3},), u, d)",
-            f"    s = ({s_new},)"])
+            f"    k2 = plant_derivs(ta + 0.5 * dt, pp, {s_k1}, u, d)",
+            f"    k3 = plant_derivs(ta + 0.5 * dt, pp, {s_k2}, u, d)",
+            f"    k4 = plant_derivs(ta + dt, pp, {s_k3}, u, d)",
+            f"    s = {s_new}"])
     if fast:
         step = """        # the whole substep when dt * rate <= zf (the usual path); where it is stiff, RK4
         # steps of at most zf / rate each, the rate taken at each one's start, the remainder
@@ -777,16 +791,16 @@ def _rk4_text(nx: int, own_step: bool, fast: bool = False, period: bool = False,
             rem -= hh"""
     else:
         step = "        s = step(ta, dt, pp, s, u, d, blocked)"
-    x_items = ", ".join(f"x[{i}]" for i in r)
+    x_items = tuple_text([f"x[{i}]" for i in r])
     # gates blocked: the runtime's trip (every input NaN), or a paralleled unit's own block
     blocked = (" or ".join(f"not (u[{e}] > 0.5)" for e in dict.fromkeys(enables))
                if enables else "not (u[0] == u[0])")
     store = "\n".join(f"    x[{i}] = s[{i}]" for i in r)
     if period:
         # the plant integrates the whole period itself (switching instants, its own rule)
-        advance = f"    s = plant_advance_period(t, h, pp, ({x_items},), u, d)\n{store}\n    return 0"
+        advance = f"    s = plant_advance_period(t, h, pp, {x_items}, u, d)\n{store}\n    return 0"
     else:
-        advance = (f"    dt = h / nsub\n    s = ({x_items},)\n    extra = 0\n"
+        advance = (f"    dt = h / nsub\n    s = {x_items}\n    extra = 0\n"
                    f"    blocked = {blocked}\n"
                    f"    for j in range(nsub):\n        ta = t + j * dt\n{step}\n{store}\n"
                    f"    return extra")

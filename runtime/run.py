@@ -311,7 +311,7 @@ def prepare(sc: Scenario) -> Prepared:
         i_vout=outputs.index("v_out"),
         pp=pp, x=x0, load_t=sc.load_t, load_v=sc.load_v, lcur=np.zeros(1, dtype=np.int64),
         pc=pc, xc=np.zeros(n_xc), iyc=iyc, yc=np.zeros(max(len(iyc), 1)), u=np.zeros(nu),
-        safe_u=np.full(nu, sc.safe_u),
+        safe_u=_safe_u(sc, u_names),
         pr=pr, xr=np.zeros(n_xr), iyr=iyr, yr=np.zeros(max(len(iyr), 1)), w=np.zeros(1),
         ad=ad, g1=g1, g2=g2, cr=cr, dr=dr, slew=sc.shaping["slew_rate"],
         z=np.zeros(ad.shape[0]), s=np.zeros(1), zt=np.zeros(ad.shape[0]), r=np.zeros(5),
@@ -408,6 +408,19 @@ def _start_offset(sc: Scenario, pdecl, v0: float, x0: np.ndarray, where: str) ->
     for i in moved:
         x0[i] += off
     return off
+
+
+def _safe_u(sc: Scenario, u_names: list[str]) -> np.ndarray:
+    """The command of the safe state "zero_voltage" (``limits.safe_u`` on every input); for
+    paralleled units only on the units' commands: their enables stay 1 (the converters
+    command the safe voltage rather than block), their trip and correction columns 0."""
+    safe = np.full(len(u_names), sc.safe_u)
+    if sc.units is not None:
+        n = sc.units.count
+        nin = len(u_names) - 3 * n
+        safe[nin:nin + n] = 1.0
+        safe[nin + n:] = 0.0
+    return safe
 
 
 def _latch(table: InterlockTable) -> np.ndarray:

@@ -392,7 +392,20 @@ def design(prep, ctx, cands: list[dict[str, Any]], designed: list[str], rng: Des
 
 
 def design_line(rec: dict[str, Any] | None) -> str | None:
-    """One line for the terminal about a controller's design (None: nothing was designed)."""
+    """One line for the terminal about a controller's design (None: nothing was designed);
+    for paralleled units a line per unit whose design differs from the unit before it."""
+    if rec and rec.get("units"):
+        groups: dict[str, list[int]] = {}
+        for u in rec["units"]:
+            text = design_line({k: v for k, v in u.items() if k != "unit"})
+            if text:
+                groups.setdefault(text, []).append(u["unit"])
+        lines = []
+        for text, units in groups.items():
+            who = (f"unit {units[0]}" if len(units) == 1
+                   else "units " + ", ".join(str(k) for k in units))
+            lines.append(text.replace("design: ", f"design ({who}): ", 1))
+        return "\n".join(lines) or None
     if not rec or not rec.get("designed"):
         return None
     r = rec["range"]

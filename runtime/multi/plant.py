@@ -40,6 +40,7 @@ from pathlib import Path
 import numpy as np
 
 from hilrig.plugins.base import Declaration, Signal
+from hilrig.runtime.loop import tuple_text
 
 TOPOLOGIES = ("cabled", "merged")
 
@@ -105,9 +106,26 @@ def module_text(spec: dict, unit_import: str) -> str:
         items = []
         for k in range(n):
             items += ["a" if j == node else f"f{k}[{j}]" for j in range(nx)]
-    body.append("    return (" + ", ".join(items) + ",)")
-    lines.append('@njit(cache=True, error_model="numpy")\ndef derivs(t, p, x, u, d):\n'
+    body.append("    return " + tuple_text(items))
+    lines.append('@njit(inline="always", error_model="numpy")\ndef _rates(t, p, x, u, d):\n'
                  '    """The bus plant\'s rates (runtime/multi/plant.py)."""\n' + "\n".join(body))
+    lines.append('@njit(cache=True, error_model="numpy")\ndef derivs(t, p, x, u, d):\n'
+                 '    """The bus plant\'s rates."""\n    return _rates(t, p, x, u, d)')
+    if spec.get("own_step"):
+        # one classic RK4 step, the rates inlined into it: the loop calls it once per sub-step
+        # (its generic stages would call derivs four times); the unit plant's equations do
+        # not depend on t explicitly (it brings its own rk4_step)
+        nt = _offsets(spec)["nx_total"]
+        r = range(nt)
+        rk = ["    k1 = _rates(0.0, p, s, u, d)",
+              f"    k2 = _rates(0.0, p, {tuple_text([f's[{i}] + h * k1[{i}]' for i in r])}, u, d)",
+              f"    k3 = _rates(0.0, p, {tuple_text([f's[{i}] + h * k2[{i}]' for i in r])}, u, d)",
+              f"    k4 = _rates(0.0, p, {tuple_text([f's[{i}] + dt * k3[{i}]' for i in r])}, u, d)",
+              "    return " + tuple_text([f"s[{i}] + w * (k1[{i}] + 2.0 * k2[{i}] + 2.0 * k3[{i}]"
+                                         f" + k4[{i}])" for i in r])]
+        lines.append('@njit(cache=True, error_model="numpy")\ndef rk4_step(dt, p, s, u, d):\n'
+                     '    """One classic RK4 step of length dt (the runtime\'s method)."""\n'
+                     '    h = 0.5 * dt\n    w = dt / 6.0\n' + "\n".join(rk))
     # outputs: bus v_out, i_out; then per unit the unit plant's outputs
     ob = []
     if cabled:

@@ -30,8 +30,8 @@ UNIT_KEYS = {"cable_R": ("ohm", 0.0, (0.0, 10.0)), "cable_L": ("H", 0.0, (0.0, 1
              "I_trip": ("A", 0.0, (0.0, 1e6)), "V_trip": ("V", 0.0, (0.0, 1e5))}
 BUS_KEYS = {"C_bus": ("F", 0.0, (0.0, 1.0)), "trip_ticks": ("-", 2, (1, 100000))}
 EXCHANGE_KEYS = {"period": ("s", 1e-3, (1e-7, 10.0)), "delay": ("s", 0.0, (0.0, 10.0)),
-                 "loss": ("-", 0.0, (0.0, 1.0)), "share_bw": ("rad/s", 30.0, (0.0, 1e5)),
-                 "restore_bw": ("rad/s", 20.0, (0.0, 1e5)), "stale": ("s", 0.0, (0.0, 100.0)),
+                 "loss": ("-", 0.0, (0.0, 1.0)), "share_bw": ("rad/s", 60.0, (0.0, 1e5)),
+                 "restore_bw": ("rad/s", 60.0, (0.0, 1e5)), "stale": ("s", 0.0, (0.0, 100.0)),
                  "correction_max": ("V", 50.0, (0.0, 1e5))}
 TOP = {"count", "sharing", "load_current", "exchange", "resets", "faults", *UNIT_KEYS, *BUS_KEYS}
 #: the largest ring of messages in flight per unit (delay / period + 2)
@@ -88,8 +88,13 @@ def build(cx, raw: dict, plant, controller, Ts: float, duration: float, seed: in
         raise cx.fail("units.count", f" = {n_raw!r} is not a whole number from 1 to {MAX_UNITS}")
     n = int(n_raw)
     per_unit_names = {f"unit{k}" for k in range(1, n + 1)}
+    count_overridden = "units.count" in cx.overridden or "units" in cx.overridden
     for k in tab:
         if k not in TOP and k not in per_unit_names:
+            if k.startswith("unit") and k[4:].isdigit() and count_overridden and int(k[4:]) > n:
+                # an override (an envelope's axis) set fewer units than the file describes:
+                # the tables of the units beyond them do not apply
+                continue
             if k.startswith("unit") and k[4:].isdigit():
                 raise cx.fail(f"units.{k}", f": there is no unit {k[4:]} (units.count = {n})")
             raise cx.unknown("units", k, sorted(TOP) + [f"unit1 .. unit{n}"])
@@ -197,6 +202,8 @@ def build(cx, raw: dict, plant, controller, Ts: float, duration: float, seed: in
     for i, r in enumerate(tab.get("resets", []) or []):
         if not isinstance(r, dict) or set(r) - {"unit", "at"} or {"unit", "at"} - set(r):
             raise cx.fail(f"units.resets[{i}]", " needs exactly unit = K and at = TIME")
+        if count_overridden and isinstance(r["unit"], int) and r["unit"] > n:
+            continue
         k = _unit_index(cx, f"units.resets[{i}].unit", r["unit"], n)
         at = quantity(f"units.resets[{i}].at", r["at"], "s", (0.0, duration))
         resets.append((at, k - 1))
@@ -205,6 +212,8 @@ def build(cx, raw: dict, plant, controller, Ts: float, duration: float, seed: in
         if not isinstance(f, dict) or set(f) - {"unit", "at", "kind"} or {"unit", "at", "kind"} - set(f):
             raise cx.fail(f"units.faults[{i}]", " needs exactly unit = K, kind = \"lost\" or "
                           "\"trip\" and at = TIME")
+        if count_overridden and isinstance(f["unit"], int) and f["unit"] > n:
+            continue
         k = _unit_index(cx, f"units.faults[{i}].unit", f["unit"], n)
         if f["kind"] not in mc.FAULT_KINDS:
             raise cx.fail(f"units.faults[{i}].kind", f" = {f['kind']!r} is not one of "
@@ -225,7 +234,10 @@ def build(cx, raw: dict, plant, controller, Ts: float, duration: float, seed: in
     spec = dict(n=n, topology=topology, unit_name=udecl.name, unit_sha=_sha(uplug),
                 n_x=len(udecl.states), n_in=max(len(udecl.inputs), 1), n_y=len(outs),
                 out_node=int(node[0]), out_node_param=str(node[1]), p_len=p_len,
-                gate_currents=[int(i) for i in getattr(umod, "GATE_BLOCK_CURRENTS", ())])
+                gate_currents=[int(i) for i in getattr(umod, "GATE_BLOCK_CURRENTS", ())],
+                # the unit plant brings its own RK4 step: its equations do not depend on t
+                # explicitly, and the bus plant gets one too (runtime/multi/plant.py)
+                own_step=getattr(umod, "rk4_step", None) is not None)
     ppath = mp.generate(spec, uplug, folder)
     pmod = registry.load_file(str(ppath))
     pdecl = pmod.DECLARATION
