@@ -121,9 +121,10 @@ def test_four_merged_units_in_closed_loop_are_the_scaled_single_unit(merged4):
     tests/unit/runtime/test_units_plant.py; the controller scaling in scaled_gains): the bus
     voltage equals the single unit's v_out and each unit's currents x 4 equal the single
     unit's, to round-off. Measured: at most 4e-14 of each signal's range over the 40 ms (the
-    bus plant's generic RK4 stages against two_stage_lc's own reordered rk4_step, and the
-    merged node's sum, differ by a few units in the last place per step; the stable closed
-    loop does not amplify them); the tolerance is 1e-11 of the signal's range."""
+    bus plant's classic RK4 step against two_stage_lc's own rk4_step, which orders the same
+    arithmetic differently, and the merged node's sum differ by a few units in the last place
+    per step; the stable closed loop does not amplify them); the tolerance is 1e-11 of the
+    signal's range."""
     (sc_m, s_m, r_m), (sc_1, s_1, r_1) = merged4
     assert sc_m.units.topology == "merged"
     assert s_m["outcome"]["status"] == "completed", s_m["outcome"]
