@@ -281,6 +281,9 @@ def test_exchange_with_every_message_lost_shares_as_units_without_sharing(exchan
         assert ij == pytest.approx(rec_none.signals[f"unit{j}_i_out"][k], rel=1e-6)
     assert rec.signals["v_out"][k] == pytest.approx(V_REF - R_C[0] * i1, abs=1e-4)
     assert rec.signals["v_out"][k] == pytest.approx(rec_none.signals["v_out"][k], abs=1e-4)
+    # and the units without sharing themselves share by their cables alone (measured 1e-13)
+    assert (rec_none.signals["unit1_i_out"][k] / rec_none.signals["unit2_i_out"][k]
+            == pytest.approx(R_C[1] / R_C[0], rel=1e-9))
 
 
 def test_exchange_without_loss_shares_equally(exchange_pair):
@@ -520,6 +523,24 @@ def test_a_unit_over_its_voltage_trips_alone(tmp_path):
         assert np.all(rec.signals[f"unit{j}_enable"] == 1.0)
     kk = _at(rec, 30e-3)
     assert np.all(np.abs(rec.signals["v_out"][kk:] - 450.0) < 0.05 * 450.0)
+
+
+def test_a_bus_interlock_blocks_every_unit(tmp_path):
+    """A bus-level interlock (the scenario's [[interlocks]], v_out above 430 V, crossed by the
+    450 V step): the run trips on it (outcome "tripped", the cause named) and every unit's
+    gates block (the runtime's latch: each unit's converter current stops at zero within a
+    millisecond and stays there; a diode stops a falling inductor current at zero)."""
+    sc, s, rec = run(tmp_path, scenario(units=FOUR_DROOP, duration="20 ms",
+                                        extra='[[interlocks]]\nsignal = "v_out"\n'
+                                              'above = "430 V"\n'), "bus_interlock")
+    assert s["outcome"]["status"] == "tripped", s["outcome"]
+    assert s["trip"]["cause"] == "interlock v_out > 430 V"
+    k = s["trip"]["tick"]
+    assert rec.signals["v_out"][k] > 430.0 and rec.signals["v_out"][k - 1] <= 430.0
+    after = _at(rec, rec.time[k] + 1e-3)
+    for j in range(1, 5):
+        assert rec.signals[f"unit{j}_i_L1"][k - 1] > 100.0
+        assert np.all(np.abs(rec.signals[f"unit{j}_i_L1"][after:]) < 1e-6)
 
 
 # -- 5 bad input: one clear line, exit 2, through the command line -----------------------------
