@@ -150,8 +150,9 @@ def _units_section(s: dict, pic: str | None) -> list[str]:
              + "; definitions: `hilrig.runtime.trials.sharing`).")
     L += ["", "| unit | share [%] | mean current [A] | largest deviation [A] | at [s] | "
           "largest deviation [% of share] | RMS deviation [A] | RMS deviation [% of share] | "
-          "mean deviation [% of share] | time blocked [s] | trips |",
-          "| " + " | ".join("---" for _ in range(11)) + " |"]
+          "mean deviation [% of share] | largest current [A] | trip level [A] | "
+          "time blocked [s] | trips |",
+          "| " + " | ".join("---" for _ in range(13)) + " |"]
     for u in sh.get("units") or []:
         trips = "; ".join(f"{tr['cause']} at {_metric(tr['time_s'])} s"
                           for tr in u.get("trips") or []) or "none"
@@ -160,6 +161,8 @@ def _units_section(s: dict, pic: str | None) -> list[str]:
                  f"{_metric(u.get('time_of_largest_deviation_s'))} | "
                  f"{_metric(u.get('largest_deviation_pct'))} | {_metric(u.get('rms_deviation_A'))} | "
                  f"{_metric(u.get('rms_deviation_pct'))} | {_metric(u.get('mean_deviation_pct'))} | "
+                 f"{_metric(u.get('largest_current_A'))} | "
+                 f"{_metric(u.get('i_trip_A')) if u.get('i_trip_A') else 'none'} | "
                  f"{_metric(u.get('time_blocked_s'))} | {trips} |")
     c = sh.get("circulating") or {}
     b = sh.get("bus") or {}

@@ -33,6 +33,9 @@ samples below while the unit runs:
 - ``mean_deviation_A`` :math:`\\overline{d_k}` and ``mean_deviation_pct``
   :math:`100\\,\\overline{d_k} / \\overline{s_k I}`: the steady sharing error (droop's own error
   for droop sharing, which the exchange of messages is there to remove);
+- ``largest_current_A``: the largest :math:`|i_k|` over every scored sample (transients
+  included), beside the unit's trip level ``i_trip_A`` (``I_trip``, on its converter current;
+  0: none) as its current rating;
 - ``time_blocked_s``: ticks with :math:`e_k = 0` times Ts; ``trips``: each tick on which the
   unit's latched cause bits (``unit<k>_trip``, runtime/multi/control.py ``CAUSES``) gain a
   bit, with the new bits' cause text; ``resets_s``: the times its latch cleared.
@@ -52,7 +55,8 @@ included). And the reverse current, current that flows *into* a unit while anoth
 sources: :math:`\\max_k \\max(0, -i_k)` at ticks where some other unit has :math:`i_j > 0`;
 its largest value over every scored sample, with the unit and the time (0 and no unit when no
 unit ever sank current). A reverse current is current that circulates through two units
-without reaching the load.
+without reaching the load; a blocked unit's output filter, still on the bus through its
+cable, takes and gives back such current too.
 
 Bus voltage tracking: the bus is ``v_out``, so the run's tracking metrics, segments and band
 check (runtime/trials/metrics.py) are the bus's. Here only the steady bus error
@@ -221,6 +225,7 @@ def sharing_metrics(t, v_out, v_ref_raw, currents, enable, trip, shares, *,
             unit=k + 1, name=names[k], share=float(w[k]),
             i_trip_A=float(i_trip[k]) if i_trip is not None else None,
             steady_s=float(np.count_nonzero(m)) * ts,
+            largest_current_A=_largest(cur[:lim, k], t[:lim])[0] if lim else math.nan,
             mean_current_A=float(np.mean(cur[m, k][fin])) if fin.any() else math.nan,
             largest_deviation_A=big, time_of_largest_deviation_s=t_big,
             largest_deviation_pct=big_pct,

@@ -95,6 +95,7 @@ def test_a_unit_trip_renormalises_the_shares_and_is_listed():
         100.0 * (200.0 / 300.0 * third) / ((100 * 50.0 + 200 * 200.0 / 3.0) / 300.0))
     assert u1["rms_deviation_A"] == pytest.approx(math.sqrt(200.0 / 300.0) * third)
     assert u2["largest_deviation_A"] == pytest.approx(-5.0)       # before the trip
+    assert u1["largest_current_A"] == 70.0 and u3["largest_current_A"] == 30.0
     # unit 3: only while it runs (ticks 100..199): +5 A of 25 A = +20 %
     assert u3["largest_deviation_A"] == pytest.approx(5.0)
     assert u3["largest_deviation_pct"] == pytest.approx(20.0)
@@ -237,7 +238,7 @@ def test_example_report_has_the_units_section(example_runs):
     assert "![" in sec and "(report/units.png)" in sec
     assert (folder / "report" / "units.png").read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
     row3 = next(line for line in sec.splitlines() if line.startswith("| 3 |"))
-    assert "forced trip at 0.04 s" in row3
+    assert "forced trip at 0.04 s" in row3 and "| 550 |" in row3
 
 
 def test_example_unit_trip_others_take_its_share(example_runs):

@@ -143,3 +143,20 @@ def test_a_run_of_units_and_its_viewer_show_the_unit_that_tripped(tmp_path):
     assert "unit TRIPPED: 3 (forced trip)" in ended[-1], ended[-1]
     # unit 3's cell says it is off (its cable current still rings with the bus: any value)
     assert re.search(r"\| units 1 .*, 3 +-?[0-9.]+A +off, 4 ", ended[-1]), ended[-1]
+
+
+def test_sixteen_units_fit_the_panel_with_the_off_and_farthest_first():
+    from hilrig.runtime.live.watch import unit_lines
+    # 16 units at +1 % but unit 9 off and unit 12 at -30 %: 4 lines of 2 cells hold 7 units
+    # and the count of the others
+    rows = [[k, 100.0, 99.0, 1.0, 1.0, 1, 0, None] for k in range(1, 17)]
+    rows[8] = [9, 0.0, 0.0, 0.0, None, 0, 8, "lost"]
+    rows[11] = [12, 70.0, 100.0, -30.0, -30.0, 1, 0, None]
+    lines = unit_lines({"rows": rows, "trips": []}, room=4)
+    assert len(lines) == 4 and all(len(x) <= 36 for x in lines)
+    text = "\n".join(lines)
+    assert " 9    0.0A    off" in text and "12   70.0A -30.0%" in text
+    assert "(+9 more units)" in text
+    # all fit: every unit in order, two to a line
+    few = unit_lines({"rows": rows[:4], "trips": []}, room=4)
+    assert few == [" 1  100.0A  +1.0%  2  100.0A  +1.0%", " 3  100.0A  +1.0%  4  100.0A  +1.0%"]
