@@ -160,7 +160,9 @@ class View:
         line = f"{self.status_line()} | {vals} | protection {prot}"
         units = f.get("units")
         if units:
-            line += " | units " + ", ".join(c.strip() for c in unit_cells(units))
+            cells = unit_cells(units)
+            if cells:  # none before the first recorded row
+                line += " | units " + ", ".join(c.strip() for c in cells)
             trip = unit_trip_text(units)
             if trip:
                 line += " | " + trip
