@@ -167,6 +167,9 @@ def _summary_table(console, s: dict, folder: Path | None) -> None:
     t.add_row(escape("time in saturation [s]"), _num(m["saturation_time_s"], ".4g"))
     if m.get("nonfinite_samples"):
         t.add_row("non-finite samples", f"{m['nonfinite_samples']} ticks (left out of the metrics above)")
+    from hilrig.runtime.trials.sharing import table_rows as _sharing_rows
+    for label, value in _sharing_rows(s.get("sharing")):  # paralleled units
+        t.add_row(escape(label), escape(value))
     tps = tm.get("ticks_per_s")
     t.add_row(escape("loop speed [ticks/s]"), f"{tps:,.0f}  ({tm['loop_ns_per_tick']:.0f} ns per tick)" if tps else "-")
     t.add_row(escape("faster than real time [x]"), f"{tm['realtime_factor']:.1f}" if tm.get("realtime_factor") else "-")
@@ -362,7 +365,7 @@ def _run(console, plain, scenario_path: Path, out: str | None, overwrite: bool, 
          allow_remote: bool = False, curve_keys: str | None = None, ack_hv: bool = False,
          paced: bool = False, view: bool = False, telemetry: str | None = None,
          realtime: bool = True, telemetry_keys: str | None = None, strict: bool = False):
-    from hilrig.runtime.trials.plots import overview_png
+    from hilrig.runtime.trials.plots import overview_png, units_png
     from hilrig.runtime.recording import open_run
     from hilrig.runtime.run import run_scenario
     from hilrig.runtime.scenario import load_scenario
@@ -429,7 +432,9 @@ def _run(console, plain, scenario_path: Path, out: str | None, overwrite: bool, 
             import shutil
             shutil.rmtree(tmpdir, ignore_errors=True)
     try:
-        overview_png(open_run(res.folder), res.folder / "overview.png")
+        done = open_run(res.folder)
+        overview_png(done, res.folder / "overview.png")
+        units_png(done, res.folder / "units.png")  # paralleled units only
     except ImportError:
         console.print("(matplotlib is not installed: no overview.png)")
     except (ValueError, ArithmeticError, OverflowError) as exc:

@@ -50,7 +50,8 @@ SCENARIO = "scenario.toml"
 # files hilrig derives from a run folder's recording (the overview plot, 'hilrig report',
 # 'hilrig export' at its default paths): a run written over the folder removes them, so that
 # none describes the recording it replaced
-DERIVED_FILES = ("overview.png", "report.md", "report", "recording.csv", "recording.mf4")
+DERIVED_FILES = ("overview.png", "units.png", "report.md", "report", "recording.csv",
+                 "recording.mf4")
 
 
 def clear_derived(folder: Path) -> list[str]:

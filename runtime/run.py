@@ -1033,6 +1033,11 @@ def execute(sc: Scenario, prep: Prepared, folder: Path,
                                                                    cut_reason=cut_reason)
     # the tracking band (outcomes "out of band" and "oscillating"), over the same samples
     summary["tracking"] = band_check(tt, yy, rr, cut=cut)
+    if sc.units is not None:
+        # paralleled units: each unit's share, circulating current (runtime/trials/sharing.py)
+        from .trials.sharing import from_recording
+        summary["sharing"] = from_recording(folder / "recording.h5", sc.units, cut=cut,
+                                            cut_reason=cut_reason)
     if end_event in INTEGRATION_ERRORS:
         # a diverged plant state: no number of this run means anything
         e_int = next((e for e in events if e["event"] == end_event), {})

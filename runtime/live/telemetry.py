@@ -24,10 +24,16 @@ Frame (every key always present; values in SI units unless the key says otherwis
 ``trace`` {"t", "v_out", "v_ref"} (the last ``TRACE_S`` simulated seconds, at most 240 points),
 ``timing`` {"ticks_per_s", "lateness_p99_us", "late_ticks", "compute_p99_us"} (None where the
 mode has no such figure), ``bridge`` (link statistics or None), ``ended``, ``end_event`` (once
-ended: how, the outcome's one-line text of runtime/outcome.py in SIL and bridge runs).
+ended: how, the outcome's one-line text of runtime/outcome.py in SIL and bridge runs),
+``units`` (None for one unit; for paralleled units: ``rows``, one per unit, ``[k, i_out [A],
+share current [A], deviation [A], deviation [% of the share] or None, enable (1 runs), trip
+cause bits, cause text or None]`` at the newest row, the share renormalised over the units that
+run as in runtime/trials/sharing.py; ``trips``, the last 6 trips of single units seen,
+``[k, cause text, t [s]]``).
 """
 from __future__ import annotations
 
+import math
 import time
 from collections import deque
 from typing import Any
@@ -51,6 +57,8 @@ FRAME_INTERVAL_S = 0.05
 TRACE_S = 2.0
 TRACE_POINTS = 240
 KEY_SIGNALS = ("v_out", "v_ref", "i_out", "i_L1", "v_C1", "u", "v_dc")
+#: the per-unit trips a frame carries (``units["trips"]``, the newest)
+UNIT_TRIPS_SHOWN = 6
 
 
 def needs_keys(address: str) -> bool:
@@ -87,7 +95,7 @@ class Telemetry:
 
     def __init__(self, address: str, *, info: dict[str, Any], names: list[str], units: list[str],
                  table: InterlockTable, allow_remote: bool = False, wait_for_viewer_s: float = 0.0,
-                 curve_keys=None):
+                 curve_keys=None, units_info: dict[str, Any] | None = None):
         check_telemetry_address(address, allow_remote, curve_keys)
         self.address = address
         # a CurveZMQ server owns its context (its authenticator's inproc name: as the bridge's
@@ -139,6 +147,17 @@ class Telemetry:
         self.late_ticks = 0
         self.recent_late: list[np.ndarray] = []
         self.recent_comp: list[np.ndarray] = []
+        # paralleled units (:func:`units_info`): the columns of each unit's current, enable
+        # and trip bits, its weight; the trips seen so far
+        self.unit_cols = None
+        if units_info:
+            self.unit_cols = {
+                "i_out": [names.index(n) for n in units_info["i_out"]],
+                "enable": [names.index(n) for n in units_info["enable"]],
+                "trip": [names.index(n) for n in units_info["trip"]],
+                "weights": np.asarray(units_info["weights"], dtype=float)}
+            self.unit_bits = np.zeros(len(units_info["i_out"]), dtype=np.int64)
+            self.unit_trips: deque = deque(maxlen=UNIT_TRIPS_SHOWN)
         if wait_for_viewer_s > 0 and self.pub.poll(int(wait_for_viewer_s * 1000)):
             self.pub.recv()  # the first subscription: a viewer is there
 
@@ -163,11 +182,47 @@ class Telemetry:
         t_end = (first_tick + n) * ts
         while self.trace and self.trace[0][0] < t_end - TRACE_S:
             self.trace.popleft()
+        if self.unit_cols is not None:
+            self._unit_trips(first_tick, rows, ts)
         if self.i_late is not None:
             la = rows[:, self.i_late]
             self.late_ticks += int((la > ts).sum())
             self.recent_late.append(la.copy())
             self.recent_comp.append(rows[:, self.i_comp].copy())
+
+    def _unit_trips(self, first_tick: int, rows: np.ndarray, ts: float) -> None:
+        """Note each tick on which a unit's latched cause bits gain a bit (a trip of that
+        unit; runtime/multi/control.py)."""
+        from hilrig.runtime.trials.sharing import LATCH_BITS, cause_text
+        for j, col in enumerate(self.unit_cols["trip"]):
+            c = rows[:, col]
+            bits = np.where(np.isfinite(c), c, 0.0).astype(np.int64) & LATCH_BITS
+            prev = np.concatenate(([self.unit_bits[j]], bits[:-1]))
+            for k in np.flatnonzero(bits & ~prev):
+                self.unit_trips.append([j + 1, cause_text(int(bits[k] & ~prev[k])),
+                                        (first_tick + int(k)) * ts])
+            self.unit_bits[j] = bits[-1]
+
+    def _unit_rows(self, row: np.ndarray | None) -> dict[str, Any] | None:
+        """The frame's ``units``: each unit at the newest row, and the last trips."""
+        if self.unit_cols is None:
+            return None
+        from hilrig.runtime.trials.sharing import LATCH_BITS, PCT_FLOOR_A, cause_text
+        u = self.unit_cols
+        rows = []
+        if row is not None:
+            cur = row[u["i_out"]]
+            on = row[u["enable"]] > 0.5
+            w = u["weights"] * on
+            share = w / w.sum() * float(np.sum(cur)) if w.sum() > 0 else np.zeros_like(w)
+            for j in range(cur.shape[0]):
+                dev = float(cur[j] - share[j])
+                pct = 100.0 * dev / float(share[j]) if abs(share[j]) >= PCT_FLOOR_A else None
+                tv = row[u["trip"][j]]
+                bits = int(tv) & LATCH_BITS if math.isfinite(tv) else 0
+                rows.append([j + 1, float(cur[j]), float(share[j]), dev, pct,
+                             1 if on[j] else 0, bits, cause_text(bits) if bits else None])
+        return {"rows": rows, "trips": [list(x) for x in self.unit_trips]}
 
     # ---- output ------------------------------------------------------------------------
     def frame(self, latch: np.ndarray, evlog: np.ndarray, evn: np.ndarray, *,
@@ -215,6 +270,7 @@ class Telemetry:
             "trace": {"t": [p[0] for p in tr], "v_out": [float(p[1]) for p in tr],
                       "v_ref": [float(p[2]) for p in tr]},
             "timing": timing, "bridge": bridge, "ended": ended, "end_event": end_event,
+            "units": self._unit_rows(row),
         }
 
     def publish(self, latch, evlog, evn, *, force: bool = False, **kw) -> bool:
@@ -269,8 +325,22 @@ def run_info(sc) -> dict[str, Any]:
             "caution": caution_text(scenario_voltages(sc)), "n_total": sc.n_ticks, "Ts": sc.Ts}
 
 
+def units_info(sc) -> dict[str, Any] | None:
+    """What the frames need of paralleled units (plain data: it goes to the paced recording
+    process too): each unit's recorded current, enable and trip columns and its weight; None
+    for a single unit."""
+    us = getattr(sc, "units", None)
+    if us is None:
+        return None
+    from hilrig.runtime.multi.plant import unit_signal
+    ks = range(1, us.count + 1)
+    return {"i_out": list(us.i_out), "enable": [unit_signal(k, "enable") for k in ks],
+            "trip": [unit_signal(k, "trip") for k in ks], "weights": [float(w) for w in us.shares]}
+
+
 def telemetry_config(sc, prep, address: str, allow_remote: bool = False) -> dict[str, Any]:
     """Keyword arguments of :class:`Telemetry` for a prepared run."""
     return dict(address=address, info=run_info(sc), names=[s.name for s in prep.signals],
                 units=[s.unit for s in prep.signals], table=prep.table, allow_remote=allow_remote,
-                wait_for_viewer_s=WAIT_FOR_VIEWER_S, curve_keys=CURVE_KEYS)
+                wait_for_viewer_s=WAIT_FOR_VIEWER_S, curve_keys=CURVE_KEYS,
+                units_info=units_info(sc))

@@ -73,6 +73,55 @@ def trace_lines(tr: dict, width: int, height: int) -> list[str]:
     return out
 
 
+def unit_cells(units: dict | None) -> list[str]:
+    """One short cell per paralleled unit (a frame's ``units``): its number, output current and
+    deviation from its share in %, or "off" while its gates are blocked (the cause is in the
+    protection panel)."""
+    if not units:
+        return []
+    cells = []
+    for k, i, _share, _dev, pct, on, _bits, _cause in units.get("rows") or []:
+        cur = f"{i:7.1f}A" if i is not None and math.isfinite(i) else "    n/aA"
+        if not on:
+            cells.append(f"{k:>2}{cur}    off")
+        else:
+            dev = f"{pct:+6.1f}%" if pct is not None and math.isfinite(pct) else "    n/a"
+            cells.append(f"{k:>2}{cur}{dev}")
+    return cells
+
+
+def unit_lines(units: dict | None, room: int, per_line: int = 2) -> list[str]:
+    """The units' cells, ``per_line`` to a line, in at most ``room`` lines; when they do not
+    fit, the units off or farthest from their share, and how many more there are."""
+    cells = unit_cells(units)
+    if not cells or room <= 0:
+        return []
+    if len(cells) > room * per_line:
+        rows = units.get("rows") or []
+        order = sorted(range(len(rows)), key=lambda j: (
+            rows[j][5] != 0, -abs(rows[j][4]) if rows[j][4] is not None
+            and math.isfinite(rows[j][4]) else 0.0))
+        keep = room * per_line - 1
+        rest = len(cells) - keep
+        cells = [cells[j] for j in sorted(order[:keep])] + [f"(+{rest} more units)"]
+    return [" ".join(f"{c:<17}" for c in cells[i:i + per_line]).rstrip()
+            for i in range(0, len(cells), per_line)][:room]
+
+
+def unit_trip_text(units: dict | None) -> str | None:
+    """Which units are off now and why, else the last trip of a unit seen (None: none)."""
+    if not units:
+        return None
+    off = [f"{r[0]} ({r[7] or 'blocked'})" for r in units.get("rows") or [] if not r[5]]
+    if off:
+        return "unit TRIPPED: " + ", ".join(off)
+    trips = units.get("trips") or []
+    if trips:
+        k, cause, t = trips[-1]
+        return f"last unit trip: {k} ({cause}) at t = {t:.4f} s"
+    return None
+
+
 class View:
     """Keeps the newest frame and renders it."""
 
@@ -108,7 +157,16 @@ class View:
         vals = "  ".join(f"{k} {_fmt(v[0], v[1])}" for k, v in f["values"].items()
                          if k in ("v_out", "v_ref", "i_out", "u"))
         prot = f"TRIPPED ({f['cause']})" if f["latched"] else "ok"
-        return f"{self.status_line()} | {vals} | protection {prot}"
+        line = f"{self.status_line()} | {vals} | protection {prot}"
+        units = f.get("units")
+        if units:
+            cells = unit_cells(units)
+            if cells:  # none before the first recorded row
+                line += " | units " + ", ".join(c.strip() for c in cells)
+            trip = unit_trip_text(units)
+            if trip:
+                line += " | " + trip
+        return line
 
     def render(self, width: int = 80):
         from rich.console import Group
@@ -151,6 +209,12 @@ class View:
             style = "bold red" if lim is not None and math.isfinite(v) and abs(v) > lim else ""
             sig_t.add_row(name, Text(_fmt(v, unit), style=style), _bar(v, lim) if lim else "",
                           _fmt(lim, unit) if lim is not None else "")
+        units = f.get("units")
+        if units:
+            # paralleled units: a compact cell per unit below the bus signals (the panel's
+            # 8 lines; units off or farthest from their share first when not all fit)
+            lines_u = unit_lines(units, 8 - len(f["values"]))
+            sig_t = Group(sig_t, Text("\n".join(lines_u))) if lines_u else sig_t
         half = max(30, width // 2 - 1)
         tr = self.frozen_trace if self.frozen_trace is not None else f["trace"]
         lines = trace_lines(tr, half - 4, 7)
@@ -161,7 +225,8 @@ class View:
         top = Table.grid(expand=True)
         top.add_column(ratio=1)
         top.add_column(ratio=1)
-        top.add_row(Panel(sig_t, title="signals", title_align="left", height=10),
+        top.add_row(Panel(sig_t, title="signals" + (", units: A, % off share" if units else ""),
+                          title_align="left", height=10),
                     Panel(Text("\n".join(lines) + "\n" + err), title=trace_title,
                           title_align="left", height=10))
         if f["latched"]:
@@ -175,6 +240,10 @@ class View:
                 prot.append(f"\nat t = {f['trip_t']:.4f} s")
         else:
             prot = Text("armed, no trip", style="bold green")
+        utrip = unit_trip_text(f.get("units"))
+        if utrip:
+            prot.append("\n" + utrip[:70], style="bold red" if utrip.startswith("unit TRIPPED")
+                        else "yellow")
         wd = [n for b, n in ((40, "overrun"), (41, "stale"), (42, "seq gap"), (43, "peer lost"))
               if (f["word"] >> b) & 1]
         if wd:

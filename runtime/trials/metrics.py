@@ -599,8 +599,8 @@ def band_check(t: np.ndarray, v_out: np.ndarray, v_ref_raw: np.ndarray, *,
 def withhold_metrics(summary: dict, reason: str) -> None:
     """Null every metric of a run's summary (a run that ended on a plant integration error):
     the tracking metrics but the event counts (``trips``, ``warnings``), every segment's
-    metrics (the segments stay listed, each with a ``note``) and the band check; and say why in
-    ``summary["metrics_note"]``. In place."""
+    metrics (the segments stay listed, each with a ``note``), the band check and the units'
+    sharing metrics; and say why in ``summary["metrics_note"]``. In place."""
     keep = {"trips", "warnings"}
     summary["metrics"] = {k: (v if k in keep else None)
                           for k, v in (summary.get("metrics") or {}).items()}
@@ -610,6 +610,8 @@ def withhold_metrics(summary: dict, reason: str) -> None:
                                 note="not scored: " + reason)
                            for seg in summary.get("segments") or []]
     summary["tracking"] = None
+    if "sharing" in summary:  # paralleled units (runtime/trials/sharing.py)
+        summary["sharing"] = None
     summary["metrics_note"] = reason
 
 

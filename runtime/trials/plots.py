@@ -122,3 +122,94 @@ def _overview(plt, run: Run, dest: Path) -> Path:
     fig.savefig(dest, dpi=90)
     plt.close(fig)
     return dest
+
+
+def unit_signals(run: Run) -> list[int]:
+    """The unit numbers k whose output current ``unit<k>_i_out`` the run recorded (empty for
+    a single-unit run)."""
+    ks = []
+    k = 1
+    while f"unit{k}_i_out" in run.signals:
+        ks.append(k)
+        k += 1
+    return ks
+
+
+def units_png(run: Run, dest: Path) -> Path | None:
+    """A run of paralleled units: the bus voltage with its reference; each unit's output
+    current with its share of the units' total current (dashed, renormalised while a unit is
+    blocked: runtime/trials/sharing.py), each unit's trips marked with its number. None for a
+    single-unit run."""
+    if not unit_signals(run):
+        return None
+    import matplotlib
+    matplotlib.use("Agg")
+    import warnings
+
+    import matplotlib.pyplot as plt
+
+    with warnings.catch_warnings(), np.errstate(over="ignore", invalid="ignore"):
+        warnings.simplefilter("ignore", RuntimeWarning)
+        return _units(plt, run, dest)
+
+
+def _units(plt, run: Run, dest: Path) -> Path:
+    from .sharing import LATCH_BITS, cause_text
+    shown = _Shown()
+    t = run.time
+    s = run.signals
+    ks = unit_signals(run)
+    sh = (run.summary or {}).get("sharing") or {}
+    weights = {u["unit"]: u["share"] for u in sh.get("units") or []}
+    fig, ax = plt.subplots(2, 1, figsize=(9, 7), sharex=True, constrained_layout=True,
+                           gridspec_kw={"height_ratios": [1, 1.4]})
+    ax[0].plot(t, shown(s["v_ref"]), lw=1.6, color="0.65", label="v_ref (shaped)")
+    if "v_ref_raw" in s:
+        ax[0].plot(t, shown(s["v_ref_raw"]), lw=0.8, ls=":", color="0.3", label="v_ref_raw")
+    ax[0].plot(t, shown(s["v_out"]), lw=0.9, color="tab:blue", label="v_out (bus)")
+    ax[0].set_ylabel("bus voltage [V]")
+    ax[0].legend(loc="best", fontsize=8)
+    cur = np.stack([s[f"unit{k}_i_out"] for k in ks], axis=1)
+    on = np.stack([s.get(f"unit{k}_enable", np.ones_like(t)) for k in ks], axis=1) > 0.5
+    colours = plt.rcParams["axes.prop_cycle"].by_key()["color"]
+    share_i = None
+    if len(weights) == len(ks):
+        w = np.asarray([weights[k] for k in ks]) * on
+        tot = w.sum(axis=1, keepdims=True)
+        share_i = np.where(tot > 0, w / np.where(tot > 0, tot, 1.0), 0.0) * cur.sum(axis=1)[:, None]
+    for j, k in enumerate(ks):
+        c = colours[j % len(colours)]
+        ax[1].plot(t, shown(cur[:, j]), lw=0.9, color=c, label=f"unit {k}")
+        if share_i is not None:
+            ax[1].plot(t, shown(share_i[:, j]), lw=0.8, ls="--", color=c)
+        trip = s.get(f"unit{k}_trip")
+        if trip is not None:
+            bits = np.where(np.isfinite(trip), trip, 0.0).astype(np.int64) & LATCH_BITS
+            new = bits & ~np.concatenate(([0], bits[:-1]))
+            for i in np.flatnonzero(new):
+                for a in ax:
+                    a.axvline(t[i], color=c, lw=1.0, ls="-.")
+                ax[1].annotate(f"{k}: {cause_text(int(new[i]))}", (t[i], 0.98),
+                               xycoords=("data", "axes fraction"), fontsize=8, va="top",
+                               color=c)
+    if share_i is not None:
+        ax[1].plot([], [], lw=0.8, ls="--", color="0.3", label="dashed: each unit's share")
+    ax[1].set_ylabel("unit output current [A]")
+    ax[1].set_xlabel("time [s]")
+    ax[1].legend(loc="best", fontsize=8, ncol=2)
+    for a in ax:
+        a.grid(True, lw=0.3)
+    title = (run.attrs.get("title", "") or run.folder.name) + f": {len(ks)} units"
+    if run.attrs.get("demo_data"):
+        title += "  [demo data]"
+    dev = sh.get("largest_deviation_pct")
+    if isinstance(dev, (int, float)) and np.isfinite(dev):
+        title += (f"\nlargest steady deviation from a share {dev:+.3g} % (unit "
+                  f"{sh.get('largest_deviation_unit')})")
+    note = shown.note()
+    if note:
+        title += "\n" + note
+    fig.suptitle(title, fontsize=10)
+    fig.savefig(dest, dpi=90)
+    plt.close(fig)
+    return dest

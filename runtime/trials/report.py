@@ -125,6 +125,70 @@ def _segment_tables(segments: list[dict], info: dict) -> list[str]:
     return L[:-1]
 
 
+def _units_section(s: dict, pic: str | None) -> list[str]:
+    """Paralleled units (``summary["sharing"]``, runtime/trials/sharing.py): a row per unit
+    with its share, its deviation from it in the steady windows, its time blocked and trips;
+    the circulating current; the per-unit plot."""
+    if "sharing" not in s:
+        return []
+    sh = s.get("sharing")
+    L = ["", "## Units", ""]
+    if not isinstance(sh, dict):
+        L.append("No sharing metrics: " + (s.get("metrics_note") or "none were computed") + ".")
+        return L
+    from .sharing import trips_text
+    L.append(f"{sh.get('count')} paralleled units ({sh.get('topology', '')} topology, sharing "
+             f"\"{sh.get('sharing', '')}\"); the bus is `v_out`, so the tracking metrics above "
+             f"are the bus voltage's. A unit's share is its weight over the weights of the units "
+             f"that run (renormalised while a unit is blocked); its deviation is its output "
+             f"current minus that share of the units' total current, in A and in % of the share, "
+             f"taken in the steady windows ({_metric(sh.get('settle_delay_s'))} s after the start "
+             f"and after each change of the reference, of the load or of the units that run: "
+             f"{_metric(sh.get('steady_s'))} s in all"
+             + (f", scored up to {sh['cut_reason']} at {_metric(sh.get('cut_at_s'))} s"
+                if sh.get("cut_at_s") is not None else "")
+             + "; definitions: `hilrig.runtime.trials.sharing`).")
+    L += ["", "| unit | share [%] | mean current [A] | largest deviation [A] | at [s] | "
+          "largest deviation [% of share] | RMS deviation [A] | RMS deviation [% of share] | "
+          "mean deviation [% of share] | largest current [A] | trip level [A] | "
+          "time blocked [s] | trips |",
+          "| " + " | ".join("---" for _ in range(13)) + " |"]
+    for u in sh.get("units") or []:
+        trips = "; ".join(f"{tr['cause']} at {_metric(tr['time_s'])} s"
+                          for tr in u.get("trips") or []) or "none"
+        L.append(f"| {u['unit']} | {_metric(100.0 * u['share'])} | "
+                 f"{_metric(u.get('mean_current_A'))} | {_metric(u.get('largest_deviation_A'))} | "
+                 f"{_metric(u.get('time_of_largest_deviation_s'))} | "
+                 f"{_metric(u.get('largest_deviation_pct'))} | {_metric(u.get('rms_deviation_A'))} | "
+                 f"{_metric(u.get('rms_deviation_pct'))} | {_metric(u.get('mean_deviation_pct'))} | "
+                 f"{_metric(u.get('largest_current_A'))} | "
+                 f"{_metric(u.get('i_trip_A')) if u.get('i_trip_A') else 'none'} | "
+                 f"{_metric(u.get('time_blocked_s'))} | {trips} |")
+    c = sh.get("circulating") or {}
+    b = sh.get("bus") or {}
+    L += ["", "| quantity | value |", "| --- | --- |",
+          f"| circulating current, steady: largest [A] | {_metric(c.get('largest_A'))} at "
+          f"{_metric(c.get('time_of_largest_s'))} s |",
+          f"| circulating current, steady: RMS [A] | {_metric(c.get('rms_A'))} |",
+          f"| circulating current, transients included: largest [A] | "
+          f"{_metric(c.get('largest_whole_run_A'))} at "
+          f"{_metric(c.get('time_of_largest_whole_run_s'))} s |",
+          "| reverse current (into a unit while another sources): largest [A] | "
+          + (f"{_metric(c.get('reverse_largest_A'))} into unit {c['reverse_unit']} at "
+             f"{_metric(c.get('time_of_reverse_largest_s'))} s |" if c.get("reverse_unit")
+             else "none |"),
+          f"| bus error v_ref_raw - v_out, steady: mean [V] | {_metric(b.get('steady_mean_error_V'))} |",
+          f"| bus error, steady: largest magnitude [V] | {_metric(b.get('steady_max_abs_error_V'))} |",
+          f"| units tripped | {trips_text(sh)} |",
+          "", "Circulating current: half the sum over the units of |deviation|, the current the "
+          "units above their share deliver in excess of it (0 when every unit carries exactly "
+          "its share)."]
+    if pic:
+        L += ["", f"![bus voltage and reference; each unit's output current and its share "
+                  f"(dashed), trips marked with the unit's number]({pic})"]
+    return L
+
+
 def _start_text(s: dict) -> str:
     """The start voltage and the excitation (``[initial] v_out_offset``) the run started with."""
     v0, off = s.get("v_out_start_V"), s.get("v_out_start_offset_V")
@@ -189,7 +253,7 @@ def _controller_section(s: dict) -> list[str]:
 
 def write_report(run: Run, dest: Path | None = None) -> Path:
     """Write ``report.md`` (and its PNGs in ``report/``) for a finished run; return its path."""
-    from .plots import overview_png
+    from .plots import overview_png, units_png
     if not run.summary:
         raise RecordingError(f"{run.folder}: no summary.json (the run did not finish): no report")
     s = run.summary
@@ -198,6 +262,7 @@ def write_report(run: Run, dest: Path | None = None) -> Path:
     pics.mkdir(parents=True, exist_ok=True)
     over = overview_png(run, pics / "overview.png")
     tim = timing_png(run, pics / "timing.png")
+    uni = units_png(run, pics / "units.png")
     rel = lambda p: p.relative_to(dest.parent).as_posix()  # noqa: E731
     L: list[str] = []
     title = s.get("title") or run.folder.name
@@ -256,6 +321,7 @@ def write_report(run: Run, dest: Path | None = None) -> Path:
     for k, v in (s.get("metrics") or {}).items():
         L.append(f"| {k} | {_metric(v)} |")
     L += _segment_tables(s.get("segments") or [], s.get("segmentation") or {})
+    L += _units_section(s, rel(uni) if uni else None)
     L.append("")
     L.append("## Interlock and watchdog events")
     L.append("")
