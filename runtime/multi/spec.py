@@ -85,7 +85,8 @@ def build(cx, raw: dict, plant, controller, Ts: float, duration: float, seed: in
         raise cx.fail("units.count", " is missing: how many units run in parallel (1 to "
                       f"{MAX_UNITS})")
     if isinstance(n_raw, bool) or not isinstance(n_raw, int) or not 1 <= n_raw <= MAX_UNITS:
-        raise cx.fail("units.count", f" = {n_raw!r} is not a whole number from 1 to {MAX_UNITS}")
+        shown = str(n_raw).lower() if isinstance(n_raw, bool) else repr(n_raw)
+        raise cx.fail("units.count", f" = {shown} is not a whole number from 1 to {MAX_UNITS}")
     n = int(n_raw)
     per_unit_names = {f"unit{k}" for k in range(1, n + 1)}
     count_overridden = "units.count" in cx.overridden or "units" in cx.overridden
@@ -127,7 +128,13 @@ def build(cx, raw: dict, plant, controller, Ts: float, duration: float, seed: in
             raise cx.fail(f"units.unit{k}", " is not a table")
         vals = dict(base)
         pkeys = {}
+        allowed = sorted(UNIT_KEYS) + ["controller"] + [q.name for q in plant.plugin.declaration.params]
         for key, v in own.items():
+            if key == "plugin":
+                raise cx.fail(f"units.unit{k}.plugin", ": every unit has the plant plugin of "
+                              "[plant] (a unit's own values differ, not its model)")
+            if key not in allowed:
+                raise cx.unknown(f"units.unit{k}", key, allowed)
             if key in UNIT_KEYS:
                 u, _, b = UNIT_KEYS[key]
                 vals[key] = quantity(f"units.unit{k}.{key}", v, u, b)
@@ -198,6 +205,10 @@ def build(cx, raw: dict, plant, controller, Ts: float, duration: float, seed: in
                       f"{MAX_RING - 2} exchange periods")
     stale = exch["stale"] if exch["stale"] > 0.0 else 10.0 * period_ticks * Ts + exch["delay"]
     # resets and faults of units
+    for what in ("resets", "faults"):
+        if not isinstance(tab.get(what, []), list):
+            raise cx.fail(f"units.{what}", f" is not an array of tables; write [[units.{what}]] "
+                          f"tables with unit and at" + (" and kind" if what == "faults" else ""))
     resets = []
     for i, r in enumerate(tab.get("resets", []) or []):
         if not isinstance(r, dict) or set(r) - {"unit", "at"} or {"unit", "at"} - set(r):
