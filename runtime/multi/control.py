@@ -36,7 +36,6 @@ The cause bits, recorded per unit as ``unit<k>_trip``: 1 over-current, 2 over-vo
 """
 from __future__ import annotations
 
-import hashlib
 from pathlib import Path
 
 import numpy as np
@@ -378,21 +377,10 @@ def step(t, p, xc, y, r, u):
 
 
 def generate(spec: dict, plugins: list, folder: Path) -> Path:
-    imports, seen = [], {}
-    for i, pl in enumerate(plugins):
-        how, where = pl.origin
-        if how == "module":
-            imports.append(f"import {where} as _c{i}")
-        else:
-            imports.append("from hilrig.runtime.registry import load_file as _load_file")
-            imports.append(f"_c{i} = _load_file({where!r})")
-    text = module_text(spec, imports)
-    key = hashlib.sha256(text.encode()).hexdigest()[:20]
-    path = folder / f"units_control_{key}.py"
-    if not path.exists():
-        from .plant import _write
-        _write(path, text)
-    return path
+    """Write (if absent) the units' controller module for ``spec``; return its path."""
+    from .plant import import_text, write_module
+    imports = [import_text(pl, f"_c{i}") for i, pl in enumerate(plugins)]
+    return write_module(folder, "units_control", module_text(spec, imports))
 
 
 def declaration(spec: dict) -> Declaration:

@@ -206,20 +206,28 @@ def linear_rate(values):
 
 def generate(spec: dict, unit_plugin, folder: Path) -> Path:
     """Write (if absent) the bus plant module for ``spec``; return its path."""
-    how, where = unit_plugin.origin
+    return write_module(folder, "units_plant", module_text(spec, import_text(unit_plugin, "_unit")))
+
+
+def import_text(plugin, alias: str) -> str:
+    """The lines of a generated module that bind ``plugin``'s module as ``alias``."""
+    how, where = plugin.origin
     if how == "module":
-        imp = f"import {where} as _unit"
-    else:
-        imp = f"from hilrig.runtime.registry import load_file as _load_file\n_unit = _load_file({where!r})"
-    text = module_text(spec, imp)
-    key = hashlib.sha256(text.encode()).hexdigest()[:20]
-    path = folder / f"units_plant_{key}.py"
+        return f"import {where} as {alias}"
+    return (f"from hilrig.runtime.registry import load_file as _load_file\n"
+            f"{alias} = _load_file({where!r})")
+
+
+def write_module(folder: Path, prefix: str, text: str) -> Path:
+    """Write (if absent) a generated module named by the hash of its text; its path."""
+    path = folder / f"{prefix}_{hashlib.sha256(text.encode()).hexdigest()[:20]}.py"
     if not path.exists():
         _write(path, text)
     return path
 
 
 def _write(path: Path, text: str) -> None:
+    """Write then rename: a concurrent worker never imports a half-written file."""
     import os
     import tempfile
     path.parent.mkdir(parents=True, exist_ok=True)

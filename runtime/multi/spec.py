@@ -10,7 +10,6 @@ it runs any plant and controller.
 from __future__ import annotations
 
 import hashlib
-import math
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
@@ -18,7 +17,7 @@ from typing import Any
 import numpy as np
 
 from hilrig.runtime import registry
-from hilrig.runtime.errors import PluginError, ScenarioError
+from hilrig.runtime.errors import ScenarioError
 
 from . import control as mc
 from . import plant as mp
