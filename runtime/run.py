@@ -225,6 +225,12 @@ def integration_summary(a: dict) -> dict[str, Any] | None:
 
 
 def prepare(sc: Scenario) -> Prepared:
+    units_design = units_shaping = None
+    if sc.units is not None:
+        # paralleled units: each unit's controller designed for its own plant and share, the
+        # shaping from the units (runtime/multi/design.py)
+        from .multi import design as mdes
+        sc, units_design, units_shaping = mdes.design_units(sc)
     plant, ctrl, ref = sc.plant, sc.controller, sc.reference
     pdecl = plant.plugin.declaration
     outputs = [s.name for s in pdecl.outputs]
@@ -353,7 +359,11 @@ def prepare(sc: Scenario) -> Prepared:
                            designed=[], given=sorted(ctrl.given),
                            note="every designed parameter is given" if sc.design["defaults"]
                            == "plant" else "[design] defaults = \"declared\": the plugin's numbers")
-    if prep.shaping is None and prep.sc.shaping.get("from_plant"):
+    if units_design is not None:
+        prep.design = units_design
+    if units_shaping is not None:
+        _set_shaping(prep, units_shaping)
+    elif prep.shaping is None and prep.sc.shaping.get("from_plant"):
         _shape_from_plant(prep, rng)
     return prep
 
@@ -362,8 +372,12 @@ def _shape_from_plant(prep: Prepared, rng) -> None:
     """The reference shaping's "auto" values from the plant and the designed loop
     (runtime/analysis/design.py shaping_from_plant), into the arrays the loop runs with."""
     from .analysis import design as dmod
+    _set_shaping(prep, dmod.shaping_from_plant(prep, rng))
+
+
+def _set_shaping(prep: Prepared, rec: dict[str, Any]) -> None:
+    """The shaping record's pole and slew rate into the arrays the loop runs with."""
     sc = prep.sc
-    rec = dmod.shaping_from_plant(prep, rng)
     sh = dict(sc.shaping, pole=rec["pole_rad_s"], slew_rate=rec["slew_rate_V_s"])
     ad, g1, g2, cr, dr = shaping.design(sh["order"], sh["pole"], sc.Ts)
     prep.args.update(ad=ad, g1=g1, g2=g2, cr=cr, dr=dr, slew=sh["slew_rate"])

@@ -306,7 +306,7 @@ def parse_scenario(text: str, name: str = "scenario.toml", path: str = "",
         from .loop import cache_dir
         from .multi import spec as units_spec
         defaults = {"plant": "two_stage_lc", "controller": "cascaded_pi"}
-        plant, controller, units, _, _ = units_spec.build(
+        plant, controller, units = units_spec.build(
             cx, raw, plant, controller, Ts, duration, seed, limits["safe_u"],
             quantity=lambda k, v, u, b, integer=False: _quantity(cx, k, v, u, b, integer=integer),
             plugin_parse=lambda r, kind, key: _plugin(cx, r, kind, defaults[kind]),

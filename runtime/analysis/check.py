@@ -22,6 +22,9 @@ import math
 from dataclasses import dataclass
 from typing import Any
 
+#: why a scenario of paralleled units gets no operating-point analysis
+UNITS_NOT_ANALYSED = ("the operating-point analysis covers a single unit; a scenario of "
+                      "paralleled units ([units]) is not analysed (its runs are)")
 #: a gain margin closer than this to 0 dB is "little margin" [dB]
 GAIN_MARGIN_DB = 3.0
 #: a phase margin below this is "little margin" [deg]
@@ -51,6 +54,9 @@ def start_check(prep) -> tuple[list[Finding], dict[str, Any]]:
     p = float(sc.load_v[0, 0])
     record: dict[str, Any] = dict(v_ref_V=v, p_load_W=p, thresholds=dict(
         gain_margin_db=GAIN_MARGIN_DB, phase_margin_deg=PHASE_MARGIN_DEG))
+    if getattr(sc, "units", None) is not None:
+        record.update(status="not analysed", note=UNITS_NOT_ANALYSED)
+        return [], record
     try:
         m = linearize(prep, v, p)
     except AnalysisError as exc:
@@ -101,6 +107,8 @@ def grid_check(scenarios: dict, path, grid, workers: int | None = None) -> list[
     steady state, or resting beyond an interlock)."""
     from . import grid as gmod
     tasks = []
+    if any(getattr(sc, "units", None) is not None for sc in scenarios.values()):
+        return []
     for c, sc in scenarios.items():
         tasks += gmod.tasks_for(sc.text, path.name, str(path), [c], grid, power_only=True)
     rows = gmod.stability_map(tasks, workers=workers)

@@ -75,6 +75,11 @@ def run(console, args, plain: bool, overrides: dict[str, Any]) -> int:
     path = Path(args.scenario)
     sc0 = load_scenario(path, overrides={k: v for k, v in overrides.items()
                                          if not k.startswith("controller")} or None)
+    if sc0.units is not None:
+        from hilrig.runtime.errors import ScenarioError
+        from .check import UNITS_NOT_ANALYSED
+        raise ScenarioError(f"{path.name}: {UNITS_NOT_ANALYSED}; hilrig analyze needs a "
+                            f"single-unit scenario (the unit alone: leave [units] out)")
     names = _names(args, sc0)
     if args.controllers:
         sc, plans = plan_candidates(path, overrides, names)

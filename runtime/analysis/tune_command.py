@@ -108,7 +108,13 @@ def run(console, args, plain: bool, overrides: dict[str, Any]) -> int:
     ov = dict(overrides)
     if args.controller:
         ov["controller"] = {"plugin": args.controller}
-    sc = dmod.pin(load_scenario(path, overrides=ov or None))
+    sc = load_scenario(path, overrides=ov or None)
+    if sc.units is not None:
+        from hilrig.runtime.errors import ScenarioError
+        from .check import UNITS_NOT_ANALYSED
+        raise ScenarioError(f"{path.name}: {UNITS_NOT_ANALYSED}; hilrig tune needs a "
+                            f"single-unit scenario (tune the unit alone: leave [units] out)")
+    sc = dmod.pin(sc)
     name = sc.controller.plugin.name
     # the controller as the scenario names it (a path for a user's plugin): what the map's and
     # the envelope's tasks select it by

@@ -295,17 +295,59 @@ def shares(values: dict) -> np.ndarray:
     return w / w.sum()
 
 
-def steady_state(spec, unit, values, v_bus: float, d) -> np.ndarray:
-    """A start state at bus voltage v_bus with load d: each unit carries its share of the
-    load current (by weight) and its output voltage is the bus voltage plus its cable's drop."""
+def droop_bus(values, v_set: float, d) -> tuple[float, np.ndarray] | None:
+    """The droop's steady state for the units' set voltage v_set [V] and load d: each unit
+    holds its terminal voltage at v_set - R_d,k i_k, the bus is v_k - R_c,k i_k, so
+    i_k = (v_set - v_bus) / (R_d,k + R_c,k) and their sum is the load's current at v_bus.
+    Newton's method from v_set on that one equation; (v_bus, currents), or None when it has
+    no solution near v_set (a load beyond what the droop can hold)."""
+    from hilrig.plugins.plants.loads import load_current
+    rd = np.asarray(values.get("droop_R", [0.0] * values["count"]), dtype=np.float64)
+    rc = np.asarray(values["cable_R"], dtype=np.float64) if values["topology"] == "cabled" \
+        else np.zeros(values["count"])
+    if values.get("sharing", "none") == "none" or not np.all(rd + rc > 0.0):
+        return None
+    g = float(np.sum(1.0 / (rd + rc)))
+    d = np.asarray(d, dtype=np.float64)
+    vmin = float(values["v_load_min"])
+
+    def f(vb):
+        return g * (v_set - vb) - float(load_current(vb, d, vmin))
+
+    vb = float(v_set)
+    for _ in range(50):
+        h = 1e-6 * max(1.0, abs(vb))
+        df = (f(vb + h) - f(vb - h)) / (2 * h)
+        if not (df != 0.0 and np.isfinite(df)):
+            return None
+        step = f(vb) / df
+        vb -= step
+        if not (np.isfinite(vb) and 0.0 < vb <= 2.0 * v_set):
+            return None
+        if abs(step) < 1e-12 * max(1.0, abs(vb)):
+            return vb, (v_set - vb) / (rd + rc)
+    return None
+
+
+def steady_state(spec, unit, values, v_out: float, d) -> np.ndarray:
+    """A start state for the output voltage v_out [V] with load d. With droop (sharing
+    "droop" or "exchange") v_out is the units' set voltage and the state is the droop's steady
+    state below it (:func:`droop_bus`); otherwise the bus is at v_out and each unit carries
+    its share of the load current (by weight), its output voltage the bus voltage plus its
+    cable's drop."""
     from hilrig.plugins.plants.loads import load_current
     n, cabled = spec["n"], spec["topology"] == "cabled"
     d = np.asarray(d, dtype=np.float64)
-    il = float(load_current(float(v_bus), d, float(values["v_load_min"])))
-    w = shares(values)
+    droop = droop_bus(values, float(v_out), d)
+    if droop is not None:
+        v_bus, cur = droop
+    else:
+        v_bus = float(v_out)
+        il = float(load_current(v_bus, d, float(values["v_load_min"])))
+        cur = il * shares(values)
     xs, ic = [], []
     for k in range(n):
-        i = il * w[k]
+        i = float(cur[k])
         vk = v_bus + (float(values["cable_R"][k]) * i if cabled else 0.0)
         xs.append(np.asarray(unit.DECLARATION.equilibrium(values["units"][k], vk,
                                                           np.array([0.0, 0.0, i])), dtype=np.float64))

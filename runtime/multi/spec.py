@@ -55,6 +55,9 @@ class UnitsSpec:
     i_conv: list[str] = field(default_factory=list)
     #: per unit: its current rating for the report (I_trip, or 0 when none is set)
     i_trip: list[float] = field(default_factory=list)
+    #: per unit: its plant and controller as single-unit plugin choices (for the designs)
+    plants: list = field(default_factory=list, repr=False)
+    controllers: list = field(default_factory=list, repr=False)
 
     def describe(self) -> dict[str, Any]:
         return dict(count=self.count, topology=self.topology, sharing=self.sharing,
@@ -233,7 +236,9 @@ def build(cx, raw: dict, plant, controller, Ts: float, duration: float, seed: in
                         units=[dict(pch.values) for pch in units_plant],
                         cable_R=[v["cable_R"] for v in units_vals],
                         cable_L=[v["cable_L"] for v in units_vals],
-                        weight=[v["weight"] for v in units_vals])
+                        weight=[v["weight"] for v in units_vals],
+                        # for the start state (the droop's steady state): not plant parameters
+                        droop_R=[v["droop_R"] for v in units_vals], sharing=sharing)
     bus_choice = PluginChoice(plugin=bus_plugin, values=plant_values,
                               given=frozenset(plant.given))
     # the composite controller
@@ -294,8 +299,9 @@ def build(cx, raw: dict, plant, controller, Ts: float, duration: float, seed: in
                    i_out=[mp.unit_signal(k, "i_out") for k in range(1, n + 1)],
                    v_out=[mp.unit_signal(k, "v_out") for k in range(1, n + 1)],
                    i_conv=[mp.unit_signal(k, conv) for k in range(1, n + 1)],
-                   i_trip=[v["I_trip"] for v in units_vals])
-    return bus_choice, ctrl_choice, us, units_plant, units_ctrl
+                   i_trip=[v["I_trip"] for v in units_vals], plants=units_plant,
+                   controllers=units_ctrl)
+    return bus_choice, ctrl_choice, us
 
 
 def _ref(pl) -> str:
