@@ -663,6 +663,21 @@ def _import_lines(plant: Plugin, ctrl: Plugin, ref: Plugin) -> str:
     return "\n".join(lines)
 
 
+#: the most items of one tuple display in generated code: CPython 3.11+ builds a longer display
+#: through a list (BUILD_LIST, LIST_APPEND, LIST_TO_TUPLE), and numba then fails to compile
+#: the function (an AssertionError in its bytecode peephole); the bus plant of paralleled units
+#: has more states than that from 6 cabled (5N + 1) or 8 merged (4N) units
+TUPLE_DISPLAY_MAX = 30
+
+
+def tuple_text(items) -> str:
+    """A tuple of ``items`` (code strings) as generated code: one display ``(a, b,)``, or for
+    more than TUPLE_DISPLAY_MAX items a sum of displays of at most that many each."""
+    items = list(items)
+    parts = [items[a:a + TUPLE_DISPLAY_MAX] for a in range(0, len(items), TUPLE_DISPLAY_MAX)] or [[]]
+    return " + ".join("(" + ", ".join(part) + ",)" if part else "()" for part in parts)
+
+
 def _step_text(nx: int, currents: tuple[int, ...], enables: tuple[int, ...] = ()) -> str:
     """``step``, one RK4 step as the substep loop takes it. For a plant that models blocked
     gates (``GATE_BLOCK_CURRENTS``) a blocked step goes to ``blocked_step``, compiled apart (it
@@ -687,7 +702,7 @@ def _step_text(nx: int, currents: tuple[int, ...], enables: tuple[int, ...] = ()
            # cancel and hide the crossing (the current then hung just above zero)
            "    k1 = plant_derivs(ta, pp, s, u, d)"]
     for n_i, i in enumerate(currents):
-        items = ", ".join("0.0" if j == i else f"sa[{j}]" for j in range(nx))
+        items = tuple_text("0.0" if j == i else f"sa[{j}]" for j in range(nx))
         pad = ""
         if enables:
             # a unit that runs: its current is not stopped
@@ -703,7 +718,7 @@ def _step_text(nx: int, currents: tuple[int, ...], enables: tuple[int, ...] = ()
                 "        th = -1.0",
                 "    if th >= 0.0:",
                 "        sa = rk4(ta, th * dt, pp, s, u, d)",
-                f"        sa = ({items},)",
+                f"        sa = {items}",
                 "        s1 = rk4(ta + th * dt, (1.0 - th) * dt, pp, sa, u, d)"]]
     out += ["    return s1", "", "",
             '@njit(inline="always")',
@@ -742,17 +757,17 @@ def _rk4_text(nx: int, own_step: bool, fast: bool = False, period: bool = False,
     if own_step:
         body = "    s = plant_rk4_step(dt, pp, s, u, d)"
     else:
-        s_k1 = ", ".join(f"s[{i}] + 0.5 * dt * k1[{i}]" for i in r)
-        s_k2 = ", ".join(f"s[{i}] + 0.5 * dt * k2[{i}]" for i in r)
-        s_k3 = ", ".join(f"s[{i}] + dt * k3[{i}]" for i in r)
-        s_new = ", ".join(f"s[{i}] + dt / 6.0 * (k1[{i}] + 2.0 * k2[{i}] + 2.0 * k3[{i}] + "
-                          f"k4[{i}])" for i in r)
+        s_k1 = tuple_text(f"s[{i}] + 0.5 * dt * k1[{i}]" for i in r)
+        s_k2 = tuple_text(f"s[{i}] + 0.5 * dt * k2[{i}]" for i in r)
+        s_k3 = tuple_text(f"s[{i}] + dt * k3[{i}]" for i in r)
+        s_new = tuple_text(f"s[{i}] + dt / 6.0 * (k1[{i}] + 2.0 * k2[{i}] + 2.0 * k3[{i}] + "
+                           f"k4[{i}])" for i in r)
         body = "\n".join([
             "    k1 = plant_derivs(ta, pp, s, u, d)",
-            f"    k2 = plant_derivs(ta + 0.5 * dt, pp, ({s_k1},), u, d)",
-            f"    k3 = plant_derivs(ta + 0.5 * dt, pp, ({s_k2},), u, d)",
-            f"    k4 = plant_derivs(ta + dt, pp, ({s_k3},), u, d)",
-            f"    s = ({s_new},)"])
+            f"    k2 = plant_derivs(ta + 0.5 * dt, pp, {s_k1}, u, d)",
+            f"    k3 = plant_derivs(ta + 0.5 * dt, pp, {s_k2}, u, d)",
+            f"    k4 = plant_derivs(ta + dt, pp, {s_k3}, u, d)",
+            f"    s = {s_new}"])
     if fast:
         step = """        # the whole substep when dt * rate <= zf (the usual path); where it is stiff, RK4
         # steps of at most zf / rate each, the rate taken at each one's start, the remainder
@@ -778,15 +793,16 @@ def _rk4_text(nx: int, own_step: bool, fast: bool = False, period: bool = False,
     else:
         step = "        s = step(ta, dt, pp, s, u, d, blocked)"
     x_items = ", ".join(f"x[{i}]" for i in r)
+    x_tuple = tuple_text(f"x[{i}]" for i in r)
     # gates blocked: the runtime's trip (every input NaN), or a paralleled unit's own block
     blocked = (" or ".join(f"not (u[{e}] > 0.5)" for e in dict.fromkeys(enables))
                if enables else "not (u[0] == u[0])")
     store = "\n".join(f"    x[{i}] = s[{i}]" for i in r)
     if period:
         # the plant integrates the whole period itself (switching instants, its own rule)
-        advance = f"    s = plant_advance_period(t, h, pp, ({x_items},), u, d)\n{store}\n    return 0"
+        advance = f"    s = plant_advance_period(t, h, pp, {x_tuple}, u, d)\n{store}\n    return 0"
     else:
-        advance = (f"    dt = h / nsub\n    s = ({x_items},)\n    extra = 0\n"
+        advance = (f"    dt = h / nsub\n    s = {x_tuple}\n    extra = 0\n"
                    f"    blocked = {blocked}\n"
                    f"    for j in range(nsub):\n        ta = t + j * dt\n{step}\n{store}\n"
                    f"    return extra")

@@ -105,7 +105,8 @@ def module_text(spec: dict, unit_import: str) -> str:
         items = []
         for k in range(n):
             items += ["a" if j == node else f"f{k}[{j}]" for j in range(nx)]
-    body.append("    return (" + ", ".join(items) + ",)")
+    from hilrig.runtime.loop import tuple_text  # no display of more than 30 items
+    body.append("    return " + tuple_text(items))
     lines.append('@njit(cache=True, error_model="numpy")\ndef derivs(t, p, x, u, d):\n'
                  '    """The bus plant\'s rates (runtime/multi/plant.py)."""\n' + "\n".join(body))
     # outputs: bus v_out, i_out; then per unit the unit plant's outputs
