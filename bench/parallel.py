@@ -17,7 +17,9 @@ times N is what N separate single-unit loops cost. The ratio printed is
 
 Two ways of timing, as bench/sil_throughput.py: the compiled loop alone (the chunk function on
 preallocated arrays, the same chunking as a run) and end to end (``run_scenario``: set-up,
-loop, HDF5 writes, metrics; a whole ``--duration`` run).
+loop, HDF5 writes, metrics; a whole ``--duration`` run). The loops are timed in a pass of their
+own, before the end-to-end runs (interleaved with runs, the units' loops measured about twice
+as slow as in a row of loops alone; the single unit's did not).
 
 Run: python bench/parallel.py [--reps 5] [--duration 0.5] [--counts 1,2,4,8]
 A first run compiles one loop per (N, topology): about 20-40 s each. The last line is JSON.
@@ -149,14 +151,19 @@ def main(argv=None) -> int:
         for t in everyone:
             t.loop_s.clear()
             t.e2e_s.clear()
-        for i in range(args.reps):  # interleaved, so that the machine's load hits all alike
+        # each pass interleaved, so that the machine's load hits all alike; the loops in a
+        # pass of their own: a units loop timed right after a run_scenario in the same
+        # process took about twice as long as in a row of loops alone
+        for i in range(args.reps):
             for t in everyone:
                 t.loop_once()
+        for i in range(args.reps):
+            for t in everyone:
                 t.e2e_once(Path(tmp) / f"run{i}")
     s1, e1 = st.median(single.loop_s), st.median(single.e2e_s)
     ts = single.sc.Ts
     print(f"Ts = {ts * 1e6:g} us, {args.duration:g} s simulated per run, median of {args.reps} "
-          f"(interleaved); single unit: loop {1 / s1:,.0f} ticks/s ({s1 * 1e9:.0f} ns/tick, "
+          f"(interleaved, loops and runs in passes of their own); single unit: loop {1 / s1:,.0f} ticks/s ({s1 * 1e9:.0f} ns/tick, "
           f"sub {single.substeps}), end to end {1 / e1:,.0f} ticks/s ({e1 * 1e9:.0f} ns/tick)")
     head = (f"{'topology':8s} {'N':>2s} {'sub':>3s} {'loop ticks/s':>13s} {'ns/tick':>8s} "
             f"{'N x single ns':>13s} {'ratio':>6s} {'x real time':>11s} | {'e2e ticks/s':>12s} "
