@@ -635,7 +635,9 @@ def _envelope(console, args, plain: bool) -> None:
     # validates the file and the --set overrides once, with run's messages, and every
     # candidate before anything runs: a controller parameter reaches the candidates that
     # have it (listed as not applied for the others; none taking it is an error)
-    sc, plans = plan_candidates(path, overrides, names)
+    axis = env.Axis.parse(args.axis) if args.axis else None
+    sc, plans, ctrl_of, axis_of = env.plan_series(path, overrides, names, axis)
+    names = list(plans)  # one map per controller (and axis value)
     v_start = parse_quantity(args.v_start, "V", "--v-start") if args.v_start else None
     out = Path(args.out) if args.out else Path("runs") / (
         _dt.datetime.now().strftime("%Y%m%d-%H%M%S") + "-envelope")
@@ -654,8 +656,9 @@ def _envelope(console, args, plain: bool) -> None:
         console.print(f"{len(names)} controller(s) x {len(grid.v)} x {len(grid.p)} operating points"
                       + (f" on the Dask cluster at {args.cluster}" if args.cluster else " on local processes"))
     # each candidate's scenario text with the overrides it takes: what its cells run
-    tasks = [t for c in names for t in env.tasks_for(plans[c].scenario.text, path.name, [c], grid,
-                                                     tol_pct=args.tolerance, v_start=v_start)]
+    tasks = [t for c in names for t in env.tasks_for(plans[c].scenario.text, path.name,
+                                                     [ctrl_of[c]], grid, tol_pct=args.tolerance,
+                                                     v_start=v_start, series=c, axis=axis_of[c])]
     t0 = time.perf_counter()
     if not args.cluster:
         if not args.json:
@@ -685,7 +688,7 @@ def _envelope(console, args, plain: bool) -> None:
         # the candidate's own overrides (its controller, then what it takes), then the cell's
         worst[c] = None if w is None else {**w, "command": env.run_command(
             args.scenario, env.set_items(plans[c].overrides),
-            env.cell_overrides(plans[c].scenario, c, w["v_ref_V"], w["p_load_W"], v_start))}
+            env.cell_overrides(plans[c].scenario, ctrl_of[c], w["v_ref_V"], w["p_load_W"], v_start))}
     if args.json:
         print(_json_text({c: {"outcomes": cnt[c], "trip_causes": why[c], "worst": worst[c],
                               "overrides": plans[c].scenario.overrides} for c in names}))
@@ -922,6 +925,9 @@ def main(argv: list[str] | None = None) -> int:
                    help="run one cell (target voltage, load power) as a normal run into a run "
                         "folder (--out) with its recording, instead of the map")
     p.add_argument("--controller", metavar="NAME", help="the controller of --cell")
+    p.add_argument("--axis", metavar="KEY=V1,V2,...",
+                   help="a further axis: one map per value of a scenario key, e.g. "
+                        "units.count=2,3,4 or units.unit2.L1='\"150 uH\",\"162 uH\"'")
     from hilrig.runtime.analysis.command import add_parser as _add_analyze
     _add_analyze(sub)
     from hilrig.runtime.analysis.tune_command import add_parser as _add_tune

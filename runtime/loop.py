@@ -730,6 +730,7 @@ TUPLE_CHUNK = 24
 def tuple_text(items: list[str]) -> str:
     """A tuple display of ``items`` for generated code: ``(a, b,)``, or for more than
     TUPLE_CHUNK items the concatenation of displays of at most that many each."""
+    items = list(items)
     parts = ["(" + ", ".join(items[i:i + TUPLE_CHUNK]) + ",)"
              for i in range(0, len(items), TUPLE_CHUNK)] or ["()"]
     return parts[0] if len(parts) == 1 else "(" + " + ".join(parts) + ")"

@@ -433,6 +433,9 @@ class CandidatePlan:
     scenario: Scenario
     overrides: dict[str, Any]
     not_applied: list[dict[str, str]]
+    #: what else the command should tell (paralleled units: a unit's own controller table
+    #: that the candidate replaces)
+    notes: list[str] = field(default_factory=list)
 
 
 def plan_candidates(path: str | Path, overrides: dict[str, Any] | None,
@@ -461,8 +464,15 @@ def plan_candidates(path: str | Path, overrides: dict[str, Any] | None,
     base = load_scenario(path, overrides=shared)
     own = base.controller.plugin
     first: dict[str, tuple[dict[str, Any], list[str]]] = {}
+    notes: dict[str, list[str]] = {c: [] for c in candidates}
     for cand in candidates:
         ov = dict(shared)
+        if base.units is not None:
+            # paralleled units: [controller] is every unit's controller (the runtime's is the
+            # generated units' controller), so the candidate replaces it for every unit
+            ov, known = _units_candidate(path, base, cand, ov, notes[cand])
+            first[cand] = (ov, known)
+            continue
         if cand not in (own.name, own.origin[1]):
             # the scenario's controller parameters belong to its own controller: others run
             # with their defaults and the overrides they take
@@ -487,8 +497,57 @@ def plan_candidates(path: str | Path, overrides: dict[str, Any] | None,
                    for k, v in params.items() if k not in taken]
         ov = {**ov, **taken}
         plans[cand] = CandidatePlan(load_scenario(path, overrides=ov, not_applied=skipped),
-                                    ov, skipped)
+                                    ov, skipped, notes[cand])
     return base, plans
+
+
+def _units_candidate(path, base: Scenario, cand: str, ov: dict[str, Any],
+                     notes: list[str]) -> tuple[dict[str, Any], list[str]]:
+    """A candidate controller on a scenario of paralleled units: (its overrides, its
+    parameter names). Every unit runs the candidate: the scenario's [controller] table (every
+    unit's values) stays when the candidate is that controller, else the candidate runs with
+    its defaults; a unit's own table [units.unitK.controller] stays when it is for the
+    candidate (no plugin of its own and the candidate is [controller]'s, or the candidate's
+    plugin named), else it is emptied for this candidate and ``notes`` says so."""
+    raw = tomllib.loads(base.text)
+    name = Path(path).name
+    folder = Path(path).parent
+
+    def ident(ref: str):
+        if ref.startswith("~"):
+            ref = str(Path(ref).expanduser())
+        if (ref.endswith(".py") or "/" in ref) and not Path(ref).is_absolute():
+            ref = str(folder / ref)
+        try:
+            pl = registry.load("controller", ref)
+        except PluginError as exc:
+            raise ScenarioError(f"{name}: controller {ref!r}: {exc}") from None
+        return pl, (pl.origin[0], str(Path(pl.origin[1]).resolve()) if pl.origin[0] == "file"
+                    else pl.origin[1])
+
+    ctab = raw.get("controller", {})
+    own_ref = ctab.get("plugin", "cascaded_pi") if isinstance(ctab, dict) else "cascaded_pi"
+    plugin, who = ident(cand)
+    is_own = who == ident(own_ref)[1]
+    if not is_own:
+        ov["controller"] = {"plugin": cand}
+    utab = raw.get("units", {})
+    for k in range(1, base.units.count + 1):
+        c_own = utab.get(f"unit{k}", {}).get("controller") if isinstance(
+            utab.get(f"unit{k}"), dict) else None
+        if not isinstance(c_own, dict) or not c_own:
+            continue
+        if "plugin" in c_own:
+            keep = ident(str(c_own["plugin"]))[1] == who
+        else:
+            keep = is_own
+        if not keep:
+            ov[f"units.unit{k}.controller"] = {}
+            whose = (f"its own controller {c_own['plugin']}" if "plugin" in c_own
+                     else f"values for {own_ref}")
+            notes.append(f"notice: candidate {cand} runs on every unit: units.unit{k}.controller "
+                         f"({whose}) is left out of its run")
+    return ov, [p.name for p in plugin.declaration.params]
 
 
 def not_applied_lines(plans: dict[str, CandidatePlan]) -> list[str]:
@@ -500,7 +559,7 @@ def not_applied_lines(plans: dict[str, CandidatePlan]) -> list[str]:
         took = [c for c in plans if c not in dict(without)]
         lines.append(f"notice: override {k} is not applied to {', '.join(c for c, _ in without)} "
                      f"({'; '.join(r for _, r in without)}); applied to {', '.join(took)}")
-    return lines
+    return lines + [n for p in plans.values() for n in p.notes]
 
 
 def _str(cx, raw, key, default):

@@ -278,7 +278,7 @@ def run_case(case: Case, folder: Path) -> CaseResult:
         if case.bridge is None:
             from hilrig.runtime.run import run_scenario
             summary = run_scenario(sc, folder / "run", overwrite=True).summary
-            fault_s = _first_fault_s(summary)
+            fault_s = _earliest(_first_fault_s(summary), _unit_fault_s(sc))
         else:
             summary, fault_s = _run_bridge_case(case, sc, folder)
         res = judge(case, sc, summary, folder / "run", fault_s)
@@ -294,6 +294,28 @@ def run_case(case: Case, folder: Path) -> CaseResult:
 def _first_fault_s(summary: dict) -> float | None:
     starts = [f["active_from_s"] for f in summary.get("faults", []) if f["active_from_s"] is not None]
     return min(starts) if starts else None
+
+
+def _unit_fault_s(sc) -> float | None:
+    """The earliest fault of a paralleled unit ([[units.faults]]: lost or trip), or None."""
+    if getattr(sc, "units", None) is None:
+        return None
+    starts = [float(f[0]) for f in sc.controller.values.get("faults", [])]
+    return min(starts) if starts else None
+
+
+def _earliest(*times: float | None) -> float | None:
+    known = [t for t in times if t is not None]
+    return min(known) if known else None
+
+
+def _commands(sc) -> list[str]:
+    """The recorded commands that the safe output sets: the plant's inputs, or for paralleled
+    units each unit's command unitK_u (their enable, trip and correction columns are not
+    commands)."""
+    if getattr(sc, "units", None) is not None:
+        return [f"unit{k}_u" for k in range(1, sc.units.count + 1)]
+    return [s.name for s in sc.plant.plugin.declaration.inputs] or ["u"]
 
 
 def _free_port(kind: int) -> int:
@@ -353,7 +375,8 @@ def _run_bridge_case(case: Case, sc, folder: Path) -> tuple[dict, float | None]:
     starts = [t * sc.Ts for t in ticks]
     if b["simulator"] and not ticks:
         starts.append(0.0)  # drops, delays, corruption: from the start
-    scheduled = _first_fault_s(res.summary)  # the scenario's own faults, link faults included
+    # the scenario's own faults, link faults included, and paralleled units' faults
+    scheduled = _earliest(_first_fault_s(res.summary), _unit_fault_s(sc))
     if scheduled is not None:
         starts.append(scheduled)
     return res.summary, (min(starts) if starts else None)
@@ -480,7 +503,7 @@ def _hold_problems(sc, run_folder: Path, k: int) -> list[str]:
     """The safe output and the latch on every recorded tick from the trip to the end."""
     from hilrig.runtime.recording import open_run
     run = open_run(run_folder)
-    names = [s.name for s in sc.plant.plugin.declaration.inputs] or ["u"]
+    names = _commands(sc)
     word = run.signals["interlock_word"][k:].astype(np.int64)
     out = []
     if word.size == 0:

@@ -158,7 +158,7 @@ def plot_comparison(out: Path, results: dict[str, dict[str, Any]]) -> list[Path]
         window = (t0 - 0.002, first["change"]["t_end_s"] + 0.012)
     specs = [("compare_v_out.png", "output voltage [V]", lambda r: r.signals["v_out"], True),
              ("compare_error.png", "v_ref - v_out [V]", lambda r: r.signals["v_ref"] - r.signals["v_out"], False),
-             ("compare_u.png", "converter command u [V]", lambda r: r.signals["u"], False)]
+             ("compare_u.png", command_label(runs), command, False)]
     for fname, ylabel, get, with_ref in specs:
         fig, axes = plt.subplots(1, 2 if window else 1, figsize=(11 if window else 8, 4),
                                  constrained_layout=True, squeeze=False)
@@ -183,6 +183,29 @@ def plot_comparison(out: Path, results: dict[str, dict[str, Any]]) -> list[Path]
     if rng is not None:
         written.append(_range_plot(plt, out / "compare_range.png", runs, results))
     return written
+
+
+def _unit_commands(run) -> list[str]:
+    """The recorded commands of a run of paralleled units (unitK_u, K = 1..N), else []."""
+    return sorted((n for n in run.signals if re.fullmatch(r"unit\d+_u", n)),
+                  key=lambda n: int(n[4:-2]))
+
+
+def command(run):
+    """A run's converter command: ``u``, or for paralleled units the mean of the units'
+    commands (each unit's own is in its run folder)."""
+    if "u" in run.signals or not _unit_commands(run):
+        return run.signals["u"]
+    import numpy as np
+    return np.mean([np.asarray(run.signals[n]) for n in _unit_commands(run)], axis=0)
+
+
+def command_label(runs) -> str:
+    counts = {len(_unit_commands(r)) for r in runs.values() if "u" not in r.signals}
+    counts.discard(0)
+    if not counts:
+        return "converter command u [V]"
+    return f"mean of the units' commands unitK_u [V] ({'/'.join(map(str, sorted(counts)))} units)"
 
 
 #: a trial whose reference spans at least this share of its highest value gets compare_range.png

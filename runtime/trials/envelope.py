@@ -126,6 +126,97 @@ class Grid:
 
 
 @dataclass(frozen=True)
+class Axis:
+    """A further axis of the map (``--axis KEY=V1,V2,...``): a scenario key and its values,
+    each value a map of its own (per candidate), e.g. ``units.count=2,3,4`` (the number of
+    paralleled units) or ``units.unit2.L1="150 uH","162 uH"`` (a unit's tolerance). Values
+    are read as TOML values, as ``--set`` reads them: ``2`` stays an integer, ``2.0`` is a
+    float, ``"162 uH"`` (or 162 uH, unquoted) a quantity."""
+
+    key: str
+    values: tuple
+
+    #: keys the map sets itself, per cell
+    OWN = ("reference", "load", "initial", "mode", "controller")
+
+    @classmethod
+    def parse(cls, text: str) -> "Axis":
+        if "=" not in text:
+            raise ValueError(f"--axis {text!r}: write KEY=V1,V2,..., e.g. --axis units.count=2,3,4")
+        key, vals = (x.strip() for x in text.split("=", 1))
+        if not key or key.split(".")[0] in cls.OWN:
+            raise ValueError(f"--axis {text!r}: {key or 'the key'!r} cannot be an axis (the map "
+                             f"sets reference, load, initial voltage and mode per cell; the "
+                             f"controllers are --controllers); name another scenario key, e.g. "
+                             f"units.count or plant.C2")
+        values = tuple(_literal(v.strip()) for v in _split_values(vals))
+        if not values or any(v == "" for v in values):
+            raise ValueError(f"--axis {text!r}: give at least one value after '=', separated by "
+                             f"commas, e.g. --axis units.count=2,3,4")
+        if len(set(map(repr, values))) != len(values):
+            raise ValueError(f"--axis {text!r}: a value is given twice")
+        return cls(key, values)
+
+    def label(self, value) -> str:
+        from ..scenario import _inline
+        return f"{self.key}={_inline(value)}"
+
+
+def _literal(text: str):
+    try:
+        import tomllib
+    except ModuleNotFoundError:  # Python 3.10
+        import tomli as tomllib
+    try:
+        return tomllib.loads(f"v = {text}")["v"]
+    except tomllib.TOMLDecodeError:
+        return text
+
+
+def _split_values(text: str) -> list[str]:
+    """Comma-separated values; a comma inside double quotes belongs to its value."""
+    out, cur, quoted = [], "", False
+    for ch in text:
+        if ch == '"':
+            quoted = not quoted
+        if ch == "," and not quoted:
+            out.append(cur)
+            cur = ""
+        else:
+            cur += ch
+    out.append(cur)
+    return out
+
+
+def series_name(controller: str, axis: Axis | None = None, value=None) -> str:
+    """The name of one map: the controller, and with an axis its value, e.g.
+    ``cascaded_pi [units.count=2]`` (envelope.csv's controller column)."""
+    return controller if axis is None else f"{controller} [{axis.label(value)}]"
+
+
+def plan_series(path, overrides: dict[str, Any], controllers: list[str],
+                axis: Axis | None = None):
+    """Every map's scenario: (the first map's shared scenario, {series: CandidatePlan},
+    {series: controller}, {series: axis label}), in order controller by controller, each over
+    the axis's values. Each axis value is an override of the command's, checked with run's
+    messages (``scenario.plan_candidates``) before anything runs."""
+    from ..scenario import plan_candidates
+    if axis is None:
+        sc, plans = plan_candidates(path, overrides, controllers)
+        return sc, plans, {c: c for c in controllers}, {c: "" for c in controllers}
+    per_value = []
+    for v in axis.values:
+        sc_v, plans_v = plan_candidates(path, {**overrides, axis.key: v}, controllers)
+        per_value.append((v, sc_v, plans_v))
+    plans, ctrl_of, axis_of = {}, {}, {}
+    for c in controllers:
+        for v, _, plans_v in per_value:
+            name = series_name(c, axis, v)
+            plans[name], ctrl_of[name], axis_of[name] = plans_v[c], c, axis.label(v)
+    return per_value[0][1], plans, ctrl_of, axis_of
+
+
+@dataclass(frozen=True)
 class Task:
     """One grid row: a controller and one voltage at every load power."""
 
@@ -137,6 +228,10 @@ class Task:
     tol_pct: float
     t_step: float | None
     v_start: float | None
+    #: the map this row belongs to (:func:`series_name`; the controller without an axis)
+    series: str = ""
+    #: the axis value of the map (``KEY=VALUE``), "" without an axis
+    axis: str = ""
 
 
 # per-process cache: (scenario hash, controller) -> (base scenario, compiled loop)
@@ -303,8 +398,17 @@ def _loop_cell(prep, n: int, ran: int, sig: dict, v_target: float, tol_pct: floa
     return Cell(cell_word(status, word), first_cause, first_t, end_event, end_t)
 
 
+def _v_dc_name(u_name: str) -> str:
+    """The DC link that bounds a command: ``v_dc``, or a paralleled unit's own (unitK_u is
+    bounded by unitK_v_dc)."""
+    import re
+    m = re.fullmatch(r"(unit\d+_)u", u_name)
+    return f"{m.group(1)}v_dc" if m else "v_dc"
+
+
 def _classify_signals(n, ran, event, tripped, sig, u_name, v_target, tol_pct) -> str:
-    v_dc = sig["v_dc"][:ran] if "v_dc" in sig else np.full(ran, np.inf)
+    vdc_name = _v_dc_name(u_name)
+    v_dc = sig[vdc_name][:ran] if vdc_name in sig else np.full(ran, np.inf)
     return classify(n, ran, event, tripped, sig["v_out"][:ran], sig["v_ref"][:ran],
                     sig[u_name][:ran], v_dc, v_target, tol_pct)
 
@@ -352,8 +456,8 @@ def grid_notices(sc, grid: Grid, v_start: float | None = None) -> list[str]:
             _, rest = note.split(" = ", 1) if " = " in note else ("", note)
             where = given if label == "start voltage" else "--v-range"
             line = f"{label} ({where}) = {rest}"
-            if count is not None:
-                vdc = sc.plant.values.get("V_dc")
+            vdc = sc.plant.values.get("V_dc")
+            if count is not None and vdc is not None:
                 line += f" ({sum(v > vdc for v in count)} of {len(count)} target voltages)"
             notes.append(line)
     return notes
@@ -420,8 +524,9 @@ def cell_of_run(folder: Path, v_target: float, tol_pct: float = 2.0) -> Cell:
 
 def tasks_for(scenario_text: str, scenario_name: str, controllers: Iterable[str], grid: Grid,
               tol_pct: float = 2.0, t_step: float | None = None,
-              v_start: float | None = None) -> list[Task]:
-    return [Task(scenario_text, scenario_name, c, v, grid.p, tol_pct, t_step, v_start)
+              v_start: float | None = None, series: str = "", axis: str = "") -> list[Task]:
+    return [Task(scenario_text, scenario_name, c, v, grid.p, tol_pct, t_step, v_start,
+                 series, axis)
             for c in controllers for v in grid.v]
 
 
@@ -435,9 +540,9 @@ def run_envelope(tasks: list[Task], *, cluster: str | None = None, workers: int 
 
 
 def warm_up(tasks: list[Task]) -> None:
-    """Compile (or load) every controller's loop in this process; forked workers inherit it."""
-    for c in dict.fromkeys(t.controller for t in tasks):
-        _base(next(t for t in tasks if t.controller == c))
+    """Compile (or load) every map's loop in this process; forked workers inherit it."""
+    for key in dict.fromkeys((t.scenario_text, t.controller) for t in tasks):
+        _base(next(t for t in tasks if (t.scenario_text, t.controller) == key))
 
 
 def _run_pool(tasks, workers, progress):
@@ -471,7 +576,7 @@ def _run_dask(tasks, address, progress):
 
 #: envelope.csv's columns
 CSV_COLUMNS = ("controller", "v_ref_V", "p_load_W", "outcome", "first_cause", "first_cause_time_s",
-               "end_event", "end_event_time_s")
+               "end_event", "end_event_time_s", "axis")
 
 
 def table(tasks: list[Task], results: list[list[Cell]]) -> list[dict[str, Any]]:
@@ -479,8 +584,8 @@ def table(tasks: list[Task], results: list[list[Cell]]) -> list[dict[str, Any]]:
     rows = []
     for t, cells in zip(tasks, results):
         for p, c in zip(t.p, cells):
-            rows.append({"controller": t.controller, "v_ref_V": t.v, "p_load_W": p,
-                         **dataclasses.asdict(c)})
+            rows.append({"controller": t.series or t.controller, "v_ref_V": t.v, "p_load_W": p,
+                         **dataclasses.asdict(c), "axis": t.axis})
     return rows
 
 
