@@ -608,6 +608,25 @@ def _sources(plugins: list[Plugin]) -> list[Path]:
     return sorted(files)
 
 
+_SOURCE_KEY: dict[str, str] = {}
+
+
+def source_key() -> str:
+    """Hash of the hilrig and numba versions and every hilrig source file a compiled function
+    may import (as in :func:`combination_key`, without plugins), once per process: a generated
+    module that imports hilrig's compiled code (paralleled units, runtime/multi) carries it in
+    its text, so that a change of that code makes a new module rather than a stale cache hit
+    (numba checks only a function's own file)."""
+    if not _SOURCE_KEY:
+        h = hashlib.sha256()
+        h.update(f"hilrig {installed_version()} numba {numba.__version__} py {sys.version_info[:2]}".encode())
+        for f in _sources([]):
+            h.update(str(f).encode())
+            h.update(f.read_bytes())
+        _SOURCE_KEY["key"] = h.hexdigest()[:20]
+    return _SOURCE_KEY["key"]
+
+
 def combination_key(plant: Plugin, ctrl: Plugin, ref: Plugin) -> str:
     """Hash of the hilrig and numba versions and every source file the loop depends on."""
     h = hashlib.sha256()
@@ -651,7 +670,7 @@ def _import_lines(plant: Plugin, ctrl: Plugin, ref: Plugin) -> str:
                 # would be compiled anew into each chunk function of every combination
                 lines.append(f"{tag}_{k} = _{tag}.{k}")
                 continue
-            if getattr(p.module, "NOT_INLINED", False):
+            if k in getattr(p.module, "NOT_INLINED", ()):
                 # a generated plugin of paralleled units (runtime/multi): its kernels already
                 # inline each unit's; inlined again into every chunk function they would
                 # multiply the compile time by the number of those functions
