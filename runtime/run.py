@@ -413,15 +413,17 @@ def _start_offset(sc: Scenario, pdecl, v0: float, x0: np.ndarray, where: str) ->
 def _safe_u(sc: Scenario, u_names: list[str]) -> np.ndarray:
     """The command a trip writes (``limits.safe_u`` on every input); for paralleled units only
     on the units' commands: their enables 0 with the safe action gate_block (what reaches the
-    plant is NaN either way), 1 with zero_voltage (the converters command the safe voltage),
-    their trip and correction columns 0."""
+    plant is NaN either way), 1 with zero_voltage (the converters command the safe voltage);
+    their trip and correction columns NaN: kept as the units' controller wrote them."""
     safe = np.full(len(u_names), sc.safe_u)
     if sc.units is not None:
         n = sc.units.count
         nin = len(u_names) - 3 * n
         # the enables as the record should read them: 0 while a trip blocks the gates
         safe[nin:nin + n] = 1.0 if sc.safe_state["action"] == "zero_voltage" else 0.0
-        safe[nin + n:] = 0.0
+        # the trip causes and corrections are kept as the units' controller wrote them
+        # (protect leaves a NaN entry alone): which unit tripped stays in the record
+        safe[nin + n:] = np.nan
     return safe
 
 

@@ -762,6 +762,9 @@ def _interlocks(cx, raw, plant: PluginChoice, controller: PluginChoice) -> list[
     signals = {s.name: s.unit for s in plant.plugin.declaration.outputs}
     measured = set(signals)
     signals.update({s.name: s.unit for s in controller.plugin.declaration.outputs})
+    # the plant's inputs are the commands the controller writes (paralleled units: each
+    # unit's command, enable, trip and correction columns)
+    signals.update({s.name: s.unit for s in plant.plugin.declaration.inputs})
     # derived signals (safety/interlocks.py DERIVED) where the plant measures what they need
     if "v_out" in measured:
         if "i_out" in measured:

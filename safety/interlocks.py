@@ -614,5 +614,8 @@ def protect(tick, t, ts, y, u, code, dix, sig, side, thr, deb, cnt, latch, pv, s
     if latch[L_TRIPPED] != 0.0:
         word |= 1 << BIT_LATCHED
         for j in range(nu):
-            u[j] = safe_u[j]
+            # a NaN entry keeps the controller's value: a column written for the record, not
+            # a command (paralleled units' trip causes and corrections)
+            if safe_u[j] == safe_u[j]:
+                u[j] = safe_u[j]
     return word

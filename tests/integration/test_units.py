@@ -543,6 +543,25 @@ def test_a_bus_interlock_blocks_every_unit(tmp_path):
         assert np.all(np.abs(rec.signals[f"unit{j}_i_L1"][after:]) < 1e-6)
 
 
+def test_a_bus_interlock_on_a_units_trip_column_trips_the_bus(tmp_path):
+    """The units' actuation columns are signals like any other: a bus interlock on unit 2's
+    trip column (above 0.5: the unit tripped) turns a forced trip of that unit into the
+    runtime's trip of the whole bus on the same tick, every unit's enable recorded as 0
+    (the safe action gate_block), as a lab would wire "one unit lost stops the bench"."""
+    sc, s, rec = run(tmp_path, scenario(
+        units=FOUR_DROOP + '[[units.faults]]\nunit = 2\nkind = "trip"\nat = "15 ms"\n',
+        duration="20 ms", extra='[[interlocks]]\nsignal = "unit2_trip"\nabove = 0.5\n'),
+        "trip_column")
+    assert s["outcome"]["status"] == "tripped", s["outcome"]
+    assert s["trip"]["cause"] == "interlock unit2_trip > 0.5 -"  # "-": dimensionless
+    k = s["trip"]["tick"]
+    assert rec.signals["unit2_trip"][k] == 16.0 and rec.signals["unit2_trip"][k - 1] == 0.0
+    assert abs(rec.time[k] - 15e-3) < 1e-9
+    for j in range(1, 5):
+        assert rec.signals[f"unit{j}_enable"][k - 1] == 1.0
+        assert np.all(rec.signals[f"unit{j}_enable"][k:] == 0.0)
+
+
 # -- 5 bad input: one clear line, exit 2, through the command line -----------------------------
 
 BAD = {
