@@ -119,8 +119,12 @@ def test_a_run_of_units_and_its_viewer_show_the_unit_that_tripped(tmp_path):
     """A run of the shipped four-unit example with unit 3 forced to trip at 40 ms publishes
     telemetry; a plain viewer started first ends on the unit's trip and its cause."""
     scen = tmp_path / "four_units_trip.toml"
-    scen.write_text(EXAMPLE.read_text()
-                    + '\n[[units.faults]]\nunit = 3\nkind = "trip"\nat = "40 ms"\n')
+    # paced, 1.5 s: a SIL run of 120 ms ends within a few hundred microseconds of its first
+    # frame, before a viewer's connection (retried every 100 ms until the run binds its
+    # address) is up, and then no frame reaches it; limits no shared machine breaches
+    scen.write_text(EXAMPLE.read_text().replace('duration = "120 ms"', 'duration = "1.5 s"')
+                    + '\n[[units.faults]]\nunit = 3\nkind = "trip"\nat = "40 ms"\n'
+                    + '\n[paced]\nmiss_share_max = 1.0\nmax_lateness = "10 s"\n')
     address = f"ipc://{tmp_path}/tel"
     # the viewer waits for the run's last frame: no other test competes for the cores meanwhile
     with locks.exclusive():
@@ -128,8 +132,8 @@ def test_a_run_of_units_and_its_viewer_show_the_unit_that_tripped(tmp_path):
                                          "--give-up", "600"],
                                   stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
         try:
-            p = subprocess.run(CLI + ["run", str(scen), "--telemetry", address, "--out",
-                                      str(tmp_path / "r"), "--headless"],
+            p = subprocess.run(CLI + ["run", str(scen), "--paced", "--telemetry", address,
+                                      "--out", str(tmp_path / "r"), "--headless"],
                                capture_output=True, text=True, timeout=900)
             out, err = viewer.communicate(timeout=120)
         finally:
