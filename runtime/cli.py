@@ -780,14 +780,8 @@ def _envelope_cell(console, args, plain: bool, names: list[str]) -> None:
 
 
 def _literal(text: str):
-    try:
-        import tomllib
-    except ModuleNotFoundError:  # Python 3.10
-        import tomli as tomllib
-    try:
-        return tomllib.loads(f"v = {text}")["v"]
-    except tomllib.TOMLDecodeError:
-        return text
+    from hilrig.runtime.scenario import toml_literal
+    return toml_literal(text)
 
 
 #: options whose value may start with a minus sign (a range or point with a negative power)

@@ -399,6 +399,15 @@ def _effective_text(cx, raw: dict, overrides: dict[str, Any],
             f"kept):\n{given}{skipped}\n\n{body}")
 
 
+def toml_literal(text: str):
+    """A command-line value read as a TOML value (``2`` an integer, ``"150 uH"`` a string,
+    ``[1, 2]`` an array), or the text itself when it is not one (``--set``, ``--axis``)."""
+    try:
+        return tomllib.loads(f"v = {text}")["v"]
+    except tomllib.TOMLDecodeError:
+        return text
+
+
 def _inline(v: Any) -> str:
     """A value on one line in TOML's notation (for the header of an overridden scenario)."""
     if isinstance(v, dict):

@@ -163,14 +163,8 @@ class Axis:
 
 
 def _literal(text: str):
-    try:
-        import tomllib
-    except ModuleNotFoundError:  # Python 3.10
-        import tomli as tomllib
-    try:
-        return tomllib.loads(f"v = {text}")["v"]
-    except tomllib.TOMLDecodeError:
-        return text
+    from ..scenario import toml_literal
+    return toml_literal(text)
 
 
 def _split_values(text: str) -> list[str]:
