@@ -89,6 +89,14 @@ def _clamp_u(p, u):
 #: capacitor's voltage, and the parameter that is its capacitance
 OUTPUT_NODE = (1, "C")
 
+@njit(cache=True)
+def node_current(p, x):
+    """The current [A] into the output node from the unit's own branches (the load left out):
+    C dv_out/dt with no load, here i_L. For paralleled units (runtime/multi): the bus plant
+    sums these without evaluating the output node's rate (which divides by v_out)."""
+    return x[0]
+
+
 #: the state that is the current through the converter's switches: with the gates blocked
 #: (u NaN) it flows through a diode and stops at zero (runtime/loop.py ``step``)
 GATE_BLOCK_CURRENTS = (0,)

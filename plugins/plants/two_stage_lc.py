@@ -101,6 +101,14 @@ DECLARATION = Declaration(
 #: capacitor's voltage, and the parameter that is its capacitance
 OUTPUT_NODE = (3, "C2")
 
+@njit(cache=True)
+def node_current(p, x):
+    """The current [A] into the output node from the unit's own branches (the load left out):
+    C dv_out/dt with no load, here i_L2. For paralleled units (runtime/multi): the bus plant
+    sums these without evaluating the output node's rate (which divides by v_out)."""
+    return x[2]
+
+
 #: the states that are currents through the converter's switches: with the gates blocked
 #: (u NaN) each one flows through a diode and stops at zero (runtime/loop.py ``step``)
 GATE_BLOCK_CURRENTS = (0,)

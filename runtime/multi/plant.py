@@ -43,6 +43,9 @@ from hilrig.plugins.base import Declaration, Signal
 from hilrig.runtime.loop import source_key, tuple_text
 
 TOPOLOGIES = ("cabled", "merged")
+#: up to this many units the loop inlines the bus plant's kernels like any plant's (a call per
+#: RK4 sub-step costs more than a small plant's rates); above, it calls them (compile time)
+INLINE_UNITS = 2
 
 
 def unit_signal(k: int, name: str) -> str:
@@ -62,8 +65,100 @@ def _offsets(spec: dict) -> dict:
     ncap = bus + 2
     x_cable = n * nx
     x_bus = n * nx + n
-    return dict(p_off=p_off, cab=cab, bus=bus, ncap=ncap, p_total=ncap + n, x_cable=x_cable,
+    return dict(p_off=p_off, cab=cab, bus=bus, ncap=ncap, icap=ncap + n, p_total=ncap + 2 * n,
+                x_cable=x_cable,
                 x_bus=x_bus, nx_total=n * nx + (n + 1 if spec["topology"] == "cabled" else 0))
+
+
+def _split_text(spec: dict, lay: dict) -> list[str]:
+    """``_rates``, ``derivs`` and ``rk4_step`` for a unit plant with ``node_current``.
+
+    The bus node's rate is e (n - P/v) with e = 1/C_node, n the current into the node from the
+    units (merged) or the cables (cabled) less the load's G v + I, and P/v the load's
+    constant-power part. A stage of the RK4 step forms the node's next value as
+    (v0 + c e n) - (c e P)/v, c e P known before v, so that only the division and one
+    subtraction wait for the previous stage's v (the unit plant's own rk4_step does the same);
+    the units' node currents come from ``node_current`` (no division on that path: a unit's
+    derivs with no load would divide 0 by its voltage). The same method as the generic stages
+    in exact arithmetic; in floating point they differ by rounding."""
+    n, nx, nin = spec["n"], spec["n_x"], spec["n_in"]
+    node = spec["out_node"]
+    cabled = spec["topology"] == "cabled"
+    body = []
+    for k in range(n):
+        o, e = lay["p_off"][k], lay["p_off"][k] + spec["p_len"][k]
+        xs = ", ".join(f"x[{k * nx + j}]" for j in range(nx))
+        us = ", ".join(f"u[{k * nin + j}]" for j in range(nin))
+        nan = ", ".join("np.nan" for _ in range(nin))
+        body.append(f"    u{k} = ({us},) if u[{n * nin + k}] > 0.5 else ({nan},)")
+        # the unit's rates with no load: all but its node's, which is unused (and dropped by
+        # the compiler)
+        body.append(f"    f{k} = unit_derivs(t, p[{o}:{e}], ({xs},), u{k}, (0.0, 0.0, 0.0))")
+        body.append(f"    c{k} = unit_node_current(p[{o}:{e}], ({xs},))")
+    vm = f"p[{lay['bus'] + 1}]"
+    items = []
+    if cabled:
+        split = [lay["x_bus"]]
+        body.append(f"    vb = x[{lay['x_bus']}]")
+        for k in range(n):
+            ic = f"x[{lay['x_cable'] + k}]"
+            items += [f"(c{k} - {ic}) * p[{lay['icap'] + k}]" if j == node else f"f{k}[{j}]"
+                      for j in range(nx)]
+        for k in range(n):
+            ic = f"x[{lay['x_cable'] + k}]"
+            items.append(f"(x[{k * nx + node}] - p[{lay['cab'] + 2 * k}] * {ic} - vb) * "
+                         f"p[{lay['cab'] + 2 * k + 1}]")
+        isum = " + ".join(f"x[{lay['x_cable'] + k}]" for k in range(n))
+        items.append("nn")
+    else:
+        split = [k * nx + node for k in range(n)]
+        body.append(f"    vb = x[{node}]")
+        for k in range(n):
+            items += ["nn" if j == node else f"f{k}[{j}]" for j in range(nx)]
+        isum = " + ".join(f"c{k}" for k in range(n))
+    # n: the units' (cables') current into the node less G v + I: not waiting for a division
+    body.append(f"    nn = ({isum}) - (d[1] * vb + d[2])")
+    lines = []
+    lines.append('@njit(inline="always", error_model="numpy")\ndef _stage(t, p, x, u, d, he):\n'
+                 '    """The rates with the bus node\'s split: its entry is n [A] (times\n'
+                 '    1/C_node: its rate without the constant-power part); the last entry is\n'
+                 '    he P / v (he = c / C_node of the stage)."""\n'
+                 + "\n".join(body) + "\n"
+                 f"    q = power_current_scaled(he, vb, d, {vm})\n"
+                 "    return " + tuple_text(items + ["q"]))
+    nt = lay["nx_total"]
+    rates = [f"(k[{i}] * e - k[{nt}])" if i in split else f"k[{i}]" for i in range(nt)]
+    lines.append('@njit(inline="always", error_model="numpy")\ndef _rates(t, p, x, u, d):\n'
+                 '    """The bus plant\'s rates (runtime/multi/plant.py)."""\n'
+                 f"    e = p[{lay['bus']}]\n"
+                 "    k = _stage(t, p, x, u, d, e)\n"
+                 "    return " + tuple_text(rates))
+    lines.append('@njit(cache=True, error_model="numpy")\ndef derivs(t, p, x, u, d):\n'
+                 '    """The bus plant\'s rates."""\n    return _rates(t, p, x, u, d)')
+    if spec.get("own_step"):
+        r = range(nt)
+
+        def move(c, k):
+            return tuple_text([f"(s[{i}] + ({c} * e) * {k}[{i}]) - {k}[{nt}]" if i in split
+                               else f"s[{i}] + {c} * {k}[{i}]" for i in r])
+        last = tuple_text([
+            f"((s[{i}] + (w * e) * (k1[{i}] + 2.0 * k2[{i}] + 2.0 * k3[{i}] + k4[{i}])) - q123)"
+            f" - k4[{nt}]" if i in split else
+            f"s[{i}] + w * (k1[{i}] + 2.0 * k2[{i}] + 2.0 * k3[{i}] + k4[{i}])" for i in r])
+        rk = ["    e = p[%d]" % lay["bus"],
+              "    k1 = _stage(0.0, p, s, u, d, h * e)",
+              f"    k2 = _stage(0.0, p, {move('h', 'k1')}, u, d, h * e)",
+              f"    k3 = _stage(0.0, p, {move('h', 'k2')}, u, d, dt * e)",
+              f"    k4 = _stage(0.0, p, {move('dt', 'k3')}, u, d, w * e)",
+              # the constant-power parts of stages 1-3 were scaled by h, h, dt; their RK4
+              # weights dt/6, dt/3, dt/3 are 1/3, 2/3, 1/3 of those
+              f"    q123 = (k1[{nt}] + 2.0 * k2[{nt}] + k3[{nt}]) / 3.0",
+              "    return " + last]
+        lines.append('@njit(cache=True, error_model="numpy")\ndef rk4_step(dt, p, s, u, d):\n'
+                     '    """One classic RK4 step of length dt (the runtime\'s method), the bus\n'
+                     '    node split as in _split_text\'s docstring."""\n'
+                     '    h = 0.5 * dt\n    w = dt / 6.0\n' + "\n".join(rk))
+    return lines
 
 
 def module_text(spec: dict, unit_import: str) -> str:
@@ -74,58 +169,61 @@ def module_text(spec: dict, unit_import: str) -> str:
     ny_unit = spec["n_y"]
     cabled = spec["topology"] == "cabled"
     lines = []
-    # derivs
-    body = []
-    for k in range(n):
-        o, e = lay["p_off"][k], lay["p_off"][k] + spec["p_len"][k]
-        xs = ", ".join(f"x[{k * nx + j}]" for j in range(nx))
-        us = ", ".join(f"u[{k * nin + j}]" for j in range(nin))
-        nan = ", ".join("np.nan" for _ in range(nin))
-        en = n * nin + k
-        body.append(f"    u{k} = ({us},) if u[{en}] > 0.5 else ({nan},)")
-        load = f"(0.0, 0.0, x[{lay['x_cable'] + k}])" if cabled else "(0.0, 0.0, 0.0)"
-        body.append(f"    f{k} = unit_derivs(t, p[{o}:{e}], ({xs},), u{k}, {load})")
-    if cabled:
-        vb = f"x[{lay['x_bus']}]"
-        body.append(f"    vb = {vb}")
-        body.append(f"    il = load_current(vb, d, p[{lay['bus'] + 1}])")
-        items = []
-        for k in range(n):
-            items += [f"f{k}[{j}]" for j in range(nx)]
-        for k in range(n):
-            ic = f"x[{lay['x_cable'] + k}]"
-            items.append(f"(x[{k * nx + node}] - p[{lay['cab'] + 2 * k}] * {ic} - vb) * "
-                         f"p[{lay['cab'] + 2 * k + 1}]")
-        ssum = " + ".join(f"x[{lay['x_cable'] + k}]" for k in range(n))
-        items.append(f"(({ssum}) - il) * p[{lay['bus']}]")
+    if spec.get("node_current"):
+        lines += _split_text(spec, lay)
     else:
-        body.append(f"    vb = x[{node}]")
-        body.append(f"    il = load_current(vb, d, p[{lay['bus'] + 1}])")
-        csum = " + ".join(f"p[{lay['ncap'] + k}] * f{k}[{node}]" for k in range(n))
-        body.append(f"    a = (({csum}) - il) * p[{lay['bus']}]")
-        items = []
+        # derivs
+        body = []
         for k in range(n):
-            items += ["a" if j == node else f"f{k}[{j}]" for j in range(nx)]
-    body.append("    return " + tuple_text(items))
-    lines.append('@njit(inline="always", error_model="numpy")\ndef _rates(t, p, x, u, d):\n'
-                 '    """The bus plant\'s rates (runtime/multi/plant.py)."""\n' + "\n".join(body))
-    lines.append('@njit(cache=True, error_model="numpy")\ndef derivs(t, p, x, u, d):\n'
-                 '    """The bus plant\'s rates."""\n    return _rates(t, p, x, u, d)')
-    if spec.get("own_step"):
-        # one classic RK4 step, the rates inlined into it: the loop calls it once per sub-step
-        # (its generic stages would call derivs four times); the unit plant's equations do
-        # not depend on t explicitly (it brings its own rk4_step)
-        nt = _offsets(spec)["nx_total"]
-        r = range(nt)
-        rk = ["    k1 = _rates(0.0, p, s, u, d)",
-              f"    k2 = _rates(0.0, p, {tuple_text([f's[{i}] + h * k1[{i}]' for i in r])}, u, d)",
-              f"    k3 = _rates(0.0, p, {tuple_text([f's[{i}] + h * k2[{i}]' for i in r])}, u, d)",
-              f"    k4 = _rates(0.0, p, {tuple_text([f's[{i}] + dt * k3[{i}]' for i in r])}, u, d)",
-              "    return " + tuple_text([f"s[{i}] + w * (k1[{i}] + 2.0 * k2[{i}] + 2.0 * k3[{i}]"
-                                         f" + k4[{i}])" for i in r])]
-        lines.append('@njit(cache=True, error_model="numpy")\ndef rk4_step(dt, p, s, u, d):\n'
-                     '    """One classic RK4 step of length dt (the runtime\'s method)."""\n'
-                     '    h = 0.5 * dt\n    w = dt / 6.0\n' + "\n".join(rk))
+            o, e = lay["p_off"][k], lay["p_off"][k] + spec["p_len"][k]
+            xs = ", ".join(f"x[{k * nx + j}]" for j in range(nx))
+            us = ", ".join(f"u[{k * nin + j}]" for j in range(nin))
+            nan = ", ".join("np.nan" for _ in range(nin))
+            en = n * nin + k
+            body.append(f"    u{k} = ({us},) if u[{en}] > 0.5 else ({nan},)")
+            load = f"(0.0, 0.0, x[{lay['x_cable'] + k}])" if cabled else "(0.0, 0.0, 0.0)"
+            body.append(f"    f{k} = unit_derivs(t, p[{o}:{e}], ({xs},), u{k}, {load})")
+        if cabled:
+            vb = f"x[{lay['x_bus']}]"
+            body.append(f"    vb = {vb}")
+            body.append(f"    il = load_current(vb, d, p[{lay['bus'] + 1}])")
+            items = []
+            for k in range(n):
+                items += [f"f{k}[{j}]" for j in range(nx)]
+            for k in range(n):
+                ic = f"x[{lay['x_cable'] + k}]"
+                items.append(f"(x[{k * nx + node}] - p[{lay['cab'] + 2 * k}] * {ic} - vb) * "
+                             f"p[{lay['cab'] + 2 * k + 1}]")
+            ssum = " + ".join(f"x[{lay['x_cable'] + k}]" for k in range(n))
+            items.append(f"(({ssum}) - il) * p[{lay['bus']}]")
+        else:
+            body.append(f"    vb = x[{node}]")
+            body.append(f"    il = load_current(vb, d, p[{lay['bus'] + 1}])")
+            csum = " + ".join(f"p[{lay['ncap'] + k}] * f{k}[{node}]" for k in range(n))
+            body.append(f"    a = (({csum}) - il) * p[{lay['bus']}]")
+            items = []
+            for k in range(n):
+                items += ["a" if j == node else f"f{k}[{j}]" for j in range(nx)]
+        body.append("    return " + tuple_text(items))
+        lines.append('@njit(inline="always", error_model="numpy")\ndef _rates(t, p, x, u, d):\n'
+                     '    """The bus plant\'s rates (runtime/multi/plant.py)."""\n' + "\n".join(body))
+        lines.append('@njit(cache=True, error_model="numpy")\ndef derivs(t, p, x, u, d):\n'
+                     '    """The bus plant\'s rates."""\n    return _rates(t, p, x, u, d)')
+        if spec.get("own_step"):
+            # one classic RK4 step, the rates inlined into it: the loop calls it once per sub-step
+            # (its generic stages would call derivs four times); the unit plant's equations do
+            # not depend on t explicitly (it brings its own rk4_step)
+            nt = _offsets(spec)["nx_total"]
+            r = range(nt)
+            rk = ["    k1 = _rates(0.0, p, s, u, d)",
+                  f"    k2 = _rates(0.0, p, {tuple_text([f's[{i}] + h * k1[{i}]' for i in r])}, u, d)",
+                  f"    k3 = _rates(0.0, p, {tuple_text([f's[{i}] + h * k2[{i}]' for i in r])}, u, d)",
+                  f"    k4 = _rates(0.0, p, {tuple_text([f's[{i}] + dt * k3[{i}]' for i in r])}, u, d)",
+                  "    return " + tuple_text([f"s[{i}] + w * (k1[{i}] + 2.0 * k2[{i}] + 2.0 * k3[{i}]"
+                                             f" + k4[{i}])" for i in r])]
+            lines.append('@njit(cache=True, error_model="numpy")\ndef rk4_step(dt, p, s, u, d):\n'
+                         '    """One classic RK4 step of length dt (the runtime\'s method)."""\n'
+                         '    h = 0.5 * dt\n    w = dt / 6.0\n' + "\n".join(rk))
     # outputs: bus v_out, i_out; then per unit the unit plant's outputs
     ob = []
     if cabled:
@@ -135,7 +233,16 @@ def module_text(spec: dict, unit_import: str) -> str:
     ob.append(f"    il = load_current(vb, d, p[{lay['bus'] + 1}])")
     ob.append("    y[0] = vb")
     ob.append("    y[1] = il")
-    if not cabled:
+    nc = spec.get("node_current")
+    if not cabled and nc:
+        # each unit's current into the node, then the node's rate without a unit's derivs
+        for k in range(n):
+            o, e = lay["p_off"][k], lay["p_off"][k] + spec["p_len"][k]
+            xs = ", ".join(f"x[{k * nx + j}]" for j in range(nx))
+            ob.append(f"    c{k} = unit_node_current(p[{o}:{e}], ({xs},))")
+        csum = " + ".join(f"c{k}" for k in range(n))
+        ob.append(f"    a = (({csum}) - il) * p[{lay['bus']}]")
+    elif not cabled:
         for k in range(n):
             o, e = lay["p_off"][k], lay["p_off"][k] + spec["p_len"][k]
             xs = ", ".join(f"x[{k * nx + j}]" for j in range(nx))
@@ -149,8 +256,12 @@ def module_text(spec: dict, unit_import: str) -> str:
         o, e = lay["p_off"][k], lay["p_off"][k] + spec["p_len"][k]
         us = ", ".join(f"u[{k * nin + j}]" for j in range(nin))
         nan = ", ".join("np.nan" for _ in range(nin))
-        ic = (f"x[{lay['x_cable'] + k}]" if cabled
-              else f"p[{lay['ncap'] + k}] * (f{k}[{node}] - a)")
+        if cabled:
+            ic = f"x[{lay['x_cable'] + k}]"
+        elif nc:
+            ic = f"c{k} - p[{lay['ncap'] + k}] * a"
+        else:
+            ic = f"p[{lay['ncap'] + k}] * (f{k}[{node}] - a)"
         y0 = 2 + k * ny_unit
         ob.append(f"    v{k} = ({us},) if u[{n * nin + k}] > 0.5 else ({nan},)")
         ob.append(f"    unit_outputs(t, p[{o}:{e}], x[{k * nx}:{(k + 1) * nx}], v{k}, "
@@ -171,6 +282,10 @@ def fast_rate(p, s, d):
         g = d[1] + d[0] / (vm * vm)
     return abs(g) * p[{lay['bus']}]''')
     currents = [k * nx + c for k in range(n) for c in spec["gate_currents"]]
+    node_import = ("unit_node_current = _inline(_unit.node_current)\n"
+                   "from hilrig.plugins.plants.loads import power_current_scaled\n"
+                   if spec.get("node_current") else "")
+    not_inlined = () if n <= INLINE_UNITS else ("derivs", "outputs", "rk4_step")
     enables = [n * nin + k for k in range(n) for _ in spec["gate_currents"]]
     vstates = [lay["x_bus"]] if cabled else [k * nx + node for k in range(n)]
     head = f'''"""Generated by hilrig: the bus plant of {n} paralleled units of {spec["unit_name"]!r}
@@ -184,9 +299,9 @@ from hilrig.runtime.multi import plant as _mp
 from hilrig.runtime.loop import inline as _inline
 unit_derivs = _inline(_unit.derivs)
 unit_outputs = _inline(_unit.outputs)
-#: the kernels the loop calls rather than inlines (they inline each unit's: inlined again
+{node_import}#: the kernels the loop calls rather than inlines (they inline each unit's: inlined again
 #: into every chunk function they would multiply the compile time); fast_rate is inlined
-NOT_INLINED = ("derivs", "outputs", "rk4_step")
+NOT_INLINED = {not_inlined!r}
 
 SPEC = {spec!r}
 DECLARATION = _mp.declaration(SPEC, _unit)
@@ -313,7 +428,8 @@ def pack(spec, unit, values, ctx, lay) -> np.ndarray:
     caps = [float(values["units"][k][spec["out_node_param"]]) for k in range(n)]
     c_node = float(values["C_bus"]) + (0.0 if spec["topology"] == "cabled" else sum(caps))
     bus = [1.0 / c_node, float(values["v_load_min"])]
-    return np.concatenate(parts + [np.array(cab + bus + caps, dtype=np.float64)])
+    icaps = [1.0 / c for c in caps]
+    return np.concatenate(parts + [np.array(cab + bus + caps + icaps, dtype=np.float64)])
 
 
 def shares(values: dict) -> np.ndarray:

@@ -247,7 +247,8 @@ def build(cx, raw: dict, plant, controller, Ts: float, duration: float, seed: in
                 gate_currents=[int(i) for i in getattr(umod, "GATE_BLOCK_CURRENTS", ())],
                 # the unit plant brings its own RK4 step: its equations do not depend on t
                 # explicitly, and the bus plant gets one too (runtime/multi/plant.py)
-                own_step=getattr(umod, "rk4_step", None) is not None)
+                own_step=getattr(umod, "rk4_step", None) is not None,
+                node_current=getattr(umod, "node_current", None) is not None)
     ppath = mp.generate(spec, uplug, folder)
     pmod = registry.load_file(str(ppath))
     pdecl = pmod.DECLARATION
