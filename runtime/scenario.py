@@ -290,7 +290,7 @@ def parse_scenario(text: str, name: str = "scenario.toml", path: str = "",
         raise cx.fail("timing.duration", f" = {duration:g} s is not a whole number of control "
                       f"periods Ts = {Ts:g} s")
 
-    if isinstance(raw.get("plant"), dict) and "fmu" in raw["plant"] and "plugin" not in raw["plant"]:
+    if isinstance(raw.get("plant"), dict) and "fmu" in raw["plant"]:
         # an FMU as the plant: a generated plugin calling it (runtime/fmu)
         from .fmu import spec as fmu_spec
         from .loop import cache_dir

@@ -25,6 +25,7 @@ import hashlib
 import re
 import zipfile
 from pathlib import Path
+from xml.etree import ElementTree
 
 from hilrig.runtime.errors import ScenarioError
 from hilrig.runtime.units import UNITS
@@ -59,6 +60,9 @@ def build(cx, tab: dict, folder: Path, quantity):
     from hilrig.runtime.scenario import PluginChoice
 
     ref = tab["fmu"]
+    if "plugin" in tab:
+        raise cx.fail("plant.plugin", f" = {tab['plugin']!r} and plant.fmu = {ref!r} are both given; "
+                      f"a plant is a plugin or an FMU: remove one of the two keys")
     if not isinstance(ref, str) or not ref:
         raise cx.fail("plant.fmu", f" = {ref!r} is not a path to an .fmu file")
     path = Path(ref).expanduser()
@@ -72,13 +76,23 @@ def build(cx, tab: dict, folder: Path, quantity):
     if not zipfile.is_zipfile(path):
         raise cx.fail("plant.fmu", f" = {ref!r}: {fname} is not an FMU (not a zip archive)")
     try:
+        with zipfile.ZipFile(path) as z:
+            root = ElementTree.fromstring(z.read("modelDescription.xml"))
+    except KeyError:
+        raise cx.fail("plant.fmu", f" = {ref!r}: {fname} has no modelDescription.xml; export the "
+                      f"FMU again") from None
+    except ElementTree.ParseError as exc:
+        raise cx.fail("plant.fmu", f" = {ref!r}: the modelDescription.xml of {fname} is not valid "
+                      f"XML ({exc}); export the FMU again") from None
+    version = root.get("fmiVersion")
+    if version != "2.0":
+        raise cx.fail("plant.fmu", f" = {ref!r}: {fname} is an FMI {version} FMU; hilrig runs FMI "
+                      f"2.0 FMUs: export it as FMI 2.0")
+    try:
         md = read_model_description(str(path), validate=False)
     except Exception as exc:
         raise cx.fail("plant.fmu", f" = {ref!r}: the model description of {fname} cannot be read "
                       f"({type(exc).__name__}: {exc}); export the FMU again") from None
-    if md.fmiVersion != "2.0":
-        raise cx.fail("plant.fmu", f" = {ref!r}: {fname} is an FMI {md.fmiVersion} FMU; hilrig "
-                      f"runs FMI 2.0 FMUs: export it as FMI 2.0")
     # which interface
     iface = tab.get("interface")
     offered = [k for k, v in (("model_exchange", md.modelExchange), ("co_simulation", md.coSimulation)) if v]

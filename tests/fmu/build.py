@@ -70,3 +70,75 @@ def pack(folder: Path, library: Path, name: str = "two_stage_lc.fmu", interfaces
 
 def build_fmu(folder: Path, interfaces=("me", "cs"), edit=None, name="two_stage_lc.fmu") -> Path:
     return pack(folder, compile_library(Path(folder) / "build"), name, interfaces, edit)
+
+
+#: the [plant] tables mapping hilrig's signals to the test FMU's variables
+MAPPING = """[plant.inputs]
+u = "u_conv"
+P_load = "load_P"
+G_load = "load_G"
+I_load = "load_I"
+
+[plant.outputs]
+v_out = "y_vout"
+i_out = "y_iout"
+i_L1 = "y_iL1"
+v_C1 = "y_vC1"
+i_L2 = "y_iL2"
+v_dc = "y_vdc"
+
+[plant.states]
+i_L1 = "filter.iL1"
+v_C1 = "filter.vC1"
+i_L2 = "filter.iL2"
+v_out = "filter.vC2"
+"""
+
+#: a short scenario (invented demo data of the tests): the demo plant's defaults, a 100 V step
+#: at 10 ms, a load step at 20 ms (20 kW to 50 kW with 100 ohm); the controller's declared
+#: numbers and the fixed shaping (the same on every plant), fixed RK4 substeps (the embedded
+#: plant's own rate bound would otherwise add substeps the FMU plant does not know of)
+SCENARIO = """# DEMO DATA of hilrig's tests: invented, not measurements of any equipment
+title = "FMU plant test"
+demo_data = true
+
+[timing]
+Ts = "50 us"
+substeps = 4
+duration = "0.03 s"
+integration = "fixed"
+
+[controller]
+plugin = "cascaded_pi"
+
+[design]
+defaults = "declared"
+
+[reference]
+plugin = "profile"
+points = [["0 s", "400 V"], ["0.01 s", "400 V"], ["0.01 s", "500 V"], ["1 s", "500 V"]]
+
+[shaping]
+pole = "7500 rad/s"
+slew_rate = "200 kV/s"
+
+[load]
+interpolation = "linear"
+[[load.points]]
+t = "0 s"
+P = "20 kW"
+[[load.points]]
+t = "0.02 s"
+P = "50 kW"
+R = "100 ohm"
+
+"""
+
+
+def scenario(fmu: Path | None, interface: str = "model_exchange", plant_keys: str = "",
+             mapping: str = MAPPING) -> str:
+    """The test scenario's text with the FMU as its plant (or two_stage_lc when fmu is None)."""
+    if fmu is None:
+        return SCENARIO + '[plant]\nplugin = "two_stage_lc"\n'
+    return (SCENARIO + f'[plant]\nfmu = "{fmu}"\ninterface = "{interface}"\n{plant_keys}\n'
+            + mapping)
