@@ -294,7 +294,7 @@ def parse_scenario(text: str, name: str = "scenario.toml", path: str = "",
         # an FMU as the plant: a generated plugin calling it (runtime/fmu)
         from .fmu import spec as fmu_spec
         from .loop import cache_dir
-        plant = fmu_spec.build(cx, raw["plant"], cache_dir(), lambda k, v, u, b: _quantity(cx, k, v, u, b))
+        plant = fmu_spec.build(cx, raw, cache_dir(), lambda k, v, u, b: _quantity(cx, k, v, u, b))
     else:
         plant = _plugin(cx, raw, "plant", "two_stage_lc")
     controller = _plugin(cx, raw, "controller", "cascaded_pi")

@@ -51,15 +51,19 @@ def _close(name, known) -> str:
     return f"; did you mean {', '.join(repr(c) for c in close)}?" if close else ""
 
 
-def build(cx, tab: dict, folder: Path, quantity):
-    """The plant choice for the scenario's ``[plant]`` table ``tab`` with an ``fmu`` key."""
+def build(cx, raw: dict, folder: Path, quantity):
+    """The plant choice for the scenario ``raw`` whose ``[plant]`` table has an ``fmu`` key."""
     from fmpy import read_model_description
 
     from hilrig.runtime import registry
     from hilrig.runtime.errors import PluginError
     from hilrig.runtime.scenario import PluginChoice
 
+    tab = raw["plant"]
     ref = tab["fmu"]
+    if "units" in raw:
+        raise cx.fail("plant.fmu", f" = {ref!r} with [units]: an FMU plant does not run as "
+                      f"paralleled units yet; give [plant] a plugin, or leave [units] out")
     if "plugin" in tab:
         raise cx.fail("plant.plugin", f" = {tab['plugin']!r} and plant.fmu = {ref!r} are both given; "
                       f"a plant is a plugin or an FMU: remove one of the two keys")
@@ -241,6 +245,12 @@ def build(cx, tab: dict, folder: Path, quantity):
                           f"{', '.join(RESERVED)})")
         q = pnames[k]
         given[k] = quantity(f"plant.{k}", val, q["unit"], (-1e300, 1e300))
+    design = raw.get("design", {})
+    if me is None and isinstance(design, dict) and design.get("defaults", "plant") == "plant":
+        raise cx.fail("plant.interface", f" = {iface!r}: {fname} offers co-simulation only, which "
+                      f"gives no derivatives to design the controller from; set [design] defaults "
+                      f"= \"declared\" (the controller's declared numbers, or give them), or use "
+                      f"an FMU that offers model exchange as well")
     spec = {"name": fname, "path": str(path), "sha256": hashlib.sha256(path.read_bytes()).hexdigest(),
             "interface": INTERFACES[iface], "guid": md.guid,
             "me_id": me.modelIdentifier if me is not None else None,

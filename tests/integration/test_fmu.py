@@ -248,3 +248,32 @@ def test_command_line_exits_2_with_one_line(fmu, tmp_path):
         assert "Traceback" not in p.stdout + p.stderr
         err = [ln for ln in (p.stdout + p.stderr).splitlines() if ln.startswith("error:")]
         assert len(err) == 1 and words in err[0], p.stdout + p.stderr
+
+
+def test_fmu_with_units_and_cs_only_design_are_refused(fmu, tmp_path):
+    tmp, lib, path = fmu
+    with pytest.raises(ScenarioError, match=r"plant\.fmu = .* with \[units\]: an FMU plant does not "
+                                            r"run as paralleled units yet"):
+        parse_scenario(fmu_build.scenario(path) + "\n[units]\ncount = 2\n", path=str(tmp / "u.toml"))
+    cs_only = fmu_build.pack(tmp_path, lib, "cs_only.fmu", interfaces=("cs",))
+    text = fmu_build.scenario(cs_only, "co_simulation", "n_sub = 4")
+    with pytest.raises(ScenarioError, match=r"offers co-simulation only, which gives no derivatives "
+                                            r"to design the controller from; set \[design\] defaults"):
+        parse_scenario(text.replace('defaults = "declared"', 'defaults = "plant"'), path=str(tmp / "c.toml"))
+
+
+def test_cs_only_fmu_starts_from_its_start_values(fmu, tmp_path):
+    """Without model exchange there are no derivatives to find the steady state with: the
+    states start at the FMU's start values (0 here), the v_out state at the start voltage;
+    the run then follows the co-simulation FMU (its first step from that state)."""
+    tmp, lib, _ = fmu
+    cs_only = fmu_build.pack(tmp_path, lib, "cs_only.fmu", interfaces=("cs",))
+    sc = parse_scenario(fmu_build.scenario(cs_only, "co_simulation", "n_sub = 4"),
+                        path=str(tmp_path / "c.toml"))
+    decl = sc.plant.plugin.declaration
+    np.testing.assert_array_equal(decl.equilibrium(sc.plant.values, 400.0, np.array([20e3, 0, 0])),
+                                  [0.0, 0.0, 0.0, 400.0])
+    run = open_run(run_scenario(sc, tmp_path / "r").folder)
+    assert run.summary["outcome"]["status"] == "completed"
+    # the first tick: 400 V less the offset of the excitation, no current yet
+    assert run.signals["i_L1"][0] == 0.0 and abs(run.signals["v_out"][0] - 399.0) < 1e-9
