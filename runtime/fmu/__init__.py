@@ -1,5 +1,5 @@
-"""FMU plants: a Functional Mock-up Unit (FMI 2.0, model exchange or co-simulation) as the
-plant of a scenario (``[plant] fmu = "plant.fmu"``, docs/scenarios.md "FMU plants").
+"""FMU plants: a Functional Mock-up Unit (FMI 2.0 or 3.0, model exchange or co-simulation) as
+the plant of a scenario (``[plant] fmu = "plant.fmu"``, docs/scenarios.md "FMU plants").
 
 - :mod:`.spec` reads the scenario's ``[plant]`` table and the FMU's modelDescription.xml, checks
   the mapping of hilrig's signals to the FMU's variables (names, causality, units) and makes

@@ -1,7 +1,7 @@
-"""Live FMU instances: instantiated in Python with fmpy before a run (when the plant plugin's
-parameters are packed), kept for the process (a later run of the same FMU and parameters
-reuses them: the kernels set every state they need on each call), freed at exit or by
-:func:`release_all`.
+"""Live FMU instances (FMI 2.0 or 3.0): instantiated in Python with fmpy before a run (when the
+plant plugin's parameters are packed), kept for the process (a later run of the same FMU and
+parameters reuses them: the kernels set every state they need on each call), freed at exit or
+by :func:`release_all`.
 
 The compiled kernels get the instance as numbers in the plugin's parameter array ``p``
 (:func:`header`): the component pointers, the addresses of the FMI functions they call and of
@@ -54,38 +54,68 @@ class Instance:
                                 f"(an FMU for this platform, linux64, is needed)") from None
 
     def _start(self, kind: str):
-        from fmpy.fmi2 import FMU2Model, FMU2Slave
-        cls, ident = (FMU2Model, self.spec["me_id"]) if kind == "me" else (FMU2Slave, self.spec["cs_id"])
+        fmi3 = self.spec["fmi"] == 3
+        if fmi3:
+            from fmpy.fmi3 import FMU3Model as Model, FMU3Slave as Slave
+        else:
+            from fmpy.fmi2 import FMU2Model as Model, FMU2Slave as Slave
+        cls, ident = (Model, self.spec["me_id"]) if kind == "me" else (Slave, self.spec["cs_id"])
         m = cls(guid=self.spec["guid"], unzipDirectory=self.unzip, modelIdentifier=ident,
                 instanceName=f"hilrig_{kind}")
         m.instantiate()
-        m.setupExperiment(startTime=0.0)
+        if not fmi3:
+            m.setupExperiment(startTime=0.0)
         if self.n_par:
-            m.setReal(list(self.vr_par), list(self.par))
-        m.enterInitializationMode()
+            self._set(m, list(self.vr_par), list(self.par))
+        if fmi3:
+            m.enterInitializationMode(startTime=0.0)
+        else:
+            m.enterInitializationMode()
         m.exitInitializationMode()
         if kind == "me":
             for _ in range(100):
-                if not m.newDiscreteStates()[0]:
+                more = m.updateDiscreteStates()[0] if fmi3 else m.newDiscreteStates()[0]
+                if not more:
                     break
             m.enterContinuousTimeMode()
         return m
 
+    def _set(self, m, vrs, values):
+        if self.spec["fmi"] == 3:
+            m.setFloat64(vrs, values)
+        else:
+            m.setReal(vrs, values)
+
+    def _get(self, m, vrs):
+        return m.getFloat64(vrs) if self.spec["fmi"] == 3 else m.getReal(vrs)
+
     def header(self) -> np.ndarray:
         """The header of ``p`` (:data:`HEADER`)."""
         def fa(m, name):
-            return float(function_address(getattr(m.dll, name))) if m is not None else 0.0
+            return float(function_address(getattr(m.dll, name))) if m is not None and name else 0.0
 
         me, cs = self.me, self.cs
+        if self.spec["fmi"] == 3:
+            names = dict(settime="fmi3SetTime", setx="fmi3SetContinuousStates",
+                         setreal="fmi3SetFloat64", getreal="fmi3GetFloat64",
+                         getder="fmi3GetContinuousStateDerivatives", dostep="fmi3DoStep",
+                         reset="fmi3Reset", setup=None, enter="fmi3EnterInitializationMode",
+                         exit="fmi3ExitInitializationMode")
+        else:
+            names = dict(settime="fmi2SetTime", setx="fmi2SetContinuousStates",
+                         setreal="fmi2SetReal", getreal="fmi2GetReal",
+                         getder="fmi2GetDerivatives", dostep="fmi2DoStep", reset="fmi2Reset",
+                         setup="fmi2SetupExperiment", enter="fmi2EnterInitializationMode",
+                         exit="fmi2ExitInitializationMode")
         h = dict(me_c=float(me.component or 0) if me else 0.0,
                  cs_c=float(cs.component or 0) if cs else 0.0,
-                 settime=fa(me, "fmi2SetTime"), setx=fa(me, "fmi2SetContinuousStates"),
-                 me_setreal=fa(me, "fmi2SetReal"), me_getreal=fa(me, "fmi2GetReal"),
-                 getder=fa(me, "fmi2GetDerivatives"),
-                 cs_setreal=fa(cs, "fmi2SetReal"), cs_getreal=fa(cs, "fmi2GetReal"),
-                 dostep=fa(cs, "fmi2DoStep"), reset=fa(cs, "fmi2Reset"),
-                 setup=fa(cs, "fmi2SetupExperiment"), enter=fa(cs, "fmi2EnterInitializationMode"),
-                 exit=fa(cs, "fmi2ExitInitializationMode"),
+                 settime=fa(me, names["settime"]), setx=fa(me, names["setx"]),
+                 me_setreal=fa(me, names["setreal"]), me_getreal=fa(me, names["getreal"]),
+                 getder=fa(me, names["getder"]),
+                 cs_setreal=fa(cs, names["setreal"]), cs_getreal=fa(cs, names["getreal"]),
+                 dostep=fa(cs, names["dostep"]), reset=fa(cs, names["reset"]),
+                 setup=fa(cs, names["setup"]), enter=fa(cs, names["enter"]),
+                 exit=fa(cs, names["exit"]),
                  vr_in=float(self.vr_in.ctypes.data), vr_out=float(self.vr_out.ctypes.data),
                  vr_x=float(self.vr_x.ctypes.data), vr_par=float(self.vr_par.ctypes.data),
                  par=float(self.par.ctypes.data), n_par=float(self.n_par))
@@ -108,9 +138,13 @@ class Instance:
             ins = {"u": z[nx], "P_load": d[0], "G_load": d[1], "I_load": d[2]}
             m.setTime(0.0)
             m.setContinuousStates(x.ctypes.data_as(ctypes.POINTER(ctypes.c_double)), nx)
-            m.setReal(list(self.vr_in), [float(ins[n]) for n, _, _ in spec["inputs"]])
-            m.getDerivatives(dx.ctypes.data_as(ctypes.POINTER(ctypes.c_double)), nx)
-            y = m.getReal([int(self.vr_out[iv])])[0]
+            self._set(m, list(self.vr_in), [float(ins[n]) for n, _, _ in spec["inputs"]])
+            dptr = dx.ctypes.data_as(ctypes.POINTER(ctypes.c_double))
+            if spec["fmi"] == 3:
+                m.getContinuousStateDerivatives(dptr, nx)
+            else:
+                m.getDerivatives(dptr, nx)
+            y = self._get(m, [int(self.vr_out[iv])])[0]
             return np.append(dx.copy(), y - v_out)
 
         z = np.append(np.array(spec["state_starts"], dtype=np.float64), float(v_out))

@@ -20,8 +20,14 @@ start offset), it first resets the FMU to that state (fmi2Reset, fmi2SetupExperi
 parameters and the states by fmi2SetReal, initialisation). ``derivs`` uses the model-exchange
 interface when the FMU offers it (the analysis and the start state), else returns NaN.
 
-Any FMI status worse than fmi2Warning makes the kernel return NaN: the loop then trips on the
-non-finite measurement (the safe state), as for any plant whose integration fails.
+FMI 3.0: the same calls by their FMI 3.0 names (fmi3SetFloat64 / fmi3GetFloat64 with their
+value counts, fmi3GetContinuousStateDerivatives, fmi3DoStep with its result flags, whose
+terminateSimulation or earlyReturn counts as an error); the start time goes to
+fmi3EnterInitializationMode (there is no fmi3SetupExperiment).
+
+Any FMI status worse than a warning makes the kernel return NaN: the loop then ends the run
+with a plant integration error (the state is not finite), as for any plant whose integration
+fails.
 """
 from __future__ import annotations
 
@@ -43,7 +49,8 @@ def layout(spec: dict) -> dict:
     lay["inb"] = lay["xb"] + nx
     lay["db"] = lay["inb"] + nin
     lay["yb"] = lay["db"] + nx
-    lay["size"] = lay["yb"] + ny
+    lay["out"] = lay["yb"] + ny  # FMI 3.0 fmi3DoStep's four results (three flags and a time)
+    lay["size"] = lay["out"] + 4
     return lay
 
 
@@ -65,6 +72,14 @@ def module_text(spec: dict, source_key: str) -> str:
     nx, nin, ny = len(spec["states"]), len(spec["inputs"]), len(spec["outputs"])
     nan = _tuple(["np.nan"] * nx)
     I32 = "np.int32(0)"
+    fmi3 = spec["fmi"] == 3
+
+    def rw(fn, comp, vr, n, ptr):
+        """fmi2SetReal / fmi2GetReal (c, vr, nvr, values), or fmi3SetFloat64 / fmi3GetFloat64
+        with the number of values after them (one per scalar variable)."""
+        extra = f", {n}" if fmi3 else ""
+        return f"call_native({_fn(lay, fn)}, {I32}, ({comp}, {_fn(lay, vr)}, {n}, {ptr}{extra}))"
+
     me_state = "\n".join(f"    p[{lay['xb'] + i}] = x[{i}]" for i in range(nx))
     me_prefix = f"""    c = {_fn(lay, 'me_c')}
     a = np.int64(p.ctypes.data)
@@ -72,7 +87,7 @@ def module_text(spec: dict, source_key: str) -> str:
 {_set_inputs(spec, lay)}
     st = call_native({_fn(lay, 'settime')}, {I32}, (c, np.float64(t)))
     st |= call_native({_fn(lay, 'setx')}, {I32}, (c, a + {8 * lay['xb']}, np.int64({nx})))
-    st |= call_native({_fn(lay, 'me_setreal')}, {I32}, (c, {_fn(lay, 'vr_in')}, np.int64({nin}), a + {8 * lay['inb']}))"""
+    st |= {rw('me_setreal', 'c', 'vr_in', f'np.int64({nin})', f"a + {8 * lay['inb']}")}"""
     parts = []
     if spec["me_id"] is not None:
         parts.append(f'''@njit(cache=True, error_model="numpy")
@@ -93,10 +108,28 @@ def derivs(t, p, x, u, d):
 def outputs(t, p, x, u, d, y):
     """The mapped outputs (fmi2GetReal) at time t, state x, inputs u and load d."""
 {me_prefix}
-    st |= call_native({_fn(lay, 'me_getreal')}, {I32}, (c, {_fn(lay, 'vr_out')}, np.int64({ny}), a + {8 * lay['yb']}))
+    st |= {rw('me_getreal', 'c', 'vr_out', f'np.int64({ny})', f"a + {8 * lay['yb']}")}
     for i in range({ny}):
         y[i] = p[{lay['yb']} + i] if st <= 1 else np.nan''')
     else:
+        experiment = "(c, np.int32(0), 0.0, np.float64(t), np.int32(0), 0.0)"
+        if fmi3:  # the experiment's start time is fmi3EnterInitializationMode's argument
+            setup = ""
+            enter = f"    st |= call_native({_fn(lay, 'enter')}, {I32}, {experiment})"
+        else:
+            setup = f"    st |= call_native({_fn(lay, 'setup')}, {I32}, {experiment})"
+            enter = f"    st |= call_native({_fn(lay, 'enter')}, {I32}, (c,))"
+        o = lay["out"]
+        if fmi3:
+            dostep = "\n".join([
+                f"    for i in range(4):\n        p[{o} + i] = 0.0",
+                f"    st |= call_native({_fn(lay, 'dostep')}, {I32}, (c, np.float64(t), np.float64(h), "
+                f"np.int32(1), a + {8 * o}, a + {8 * (o + 1)}, a + {8 * (o + 2)}, a + {8 * (o + 3)}))",
+                "    # terminateSimulation or earlyReturn: the step did not reach t + h",
+                f"    if p[{o + 1}] != 0.0 or p[{o + 2}] != 0.0:\n        st |= 3"])
+        else:
+            dostep = (f"    st |= call_native({_fn(lay, 'dostep')}, {I32}, (c, np.float64(t), "
+                      f"np.float64(h), np.int32(1)))")
         same = " and ".join(f"x[{i}] == p[{lay['last'] + i}]" for i in range(nx))
         store = "\n".join(f"    p[{lay['xb'] + i}] = x[{i}]" for i in range(nx))
         parts.append(f'''@njit(cache=True, error_model="numpy")
@@ -110,10 +143,10 @@ def _sync(t, p, x):
     a = np.int64(p.ctypes.data)
 {store}
     st = call_native({_fn(lay, 'reset')}, {I32}, (c,))
-    st |= call_native({_fn(lay, 'setup')}, {I32}, (c, np.int32(0), 0.0, np.float64(t), np.int32(0), 0.0))
-    st |= call_native({_fn(lay, 'cs_setreal')}, {I32}, (c, {_fn(lay, 'vr_par')}, {_fn(lay, 'n_par')}, {_fn(lay, 'par')}))
-    st |= call_native({_fn(lay, 'cs_setreal')}, {I32}, (c, {_fn(lay, 'vr_x')}, np.int64({nx}), a + {8 * lay['xb']}))
-    st |= call_native({_fn(lay, 'enter')}, {I32}, (c,))
+{setup}
+    st |= {rw('cs_setreal', 'c', 'vr_par', _fn(lay, 'n_par'), _fn(lay, 'par'))}
+    st |= {rw('cs_setreal', 'c', 'vr_x', f'np.int64({nx})', f"a + {8 * lay['xb']}")}
+{enter}
     st |= call_native({_fn(lay, 'exit')}, {I32}, (c,))
     for i in range({nx}):
         p[{lay['last']} + i] = p[{lay['xb']} + i]
@@ -126,9 +159,9 @@ def advance_period(t, h, p, s, u, d):
     c = {_fn(lay, 'cs_c')}
     a = np.int64(p.ctypes.data)
 {_set_inputs(spec, lay)}
-    st |= call_native({_fn(lay, 'cs_setreal')}, {I32}, (c, {_fn(lay, 'vr_in')}, np.int64({nin}), a + {8 * lay['inb']}))
-    st |= call_native({_fn(lay, 'dostep')}, {I32}, (c, np.float64(t), np.float64(h), np.int32(1)))
-    st |= call_native({_fn(lay, 'cs_getreal')}, {I32}, (c, {_fn(lay, 'vr_x')}, np.int64({nx}), a + {8 * lay['xb']}))
+    st |= {rw('cs_setreal', 'c', 'vr_in', f'np.int64({nin})', f"a + {8 * lay['inb']}")}
+{dostep}
+    st |= {rw('cs_getreal', 'c', 'vr_x', f'np.int64({nx})', f"a + {8 * lay['xb']}")}
     for i in range({nx}):
         p[{lay['last']} + i] = p[{lay['xb']} + i]
     if st > 1:
@@ -144,11 +177,11 @@ def outputs(t, p, x, u, d, y):
     c = {_fn(lay, 'cs_c')}
     a = np.int64(p.ctypes.data)
 {_set_inputs(spec, lay)}
-    st |= call_native({_fn(lay, 'cs_setreal')}, {I32}, (c, {_fn(lay, 'vr_in')}, np.int64({nin}), a + {8 * lay['inb']}))
-    st |= call_native({_fn(lay, 'cs_getreal')}, {I32}, (c, {_fn(lay, 'vr_out')}, np.int64({ny}), a + {8 * lay['yb']}))
+    st |= {rw('cs_setreal', 'c', 'vr_in', f'np.int64({nin})', f"a + {8 * lay['inb']}")}
+    st |= {rw('cs_getreal', 'c', 'vr_out', f'np.int64({ny})', f"a + {8 * lay['yb']}")}
     for i in range({ny}):
         y[i] = p[{lay['yb']} + i] if st <= 1 else np.nan''')
-    head = f'''"""Generated by hilrig: the plant of the FMU {spec['name']} ({spec['interface']}).
+    head = f'''"""Generated by hilrig: the plant of the FMU {spec['name']} (FMI {spec['fmi']}.0, {spec['interface']}).
 Do not edit: the file name is the hash of its text.
 FMU sha256: {spec['sha256']}; hilrig sources: {source_key}"""
 import numpy as np
@@ -209,5 +242,5 @@ def declaration(spec: dict) -> Declaration:
         inputs=tuple(Signal(n, spec["units"][vr], f"FMU variable {spec['names'][vr]}")
                      for n, _, vr in spec["inputs"] if n == "u"),
         outputs=sig((n, spec["names"][vr], spec["units"][vr]) for n, _, vr in spec["outputs"]),
-        source=f"FMU {spec['path']} (sha256 {spec['sha256'][:12]}), FMI 2.0",
+        source=f"FMU {spec['path']} (sha256 {spec['sha256'][:12]}), FMI {spec['fmi']}.0",
         build=build, equilibrium=equilibrium)

@@ -1,4 +1,5 @@
-"""``[plant] fmu = ...``: read the scenario's FMU plant table and the FMU's model description,
+"""``[plant] fmu = ...``: read the scenario's FMU plant table and the FMU's model description
+(FMI 2.0 or 3.0),
 check the mapping, make the plant plugin (runtime/fmu/plant.py).
 
 The table (docs/scenarios.md "FMU plants")::
@@ -89,9 +90,11 @@ def build(cx, raw: dict, folder: Path, quantity):
         raise cx.fail("plant.fmu", f" = {ref!r}: the modelDescription.xml of {fname} is not valid "
                       f"XML ({exc}); export the FMU again") from None
     version = root.get("fmiVersion")
-    if version != "2.0":
+    if version != "2.0" and not (version or "").startswith("3."):
         raise cx.fail("plant.fmu", f" = {ref!r}: {fname} is an FMI {version} FMU; hilrig runs FMI "
-                      f"2.0 FMUs: export it as FMI 2.0")
+                      f"2.0 and 3.0 FMUs: export it as FMI 2.0 or 3.0")
+    fmi = 2 if version == "2.0" else 3
+    real = "Real" if fmi == 2 else "Float64"
     try:
         md = read_model_description(str(path), validate=False)
     except Exception as exc:
@@ -114,7 +117,7 @@ def build(cx, raw: dict, folder: Path, quantity):
                       f"indicators; hilrig does not locate state events in an FMU yet: export it "
                       f"without event indicators (or run it as co-simulation)")
     if iface == "model_exchange" and me.needsCompletedIntegratorStep:
-        raise cx.fail("plant.fmu", f" = {ref!r}: {fname} needs fmi2CompletedIntegratorStep after "
+        raise cx.fail("plant.fmu", f" = {ref!r}: {fname} needs fmi{fmi}CompletedIntegratorStep after "
                       f"every step, which hilrig's loop does not call; export it with "
                       f"completedIntegratorStepNotNeeded=\"true\" or run it as co-simulation")
     variables = {v.name: v for v in md.modelVariables}
@@ -127,9 +130,12 @@ def build(cx, raw: dict, folder: Path, quantity):
         if v is None:
             raise cx.fail(key, f" = {name!r}: no variable {name!r} {where_fmu}{_close(name, variables)}; "
                           f"name one of its {what} variables")
-        if v.type != "Real":
+        if v.type != real:
             raise cx.fail(key, f" = {name!r}: variable {name!r} {where_fmu} is of type {v.type}; "
-                          f"hilrig exchanges Real variables only: map a Real one")
+                          f"hilrig exchanges {real} variables only: map a {real} one")
+        if getattr(v, "dimensions", None):
+            raise cx.fail(key, f" = {name!r}: variable {name!r} {where_fmu} is an array; hilrig "
+                          f"exchanges scalar variables only: map a scalar one")
         if causalities and v.causality not in causalities:
             raise cx.fail(key, f" = {name!r}: variable {name!r} {where_fmu} has causality "
                           f"{v.causality!r}, an {' or '.join(causalities)} is needed here; map "
@@ -228,7 +234,8 @@ def build(cx, raw: dict, folder: Path, quantity):
     # parameters: every other key of [plant] is a real parameter of the FMU
     params = []
     for v in md.modelVariables:
-        if v.causality == "parameter" and v.type == "Real" and v.variability in ("fixed", "tunable"):
+        if (v.causality == "parameter" and v.type == real and v.variability in ("fixed", "tunable")
+                and not getattr(v, "dimensions", None)):
             u = _canonical(v.unit or (v.declaredType.unit if v.declaredType is not None else None))
             params.append({"name": v.name, "vr": v.valueReference,
                            "unit": u if u in UNITS.values() else "-",
@@ -252,7 +259,7 @@ def build(cx, raw: dict, folder: Path, quantity):
                       f"= \"declared\" (the controller's declared numbers, or give them), or use "
                       f"an FMU that offers model exchange as well")
     spec = {"name": fname, "path": str(path), "sha256": hashlib.sha256(path.read_bytes()).hexdigest(),
-            "interface": INTERFACES[iface], "guid": md.guid,
+            "interface": INTERFACES[iface], "guid": md.guid, "fmi": fmi,
             "me_id": me.modelIdentifier if me is not None else None,
             "cs_id": cs.modelIdentifier if cs is not None else None,
             "inputs": inputs, "outputs": outputs, "states": states, "state_starts": starts,

@@ -1,5 +1,6 @@
-"""Build the test FMU of the two-stage LC plant (two_stage_lc.c, modelDescription.xml.in) with
-the system C compiler: no binary FMU is kept in the repository.
+"""Build the test FMU of the two-stage LC plant (two_stage_lc.c, modelDescription.xml.in; for
+FMI 3.0 modelDescription3.xml.in) with the system C compiler: no binary FMU is kept in the
+repository.
 
 ``compile_library(folder)`` compiles the shared library once; ``pack(folder, library, ...)``
 zips it with a model description made from the template (``edit``: text replacements, for the
@@ -15,12 +16,16 @@ from pathlib import Path
 
 HERE = Path(__file__).resolve().parent
 SOURCE = HERE / "two_stage_lc.c"
-TEMPLATE = HERE / "modelDescription.xml.in"
+TEMPLATE = {2: HERE / "modelDescription.xml.in", 3: HERE / "modelDescription3.xml.in"}
 IDENTIFIER = "two_stage_lc"
 INTERFACES = {
-    "me": f'  <ModelExchange modelIdentifier="{IDENTIFIER}" completedIntegratorStepNotNeeded="true"/>',
-    "cs": f'  <CoSimulation modelIdentifier="{IDENTIFIER}" canHandleVariableCommunicationStepSize="true"/>',
+    2: {"me": f'  <ModelExchange modelIdentifier="{IDENTIFIER}" completedIntegratorStepNotNeeded="true"/>',
+        "cs": f'  <CoSimulation modelIdentifier="{IDENTIFIER}" canHandleVariableCommunicationStepSize="true"/>'},
+    3: {"me": f'  <ModelExchange modelIdentifier="{IDENTIFIER}" needsCompletedIntegratorStep="false"/>',
+        "cs": f'  <CoSimulation modelIdentifier="{IDENTIFIER}" canHandleVariableCommunicationStepSize="true"/>'},
 }
+#: where each FMI version keeps the binary for Linux on x86-64
+BINARY_DIR = {2: "binaries/linux64", 3: "binaries/x86_64-linux"}
 
 
 def compiler() -> str | None:
@@ -32,24 +37,27 @@ def compiler() -> str | None:
     return None
 
 
-def compile_library(folder: Path) -> Path:
-    """The FMU's shared library, compiled into ``folder``. No contraction of a*b+c into one
-    fused operation (-ffp-contract=off): the arithmetic must round as the plugin's does."""
-    folder = Path(folder)
+def compile_library(folder: Path, version: int = 2) -> Path:
+    """The FMU's shared library (FMI ``version`` 2 or 3), compiled into ``folder``. No
+    contraction of a*b+c into one fused operation (-ffp-contract=off): the arithmetic must
+    round as the plugin's does."""
+    folder = Path(folder) / f"fmi{version}"
     folder.mkdir(parents=True, exist_ok=True)
     out = folder / f"{IDENTIFIER}.so"
     cc = compiler()
     if cc is None:
         raise RuntimeError("no C compiler (cc, gcc or clang) on PATH")
-    subprocess.run([cc, "-shared", "-fPIC", "-O2", "-ffp-contract=off", "-o", str(out),
+    flags = ["-DHILRIG_TEST_FMI3"] if version == 3 else []
+    subprocess.run([cc, "-shared", "-fPIC", "-O2", "-ffp-contract=off", *flags, "-o", str(out),
                     str(SOURCE), "-lm"], check=True, capture_output=True, text=True)
     return out
 
 
-def model_description(interfaces=("me", "cs"), edit: dict[str, str] | None = None) -> str:
-    text = TEMPLATE.read_text()
+def model_description(interfaces=("me", "cs"), edit: dict[str, str] | None = None,
+                      version: int = 2) -> str:
+    text = TEMPLATE[version].read_text()
     text = text.replace("@GUID@", "{" + str(uuid.uuid5(uuid.NAMESPACE_URL, "hilrig-test-fmu")) + "}")
-    text = text.replace("@INTERFACES@", "\n".join(INTERFACES[i] for i in interfaces))
+    text = text.replace("@INTERFACES@", "\n".join(INTERFACES[version][i] for i in interfaces))
     for old, new in (edit or {}).items():
         if old not in text:
             raise ValueError(f"edit: {old!r} is not in the model description")
@@ -58,18 +66,21 @@ def model_description(interfaces=("me", "cs"), edit: dict[str, str] | None = Non
 
 
 def pack(folder: Path, library: Path, name: str = "two_stage_lc.fmu", interfaces=("me", "cs"),
-         edit: dict[str, str] | None = None) -> Path:
-    """Zip the library and a model description into ``folder/name``; its path."""
+         edit: dict[str, str] | None = None, version: int = 2) -> Path:
+    """Zip the library (compiled for FMI ``version``) and a model description into
+    ``folder/name``; its path."""
     path = Path(folder) / name
     with zipfile.ZipFile(path, "w") as z:
-        z.writestr("modelDescription.xml", model_description(interfaces, edit))
-        z.write(library, f"binaries/linux64/{IDENTIFIER}.so")
+        z.writestr("modelDescription.xml", model_description(interfaces, edit, version))
+        z.write(library, f"{BINARY_DIR[version]}/{IDENTIFIER}.so")
         z.write(SOURCE, f"sources/{SOURCE.name}")
     return path
 
 
-def build_fmu(folder: Path, interfaces=("me", "cs"), edit=None, name="two_stage_lc.fmu") -> Path:
-    return pack(folder, compile_library(Path(folder) / "build"), name, interfaces, edit)
+def build_fmu(folder: Path, interfaces=("me", "cs"), edit=None, name="two_stage_lc.fmu",
+              version: int = 2) -> Path:
+    return pack(folder, compile_library(Path(folder) / "build", version), name, interfaces, edit,
+                version)
 
 
 #: the [plant] tables mapping hilrig's signals to the test FMU's variables

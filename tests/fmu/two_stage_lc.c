@@ -9,38 +9,16 @@
  * the scenario's substeps repeats the model-exchange run.
  *
  * Built by tests/fmu/build.py at test time with the system C compiler; no binary is kept in
- * the repository. The variables and their value references are in modelDescription.xml.
- * Own minimal FMI 2.0 type definitions (the standard's names and calling convention).
+ * the repository. The variables and their value references are in modelDescription.xml.in
+ * (FMI 2.0) and modelDescription3.xml.in (FMI 3.0, compiled with -DHILRIG_TEST_FMI3: the same
+ * model behind the FMI 3.0 functions). Own minimal type definitions (the standards' names and
+ * calling conventions).
  */
 #include <math.h>
 #include <stdlib.h>
 #include <string.h>
 
-typedef void *fmi2Component;
-typedef void *fmi2ComponentEnvironment;
-typedef void *fmi2FMUstate;
-typedef unsigned int fmi2ValueReference;
-typedef double fmi2Real;
-typedef int fmi2Integer;
-typedef int fmi2Boolean;
-typedef char fmi2Char;
-typedef const fmi2Char *fmi2String;
-typedef char fmi2Byte;
-typedef enum { fmi2OK, fmi2Warning, fmi2Discard, fmi2Error, fmi2Fatal, fmi2Pending } fmi2Status;
-typedef enum { fmi2ModelExchange, fmi2CoSimulation } fmi2Type;
-typedef enum { fmi2DoStepStatus, fmi2PendingStatus, fmi2LastSuccessfulTime, fmi2Terminated } fmi2StatusKind;
-typedef struct {
-    void (*logger)(fmi2ComponentEnvironment, fmi2String, fmi2Status, fmi2String, fmi2String, ...);
-    void *(*allocateMemory)(size_t, size_t);
-    void (*freeMemory)(void *);
-    void (*stepFinished)(fmi2ComponentEnvironment, fmi2Status);
-    fmi2ComponentEnvironment componentEnvironment;
-} fmi2CallbackFunctions;
-typedef struct {
-    fmi2Boolean newDiscreteStatesNeeded, terminateSimulation, nominalsOfContinuousStatesChanged,
-        valuesOfContinuousStatesChanged, nextEventTimeDefined;
-    fmi2Real nextEventTime;
-} fmi2EventInfo;
+#include <stdbool.h>
 
 #define EXPORT __attribute__((visibility("default")))
 
@@ -126,7 +104,7 @@ static void rk4(const Model *m, double dt, double *s) {
     for (i = 0; i < NX; i++) s[i] = s[i] + dt / 6.0 * (k1[i] + 2.0 * k2[i] + 2.0 * k3[i] + k4[i]);
 }
 
-static int get_one(Model *m, fmi2ValueReference r, double *v) {
+static int get_one(Model *m, unsigned int r, double *v) {
     double dx[NX], y[NY];
     if (r < N_PAR) { *v = m->par[r]; return 0; }
     if (r == VR_U) { *v = m->u; return 0; }
@@ -137,13 +115,41 @@ static int get_one(Model *m, fmi2ValueReference r, double *v) {
     return -1;
 }
 
-static int set_one(Model *m, fmi2ValueReference r, double v) {
+static int set_one(Model *m, unsigned int r, double v) {
     if (r < N_PAR) { m->par[r] = v; return 0; }
     if (r == VR_U) { m->u = v; return 0; }
     if (r >= VR_P && r <= VR_I) { m->d[r - VR_P] = v; return 0; }
     if (r >= VR_X && r < VR_X + NX) { m->x[r - VR_X] = v; return 0; }
     return -1;
 }
+
+#ifndef HILRIG_TEST_FMI3 /* FMI 2.0 */
+
+typedef void *fmi2Component;
+typedef void *fmi2ComponentEnvironment;
+typedef void *fmi2FMUstate;
+typedef unsigned int fmi2ValueReference;
+typedef double fmi2Real;
+typedef int fmi2Integer;
+typedef int fmi2Boolean;
+typedef char fmi2Char;
+typedef const fmi2Char *fmi2String;
+typedef char fmi2Byte;
+typedef enum { fmi2OK, fmi2Warning, fmi2Discard, fmi2Error, fmi2Fatal, fmi2Pending } fmi2Status;
+typedef enum { fmi2ModelExchange, fmi2CoSimulation } fmi2Type;
+typedef enum { fmi2DoStepStatus, fmi2PendingStatus, fmi2LastSuccessfulTime, fmi2Terminated } fmi2StatusKind;
+typedef struct {
+    void (*logger)(fmi2ComponentEnvironment, fmi2String, fmi2Status, fmi2String, fmi2String, ...);
+    void *(*allocateMemory)(size_t, size_t);
+    void (*freeMemory)(void *);
+    void (*stepFinished)(fmi2ComponentEnvironment, fmi2Status);
+    fmi2ComponentEnvironment componentEnvironment;
+} fmi2CallbackFunctions;
+typedef struct {
+    fmi2Boolean newDiscreteStatesNeeded, terminateSimulation, nominalsOfContinuousStatesChanged,
+        valuesOfContinuousStatesChanged, nextEventTimeDefined;
+    fmi2Real nextEventTime;
+} fmi2EventInfo;
 
 EXPORT const char *fmi2GetTypesPlatform(void) { return "default"; }
 EXPORT const char *fmi2GetVersion(void) { return "2.0"; }
@@ -249,3 +255,156 @@ EXPORT fmi2Status fmi2GetRealStatus(fmi2Component c, const fmi2StatusKind k, fmi
 EXPORT fmi2Status fmi2GetIntegerStatus(fmi2Component c, const fmi2StatusKind k, fmi2Integer *v) { return fmi2Error; }
 EXPORT fmi2Status fmi2GetBooleanStatus(fmi2Component c, const fmi2StatusKind k, fmi2Boolean *v) { return fmi2Error; }
 EXPORT fmi2Status fmi2GetStringStatus(fmi2Component c, const fmi2StatusKind k, fmi2String *v) { return fmi2Error; }
+
+#else /* FMI 3.0 */
+
+typedef void *fmi3Instance;
+typedef unsigned int fmi3ValueReference;
+enum { fmi3OK, fmi3Warning, fmi3Discard, fmi3Error, fmi3Fatal };
+
+EXPORT const char *fmi3GetVersion(void) { return "3.0"; }
+EXPORT int fmi3SetDebugLogging(fmi3Instance c, bool on, size_t n, const char *const cat[]) { return fmi3OK; }
+EXPORT fmi3Instance fmi3InstantiateModelExchange(const char *name, const char *token, const char *res, bool visible,
+                                                 bool logging, void *env, void *log) {
+    Model *m = (Model *)calloc(1, sizeof(Model));
+    if (!m) return NULL;
+    reset_model(m);
+    return m;
+}
+EXPORT fmi3Instance fmi3InstantiateCoSimulation(const char *name, const char *token, const char *res, bool visible,
+                                                bool logging, bool eventModeUsed, bool earlyReturnAllowed,
+                                                const fmi3ValueReference req[], size_t nreq, void *env, void *log,
+                                                void *update) {
+    Model *m = (Model *)calloc(1, sizeof(Model));
+    if (!m) return NULL;
+    reset_model(m);
+    m->cs = 1;
+    return m;
+}
+EXPORT void fmi3FreeInstance(fmi3Instance c) { free(c); }
+EXPORT int fmi3EnterInitializationMode(fmi3Instance c, bool tolDef, double tol, double t0, bool stopDef, double t1) {
+    ((Model *)c)->t = t0;
+    return fmi3OK;
+}
+EXPORT int fmi3ExitInitializationMode(fmi3Instance c) { return fmi3OK; }
+EXPORT int fmi3EnterEventMode(fmi3Instance c) { return fmi3OK; }
+EXPORT int fmi3Terminate(fmi3Instance c) { return fmi3OK; }
+EXPORT int fmi3Reset(fmi3Instance c) { reset_model((Model *)c); return fmi3OK; }
+EXPORT int fmi3GetFloat64(fmi3Instance c, const fmi3ValueReference vr[], size_t n, double v[], size_t nv) {
+    size_t i;
+    if (nv != n) return fmi3Error;
+    for (i = 0; i < n; i++)
+        if (get_one((Model *)c, vr[i], &v[i])) return fmi3Error;
+    return fmi3OK;
+}
+EXPORT int fmi3SetFloat64(fmi3Instance c, const fmi3ValueReference vr[], size_t n, const double v[], size_t nv) {
+    size_t i;
+    if (nv != n) return fmi3Error;
+    for (i = 0; i < n; i++)
+        if (set_one((Model *)c, vr[i], v[i])) return fmi3Error;
+    return fmi3OK;
+}
+EXPORT int fmi3UpdateDiscreteStates(fmi3Instance c, bool *update, bool *term, bool *nominals, bool *values,
+                                    bool *nextDefined, double *next) {
+    *update = *term = *nominals = *values = *nextDefined = false;
+    *next = 0.0;
+    return fmi3OK;
+}
+EXPORT int fmi3EnterContinuousTimeMode(fmi3Instance c) { return fmi3OK; }
+EXPORT int fmi3CompletedIntegratorStep(fmi3Instance c, bool noSet, bool *enter, bool *term) {
+    *enter = *term = false;
+    return fmi3OK;
+}
+EXPORT int fmi3SetTime(fmi3Instance c, double t) { ((Model *)c)->t = t; return fmi3OK; }
+EXPORT int fmi3SetContinuousStates(fmi3Instance c, const double x[], size_t n) {
+    if (n != NX) return fmi3Error;
+    memcpy(((Model *)c)->x, x, sizeof(double) * NX);
+    return fmi3OK;
+}
+EXPORT int fmi3GetContinuousStateDerivatives(fmi3Instance c, double dx[], size_t n) {
+    if (n != NX) return fmi3Error;
+    derivs((Model *)c, ((Model *)c)->x, dx);
+    return fmi3OK;
+}
+EXPORT int fmi3GetContinuousStates(fmi3Instance c, double x[], size_t n) {
+    if (n != NX) return fmi3Error;
+    memcpy(x, ((Model *)c)->x, sizeof(double) * NX);
+    return fmi3OK;
+}
+EXPORT int fmi3GetNominalsOfContinuousStates(fmi3Instance c, double x[], size_t n) {
+    size_t i;
+    for (i = 0; i < n; i++) x[i] = 1.0;
+    return fmi3OK;
+}
+EXPORT int fmi3GetEventIndicators(fmi3Instance c, double z[], size_t n) { return n ? fmi3Error : fmi3OK; }
+EXPORT int fmi3GetNumberOfEventIndicators(fmi3Instance c, size_t *n) { *n = 0; return fmi3OK; }
+EXPORT int fmi3GetNumberOfContinuousStates(fmi3Instance c, size_t *n) { *n = NX; return fmi3OK; }
+EXPORT int fmi3EnterStepMode(fmi3Instance c) { return fmi3OK; }
+EXPORT int fmi3DoStep(fmi3Instance c, double t, double h, bool noSet, bool *eventNeeded, bool *term,
+                      bool *early, double *last) {
+    Model *m = (Model *)c;
+    int n = (int)m->par[P_NSUB], j;
+    double dt;
+    *eventNeeded = *term = *early = false;
+    if (n < 1) return fmi3Error;
+    dt = h / n;
+    for (j = 0; j < n; j++) rk4(m, dt, m->x);
+    m->t = t + h;
+    *last = m->t;
+    return fmi3OK;
+}
+
+/* the rest of the FMI 3.0 interface, unused by this model (fmpy binds every function) */
+#define STUB(name) EXPORT int name(void) { return fmi3Error; }
+STUB(fmi3ActivateModelPartition)
+STUB(fmi3DeserializeFMUState)
+STUB(fmi3EnterConfigurationMode)
+STUB(fmi3EvaluateDiscreteStates)
+STUB(fmi3ExitConfigurationMode)
+STUB(fmi3FreeFMUState)
+STUB(fmi3GetAdjointDerivative)
+STUB(fmi3GetBinary)
+STUB(fmi3GetBoolean)
+STUB(fmi3GetClock)
+STUB(fmi3GetDirectionalDerivative)
+STUB(fmi3GetFMUState)
+STUB(fmi3GetFloat32)
+STUB(fmi3GetInt16)
+STUB(fmi3GetInt32)
+STUB(fmi3GetInt64)
+STUB(fmi3GetInt8)
+STUB(fmi3GetIntervalDecimal)
+STUB(fmi3GetIntervalFraction)
+STUB(fmi3GetNumberOfVariableDependencies)
+STUB(fmi3GetOutputDerivatives)
+STUB(fmi3GetShiftDecimal)
+STUB(fmi3GetShiftFraction)
+STUB(fmi3GetString)
+STUB(fmi3GetUInt16)
+STUB(fmi3GetUInt32)
+STUB(fmi3GetUInt64)
+STUB(fmi3GetUInt8)
+STUB(fmi3GetVariableDependencies)
+STUB(fmi3InstantiateScheduledExecution)
+STUB(fmi3SerializeFMUState)
+STUB(fmi3SerializedFMUStateSize)
+STUB(fmi3SetBinary)
+STUB(fmi3SetBoolean)
+STUB(fmi3SetClock)
+STUB(fmi3SetFMUState)
+STUB(fmi3SetFloat32)
+STUB(fmi3SetInt16)
+STUB(fmi3SetInt32)
+STUB(fmi3SetInt64)
+STUB(fmi3SetInt8)
+STUB(fmi3SetIntervalDecimal)
+STUB(fmi3SetIntervalFraction)
+STUB(fmi3SetShiftDecimal)
+STUB(fmi3SetShiftFraction)
+STUB(fmi3SetString)
+STUB(fmi3SetUInt16)
+STUB(fmi3SetUInt32)
+STUB(fmi3SetUInt64)
+STUB(fmi3SetUInt8)
+
+#endif

@@ -1,6 +1,6 @@
 """FMU plants (runtime/fmu): an FMU of the two-stage LC plant, built from C source at test time
 (tests/fmu/two_stage_lc.c, the same equations, load model, clamp and diode model as
-plugins/plants/two_stage_lc.py), as the plant of a SIL run, through model exchange (the
+plugins/plants/two_stage_lc.py; FMI 2.0 and 3.0), as the plant of a SIL run, through model exchange (the
 loop's RK4 over the FMU's derivatives) and co-simulation (one fmi2DoStep per period, the FMU
 integrating with its own RK4 steps).
 
@@ -16,7 +16,7 @@ integrating with its own RK4 steps).
   signal's largest magnitude (seen: below 1e-14; 600 ticks of 4 sub-steps).
 * The co-simulation recording, with the FMU's internal RK4 steps equal to the scenario's
   substeps, equals the model-exchange recording bit for bit: the FMU's doStep is the loop's
-  generic RK4 stages written in C.
+  generic RK4 stages written in C. The FMI 3.0 build of the same model records the same.
 * Every mismatch of the mapping with modelDescription.xml is one clear message, and exit 2
   from the command line.
 """
@@ -119,6 +119,22 @@ def test_cs_recording_equals_me_bit_for_bit(runs):
         assert a.signals[name].tobytes() == b.signals[name].tobytes(), name
 
 
+def test_fmi3_recordings_equal_fmi2_bit_for_bit(fmu, runs):
+    """The same model behind the FMI 3.0 functions (fmi3SetFloat64, fmi3GetContinuousState-
+    Derivatives, fmi3DoStep, ...): model exchange and co-simulation record what the FMI 2.0
+    model exchange run records, bit for bit."""
+    tmp, _, _ = fmu
+    path = fmu_build.pack(tmp, fmu_build.compile_library(tmp / "build", 3), "fmi3.fmu", version=3)
+    for tag, text in (("me3", fmu_build.scenario(path)),
+                      ("cs3", fmu_build.scenario(path, "co_simulation", "n_sub = 4"))):
+        res = run_scenario(load_scenario(_write(tmp, f"{tag}.toml", text)), tmp / f"run_{tag}")
+        assert res.summary["outcome"]["status"] == "completed"
+        assert "FMI 3.0" in load_scenario(tmp / f"{tag}.toml").plant.plugin.declaration.source
+        run = open_run(res.folder)
+        for name in SIGNALS:
+            assert run.signals[name].tobytes() == runs["me"].signals[name].tobytes(), (tag, name)
+
+
 def test_cs_rerun_in_the_same_process_repeats_the_run(fmu, runs):
     """The FMU instance lives on between runs; the kernel resets it to the run's start state."""
     tmp, _, path = fmu
@@ -157,11 +173,17 @@ def _edit_case(edit, **kw):
 
 
 _U_LINE = 'description="converter voltage command"><Real unit="V" start="0.0"/>'
+_U3 = ('<Float64 name="u_conv" valueReference="10" causality="input" variability="continuous" '
+       'description="converter voltage command" unit="V"')
 _VC2 = 'name="filter.vC2" valueReference="23" causality="local" variability="continuous" initial="exact"'
 CASES = {
     # the model description
-    "fmi version": (dict(edit={'fmiVersion="2.0"': 'fmiVersion="3.0"'}), {},
-                    ["plant.fmu", "FMI 3.0", "export it as FMI 2.0"]),
+    "fmi version": (dict(edit={'fmiVersion="2.0"': 'fmiVersion="1.0"'}), {},
+                    ["plant.fmu", "FMI 1.0", "export it as FMI 2.0 or 3.0"]),
+    "unit of an input, FMI 3.0": (dict(version=3, edit={_U3: _U3.replace('unit="V"', 'unit="W"')}), {},
+                                  ["plant.inputs.u", "'u_conv'", "is in W", "signal is in V"]),
+    "type of an input, FMI 3.0": (dict(version=3, edit={_U3: _U3.replace("Float64", "Float32")}), {},
+                                  ["plant.inputs.u", "type Float32", "Float64 variables only"]),
     "unit of an input": (dict(edit={_U_LINE: _U_LINE.replace('unit="V"', 'unit="A"')}), {},
                          ["plant.inputs.u", "'u_conv'", "is in A", "signal is in V", "map a variable in V"]),
     "type of an input": (dict(edit={_U_LINE: 'description="converter voltage command"><Integer start="0"/>'}), {},
@@ -206,7 +228,9 @@ CASES = {
 def test_mismatch_is_one_clear_message(fmu, case):
     tmp, lib, _ = fmu
     build_kw, scen_kw, words = CASES[case]
-    name = case.replace(" ", "_") + ".fmu"
+    name = case.replace(" ", "_").replace(",", "").replace(".", "") + ".fmu"
+    if build_kw.get("version") == 3:
+        lib = fmu_build.compile_library(tmp / "build", 3)
     path = fmu_build.pack(tmp, lib, name, **build_kw) if build_kw else tmp / "two_stage_lc.fmu"
     text = fmu_build.scenario(path, **scen_kw)
     with pytest.raises(ScenarioError) as err:
