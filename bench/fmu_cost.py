@@ -10,7 +10,8 @@ tests' FMU scenario (tests/fmu/build.py, invented demo data: a 100 V step, a loa
   fmi2SetTime, fmi2SetContinuousStates, fmi2SetReal and fmi2GetDerivatives called by address,
   plus one output evaluation (with fmi2GetReal) per tick;
 * fmu cs: the FMU through co-simulation: one fmi2DoStep per tick (the FMU's own 4 RK4 steps),
-  fmi2SetReal of the inputs, fmi2GetReal of the states and outputs.
+  fmi2SetReal of the inputs, fmi2GetReal of the states and outputs;
+* fmi3 me, fmi3 cs: the same model built as an FMI 3.0 FMU (the fmi3 functions).
 
 Each is run --reps times, interleaved, timed with process_time; the medians are printed as ns
 per tick and the ratios to the embedded plant. The runs' recordings are compared too (largest
@@ -48,10 +49,13 @@ def main():
     from tests.fmu import build as fmu_build
 
     fmu = fmu_build.build_fmu(tmp)
+    fmu3 = fmu_build.build_fmu(tmp, name="fmi3.fmu", version=3)
     dur = f'duration = "{args.duration} s"'
     texts = {"embedded": fmu_build.scenario(None),
              "fmu me": fmu_build.scenario(fmu),
-             "fmu cs": fmu_build.scenario(fmu, "co_simulation", "n_sub = 4")}
+             "fmu cs": fmu_build.scenario(fmu, "co_simulation", "n_sub = 4"),
+             "fmi3 me": fmu_build.scenario(fmu3),
+             "fmi3 cs": fmu_build.scenario(fmu3, "co_simulation", "n_sub = 4")}
     scs = {k: parse_scenario(t.replace('duration = "0.03 s"', dur), name=f"{k}.toml",
                              path=str(tmp / "x.toml"))
            for k, t in texts.items()}

@@ -62,6 +62,10 @@ def build(cx, raw: dict, folder: Path, quantity):
 
     tab = raw["plant"]
     ref = tab["fmu"]
+    import numba
+    if numba.config.DISABLE_JIT:
+        raise cx.fail("plant.fmu", f" = {ref!r}: an FMU plant's kernels call the FMU's C functions "
+                      f"from compiled code, which NUMBA_DISABLE_JIT=1 switches off; run without it")
     if "units" in raw:
         raise cx.fail("plant.fmu", f" = {ref!r} with [units]: an FMU plant does not run as "
                       f"paralleled units yet; give [plant] a plugin, or leave [units] out")

@@ -301,3 +301,15 @@ def test_cs_only_fmu_starts_from_its_start_values(fmu, tmp_path):
     assert run.summary["outcome"]["status"] == "completed"
     # the first tick: 400 V less the offset of the excitation, no current yet
     assert run.signals["i_L1"][0] == 0.0 and abs(run.signals["v_out"][0] - 399.0) < 1e-9
+
+
+def test_fmu_plant_without_jit_is_refused_plainly(fmu, tmp_path):
+    """Debugging with NUMBA_DISABLE_JIT=1: the kernels' calls by address need compiled code."""
+    tmp, _, path = fmu
+    scen = _write(tmp_path, "nojit.toml", fmu_build.scenario(path))
+    import os
+    p = subprocess.run(CLI + ["run", str(scen), "--headless", "--out", str(tmp_path / "r")],
+                       capture_output=True, text=True, timeout=600,
+                       env={**os.environ, "NUMBA_DISABLE_JIT": "1"})
+    assert p.returncode == 2 and "Traceback" not in p.stdout + p.stderr, p.stdout + p.stderr
+    assert "NUMBA_DISABLE_JIT=1 switches off; run without it" in p.stdout + p.stderr
