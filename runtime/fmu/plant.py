@@ -191,6 +191,9 @@ from hilrig.runtime.fmu import plant as _fp
 
 SPEC = {spec!r}
 DECLARATION = _fp.declaration(SPEC)
+#: the states that are currents through the converter's switches ([plant] gate_block_currents):
+#: with the gates blocked the command reaches the FMU as NaN (runtime/loop.py)
+GATE_BLOCK_CURRENTS = {tuple(spec["gate_block_currents"])!r}
 
 
 '''

@@ -16,6 +16,9 @@ The table (docs/scenarios.md "FMU plants")::
     [plant.states]                  # hilrig's state name = FMU state variable
     v_out = "filter.vC2"
 
+and optionally ``gate_block_currents = ["i_L1"]`` in ``[plant]``: the states that are currents
+through the converter's switches (the gate-block safe state).
+
 Every mismatch is one ScenarioError naming the scenario, the key, the FMU file and variable
 and the fix (the CLI exits with status 2).
 """
@@ -31,7 +34,7 @@ from xml.etree import ElementTree
 from hilrig.runtime.errors import ScenarioError
 from hilrig.runtime.units import UNITS
 
-RESERVED = ("fmu", "interface", "inputs", "outputs", "states")
+RESERVED = ("fmu", "interface", "inputs", "outputs", "states", "gate_block_currents")
 INTERFACES = {"model_exchange": "me", "co_simulation": "cs"}
 #: hilrig's plant inputs and load signals an FMU input may take, with their units
 INPUT_SIGNALS = {"u": "V", "P_load": "W", "G_load": "S", "I_load": "A"}
@@ -256,6 +259,23 @@ def build(cx, raw: dict, folder: Path, quantity):
                           f"{', '.join(RESERVED)})")
         q = pnames[k]
         given[k] = quantity(f"plant.{k}", val, q["unit"], (-1e300, 1e300))
+    # the states that are currents through the converter's switches: with the gates blocked
+    # (a trip's safe action gate_block) the command reaches the FMU as NaN and, with model
+    # exchange, the loop stops each of them at zero (runtime/loop.py blocked_step)
+    gates = tab.get("gate_block_currents", [])
+    names_x = [n for n, _, _ in states]
+    if not isinstance(gates, list) or not all(isinstance(g, str) for g in gates):
+        raise cx.fail("plant.gate_block_currents", f" = {gates!r} is not a list of state names, "
+                      f"e.g. [\"i_L1\"]")
+    for g in gates:
+        if g not in names_x:
+            raise cx.fail("plant.gate_block_currents", f": {g!r} is not a state of this FMU plant"
+                          f"{_close(g, names_x)} (its states: {', '.join(names_x)}); name the "
+                          f"inductor current(s) through the converter's switches")
+        vr = states[names_x.index(g)][2]
+        if units.get(vr) not in ("A", "-"):
+            raise cx.fail("plant.gate_block_currents", f": state {g!r} is in {units.get(vr)}; "
+                          f"name a current (A) through the converter's switches")
     design = raw.get("design", {})
     if me is None and isinstance(design, dict) and design.get("defaults", "plant") == "plant":
         raise cx.fail("plant.interface", f" = {iface!r}: {fname} offers co-simulation only, which "
@@ -267,7 +287,8 @@ def build(cx, raw: dict, folder: Path, quantity):
             "me_id": me.modelIdentifier if me is not None else None,
             "cs_id": cs.modelIdentifier if cs is not None else None,
             "inputs": inputs, "outputs": outputs, "states": states, "state_starts": starts,
-            "params": params, "names": names, "units": units}
+            "params": params, "names": names, "units": units,
+            "gate_block_currents": [names_x.index(g) for g in gates]}
     from .plant import generate
     mod_path = generate(spec, folder)
     try:

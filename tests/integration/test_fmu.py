@@ -20,6 +20,7 @@ integrating with its own RK4 steps).
 * Every mismatch of the mapping with modelDescription.xml is one clear message, and exit 2
   from the command line.
 """
+import re
 import subprocess
 import sys
 from pathlib import Path
@@ -313,3 +314,46 @@ def test_fmu_plant_without_jit_is_refused_plainly(fmu, tmp_path):
                        env={**os.environ, "NUMBA_DISABLE_JIT": "1"})
     assert p.returncode == 2 and "Traceback" not in p.stdout + p.stderr, p.stdout + p.stderr
     assert "NUMBA_DISABLE_JIT=1 switches off; run without it" in p.stdout + p.stderr
+
+
+TRIP = '\n[[interlocks]]\nsignal = "v_out"\nabove = "480 V"\n'
+
+
+def test_gate_block_trip_equals_embedded_plant(fmu, tmp_path):
+    """The 100 V step trips an over-voltage interlock at 480 V; the safe action gate_block
+    blocks the gates. With gate_block_currents = ["i_L1"] the FMU gets the command as NaN (its
+    switch node follows the diodes, as the plugin's) and the loop stops i_L1 at zero, as for the
+    embedded plant: the recordings agree within round-off (as above), through the trip and the
+    collapse that follows, and i_L1 stops at exactly 0 (the freewheeling diode's current stops;
+    common practice, no source). Without the key the FMU plant does not
+    model blocked gates and gets zero volts instead (said in the summary)."""
+    tmp, _, path = fmu
+    runs = {}
+    for tag, text in (("embedded", fmu_build.scenario(None)),
+                      ("gate", fmu_build.scenario(path, plant_keys='gate_block_currents = ["i_L1"]')),
+                      ("plain", fmu_build.scenario(path))):
+        res = run_scenario(load_scenario(_write(tmp_path, f"{tag}.toml", text + TRIP)), tmp_path / tag)
+        runs[tag] = (res.summary, open_run(res.folder))
+    (se, a), (sg, b), (sp, c) = runs["embedded"], runs["gate"], runs["plain"]
+    assert "interlock" in se["outcome"]["first_cause"] and se["outcome"]["first_cause"] == sg["outcome"]["first_cause"]
+    assert sg["safe_state"]["applied"] == "gate_block"
+    assert sp["safe_state"]["applied"].startswith("zero_voltage")
+    for name in SIGNALS:
+        ref = a.signals[name]
+        assert np.max(np.abs(b.signals[name] - ref)) <= 1e-11 * np.nanmax(np.abs(ref)), name
+    # after the trip the first-stage current freewheels to zero within two ticks and stays
+    # there (until the collapse takes v_C1 below zero and the low-side diode conducts)
+    k = int(np.argmax(b.signals["interlock_word"] != 0))
+    assert k > 0 and b.signals["i_L1"][k - 1] > 100.0
+    assert np.all(b.signals["i_L1"][k + 2:k + 40] == 0.0) and np.all(a.signals["i_L1"][k + 2:k + 40] == 0.0)
+    n = min(c.time.shape[0], a.time.shape[0])
+    assert not np.allclose(c.signals["v_out"][:n], a.signals["v_out"][:n])
+
+
+def test_gate_block_currents_must_be_current_states(fmu):
+    tmp, _, path = fmu
+    for keys, words in (('gate_block_currents = ["i_L9"]', "'i_L9' is not a state of this FMU plant; did you mean"),
+                        ('gate_block_currents = ["v_C1"]', "state 'v_C1' is in V; name a current"),
+                        ('gate_block_currents = "i_L1"', "is not a list of state names")):
+        with pytest.raises(ScenarioError, match=re.escape(words)):
+            parse_scenario(fmu_build.scenario(path, plant_keys=keys), path=str(tmp / "g.toml"))
