@@ -290,7 +290,13 @@ def parse_scenario(text: str, name: str = "scenario.toml", path: str = "",
         raise cx.fail("timing.duration", f" = {duration:g} s is not a whole number of control "
                       f"periods Ts = {Ts:g} s")
 
-    plant = _plugin(cx, raw, "plant", "two_stage_lc")
+    if isinstance(raw.get("plant"), dict) and "fmu" in raw["plant"]:
+        # an FMU as the plant: a generated plugin calling it (runtime/fmu)
+        from .fmu import spec as fmu_spec
+        from .loop import cache_dir
+        plant = fmu_spec.build(cx, raw, cache_dir(), lambda k, v, u, b: _quantity(cx, k, v, u, b))
+    else:
+        plant = _plugin(cx, raw, "plant", "two_stage_lc")
     controller = _plugin(cx, raw, "controller", "cascaded_pi")
     reference = _plugin(cx, raw, "reference", "profile")
     shaping = _shaping(cx, raw)
