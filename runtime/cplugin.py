@@ -284,9 +284,10 @@ def compile_error_text(src: Path, stderr: str, argv) -> str:
         m = _DIAG.match(ln.strip())
         if m:
             where = m.group("file")
-            shown = src.name if Path(where).name == src.name else where
+            # the line may be in a header the file includes: name that file then
+            shown = src if Path(where).name == src.name else Path(where).resolve()
             col = f", column {m.group('col')}" if m.group("col") else ""
-            return (f"controller C file {src}: {shown} line {m.group('line')}{col}: "
+            return (f"controller C file {shown}, line {m.group('line')}{col}: "
                     f"{m.group('msg')} (compiler: {Path(argv[0]).name} {' '.join(FLAGS)}; "
                     f"fix the C file; `python -m hilrig.runtime.cplugin check {src}` shows the "
                     f"compiler's whole report)")
