@@ -3,7 +3,7 @@ plugin, in the same run.
 
 The two are examples/c_controller/pi.c and pi_numba.py (the same cascaded PI, operation for
 operation) on their demo scenarios (pi_c.toml, pi_numba.toml: demo plant, 20 kHz, 4 RK4
-substeps, a reference step and a load step), run for 1 s simulated here. Measured two ways,
+substeps, a reference step and a load ramp), run for 1 s simulated here. Measured two ways,
 interleaved, median of the repetitions:
 
 - the whole compiled loop alone (plant, sensors, controller, interlocks, record stage into the

@@ -527,8 +527,12 @@ def _main(argv: list[str]) -> int:
         except PluginError as exc:
             print(f"error: {exc}", file=sys.stderr)
             cc = os.environ.get("HILRIG_CC") or "cc"
-            if shutil.which(cc):  # the whole report, for the lines after the first error
-                subprocess.run([cc, *FLAGS, *extra_flags(), "-include", str(HEADER), "-I",
+            try:
+                flags = extra_flags()
+            except PluginError:
+                return 2
+            if shutil.which(cc) and src.is_file():  # the whole report, after the first error
+                subprocess.run([cc, *FLAGS, *flags, "-include", str(HEADER), "-I",
                                 str(HEADER.parent), "-fsyntax-only", str(src)])
             return 2
         print(f"{src}: {'compiled' if lib.compiled else 'from the cache'} -> {lib.path}")

@@ -1,6 +1,6 @@
 """Controllers in C (runtime/cplugin.py): the shipped PI in C (examples/c_controller/pi.c) gives
 the same command as the same PI written as a numba plugin (pi_numba.py) on every tick of a run
-with a reference step and a load step; the compiled library is cached; compile errors, missing
+with a reference step and a load change; the compiled library is cached; compile errors, missing
 symbols, a missing compiler and bad parameter values are refused with one message.
 
 The bound of the comparison is zero (bit-equal). Both versions do the same IEEE 754 double
@@ -49,7 +49,7 @@ def test_c_controller_equals_numba_controller_tick_for_tick(runs):
     rc, rn = open_run(res_c.folder), open_run(res_n.folder)
     assert res_c.summary["completed"] and res_n.summary["completed"]
     np.testing.assert_array_equal(rc.time, rn.time)
-    # the run has the reference step (10 ms) and the load step (25 ms) the comparison is about
+    # the run has the reference step (10 ms) and the load ramp (30-35 ms) the comparison is about
     assert np.ptp(rc.signals["v_ref_raw"]) == pytest.approx(20.0)
     assert np.ptp(rc.signals["P_load"]) == pytest.approx(40e3)
     # the command moves (the controller acts on both), then: equal bit for bit (see the top)
@@ -62,7 +62,7 @@ def test_c_controller_equals_numba_controller_tick_for_tick(runs):
 
 def test_c_controller_tracks_the_step(runs):
     """Independent of the numba twin: integral action removes the error after the step and the
-    load step (a PI's zero steady-state error to a step, common practice, no source)."""
+    load ramp (a PI's zero steady-state error to a step, common practice, no source)."""
     _, res = runs["pi_c"]
     run = open_run(res.folder)
     v, t = run.signals["v_out"], run.time
