@@ -13,7 +13,8 @@ How it runs:
    ours (:data:`ENTRY`) into a shared library in the cache (``HILRIG_CACHE_DIR/loops/c``),
    named by a hash of the C source, the header, the entry file, the flags and the compiler's
    path and version. The local headers the file includes (from the compiler's ``-MMD``
-   output) are recorded with their hashes beside it: a change of one rebuilds too. A second
+   output) are recorded with their hashes in an index file beside it: a change of one
+   rebuilds too (into a new file, so that a process never reloads a stale library). A second
    run loads the library without compiling. Flags: :data:`FLAGS` (no fast-math, no
    floating-point contraction: the C code rounds as the C source says), plus
    ``HILRIG_CFLAGS`` from the environment (e.g. ``-g -O0`` to debug); the compiler is ``cc``
@@ -195,12 +196,11 @@ def compile_library(source: str | os.PathLike) -> Library:
         h.update(hashlib.sha256(part).digest())
     key = h.hexdigest()[:24]
     folder = cache_folder()
-    lib_path = folder / f"{src.stem}_{key}.so"
-    deps_path = lib_path.with_suffix(".deps.json")
-    compiled = False
-    if not (lib_path.exists() and _deps_unchanged(deps_path)):
-        _build(src, command, link, lib_path, deps_path)
-        compiled = True
+    index = folder / f"{src.stem}_{key}.json"
+    lib_path = _cached(index)
+    compiled = lib_path is None
+    if compiled:
+        lib_path = _build(src, command, link, index)
     lib = _load(src, lib_path)
     info = _read_info(src, lib)
     from .native import function_address
@@ -210,22 +210,31 @@ def compile_library(source: str | os.PathLike) -> Library:
                    step_address=function_address(lib.hilrig_step), info=info)
 
 
-def _deps_unchanged(deps_path: Path) -> bool:
+def _cached(index: Path) -> Path | None:
+    """The library an index file names, if it exists and every file it was built from (the
+    local headers the C file includes) is unchanged; else None."""
     try:
-        deps = json.loads(deps_path.read_text())
-    except (OSError, ValueError):
-        return False
+        entry = json.loads(index.read_text())
+        lib_path = index.parent / entry["library"]
+        deps = dict(entry["deps"])
+    except (OSError, ValueError, KeyError, TypeError):
+        return None
+    if not lib_path.is_file():
+        return None
     for name, digest in deps.items():
         try:
             if hashlib.sha256(Path(name).read_bytes()).hexdigest() != digest:
-                return False
+                return None
         except OSError:
-            return False
-    return True
+            return None
+    return lib_path
 
 
-def _build(src: Path, command, link, lib_path: Path, deps_path: Path) -> None:
-    folder = lib_path.parent
+def _build(src: Path, command, link, index: Path) -> Path:
+    """Compile into the cache: the library is named by the key and by the hashes of the files
+    it was built from, so a rebuild after a header changed is a new file (a process that loaded
+    the old one keeps it; loading the same path again would give the old library back)."""
+    folder = index.parent
     folder.mkdir(parents=True, exist_ok=True)
     with tempfile.TemporaryDirectory(dir=folder, prefix=".build-") as tmp:
         entry = Path(tmp) / "hilrig_entry.c"
@@ -256,11 +265,15 @@ def _build(src: Path, command, link, lib_path: Path, deps_path: Path) -> None:
             if p != src and p != HEADER.resolve():
                 deps[str(p)] = hashlib.sha256(p.read_bytes()).hexdigest()
         deps[str(src)] = hashlib.sha256(src.read_bytes()).hexdigest()
-        dtmp = Path(tmp) / "deps.json"
-        dtmp.write_text(json.dumps(deps, indent=1))
+        tag = hashlib.sha256(json.dumps(deps, sort_keys=True).encode()).hexdigest()[:12]
+        lib_path = folder / f"{index.stem}_{tag}.so"
+        itmp = Path(tmp) / "index.json"
+        itmp.write_text(json.dumps(dict(library=lib_path.name, deps=deps), indent=1))
         # rename into place: a concurrent process never loads a half-written library
-        os.replace(out, lib_path)
-        os.replace(dtmp, deps_path)
+        if not lib_path.exists():
+            os.replace(out, lib_path)
+        os.replace(itmp, index)
+    return lib_path
 
 
 def _dep_files(text: str) -> list[str]:

@@ -118,14 +118,28 @@ def test_library_is_compiled_once_and_again_after_a_change(tmp_path):
     out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True,
                          timeout=120, check=True).stdout.split()
     assert out == ["False", str(first.path)]
-    # the included header changes: rebuilt (same source hash, same file name)
+    # the included header changes: rebuilt into a new file, and this process calls the new code
     (tmp_path / "gains.h").write_text("#define GAIN_SCALE 2.0\n")
     rebuilt = cplugin.compile_library(src)
-    assert rebuilt.compiled and rebuilt.path.stat().st_mtime_ns != mtime
+    assert rebuilt.compiled and rebuilt.path != first.path
+    assert first.path.stat().st_mtime_ns == mtime
+    assert _command(first) * 2.0 == _command(rebuilt) != 0.0
     # the source changes: a new library
     src.write_text(text + "\n/* edited */\n")
     changed = cplugin.compile_library(src)
     assert changed.compiled and changed.path != first.path
+
+
+def _command(lib) -> float:
+    """u[0] of one step of a compiled library (through ctypes, as with NUMBA_DISABLE_JIT)."""
+    from hilrig.runtime import cplugin
+    p = np.array([q["default"] for q in lib.info["params"]] + [50e-6, 0.0, 1e4]
+                 + [float(lib.init_address), float(lib.step_address)])
+    y, r = np.array([400.0, 50.0, 50.0, 400.25, 50.0]), np.array([401.0, 0.0, 0.0, 0.0, 0.0])
+    xc, u = np.zeros(2), np.zeros(1)
+    cplugin.python_init(p, xc, y, r)
+    assert cplugin.python_step(0.0, p, xc, y, r, u) == 0
+    return float(u[0])
 
 
 def _run_cli(cwd: Path, *args, env=None):
