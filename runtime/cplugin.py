@@ -443,10 +443,21 @@ def step(t, p, xc, y, r, u):
     return np.int64(code)
 
 
+def build_record():
+    """How the library was compiled (for the run's summary and recording)."""
+    return _cp.build_record(C_FILE)
+
+
 if numba.config.DISABLE_JIT:  # plain Python (debugging): the same calls through ctypes
     init = _cp.python_init
     step = _cp.python_step
 '''
+
+
+def build_record(c_file: str) -> str:
+    """The compiler, the command and the library of a C controller, as one line."""
+    lib = compile_library(c_file)
+    return f"{lib.compiler_version}: {' '.join(lib.command)} {Path(c_file).name} -> {lib.path.name}"
 
 
 def declaration(c_file: str, info: dict):

@@ -58,6 +58,10 @@ def test_c_controller_equals_numba_controller_tick_for_tick(runs):
     np.testing.assert_array_equal(u_c, u_n)
     for sig in ("v_out", "i_L1", "ctrl_code"):
         np.testing.assert_array_equal(rc.signals[sig], rn.signals[sig])
+    # the run records how the C file was compiled
+    rec = res_c.summary["versions"]["c_controller"]
+    assert "-O2" in rec and "-fno-fast-math" in rec and "pi.c ->" in rec, rec
+    assert "c_controller" not in res_n.summary["versions"]
 
 
 def test_c_controller_tracks_the_step(runs):
