@@ -211,3 +211,43 @@ def test_bad_descriptor_is_refused(tmp_path):
     src = _copy_example(tmp_path, body)
     with pytest.raises(PluginError, match=r"params\[0\] \(Kp_v\): default -5.0 A/V is outside"):
         cplugin.compile_library(src)
+
+
+def test_fault_code_of_the_c_step_trips(tmp_path):
+    """hilrig_step's return value is the fault code of the contract: a code from t = 10 ms on
+    trips the run on that tick with the code named (as for a Python kernel's return value)."""
+    body = (EXAMPLE / "pi.c").read_text()
+    end = "            xc[X_V] += p[KI_V] * ts * ev;\n    }\n    return 0;"
+    assert end in body
+    body = body.replace(end, end.replace("return 0;", "if (t >= 0.01)\n        return 7;\n    return 0;"))
+    _copy_example(tmp_path, body)
+    res = run_scenario(load_scenario(tmp_path / "pi_c.toml"), tmp_path / "run")
+    trip = res.summary["trip"]
+    Ts = 50e-6  # pi_c.toml's control period
+    assert trip["cause"] == "controller fault code 7" and trip["value"] == 7.0, trip
+    assert trip["tick"] == int(round(0.01 / Ts)), trip
+    run = open_run(res.folder)
+    assert run.signals["ctrl_code"][trip["tick"]] == 7.0
+    assert not run.signals["ctrl_code"][: trip["tick"]].any()
+
+
+def test_compiler_reports_are_read_from_gcc_and_clang_lines(tmp_path):
+    """The first error line of either compiler's report gives file and line; a link error
+    names the missing symbol. (The line formats are GCC's and clang's usual ones, from
+    memory: FILE:LINE:COL: error: MESSAGE; ld: ... undefined reference to `SYMBOL'.)"""
+    from hilrig.runtime.cplugin import compile_error_text
+    src = tmp_path / "ctl.c"
+    gcc = (f"{src}: In function 'hilrig_step':\n"
+           f"{src}:42:17: error: 'x' undeclared (first use in this function)\n"
+           f"{src}:50:1: error: expected ';' before '}}' token\n")
+    text = compile_error_text(src, gcc, ["cc"])
+    assert f"controller C file {src}, line 42, column 17: 'x' undeclared" in text, text
+    clang = (f"In file included from {src}:3:\n{tmp_path}/gains.h:7:9: error: unknown type name "
+             f"'dbl'\n1 error generated.\n")
+    text = compile_error_text(src, clang, ["clang"])
+    assert f"controller C file {tmp_path / 'gains.h'}, line 7, column 9: unknown type name" in text
+    ld = ("/usr/bin/ld: /tmp/ccA1.o: in function `hilrig_step':\n"
+          "ctl.c:(.text+0x2a): undefined reference to `my_filter'\n"
+          "collect2: error: ld returned 1 exit status\n")
+    text = compile_error_text(src, ld, ["cc"])
+    assert "it calls my_filter, which nothing defines" in text, text
