@@ -78,19 +78,6 @@ def test_c_controller_tracks_the_step(runs):
     assert abs(v[-1] - 420.0) < 0.5
 
 
-def test_checked_build_runs_the_c_controller(tmp_path, runs):
-    """--checked compiles the loop with bounds checks; the C code is called the same way, so the
-    recording equals the normal build's."""
-    env = {k: v for k, v in os.environ.items() if k not in ("HILRIG_CHECKED", "NUMBA_BOUNDSCHECK")}
-    p = subprocess.run([sys.executable, "-m", "hilrig.runtime.cli", "run",
-                        str(EXAMPLE / "pi_c.toml"), "--checked", "--headless", "--out", "run"],
-                       cwd=tmp_path, capture_output=True, text=True, timeout=900, env=env)
-    assert p.returncode == 0, p.stdout + p.stderr
-    checked = open_run(tmp_path / "run")
-    normal = open_run(runs["pi_c"][1].folder)
-    np.testing.assert_array_equal(checked.signals["u"], normal.signals["u"])
-
-
 def _copy_example(d: Path, body: str | None = None) -> Path:
     text = (EXAMPLE / "pi.c").read_text() if body is None else body
     (d / "pi.c").write_text(text)
@@ -216,22 +203,32 @@ def test_bad_descriptor_is_refused(tmp_path):
         cplugin.compile_library(src)
 
 
-def test_fault_code_of_the_c_step_trips(tmp_path):
-    """hilrig_step's return value is the fault code of the contract: a code from t = 10 ms on
-    trips the run on that tick with the code named (as for a Python kernel's return value)."""
+def test_checked_build_runs_the_c_controller_and_its_fault_code_trips(tmp_path, runs):
+    """--checked compiles the loop with bounds checks and calls the C code the same way: the
+    recording equals the normal build's up to the trip. hilrig_step's return value is the
+    contract's fault code: a code from t = 10 ms on trips the run on that tick with the code
+    named (as a Python kernel's return value does). One loop build for both checks."""
     body = (EXAMPLE / "pi.c").read_text()
     end = "            xc[X_V] += p[KI_V] * ts * ev;\n    }\n    return 0;"
     assert end in body
     body = body.replace(end, end.replace("return 0;", "if (t >= 0.01)\n        return 7;\n    return 0;"))
     _copy_example(tmp_path, body)
-    res = run_scenario(load_scenario(tmp_path / "pi_c.toml"), tmp_path / "run")
-    trip = res.summary["trip"]
+    env = {k: v for k, v in os.environ.items() if k not in ("HILRIG_CHECKED", "NUMBA_BOUNDSCHECK")}
+    p = subprocess.run([sys.executable, "-m", "hilrig.runtime.cli", "run", "pi_c.toml",
+                        "--checked", "--headless", "--out", "run"],
+                       cwd=tmp_path, capture_output=True, text=True, timeout=900, env=env)
+    assert "Traceback" not in p.stdout + p.stderr, p.stdout + p.stderr
+    run = open_run(tmp_path / "run")
+    trip = run.summary["trip"]
     Ts = 50e-6  # pi_c.toml's control period
+    k = int(round(0.01 / Ts))
     assert trip["cause"] == "controller fault code 7" and trip["value"] == 7.0, trip
-    assert trip["tick"] == int(round(0.01 / Ts)), trip
-    run = open_run(res.folder)
-    assert run.signals["ctrl_code"][trip["tick"]] == 7.0
-    assert not run.signals["ctrl_code"][: trip["tick"]].any()
+    assert trip["tick"] == k, trip
+    assert run.signals["ctrl_code"][k] == 7.0
+    assert not run.signals["ctrl_code"][:k].any()
+    normal = open_run(runs["pi_c"][1].folder)
+    # up to the trip tick (which records the safe state's command)
+    np.testing.assert_array_equal(run.signals["u"][:k], normal.signals["u"][:k])
 
 
 def test_compiler_reports_are_read_from_gcc_and_clang_lines(tmp_path):
