@@ -2,7 +2,8 @@
 
 Entry-point groups: ``hilrig.plants``, ``hilrig.controllers``, ``hilrig.references``; each entry
 names a module holding ``DECLARATION`` and the kernels of its kind (see
-:mod:`hilrig.plugins.base`). A scenario may also name a ``.py`` file instead of a plugin name.
+:mod:`hilrig.plugins.base`). A scenario may also name a ``.py`` file instead of a plugin name, or a ``.c`` file for a
+controller written in C (:mod:`hilrig.runtime.cplugin`).
 """
 from __future__ import annotations
 
@@ -64,10 +65,15 @@ def load(kind: str, ref: str) -> Plugin:
     """Load a plugin by entry-point name or by a path to a ``.py`` file."""
     if kind not in KINDS:
         raise PluginError(f"unknown plugin kind {kind!r}; expected one of {', '.join(KINDS)}")
-    if ref.endswith(".py") or os.sep in ref or "/" in ref:
+    if ref.endswith(".py") or ref.endswith(".c") or os.sep in ref or "/" in ref:
         path = os.path.abspath(os.path.expanduser(ref))
         if not os.path.isfile(path):
             raise PluginError(f"{kind} plugin file {ref!r} does not exist (looked at {path})")
+        if path.endswith(".c"):  # a controller in C (runtime/cplugin.py)
+            if kind != "controller":
+                raise PluginError(f"{kind} plugin {ref!r}: only controllers can be written in C")
+            from .cplugin import plugin as c_plugin
+            return c_plugin(path)
         module = load_file(path)
         origin = ("file", path)
     else:

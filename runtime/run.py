@@ -870,6 +870,9 @@ def execute(sc: Scenario, prep: Prepared, folder: Path,
     clear_derived(folder)  # a run written over an old one (--overwrite): no stale report
     (folder / SCENARIO).write_text(sc.text)
     vers = versions()
+    c_build = getattr(sc.controller.plugin.module, "build_record", None)
+    if c_build is not None:  # a controller in C: how its library was compiled (runtime/cplugin.py)
+        vers["c_controller"] = c_build()
     names = [s.name for s in prep.signals]
     i_vout, i_vref, i_u = names.index("v_out"), names.index("v_ref"), names.index(prep.u_names[0])
     i_vdc = names.index("v_dc") if "v_dc" in names else None

@@ -531,7 +531,7 @@ def _units_candidate(path, base: Scenario, cand: str, ov: dict[str, Any],
     def ident(ref: str):
         if ref.startswith("~"):
             ref = str(Path(ref).expanduser())
-        if (ref.endswith(".py") or "/" in ref) and not Path(ref).is_absolute():
+        if (ref.endswith((".py", ".c")) or "/" in ref) and not Path(ref).is_absolute():
             ref = str(folder / ref)
         try:
             pl = registry.load("controller", ref)
@@ -653,7 +653,7 @@ def _plugin(cx, raw, key, default_name) -> PluginChoice:
         raise cx.fail(f"{key}.plugin", f" = {ref!r} is not a plugin name or a path")
     if ref.startswith("~"):
         ref = str(Path(ref).expanduser())
-    if (ref.endswith(".py") or "/" in ref) and not Path(ref).is_absolute():
+    if (ref.endswith((".py", ".c")) or "/" in ref) and not Path(ref).is_absolute():
         ref = str(cx.base / ref)
     try:
         plugin = registry.load(key, ref)

@@ -148,7 +148,7 @@ def load_suite(path: str | Path) -> Suite:
         # case file works from its run folder (and in a stand-in simulator started there)
         for sec in ("plant", "controller", "reference"):
             plug = merged.get(sec, {}).get("plugin") if isinstance(merged.get(sec), dict) else None
-            if isinstance(plug, str) and plug.endswith(".py") and not Path(plug).is_absolute():
+            if isinstance(plug, str) and plug.endswith((".py", ".c")) and not Path(plug).is_absolute():
                 merged[sec]["plugin"] = str((base_path.parent / plug).resolve())
         text = (f"# interlock test case {name!r} of {path.name}, built from {base_path.name}\n"
                 + tomli_w.dumps(merged))
