@@ -66,7 +66,8 @@ class Direction:
         """The frame as a Python struct format string (struct module: '<' little, '>' big, 'I'
         uint32, 'd' float64, 'f' float32; no padding with an explicit byte order)."""
         return (BYTE_ORDERS[self.byte_order] + ("I" if self.counter else "")
-                + ("d" if self.time else "") + TYPES[self.type] * len(self.signals))
+                + ("d" if self.time else "")
+                + (str(len(self.signals)) if len(self.signals) > 1 else "") + TYPES[self.type])
 
     @property
     def size(self) -> int:
@@ -434,8 +435,8 @@ def serve(sc, bind: str, layout: Layout, *, mode: str = "lockstep", sessions: in
             sim.reset()
             session_peer = rep.peer
             if mode == "lockstep":
-                why = _lockstep(sim, sc, faults, receive, send, sample_bytes, rejects,
-                                idle_timeout_s, log)
+                why = _lockstep(sim, faults, rep, receive, send, sample_bytes, rejects,
+                                idle_timeout_s, session_peer, log)
             else:
                 why = _free_running(sim, sc, faults, rep, receive, send, sample_bytes, stale_s,
                                     session_peer, log)
@@ -450,13 +451,19 @@ def serve(sc, bind: str, layout: Layout, *, mode: str = "lockstep", sessions: in
     return served
 
 
-def _lockstep(sim, sc, faults, receive, send, sample_bytes, rejects, idle_timeout_s, log) -> str:
+def _lockstep(sim, faults, rep, receive, send, sample_bytes, rejects, idle_timeout_s,
+              session_peer, log) -> str:
     last = sample_bytes(0)
     send(last)
     while True:
         got = receive(idle_timeout_s)
         if got is None:
             return "idle"
+        if rep.peer != session_peer:
+            rep.peer = session_peer  # not the session's runtime: dropped (counted if malformed)
+            if got is not False:
+                rejects.add("unexpected", "a datagram from another address mid-session")
+            continue
         if got is False:
             continue
         counter, u, enable = got

@@ -289,3 +289,39 @@ def test_free_running_struct_simulator_gap_wrong_length_and_watchdog(tmp_path):
     # the loop closed over the struct-only simulator: v_out follows the 12 V step
     v = run.signals["v_out"]
     assert abs(v[140] - 12.0) < 0.5, v[140]
+
+
+def test_doc_fixed_layout_simulator_runs_a_lockstep_session(tmp_path):
+    """docs/protocol.md section 16.8, run as its own process against the runtime: a simulator
+    written from the document alone (standard library only) interoperates."""
+    import math
+    import re
+    from tests.integration.test_protocol_example import SCENARIO, with_shared_plugins
+    doc = (Path(__file__).resolve().parents[2] / "docs" / "protocol.md").read_text()
+    block = doc.split("<!-- example: fixed_simulator.py -->", 1)[1]
+    code = re.search(r"```python\n(.*?)```", block, re.S).group(1)
+    assert not re.search(r"^\s*(import|from) (hilrig|msgpack|numpy)", code, flags=re.M)
+    layout = re.search(r"```toml\n(\[bridge\.layout\.sample\].*?)```",
+                       doc.split("### 16.8", 1)[1], re.S).group(1)
+    (tmp_path / "fixed_simulator.py").write_text(code)
+    (tmp_path / "scen.toml").write_text(with_shared_plugins(SCENARIO) + layout)
+    ts = float(re.search(r"^TS = ([0-9.e-]+)", code, re.M).group(1))
+    tau = float(re.search(r"^TAU = ([0-9.e-]+)", code, re.M).group(1))
+    sim = subprocess.Popen([sys.executable, str(tmp_path / "fixed_simulator.py"), "0"],
+                           stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
+    with reaped(sim):
+        address = re.search(r"udp://127\.0\.0\.1:\d+", wait_listening(sim)).group(0)
+        p = subprocess.run(CLI + ["run", str(tmp_path / "scen.toml"), "--bridge", address,
+                                  "--layout", "--out", str(tmp_path / "run"), "--headless",
+                                  "--timeout", "30"], capture_output=True, text=True, timeout=600)
+        line = sim.stdout.readline()  # the example's end-of-session line
+    assert p.returncode == 0, p.stdout + p.stderr
+    assert line.startswith("session ended after 300 ticks; 0 datagrams rejected"), line
+    run = open_run(tmp_path / "run")
+    v, u = run.signals["v_out"], run.signals["u"]
+    assert v.shape == (300,)
+    # every sample is the exact zero-order-hold step of dv/dt = (u - v)/tau from the previous
+    # one with the recorded actuation (exact solution of a linear first-order ODE, derived)
+    a = math.exp(-ts / tau)
+    np.testing.assert_allclose(v[1:], u[:-1] + (v[:-1] - u[:-1]) * a, rtol=1e-12, atol=1e-12)
+    assert abs(v[-1] - 2.0) < 0.01  # the runtime's PI brings the plant to the 2 V reference

@@ -34,7 +34,7 @@ def test_sample_bytes_little_endian_float64_by_hand_and_by_struct():
     assert data.hex(" ") == ("01 00 00 00 " "00 00 00 00 00 00 d0 3f "
                              "00 00 00 00 00 00 f0 3f " "00 00 00 00 00 00 00 c0")
     assert data == struct.pack("<Iddd", 1, 0.25, 1.0, -2.0)   # reference: struct
-    assert d.format == "<Iddd" and d.size == struct.calcsize("<Iddd") == 28
+    assert d.format == "<Id2d" and d.size == struct.calcsize("<Id2d") == 28
     counter, t, values = d.unpack(data)
     assert counter == 1 and t == 0.25 and values.tolist() == [1.0, -2.0]
 
@@ -175,3 +175,30 @@ def test_lockstep_needs_both_counters():
     lay.require_counters("free-running")  # free-running numbers samples by arrival
     with pytest.raises(LayoutError, match="sample.counter = false, but lockstep"):
         lay.require_counters("lockstep")
+
+
+def test_doc_byte_examples_are_struct_and_our_frames():
+    """docs/protocol.md section 16.5: each hex dump is what Python's struct module packs for
+    the format and values its marker states, and what Direction.pack sends."""
+    import re
+    from pathlib import Path
+    doc = (Path(__file__).resolve().parents[3] / "docs" / "protocol.md").read_text()
+    section = doc.split("## 16. Fixed-layout datagrams", 1)[1]
+    found = re.findall(r"<!-- fixed-layout bytes: (\S+) ([^>]*?) -->\n```\n(.*?)```", section,
+                       flags=re.S)
+    assert len(found) == 4
+    for fmt, values, dump in found:
+        data = bytes.fromhex("".join(line[6:] for line in dump.splitlines()))
+        offsets = [int(line[:4], 16) for line in dump.splitlines()]
+        assert offsets == list(range(0, len(data), 16))
+        nums = [float(x) for x in values.split()]
+        assert data == struct.pack(fmt, int(nums[0]), *nums[1:]), fmt   # reference: struct
+        order, counter, timed, count, kind = re.fullmatch(r"([<>])(I?)(d?)(\d*)([df])",
+                                                          fmt).groups()
+        d = Direction(signals=tuple(f"s{i}" for i in range(int(count or 1))),
+                      type={"d": "float64", "f": "float32"}[kind],
+                      byte_order={"<": "little", ">": "big"}[order], counter=bool(counter),
+                      time=bool(timed))
+        assert d.format == fmt and d.size == len(data)
+        t = nums[1] if timed else None
+        assert d.pack(int(nums[0]), t, nums[1 + bool(timed):]) == data
