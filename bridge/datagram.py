@@ -368,7 +368,7 @@ class SimCodec:
 
 def serve(sc, bind: str, layout: Layout, *, mode: str = "lockstep", sessions: int | None = None,
           allow_remote: bool = False, idle_timeout_s: float | None = None, faults=None,
-          stale_s: float = 1.0, log: Callable[[str], None] = print) -> int:
+          stale_s: float = 1.0, commands=None, log: Callable[[str], None] = print) -> int:
     """The stand-in simulator over fixed-layout datagrams, lockstep or free-running, until
     ``sessions`` have ended (None: forever) or nothing arrives for ``idle_timeout_s``.
 
@@ -377,9 +377,11 @@ def serve(sc, bind: str, layout: Layout, *, mode: str = "lockstep", sessions: in
     with sample k + 1; a repeat of the last actuation (k - 1) is answered with the same sample
     again, without advancing. Free-running: the start request starts the clock; sample k goes
     out at k Ts; the actuation answering sample k is applied from the next step on if it came
-    in time. The end request ends the session. Faults (hilrig.bridge.standin.Faults): drop,
-    delay, freeze; a mangled frame (``corrupt_every``) goes out one byte short."""
-    from .standin import Faults, Rejections, StandIn
+    in time. The end request ends the session. Faults (hilrig.bridge.standin.Faults, also
+    typed on ``commands``, e.g. standard input): drop, delay, jitter, freeze; a mangled frame
+    (``corrupt_every``) goes out one byte short; a disconnect (there is no frame to say so)
+    falls silent and ends the session."""
+    from .standin import Faults, Rejections, StandIn, start_command_reader
     from .transport import UdpServer
     check_address(bind)
     layout.require_counters(mode)
@@ -388,6 +390,8 @@ def serve(sc, bind: str, layout: Layout, *, mode: str = "lockstep", sessions: in
     faults.schedule([f for f in sc.faults if f.kind.startswith("link_")], sc.Ts, True, log)
     codec = SimCodec(layout, [m[0] for m in sim.meas_map], [m[0] for m in sim.act_map])
     rep = UdpServer(bind, allow_remote=allow_remote)
+    if commands is not None:
+        start_command_reader(faults, commands, lambda: sim.k, True, log)
     rejects = Rejections(log)
     served = 0
     log(f"stand-in simulator ({mode}, fixed-layout datagrams): {sc.plant.plugin.name}, "
@@ -474,6 +478,9 @@ def _lockstep(sim, faults, rep, receive, send, sample_bytes, rejects, idle_timeo
         elif counter == sim.k - 1:
             send(last)  # a repeated actuation: answer again, do not advance
         elif counter == sim.k:
+            if faults.disconnect_after is not None and sim.k >= faults.disconnect_after:
+                log(f"stand-in simulator: disconnected at tick {sim.k} (fault injection)")
+                return "disconnect"
             if faults.freeze_after is not None and sim.k >= faults.freeze_after:
                 log(f"stand-in simulator: frozen at tick {sim.k} (fault injection)")
                 while receive(idle_timeout_s if idle_timeout_s is not None else 3600.0) is not None:
@@ -527,6 +534,9 @@ def _free_running(sim, sc, faults, rep, receive, send, sample_bytes, stale_s, se
         pending = None
         if not sim.step(u, enable):
             return "non-finite plant state"
+        if faults.disconnect_after is not None and sim.k >= faults.disconnect_after:
+            log(f"stand-in simulator: disconnected at tick {sim.k} (fault injection)")
+            return "disconnect"
         if faults.freeze_after is not None and sim.k >= faults.freeze_after:
             log(f"stand-in simulator: frozen at tick {sim.k} (fault injection)")
             while receive(stale_s) is not None:

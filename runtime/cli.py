@@ -1049,9 +1049,13 @@ def main(argv: list[str] | None = None) -> int:
             fixed = _fixed_layout(sc, args.layout, args.bind, args.mode)
             if fixed is not None:
                 from hilrig.bridge import datagram
+                if args.curve_keys:
+                    raise ValueError("--curve-keys applies to ZeroMQ addresses (tcp://, ipc://), "
+                                     "not to fixed-layout datagrams (udp://)")
                 datagram.serve(sc, args.bind, fixed, mode=args.mode, sessions=args.sessions,
                                allow_remote=args.allow_remote, idle_timeout_s=args.idle_timeout,
-                               faults=faults, log=lambda m: console.print(m, markup=False))
+                               faults=faults, commands=sys.stdin if args.commands else None,
+                               log=lambda m: console.print(m, markup=False))
                 return 0
             if args.mode == "free-running":
                 from hilrig.bridge.standin import serve_free_running

@@ -151,6 +151,19 @@ def test_frozen_simulator_trips_the_staleness_watchdog_into_the_safe_state(tmp_p
     assert "frozen at tick 300" in sim_out
 
 
+def test_disconnected_simulator_trips_the_staleness_watchdog(tmp_path, demo_path):
+    """Fixed-layout frames have no STOP: a simulator that goes away falls silent, and the
+    runtime's staleness watchdog ends the run in the safe state."""
+    scen = _scenario(tmp_path, demo_path)
+    p, sim_out = _session(scen, tmp_path / "r", "--set", 'watchdogs.stale_limit="200 ms"',
+                          sim_extra=("--disconnect-after", "100"))
+    assert p.returncode == 1, p.stdout + p.stderr
+    s = json.loads((tmp_path / "r" / "summary.json").read_text())
+    assert s["end_event"] == "bridge stale" and s["trip"]["cause_id"] == "watchdog stale"
+    assert s["trip"]["tick"] == 101
+    assert "session 1 ended (disconnect) after 100 ticks" in sim_out
+
+
 @pytest.mark.parametrize("layout, words", [
     ('[sample]\nsignals = ["v_out", "i_out", "i_L1", "v_C1", "i_L2", "v_dcc"]\n'
      '[actuation]\nsignals = ["u"]\n', ["unknown signal 'v_dcc'", "did you mean 'v_dc'"]),
