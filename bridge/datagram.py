@@ -20,6 +20,7 @@ Two counter values of the runtime->simulator frame are requests, not actuations:
 from __future__ import annotations
 
 import difflib
+import functools
 import math
 import struct
 import time
@@ -93,18 +94,25 @@ class Direction:
         return (f"{self.size} bytes, {self.byte_order}-endian: " + ", ".join(parts + [
             f"{len(self.signals)} x {self.type}"]))
 
+    @functools.cached_property
+    def _head(self) -> struct.Struct:
+        return struct.Struct(BYTE_ORDERS[self.byte_order] + ("I" if self.counter else "")
+                             + ("d" if self.time else ""))
+
+    @functools.cached_property
+    def _values(self) -> np.dtype:
+        return np.dtype(BYTE_ORDERS[self.byte_order] + TYPES[self.type])
+
     def pack(self, counter: int | None, t: float | None, values) -> bytes:
         """One frame. ``values`` in the order of ``signals`` (float64; a float32 layout rounds
         each to nearest; a value beyond float32's range becomes infinity)."""
-        head = b""
-        e = BYTE_ORDERS[self.byte_order]
-        if self.counter:
-            head += struct.pack(e + "I", counter)
-        if self.time:
-            head += struct.pack(e + "d", t)
+        head = (counter, t) if self.counter and self.time else (
+            (counter,) if self.counter else (t,) if self.time else ())
         v = np.asarray(values, dtype=np.float64)
-        with np.errstate(over="ignore"):
-            return head + v.astype(e + TYPES[self.type]).tobytes()
+        if self.type == "float32":
+            with np.errstate(over="ignore"):
+                return self._head.pack(*head) + v.astype(self._values).tobytes()
+        return self._head.pack(*head) + v.astype(self._values, copy=False).tobytes()
 
     def unpack(self, data: bytes) -> tuple[int | None, float | None, np.ndarray]:
         """(counter or None, time or None, values as float64) of one frame; a frame of another
@@ -112,15 +120,11 @@ class Direction:
         if len(data) != self.size:
             raise ProtocolError("frame-length", f"a datagram of {len(data)} bytes where the "
                                 f"layout's frame has {self.size} ({self.describe()})")
-        e = BYTE_ORDERS[self.byte_order]
-        off, counter, t = 0, None, None
-        if self.counter:
-            counter = struct.unpack_from(e + "I", data, 0)[0]
-            off = 4
-        if self.time:
-            t = struct.unpack_from(e + "d", data, off)[0]
-            off += 8
-        values = np.frombuffer(data, dtype=e + TYPES[self.type], offset=off).astype(np.float64)
+        head = self._head.unpack_from(data, 0)
+        counter = head[0] if self.counter else None
+        t = head[-1] if self.time else None
+        values = np.frombuffer(data, dtype=self._values, offset=self._head.size).astype(
+            np.float64)
         return counter, t, values
 
 
@@ -281,13 +285,17 @@ class FixedCodec:
         a = layout.actuation
         self.u_index = [act_names.index(s) if s in act_names else -1 for s in a.signals]
         self.extra = {s: i for i, s in enumerate(a.signals) if s in EXTRA_ACTUATION}
+        self._u_at = np.array([i for i, j in enumerate(self.u_index) if j >= 0], dtype=np.intp)
+        self._u_from = np.array([j for j in self.u_index if j >= 0], dtype=np.intp)
+        self._vals = np.zeros(len(a.signals))
         self.arrivals = 0  # samples without a counter are numbered in order of arrival
         self.meas_order: np.ndarray | None = None
         self.ts = 0.0  # the tick period: an actuation's time field is counter * ts
         self.safe_u = np.zeros(max(1, len(act_names)))  # the values of start and end requests
 
     def set_meas_names(self, meas_names: list[str]) -> None:
-        self.meas_order = np.array([self.layout.sample.signals.index(s) for s in meas_names])
+        order = [self.layout.sample.signals.index(s) for s in meas_names]
+        self.meas_order = None if order == list(range(len(order))) else np.array(order)
 
     def decode(self, data: bytes, n_meas: int | None = None, n_act: int | None = None):
         from . import protocol as P
@@ -301,14 +309,17 @@ class FixedCodec:
                                 f"(at most {MAX_COUNTER:#x})")
         self.arrivals += 1
         meas = values[self.meas_order] if self.meas_order is not None else values
-        return P.Sample(seq=int(counter), t_sim_s=float("nan") if t is None else float(t),
-                        meas=np.ascontiguousarray(meas))
+        meas.flags.writeable = False
+        # every value is checked and of its final type: set them directly, as the msgpack
+        # decoder does (the per-tick path: Sample's __post_init__ normalises again)
+        frame = P.Sample.__new__(P.Sample)
+        frame.__dict__.update(seq=counter, t_sim_s=float("nan") if t is None else t, meas=meas)
+        return frame
 
     def encode_actuation(self, seq: int, u, word: int, enable: bool) -> bytes:
         a = self.layout.actuation
-        vals = np.empty(len(a.signals))
-        for i, j in enumerate(self.u_index):
-            vals[i] = u[j] if j >= 0 else 0.0
+        vals = self._vals
+        vals[self._u_at] = u[self._u_from]
         if "output_enable" in self.extra:
             vals[self.extra["output_enable"]] = 1.0 if enable else 0.0
         if "interlock_word" in self.extra:
@@ -346,13 +357,15 @@ class SimCodec:
 
     def __init__(self, layout: Layout, meas_names: list[str], act_names: list[str]):
         self.layout = layout
-        self.y_index = np.array([meas_names.index(s) for s in layout.sample.signals])
+        order = [meas_names.index(s) for s in layout.sample.signals]
+        self.y_index = None if order == list(range(len(order))) else np.array(order)
         a = layout.actuation.signals
         self.u_pos = np.array([a.index(s) for s in act_names])
         self.enable_pos = a.index("output_enable") if "output_enable" in a else None
 
     def sample(self, k: int, t: float, y) -> bytes:
-        return self.layout.sample.pack(k, t, np.asarray(y)[self.y_index])
+        return self.layout.sample.pack(k, t, y if self.y_index is None else
+                                       np.asarray(y)[self.y_index])
 
     def actuation(self, data: bytes) -> tuple[int | None, np.ndarray, bool]:
         """(counter, plant inputs, output enable) of a datagram; ProtocolError if it is not an
@@ -360,7 +373,8 @@ class SimCodec:
         counter, _t, values = self.layout.actuation.unpack(data)
         if counter in (START, END):
             return counter, values[self.u_pos], False
-        if not np.all(np.isfinite(values)):
+        # a finite sum means every value is finite; a sum that overflowed is checked one by one
+        if not math.isfinite(values.sum()) and not np.all(np.isfinite(values)):
             raise ProtocolError("not-finite", "an actuation value is not finite")
         enable = True if self.enable_pos is None else bool(values[self.enable_pos] != 0.0)
         return counter, values[self.u_pos], enable

@@ -202,3 +202,13 @@ def test_doc_byte_examples_are_struct_and_our_frames():
         assert d.format == fmt and d.size == len(data)
         t = nums[1] if timed else None
         assert d.pack(int(nums[0]), t, nums[1 + bool(timed):]) == data
+
+
+def test_simulator_side_takes_large_finite_values_and_refuses_non_finite_ones():
+    lay = _layout(actuation={"signals": ["u", "output_enable"]})
+    sim = SimCodec(lay, MEAS, ACT)
+    big = struct.pack("<Idd", 1, 1.5e308, 1.0)  # finite, although u + enable overflows
+    assert sim.actuation(big)[1].tolist() == [1.5e308]
+    for bad in (math.nan, math.inf, -math.inf):
+        with pytest.raises(ProtocolError):
+            sim.actuation(struct.pack("<Idd", 1, bad, 1.0))
