@@ -438,23 +438,27 @@ def serve(sc, bind: str, layout: Layout, *, mode: str = "lockstep", sessions: in
             return False
 
     try:
+        restart = False
         while sessions is None or served < sessions:
-            got = receive(idle_timeout_s)
+            got = (None, None, False) if restart else receive(idle_timeout_s)
+            restart = False
             if got is None:
                 log("stand-in simulator: idle timeout, stopping")
                 break
             if got is False:
                 continue
             counter, u, enable = got
-            if counter != START:
+            if counter is not None and counter != START:
                 rejects.add("unexpected", f"counter {counter} outside a session (expected the "
                                           f"start request {START:#x})")
                 continue
             sim.reset()
             session_peer = rep.peer
             if mode == "lockstep":
+                silence = min(SESSION_SILENCE_S, idle_timeout_s or SESSION_SILENCE_S)
                 why = _lockstep(sim, faults, rep, receive, send, sample_bytes, rejects,
-                                idle_timeout_s, session_peer, log)
+                                silence, session_peer, log)
+                restart = why == "a new start request"
             else:
                 why = _free_running(sim, sc, faults, rep, receive, send, sample_bytes, stale_s,
                                     session_peer, log)
@@ -469,14 +473,19 @@ def serve(sc, bind: str, layout: Layout, *, mode: str = "lockstep", sessions: in
     return served
 
 
-def _lockstep(sim, faults, rep, receive, send, sample_bytes, rejects, idle_timeout_s,
+#: a lockstep session of the stand-in ends after this long without a datagram from its runtime
+#: (a live runtime resends every 50 ms at most); a new start request then opens the next one
+SESSION_SILENCE_S = 10.0
+
+
+def _lockstep(sim, faults, rep, receive, send, sample_bytes, rejects, silence_s,
               session_peer, log) -> str:
     last = sample_bytes(0)
     send(last)
     while True:
-        got = receive(idle_timeout_s)
+        got = receive(silence_s)
         if got is None:
-            return "idle"
+            return f"nothing from the runtime for {silence_s:g} s"
         if rep.peer != session_peer:
             rep.peer = session_peer  # not the session's runtime: dropped (counted if malformed)
             if got is not False:
@@ -489,6 +498,8 @@ def _lockstep(sim, faults, rep, receive, send, sample_bytes, rejects, idle_timeo
             return "end request"
         if counter == START and sim.k == 0:
             send(last)  # the first sample was lost: send it again
+        elif counter == START:
+            return "a new start request"  # the runtime started over: so does the plant
         elif counter == sim.k - 1:
             send(last)  # a repeated actuation: answer again, do not advance
         elif counter == sim.k:
@@ -497,7 +508,7 @@ def _lockstep(sim, faults, rep, receive, send, sample_bytes, rejects, idle_timeo
                 return "disconnect"
             if faults.freeze_after is not None and sim.k >= faults.freeze_after:
                 log(f"stand-in simulator: frozen at tick {sim.k} (fault injection)")
-                while receive(idle_timeout_s if idle_timeout_s is not None else 3600.0) is not None:
+                while receive(silence_s) is not None:
                     pass
                 return "frozen"
             if not sim.step(u, enable):
