@@ -8,6 +8,8 @@
 - :mod:`hilrig.bridge.standin`: the stand-in simulator (``hilrig serve-sim``) with transport
   faults on schedule or on command.
 - :mod:`hilrig.bridge.wire`: lockstep's per-tick path in compiled code (codec, C socket calls).
+- :mod:`hilrig.bridge.datagram`: fixed-layout datagrams (a layout agreed out of band, no
+  msgpack; docs/protocol.md section 16): layouts, their codec, the stand-in's side.
 - :mod:`hilrig.bridge.keys`: CurveZMQ keys for peers on other machines.
 """
 

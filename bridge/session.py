@@ -238,11 +238,12 @@ _END_EVENT = {"stale": "bridge stale", "lost": "bridge peer lost",
               "protocol": "bridge protocol error", "sequence": "bridge sequence error"}
 
 
-def _send_error(link, exc: ProtocolError) -> bool:
+def _send_error(link, exc: ProtocolError, codec=P) -> bool:
     """Tell the peer the session ends: ERROR with the code of ``exc`` (section 12). Over
-    request/reply its answer (STOP) is read and dropped. True when it went out."""
+    request/reply its answer (STOP) is read and dropped. True when it went out. (Fixed-layout
+    datagrams, ``codec`` a hilrig.bridge.datagram.FixedCodec: the end request.)"""
     try:
-        data = P.encode(P.error_frame(exc))
+        data = codec.encode(P.error_frame(exc))
         if hasattr(link, "send"):  # datagrams: no answer awaited
             link.send(data)
         else:
@@ -252,7 +253,7 @@ def _send_error(link, exc: ProtocolError) -> bool:
         return False
 
 
-def _abort_peer(link, safe_frame: bytes, exc: ProtocolError) -> str:
+def _abort_peer(link, safe_frame: bytes, exc: ProtocolError, codec=P) -> str:
     """After a protocol or sequence error: the safe actuation (output enable off) to the peer,
     then ERROR. Over request/reply each answer is read and dropped; over datagrams nothing is
     awaited. Returns what went out."""
@@ -265,9 +266,31 @@ def _abort_peer(link, safe_frame: bytes, exc: ProtocolError) -> str:
         sent.append("safe actuation")
     except (BridgeError, TransportTimeout, OSError):
         pass
-    if not link.closed and _send_error(link, exc):
+    if not link.closed and _send_error(link, exc, codec):
         sent.append(f"ERROR {P.error_frame(exc).code}")
     return ", ".join(sent) or "nothing (the link failed)"
+
+
+class _Agreed(Exception):
+    """No handshake: the fixed layout is agreed out of band."""
+
+
+#: what stands for the WELCOME when there is no handshake (fixed-layout datagrams)
+_NO_HANDSHAKE = type("NoHandshake", (), {"simulator_name": "(fixed layout: no handshake)"})()
+
+
+def _codec(layout, sc, mode: str, address: str):
+    """The frames' codec: msgpack (hilrig.bridge.protocol), or with a layout the fixed-layout
+    one (hilrig.bridge.datagram), after checking the address and the counters the mode needs."""
+    if layout is None:
+        return P
+    from .datagram import check_address, codec_for
+    check_address(address)
+    return codec_for(layout, sc, mode)
+
+
+def _layout_entry(layout) -> dict[str, Any]:
+    return {} if layout is None else {"frames": "fixed-layout", "layout": layout.describe()}
 
 
 def run_bridge(sc, address: str, folder: Path | None = None, *, mode: str = "lockstep",
@@ -275,16 +298,19 @@ def run_bridge(sc, address: str, folder: Path | None = None, *, mode: str = "loc
                curve_keys: Path | None = None,
                progress: Callable[[int, int], None] | None = None,
                notice: Callable[[str], None] | None = None,
-               telemetry: str | None = None) -> RunResult:
+               telemetry: str | None = None, layout=None) -> RunResult:
     """Run the scenario's controller against the simulator at ``address`` (``telemetry``:
-    publish the live view there)."""
+    publish the live view there; ``layout``, a hilrig.bridge.datagram.Layout: fixed-layout
+    datagrams instead of msgpack frames, no handshake, docs/protocol.md section 16)."""
     if mode not in MODES:
         raise BridgeError(f"bridge mode {mode!r} is not available; modes: {', '.join(MODES)}")
     if mode == "free-running":
         return run_free_running(sc, address, folder, timeout_s=timeout_s, overwrite=overwrite,
                                 progress=progress, notice=notice, telemetry=telemetry,
-                                allow_remote=allow_remote, curve_keys=curve_keys)
+                                allow_remote=allow_remote, curve_keys=curve_keys,
+                                layout=layout)
     sc = dataclasses.replace(sc, mode=mode)
+    codec = _codec(layout, sc, mode, address)
     folder = Path(folder) if folder is not None else default_folder(sc)
     check_folder(folder, overwrite)
     # the link first: a refused address or missing keys are reported before any compiling
@@ -299,6 +325,8 @@ def run_bridge(sc, address: str, folder: Path | None = None, *, mode: str = "loc
         n_meas, n_act = len(meas_map), len(act_map)
         h = P.map_hash(meas_map, act_map)
         try:
+            if layout is not None:
+                raise LookupError("fixed-layout frames take the Python path")
             fast = _Compiled(sc, a, link, n_meas)
         except LookupError:
             fast = None  # the Python path for every tick (e.g. NUMBA_DISABLE_JIT)
@@ -316,7 +344,7 @@ def run_bridge(sc, address: str, folder: Path | None = None, *, mode: str = "loc
         """Send a frame and return the reply, decoded and checked. After the compiled path
         (the frame already went out): ``reply``, the bytes it received; or ``resume``: "wait"
         (keep waiting, no resend) or "resend" (the first try timed out)."""
-        data = frame if isinstance(frame, bytes) else P.encode(frame)
+        data = frame if isinstance(frame, bytes) else codec.encode(frame)
         t0 = time.perf_counter_ns()
         seen.clear()
         datagrams = hasattr(link, "stale")
@@ -340,7 +368,7 @@ def run_bridge(sc, address: str, folder: Path | None = None, *, mode: str = "loc
         got = seen.get("frame")
         if got is None:
             try:
-                got = P.decode(reply, n_meas=n_meas, n_act=n_act)
+                got = codec.decode(reply, n_meas=n_meas, n_act=n_act)
             except ProtocolError as exc:
                 stats.rejects.add(exc.reason, str(exc))
                 raise
@@ -361,7 +389,7 @@ def run_bridge(sc, address: str, folder: Path | None = None, *, mode: str = "loc
         counted as a duplicate or out of order; anything else goes to the exchange, where a
         SAMPLE beyond the one due is a sequence error."""
         try:
-            got = P.decode(b, n_meas=n_meas, n_act=n_act)
+            got = codec.decode(b, n_meas=n_meas, n_act=n_act)
         except ProtocolError as exc:
             stats.rejects.add(exc.reason, str(exc))
             return False
@@ -381,13 +409,16 @@ def run_bridge(sc, address: str, folder: Path | None = None, *, mode: str = "loc
     hello = P.Hello(version=P.PROTOCOL_VERSION, tick_period_s=sc.Ts, mode=mode,
                     meas_map=meas_map, act_map=act_map, map_hash=h)
     try:
-        welcome = ask(hello, P.Welcome)
-        P.handshake_check(hello, welcome)
-        handshake["welcome"] = welcome
+        if layout is None:
+            welcome = ask(hello, P.Welcome)
+            P.handshake_check(hello, welcome)
+            handshake["welcome"] = welcome
+        else:
+            welcome = _NO_HANDSHAKE  # the layout is agreed out of band
         current = ask(P.Heartbeat(seq=0, t_sender_s=0.0), P.Sample, want_seq=0)
     except ProtocolError as exc:
         # a refused WELCOME (or an undecodable answer) is answered with ERROR (section 7.3)
-        _send_error(link, exc)
+        _send_error(link, exc, codec)
         link.close()
         raise BridgeError(f"bridge handshake with {address} failed: {exc}") from None
     except (PeerError, TransportTimeout) as exc:
@@ -499,8 +530,8 @@ def run_bridge(sc, address: str, folder: Path | None = None, *, mode: str = "loc
                 if why in ("protocol", "sequence") and not link.closed:
                     # the peer is still there: it gets the safe actuation, then ERROR
                     e["peer_told"] = _abort_peer(
-                        link, P.encode_actuation(kk, a["u"], int(rec[i, -2]), False),
-                        state.get("error") or ProtocolError("unexpected", detail))
+                        link, codec.encode_actuation(kk, a["u"], int(rec[i, -2]), False),
+                        state.get("error") or ProtocolError("unexpected", detail), codec)
                     stats.sent += 2
                 ended.append(e)
                 return i + 1
@@ -523,7 +554,7 @@ def run_bridge(sc, address: str, folder: Path | None = None, *, mode: str = "loc
                 _spin_until(t_in + wd[W_FORCED])
             enable = not bool(a["latch"][0])
             word = int(rec[i, -2])
-            frame = P.encode_actuation(kk, a["u"], word, enable)
+            frame = codec.encode_actuation(kk, a["u"], word, enable)
             state["took"] = time.perf_counter() - t_in
             if fast is not None:
                 fast.fio[fast.W.F_TOOK] = state["took"]
@@ -539,6 +570,10 @@ def run_bridge(sc, address: str, folder: Path | None = None, *, mode: str = "loc
         # the orderly end goes out before the summary is written, so its statistics count it
         if not link.closed and state["missing"] is None:
             try:
+                if layout is not None:
+                    link.send(codec.encode(P.Stop(reason="run ended")))  # the end request
+                    stats.sent += 1
+                    return ended  # no answer: a fixed-layout simulator sends samples only
                 ask(P.Stop(reason="run ended"), P.Stop)
             except (ProtocolError, PeerError, TransportTimeout) as exc:
                 ended.append({"event": "bridge stop not acknowledged", "detail": str(exc)})
@@ -549,7 +584,7 @@ def run_bridge(sc, address: str, folder: Path | None = None, *, mode: str = "loc
         res = execute(sc, prep, folder, produce,
                       timing={"compile_or_load_s": t_compile, "compiled_now": False},
                       progress=progress, extra=lambda: {"bridge": {
-                          "address": address, "mode": mode,
+                          "address": address, "mode": mode, **_layout_entry(layout),
                           "simulator": welcome.simulator_name, **stats.as_dict()}},
                       end_events=finish)
         summary = res.summary
@@ -564,7 +599,7 @@ def run_free_running(sc, address: str, folder: Path | None = None, *, timeout_s:
                      progress: Callable[[int, int], None] | None = None,
                      notice: Callable[[str], None] | None = None,
                      telemetry: str | None = None, allow_remote: bool = False,
-                     curve_keys: Path | None = None) -> RunResult:
+                     curve_keys: Path | None = None, layout=None) -> RunResult:
     """Free-running: the simulator keeps its own clock and sends a sample every period; the
     runtime answers each within the deadline of one period. A lost sample is a gap: the
     controller runs its tick on the last measurement held; more than ``watchdogs.max_gap``
@@ -582,6 +617,7 @@ def run_free_running(sc, address: str, folder: Path | None = None, *, timeout_s:
     from .transport import free_running_link
     mode = "free-running"
     sc = dataclasses.replace(sc, mode=mode)
+    codec = _codec(layout, sc, mode, address)
     folder = Path(folder) if folder is not None else default_folder(sc)
     check_folder(folder, overwrite)
     stale_s = stale_s if stale_s is not None else sc.stale_limit_s
@@ -615,7 +651,7 @@ def run_free_running(sc, address: str, folder: Path | None = None, *, timeout_s:
             return None
         stats.received += 1
         try:
-            return P.decode(data, n_meas=n_meas, n_act=n_act)
+            return codec.decode(data, n_meas=n_meas, n_act=n_act)
         except ProtocolError as exc:
             stats.rejects.add(exc.reason, str(exc))
             if fault["armed"] and not datagrams and fault["protocol"] is None:
@@ -627,6 +663,8 @@ def run_free_running(sc, address: str, folder: Path | None = None, *, timeout_s:
     hello = P.Hello(version=P.PROTOCOL_VERSION, tick_period_s=sc.Ts, mode=mode,
                     meas_map=meas_map, act_map=act_map, map_hash=P.map_hash(meas_map, act_map))
     try:
+        if layout is not None:
+            raise _Agreed()  # the layout is agreed out of band: no handshake
         link.send(P.encode(hello))
         stats.sent += 1
         welcome = recv_frame(timeout_s)  # a refused CurveZMQ handshake raises BridgeError here
@@ -637,6 +675,8 @@ def run_free_running(sc, address: str, folder: Path | None = None, *, timeout_s:
         if not isinstance(welcome, P.Welcome):
             raise BridgeError(f"the simulator answered HELLO with {type(welcome).__name__}")
         P.handshake_check(hello, welcome)
+    except _Agreed:
+        welcome = _NO_HANDSHAKE
     except (ProtocolError, PeerError, BridgeError, TransportTimeout) as exc:
         link.close()
         raise BridgeError(f"bridge handshake with {address} failed: {exc}") from None
@@ -709,7 +749,7 @@ def run_free_running(sc, address: str, folder: Path | None = None, *, timeout_s:
         live.chunk()
         if not state["started"]:
             # the simulator's clock starts now, with the recording open and the loop ready
-            link.send(P.encode(P.Heartbeat(seq=0, t_sender_s=0.0)))
+            link.send(codec.encode(P.Heartbeat(seq=0, t_sender_s=0.0)))
             stats.sent += 1
             state["started"] = fault["armed"] = True
         for i in range(n):
@@ -774,8 +814,8 @@ def run_free_running(sc, address: str, folder: Path | None = None, *, timeout_s:
                     _spin_until(t_in + wd[W_FORCED])
                 try:
                     # a watchdog tick answers too: the safe output, output enable off
-                    link.send(P.encode_actuation(kk, a["u"], int(rec[i, -2]),
-                                                 not bool(a["latch"][0])))
+                    link.send(codec.encode_actuation(kk, a["u"], int(rec[i, -2]),
+                                                     not bool(a["latch"][0])))
                     stats.sent += 1
                 except TransportTimeout as exc:
                     if end is None:
@@ -789,7 +829,7 @@ def run_free_running(sc, address: str, folder: Path | None = None, *, timeout_s:
             if end is not None:
                 if bits == HOST_PROTOCOL:
                     # the safe actuation went out above; then ERROR, and the session is over
-                    told = _send_error(link, fault["protocol"])
+                    told = _send_error(link, fault["protocol"], codec)
                     stats.sent += int(told)
                     end["peer_told"] = "safe actuation" + (
                         f", ERROR {P.error_frame(fault['protocol']).code}" if told else "")
@@ -803,8 +843,10 @@ def run_free_running(sc, address: str, folder: Path | None = None, *, timeout_s:
         if any(e["event"] in ("bridge peer lost", "bridge protocol error") for e in ended):
             return ended  # nobody is there to answer a STOP, or the session ended with ERROR
         try:
-            link.send(P.encode(P.Stop(reason="run ended")))
+            link.send(codec.encode(P.Stop(reason="run ended")))
             stats.sent += 1
+            if layout is not None:
+                return ended  # the end request has no answer
             deadline = time.perf_counter() + min(timeout_s, 2.0)
             while time.perf_counter() < deadline:
                 f = recv_frame(max(0.0, deadline - time.perf_counter()))
@@ -824,7 +866,8 @@ def run_free_running(sc, address: str, folder: Path | None = None, *, timeout_s:
         d = stats.as_dict()
         d["response_us"] = d.pop("rtt_us")
         d["late"] = counts["late_runtime"]
-        return {"bridge": {"address": address, "mode": mode, "simulator": welcome.simulator_name,
+        return {"bridge": {"address": address, "mode": mode, **_layout_entry(layout),
+                           "simulator": welcome.simulator_name,
                            "stale_limit_s": stale_s, "held_ticks": counts["held_ticks"],
                            "passed_over": counts["passed_over"],
                            "simulator_late_actuations": counts["sim_late"],

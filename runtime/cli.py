@@ -360,11 +360,27 @@ def _check_hv_acknowledged(sc, address: str, ack_hv: bool, allow_remote: bool) -
             f"safety-rated functions.")
 
 
+def _fixed_layout(sc, layout: str | None, address: str | None, mode: str):
+    """``--layout [FILE]``: the fixed-layout datagrams' layout (hilrig.bridge.datagram), from
+    FILE or, given as ``--layout`` alone, from the scenario's [bridge.layout]; else None."""
+    if layout is None:
+        return None
+    if not address:
+        raise ValueError("--layout applies to a bridge run or serve-sim: give --bridge "
+                         "udp://HOST:PORT (run) or --bind udp://HOST:PORT (serve-sim)")
+    from hilrig.bridge.datagram import check_address, load_layout
+    check_address(address)
+    lay = load_layout(layout or None, sc)
+    lay.require_counters(mode)
+    return lay
+
+
 def _run(console, plain, scenario_path: Path, out: str | None, overwrite: bool, sets: list[str],
          bridge: str | None = None, mode: str = "lockstep", timeout: float = 2.0,
          allow_remote: bool = False, curve_keys: str | None = None, ack_hv: bool = False,
          paced: bool = False, view: bool = False, telemetry: str | None = None,
-         realtime: bool = True, telemetry_keys: str | None = None, strict: bool = False):
+         realtime: bool = True, telemetry_keys: str | None = None, strict: bool = False,
+         layout: str | None = None):
     from hilrig.runtime.trials.plots import overview_png, units_png
     from hilrig.runtime.recording import open_run
     from hilrig.runtime.run import run_scenario
@@ -375,6 +391,7 @@ def _run(console, plain, scenario_path: Path, out: str | None, overwrite: bool, 
     _stability_check(console, {sc.controller.plugin.name: sc}, strict)
     if bridge:
         _check_hv_acknowledged(sc, bridge, ack_hv, allow_remote)
+    fixed = _fixed_layout(sc, layout, bridge, mode)
     _check_disk(console, sc, out, paced=paced or sc.mode == "paced")
     _catch_ctrl_c()
     viewer = None
@@ -408,7 +425,7 @@ def _run(console, plain, scenario_path: Path, out: str | None, overwrite: bool, 
                              allow_remote=allow_remote, overwrite=overwrite, progress=prog,
                              curve_keys=Path(curve_keys) if curve_keys else None,
                              notice=None if view else (lambda msg: console.print(msg)),
-                             telemetry=telemetry)
+                             telemetry=telemetry, layout=fixed)
         elif paced or sc.mode == "paced":
             from hilrig.runtime.live.paced import run_paced
             # no progress bar: its redraws would compete with the loop for this process
@@ -804,6 +821,13 @@ def _join_negative(argv: list[str]) -> list[str]:
     return out
 
 
+def _layout_arg(p) -> None:
+    p.add_argument("--layout", nargs="?", const="", metavar="FILE",
+                   help="fixed-layout datagrams instead of msgpack frames (udp:// only; "
+                        "docs/protocol.md section 16): the layout from FILE, or with --layout "
+                        "alone from the scenario's [bridge.layout]")
+
+
 def main(argv: list[str] | None = None) -> int:
     import warnings
     # numpy's per-operation warnings on absurd values (a peer sending 1e308): the summary says
@@ -836,6 +860,7 @@ def main(argv: list[str] | None = None) -> int:
     p.add_argument("--mode", default="lockstep", choices=["lockstep", "free-running"],
                    help="bridge mode (default lockstep)")
     p.add_argument("--timeout", type=float, default=2.0, metavar="S", help="bridge reply timeout [s] (default 2)")
+    _layout_arg(p)
     p.add_argument("--allow-remote", action="store_true",
                    help="allow a bridge address that is not on this machine (you take responsibility for the network)")
     p.add_argument("--curve-keys", metavar="DIR", help="CurveZMQ keys folder (hilrig keys DIR); required for a remote ZeroMQ peer")
@@ -874,6 +899,7 @@ def main(argv: list[str] | None = None) -> int:
     p.add_argument("--mode", default="lockstep", choices=["lockstep", "free-running"],
                    help="lockstep: advance one tick per actuation; free-running: on the simulator's own clock")
     p.add_argument("--idle-timeout", type=float, metavar="S", help="stop when nothing arrives for S seconds")
+    _layout_arg(p)
     p.add_argument("--allow-remote", action="store_true", help="allow binding to a non-loopback address")
     p.add_argument("--curve-keys", metavar="DIR", help="CurveZMQ keys folder; only runtimes whose public key is there get in")
     p.add_argument("--drop", type=float, default=0.0, metavar="FRACTION",
@@ -984,7 +1010,7 @@ def main(argv: list[str] | None = None) -> int:
                        ack_hv=args.acknowledge_high_voltage, paced=args.paced,
                        view=_wants_view(args, plain), telemetry=args.telemetry,
                        realtime=not args.no_realtime, telemetry_keys=args.telemetry_keys,
-                       strict=args.strict)
+                       strict=args.strict, layout=args.layout)
             return _run_status(res.summary)
         elif args.cmd == "watch":
             from hilrig.bridge.errors import BridgeError as _BridgeError
@@ -1020,6 +1046,17 @@ def main(argv: list[str] | None = None) -> int:
                             seed=args.fault_seed, disconnect_after=args.disconnect_after)
             sc = load_scenario(args.scenario)
             _show_caution(console, sc)
+            fixed = _fixed_layout(sc, args.layout, args.bind, args.mode)
+            if fixed is not None:
+                from hilrig.bridge import datagram
+                if args.curve_keys:
+                    raise ValueError("--curve-keys applies to ZeroMQ addresses (tcp://, ipc://), "
+                                     "not to fixed-layout datagrams (udp://)")
+                datagram.serve(sc, args.bind, fixed, mode=args.mode, sessions=args.sessions,
+                               allow_remote=args.allow_remote, idle_timeout_s=args.idle_timeout,
+                               faults=faults, commands=sys.stdin if args.commands else None,
+                               log=lambda m: console.print(m, markup=False))
+                return 0
             if args.mode == "free-running":
                 from hilrig.bridge.standin import serve_free_running
                 serve_free_running(sc, args.bind, sessions=args.sessions,

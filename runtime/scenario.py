@@ -41,7 +41,8 @@ PLANNED_MODES = ("lockstep", "free-running")
 
 TOP_KEYS = {"title", "description", "demo_data", "mode", "seed", "timing", "plant", "controller",
             "reference", "shaping", "load", "limits", "interlocks", "initial", "recording",
-            "faults", "resets", "watchdogs", "paced", "safe_state", "sensors", "design", "units"}
+            "faults", "resets", "watchdogs", "paced", "safe_state", "sensors", "design", "units",
+            "bridge"}
 #: ``[design] defaults``: designed from the plant, or the plugin's declared numbers
 DESIGN_DEFAULTS = ("plant", "declared")
 DESIGN_DEFAULT = {"v_range": None, "p_range": None, "defaults": "plant"}
@@ -330,6 +331,7 @@ def parse_scenario(text: str, name: str = "scenario.toml", path: str = "",
     paced = _paced(cx, raw)
     sensors = _sensors(cx, raw, plant, Ts, interlocks)
     design = _design(cx, raw)
+    _bridge(cx, raw, plant)
     return Scenario(path=path, text=text, title=title, description=description, demo_data=demo,
                     mode=mode, seed=seed, Ts=Ts, substeps=substeps, duration=duration,
                     plant=plant, controller=controller, reference=reference, shaping=shaping,
@@ -342,6 +344,22 @@ def parse_scenario(text: str, name: str = "scenario.toml", path: str = "",
                     overrides={"applied": [{"key": k, "value": _inline(v)}
                                            for k, v in (overrides or {}).items()],
                                "not_applied": [dict(d) for d in not_applied or []]})
+
+
+def _bridge(cx, raw: dict, plant) -> None:
+    """``[bridge]``: only ``layout`` (fixed-layout datagrams, hilrig.bridge.datagram), checked
+    here against the plant's signals; a run reads it from the scenario's text when asked to."""
+    table = raw.get("bridge")
+    if table is None:
+        return
+    if not isinstance(table, dict):
+        raise cx.fail("bridge", f" = {table!r} is not a table")
+    for k in table:
+        if k != "layout":
+            raise cx.unknown("bridge", k, ["layout"])
+    if "layout" in table:
+        from hilrig.bridge.datagram import layout_from_table, plant_names
+        layout_from_table(table["layout"], *plant_names(plant), f"{cx.name}: bridge.layout")
 
 
 def _check_shape(cx, raw: dict) -> None:
