@@ -37,7 +37,8 @@ from tests import locks  # noqa: E402
 #: test modules whose every test runs alone (file names); a new module of this kind belongs here
 ALONE = {
     "test_bridge_bad_frames.py", "test_bridge_free_running.py", "test_bridge_lockstep.py",
-    "test_bridge_second_client.py", "test_interlock_suite.py", "test_kill.py",
+    "test_bridge_second_client.py", "test_bridge_datagram.py", "test_fmu_live.py",
+    "test_interlock_suite.py", "test_kill.py",
     "test_live_view.py", "test_paced.py", "test_pacedwrite.py", "test_protocol_example.py",
     "test_telemetry_keys.py", "test_transport_pair.py", "test_protocol.py",
 }
