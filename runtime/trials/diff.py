@@ -16,8 +16,8 @@ What it compares:
 Tolerances (the exit status): ``--tol SIGNAL=VALUE`` is absolute in the signal's unit
 (``0.5 V``, ``500 mV``, a bare number in the signal's SI unit) or relative with ``%`` to B's
 range of the signal; ``--tol-metric NAME=VALUE`` is absolute in the metric's unit or relative
-with ``%`` to B's value. A metric is named as in summary.json (``iae_Vs``) or without its
-unit suffix (``iae``). Exit 0: every tolerance holds; 1: one or more do not (or, with
+with ``%`` to B's value. A metric is named as in summary.json (``iae_Vs``), without its
+unit suffix (``iae``), in any case, or by the start of one name (``iae_v``). Exit 0: every tolerance holds; 1: one or more do not (or, with
 ``bit_identical``, the runs are not bit-identical); 2: bad input (:class:`DiffInputError`).
 A sample that is finite in one run and not in the other breaks any tolerance of its signal.
 """
@@ -288,8 +288,9 @@ def _split(text: str, option: str) -> tuple[str, str]:
     name, sep, value = text.partition("=")
     name, value = name.strip(), value.strip()
     if not sep or not name or not value:
+        eg = "iae=5%" if option == "--tol-metric" else "v_out=0.5V or --tol i_L1=2%"
         raise DiffInputError(f"{option} {text!r} does not read: write NAME=VALUE, e.g. "
-                             f"{option} v_out=0.5V or {option} v_out=2%")
+                             f"{option} {eg}")
     return name, value
 
 
@@ -337,7 +338,7 @@ def judge(res: DiffResult, tols: list[str], metric_tols: list[str],
     short = {_metric_short(k): k for k in metrics}
     for text in metric_tols:
         name, value = _split(text, "--tol-metric")
-        key = name if name in metrics else short.get(name)
+        key = _metric_key(name, metrics, short)
         if key is None:
             known = ", ".join(f"{_metric_short(k)} ({k})" for k in metrics) or "none"
             raise DiffInputError(f"--tol-metric {text!r}: no metric {name!r} in the "
@@ -350,6 +351,24 @@ def judge(res: DiffResult, tols: list[str], metric_tols: list[str],
         ok = (delta is not None and delta <= limit) or (m["a"] is None and m["b"] is None)
         res.checks.append(Check("metric", key, value, limit, m["unit"], delta, bool(ok)))
     return res
+
+
+def _metric_key(name: str, metrics: dict, short: dict) -> str | None:
+    """The summary key a --tol-metric name means: the key itself, the key without its unit
+    suffix, either in any case, or the one key it begins (``iae_v`` -> ``iae_Vs``)."""
+    if name in metrics:
+        return name
+    if name in short:
+        return short[name]
+    low = name.lower()
+    for k in metrics:
+        if low in (k.lower(), _metric_short(k).lower()):
+            return k
+    begun = [k for k in metrics if k.lower().startswith(low)]
+    if len(begun) > 1:
+        raise DiffInputError(f"--tol-metric {name!r} could mean any of {', '.join(begun)}: "
+                             f"write the whole name")
+    return begun[0] if begun else None
 
 
 def _plot_signals(res: DiffResult) -> list[tuple[str, ...]]:

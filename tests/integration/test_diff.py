@@ -91,7 +91,9 @@ def test_exit_0_within_tolerances_and_1_beyond_a_metric_tolerance(runs):
     mb = json.loads((b / "summary.json").read_text())["metrics"]["iae_Vs"]
     rel = abs(mb - ma) / abs(mb) * 100
     assert _cli(a, b, "--no-plot", "--tol-metric", f"iae={rel * 1.01}%")[0] == 0
-    assert _cli(a, b, "--no-plot", "--tol-metric", f"iae={rel * 0.99}%")[0] == 1
+    assert _cli(a, b, "--no-plot", "--tol-metric", f"iae_v={rel * 0.99}%")[0] == 1
+    # absolute, in the metric's unit (V s)
+    assert _cli(a, b, "--no-plot", "--tol-metric", f"iae_Vs={abs(mb - ma) * 1.01}")[0] == 0
     # any difference fails under --bit-identical
     assert _cli(a, b, "--no-plot", "--bit-identical")[0] == 1
 
@@ -113,6 +115,7 @@ def test_run_against_itself_is_bit_identical(runs):
     (["{a}", "{b}", "--tol", "v_out=0.5A"], "expected V"),
     (["{a}", "{b}", "--tol", "v_out"], "write NAME=VALUE"),
     (["{a}", "{b}", "--tol-metric", "nope=5%"], "no metric 'nope'"),
+    (["{a}", "{b}", "--tol-metric", "v_out=5%"], "could mean any of v_out_min_V, v_out_max_V"),
 ])
 def test_bad_input_exits_2_with_one_line(runs, tmp_path, args, words):
     a, b = runs
