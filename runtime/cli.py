@@ -956,6 +956,23 @@ def main(argv: list[str] | None = None) -> int:
     p.add_argument("run", help="run folder")
     p.add_argument("--json", action="store_true", help="print summary.json (writes nothing)")
     p.add_argument("--out", help="report file to write (default: RUN/report.md)")
+    p = sub.add_parser("diff", help="compare two run folders: metrics, largest signal "
+                                    "differences, bit-identical verdict, overlaid plot; exit 1 "
+                                    "beyond a tolerance")
+    p.add_argument("run_a", metavar="RUN_A", help="run folder A (e.g. the stored baseline run)")
+    p.add_argument("run_b", metavar="RUN_B", help="run folder B (e.g. the changed controller's run)")
+    p.add_argument("--tol", action="append", default=[], metavar="SIGNAL=VALUE",
+                   help="largest |B - A| allowed for a signal: absolute in its unit (v_out=0.5V) "
+                        "or %% of B's range of it (i_L1=2%%) (repeatable)")
+    p.add_argument("--tol-metric", action="append", default=[], metavar="METRIC=VALUE",
+                   help="largest |B - A| allowed for a summary metric (iae=5%%: %% of B's "
+                        "value; or absolute in its unit) (repeatable)")
+    p.add_argument("--bit-identical", action="store_true",
+                   help="fail (exit 1) unless the runs are bit-identical")
+    p.add_argument("--json", action="store_true", help="print the result as JSON")
+    p.add_argument("--out", help="the overlaid plot: a .png file or a folder for diff.png "
+                                 "(default: diff-A-vs-B.png beside run A)")
+    p.add_argument("--no-plot", action="store_true", help="write no plot")
     p = sub.add_parser("plugins", help="list installed plugins with their parameters, and the "
                                        "controllers' defaults designed for a scenario's plant")
     p.add_argument("--json", action="store_true", help="machine-readable list")
@@ -1093,6 +1110,15 @@ def main(argv: list[str] | None = None) -> int:
                     console.print(f"event: {ev}")
                 dest = write_report(run, Path(args.out) if args.out else None)
                 console.print(f"wrote {dest}", markup=False)
+        elif args.cmd == "diff":
+            from hilrig.runtime.trials import diff as _diff
+            res = _diff.diff_runs(args.run_a, args.run_b, args.tol, args.tol_metric,
+                                  args.bit_identical, args.out, draw=not args.no_plot)
+            if args.json:
+                print(_json_text(res.as_dict()))
+            else:
+                _diff.print_result(console, res)
+            return res.exit_code
         elif args.cmd == "plugins":
             from hilrig.runtime.registry import all_plugins
             items = [p.declaration.describe() for p in all_plugins()]
