@@ -40,7 +40,7 @@ def _fail(where: str, msg: str) -> ScenarioError:
     return ScenarioError(f"{where}{msg}")
 
 
-def _unit_exponent(unit: str, dim: str, where: str) -> None:
+def _check_unit(unit: str, dim: str, where: str) -> None:
     """Refuse a unit that is unknown or of the wrong dimension (one line, with the fix)."""
     try:
         parse_quantity(f"1 {unit}", dim, where=where)
@@ -119,7 +119,7 @@ def _read_csv(path: Path, names, where):
                 cw = f"{where}, column {full!r}"
                 if unit is None:
                     raise _fail(cw, f": the header gives no unit; write it as '{name} [{dim}]'")
-                _unit_exponent(unit, dim, cw)
+                _check_unit(unit, dim, cw)
                 picks[k] = (j, unit, dim, full)
             continue
         if len(cells) != len(header):
@@ -182,7 +182,7 @@ def _read_hdf5(path: Path, names, where):
                 unit = unit.item()
             if not isinstance(unit, str):
                 raise _fail(dw, f": no 'unit' attribute; set it, e.g. unit = '{dim}'")
-            _unit_exponent(unit.strip(), dim, dw)
+            _check_unit(unit.strip(), dim, dw)
             # the same single rounding as a TOML quantity: shift the decimal exponent
             scale = parse_quantity(f"1 {unit.strip()}", dim)
             data = np.asarray(obj[()], dtype=np.float64)
