@@ -81,3 +81,16 @@ def test_profile_and_load_from_csv_record_the_toml_tables_bit_for_bit(tmp_path):
         assert np.array_equal(rec["files"][k], rec["tables"][k]), k
     # the profile did act: the step and the load ramp are in the recording
     assert rec["files"]["v_ref_raw"].max() == 415.5 and rec["files"]["P_load"].min() < 0
+
+
+def test_a_bad_waveform_file_is_one_line_and_exit_2(tmp_path):
+    from tests.integration.test_cli import run_cli
+    (tmp_path / "ref.csv").write_text("t [s], v_ref [V]\n0, 400\n0.01, 400\n0.01, 410\n")
+    (tmp_path / "load.csv").write_text("t [s], P [W]\n0, 0\n")
+    (tmp_path / "files.toml").write_text(FILES)
+    p = run_cli("run", tmp_path / "files.toml", "--out", tmp_path / "r", "--headless")
+    assert p.returncode == 2, p.stdout + p.stderr
+    errors = [line for line in p.stdout.splitlines() if line.startswith("error:")]
+    assert len(errors) == 1 and "reference.file" in errors[0] and "line 4: time 0.01 s repeats" \
+        in errors[0], p.stdout
+    assert "Traceback" not in p.stdout + p.stderr and not (tmp_path / "r").exists()
