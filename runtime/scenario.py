@@ -31,7 +31,7 @@ from hilrig.runtime.sensors import Sensor
 from hilrig.safety.interlocks import (SIDE_ABOVE, SIDE_BELOW, SIDE_CROSS, SIDE_FROZEN, SIDE_MAGNITUDE,
                                       Interlock)
 
-from . import registry
+from . import registry, waveforms
 from .errors import PluginError, ScenarioError, UnitError
 from .units import parse_quantity
 
@@ -678,6 +678,9 @@ def _plugin(cx, raw, key, default_name) -> PluginChoice:
     except PluginError as exc:
         raise ScenarioError(f"{cx.name}: {key}.plugin: {exc}") from None
     decl = plugin.declaration
+    if key == "reference" and "file" in tab:
+        # a waveform file gives the profile's points (docs/scenarios.md, "Waveforms from files")
+        tab = waveforms.reference_from_file(cx, tab, decl)
     known = [p.name for p in decl.params]
     values = decl.defaults()
     for k, v in tab.items():
@@ -738,12 +741,16 @@ def _table_param(cx, where, rows, q: TableParam):
 
 def _load(cx, raw):
     tab = _table(cx, raw, "load")
+    keys = ("interpolation", "points") + (waveforms.LOAD_KEYS if "file" in tab else ())
     for k in tab:
-        if k not in ("interpolation", "points"):
-            raise cx.unknown("load", k, ["interpolation", "points"])
+        if k not in keys:
+            raise cx.unknown("load", k, keys if "file" in tab else keys + ("file",))
     interp = tab.get("interpolation", "step")
     if interp not in ("step", "linear"):
         raise cx.fail("load.interpolation", f" = {interp!r} is not 'step' or 'linear'")
+    if "file" in tab:
+        # a waveform file gives the points (docs/scenarios.md, "Waveforms from files")
+        tab = {"points": waveforms.load_points(cx, tab, interp)}
     points = tab.get("points", [{"t": 0.0, "P": 0.0}])
     if not isinstance(points, list) or not points or not all(isinstance(p, dict) for p in points):
         raise cx.fail("load.points", " must be a non-empty array of tables [[load.points]] "
