@@ -144,3 +144,44 @@ def test_units_run_lists_each_units_plant_and_controller(tmp_path):
     plant2 = {q["name"]: q for q in units[1]["plant"]["parameters"]}
     assert plant2["L1"]["set"] == "given" and abs(plant2["L1"]["value"] - 162e-6) < 1e-18
     assert {q["name"]: q for q in units[0]["plant"]["parameters"]}["L1"]["set"] == "default"
+
+
+# ---- generated and file plugins: the record of the scenario as loaded (no run, no compile) --
+
+def test_a_controller_in_c_records_its_c_source_and_a_file_plugin_its_path():
+    from hilrig.runtime.provenance import record
+    from hilrig.runtime.scenario import load_scenario
+    from tests.fmu import build as fmu_build
+    if fmu_build.compiler() is None:
+        pytest.skip("needs a C compiler")
+    folder = ROOT / "examples" / "c_controller"
+    c = {e["role"]: e for e in record(load_scenario(folder / "pi_c.toml"))["plugins"]}["controller"]
+    assert c["origin_kind"] == "file" and c["version"] == "file"
+    gen, src = c["sources"]
+    assert gen["role"] == "generated module" and gen["sha256"] == _sha(gen["file"])
+    assert src == {"role": "C source", "file": str((folder / "pi.c").resolve()),
+                   "sha256": _sha(folder / "pi.c")}
+    params = {q["name"]: q for q in c["parameters"]}
+    assert params["Kp_v"] == {"name": "Kp_v", "value": 5.0, "unit": "A/V", "set": "given"}
+    n = {e["role"]: e for e in record(load_scenario(folder / "pi_numba.toml"))["plugins"]}
+    n = n["controller"]
+    path = str((folder / "pi_numba.py").resolve())
+    assert n["origin"] == path and n["version"] == "file"
+    assert n["sources"] == [{"role": "plugin module", "file": path, "sha256": _sha(path)}]
+
+
+def test_an_fmu_plant_records_the_fmu_file(tmp_path):
+    from hilrig.runtime.provenance import record
+    from hilrig.runtime.scenario import load_scenario
+    from tests.fmu import build as fmu_build
+    if fmu_build.compiler() is None:
+        pytest.skip("needs a C compiler")
+    lib = fmu_build.compile_library(tmp_path / "build")
+    fmu = fmu_build.pack(tmp_path, lib)
+    scen = tmp_path / "me.toml"
+    scen.write_text(fmu_build.scenario(fmu))
+    p = {e["role"]: e for e in record(load_scenario(scen))["plugins"]}["plant"]
+    files = {s["role"]: s for s in p["sources"]}
+    assert files["FMU"]["file"] == str(Path(fmu).resolve()) or Path(files["FMU"]["file"]).samefile(fmu)
+    assert files["FMU"]["sha256"] == _sha(fmu)
+    assert files["generated module"]["sha256"] == _sha(files["generated module"]["file"])
