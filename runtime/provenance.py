@@ -17,6 +17,7 @@ unit's plant and controller, recorded the same way.
 """
 from __future__ import annotations
 
+import dataclasses
 import hashlib
 import os
 from functools import lru_cache
@@ -127,8 +128,13 @@ def record(sc) -> dict[str, Any]:
                                        for role in ("plant", "controller", "reference")]}
     units = getattr(sc, "units", None)
     if units is not None:
-        out["units"] = [
-            {"unit": k, "plant": plugin_entry("unit plant", pch),
-             "controller": plugin_entry("unit controller", cch)}
-            for k, (pch, cch) in enumerate(zip(units.plants, units.controllers), 1)]
+        # the values each unit's controller ran with are the composite controller's (a design
+        # from the plant writes them there, runtime/multi/design.py), not the parsed ones
+        ran = sc.controller.values.get("units") if isinstance(sc.controller.values, dict) else None
+        out["units"] = []
+        for k, (pch, cch) in enumerate(zip(units.plants, units.controllers), 1):
+            if ran and k <= len(ran) and isinstance(ran[k - 1].get("values"), dict):
+                cch = dataclasses.replace(cch, values=ran[k - 1]["values"])
+            out["units"].append({"unit": k, "plant": plugin_entry("unit plant", pch),
+                                 "controller": plugin_entry("unit controller", cch)})
     return out

@@ -185,3 +185,22 @@ def test_an_fmu_plant_records_the_fmu_file(tmp_path):
     assert files["FMU"]["file"] == str(Path(fmu).resolve()) or Path(files["FMU"]["file"]).samefile(fmu)
     assert files["FMU"]["sha256"] == _sha(fmu)
     assert files["generated module"]["sha256"] == _sha(files["generated module"]["file"])
+
+
+def test_units_designed_from_the_plant_record_the_values_each_unit_ran_with():
+    # [design] defaults = "plant": each unit's controller gets the parameters the scenario
+    # leaves out designed; the record shows those numbers (the ones packed for the run)
+    from hilrig.runtime.provenance import record
+    from hilrig.runtime.run import prepare
+    from hilrig.runtime.scenario import load_scenario
+    prep = prepare(load_scenario(FOUR, overrides={"design.defaults": "plant"}))
+    units = record(prep.sc)["units"]
+    ran = prep.sc.controller.values["units"]
+    designed = 0
+    for u, r in zip(units, ran):
+        params = {q["name"]: q for q in u["controller"]["parameters"]}
+        for n, v in r["values"].items():
+            if n in params and isinstance(v, float):
+                assert params[n]["value"] == v, (u["unit"], n)
+                designed += params[n]["set"] == "designed"
+    assert designed > 0
