@@ -266,7 +266,8 @@ def _plugin_lines(e: dict, heading: str) -> list[str]:
     if e.get("parameters"):
         L += ["", "| parameter | value | unit | set |", "|---|---:|---|---|"]
         for q in e["parameters"]:
-            L.append(f"| {q['name']} | {_param_value(q)} | {q['unit']} | {q['set']} |")
+            cells = (q["name"], _param_value(q), q["unit"], q["set"])
+            L.append("| " + " | ".join(str(c).replace("|", "\\|") for c in cells) + " |")
     return L
 
 

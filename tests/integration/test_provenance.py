@@ -114,6 +114,7 @@ def test_report_shows_what_ran(step_run):
     assert "| R2 | 0.004 | ohm | given |" in section
     assert "| L1 | 0.00015 | H | default |" in section
     assert "| points | table 3 x 2, sha256 " in section
+    assert "| t [s] \\| v [V] | given |" in section  # a table's units, the cell's bar escaped
 
 
 def test_units_run_lists_each_units_plant_and_controller(tmp_path):
