@@ -873,6 +873,8 @@ def execute(sc: Scenario, prep: Prepared, folder: Path,
     c_build = getattr(sc.controller.plugin.module, "build_record", None)
     if c_build is not None:  # a controller in C: how its library was compiled (runtime/cplugin.py)
         vers["c_controller"] = c_build()
+    from .provenance import record as provenance_record
+    prov = provenance_record(prep.sc)  # each plugin: origin, source hashes, version, parameters
     names = [s.name for s in prep.signals]
     i_vout, i_vref, i_u = names.index("v_out"), names.index("v_ref"), names.index(prep.u_names[0])
     i_vdc = names.index("v_dc") if "v_dc" in names else None
@@ -884,7 +886,7 @@ def execute(sc: Scenario, prep: Prepared, folder: Path,
         "scenario_text": sc.text, "versions": dumps_json(vers), "seed": sc.seed, "Ts": sc.Ts,
         "title": sc.title, "demo_data": sc.demo_data, "mode": sc.mode,
         "plant": sc.plant.plugin.name, "controller": sc.controller.plugin.name,
-        "reference": sc.reference.plugin.name,
+        "reference": sc.reference.plugin.name, "provenance": dumps_json(prov),
     }, chunk_rows=chunk, compression=sc.recording["compression"], **more)
     block = getattr(writer, "block", None)
     metrics = TrackingMetrics(sc.Ts)
@@ -1011,6 +1013,7 @@ def execute(sc: Scenario, prep: Prepared, folder: Path,
             "realtime_factor": (done * sc.Ts) / wall if wall > 0 else None,
         },
         "versions": vers,
+        "provenance": prov,
         "recording": "recording.h5",
     }
     attrs = {"events": dumps_json(events)}

@@ -251,6 +251,43 @@ def _controller_section(s: dict) -> list[str]:
     return L
 
 
+def _param_value(q: dict) -> str:
+    if "shape" in q:  # a table: its shape and hash, not its rows
+        return f"table {' x '.join(str(n) for n in q['shape'])}, sha256 {q['sha256'][:16]}"
+    v = q.get("value")
+    return _fmt(v) if isinstance(v, (int, float)) and not isinstance(v, bool) else str(v)
+
+
+def _plugin_lines(e: dict, heading: str) -> list[str]:
+    L = ["", f"### {heading}: {e['name']}", "",
+         f"- origin: {e['origin_kind']} `{e['origin']}`, version {e['version']}"]
+    for src in e.get("sources", []):
+        L.append(f"- {src['role']}: `{src['file']}` sha256 `{src['sha256']}`")
+    if e.get("parameters"):
+        L += ["", "| parameter | value | unit | set |", "|---|---:|---|---|"]
+        for q in e["parameters"]:
+            cells = (q["name"], _param_value(q), q["unit"], q["set"])
+            L.append("| " + " | ".join(str(c).replace("|", "\\|") for c in cells) + " |")
+    return L
+
+
+def _what_ran_section(prov: dict | None) -> list[str]:
+    """Each plugin of the run: origin, version, source hashes, every resolved parameter."""
+    L = ["", "## What ran", ""]
+    if not prov:
+        L.append("This run's summary has no plugin record (written by an older hilrig).")
+        return L
+    L.append("Every plugin of the run with the sha256 of its source files and every parameter "
+             "as it ran: `given` by the scenario or an override, the plugin's `default`, or "
+             "`designed` from the plant.")
+    for e in prov.get("plugins", []):
+        L += _plugin_lines(e, e["role"])
+    for u in prov.get("units", []):
+        L += _plugin_lines(u["plant"], f"unit {u['unit']} plant")
+        L += _plugin_lines(u["controller"], f"unit {u['unit']} controller")
+    return L
+
+
 def write_report(run: Run, dest: Path | None = None) -> Path:
     """Write ``report.md`` (and its PNGs in ``report/``) for a finished run; return its path."""
     from .plots import overview_png, units_png
@@ -389,6 +426,7 @@ def write_report(run: Run, dest: Path | None = None) -> Path:
     L.append("")
     for k, v in (s.get("versions") or {}).items():
         L.append(f"- {k} {v}")
+    L += _what_ran_section(s.get("provenance"))
     L.append("")
     L.append("## Scenario")
     L.append("")
