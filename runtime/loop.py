@@ -589,7 +589,7 @@ def cache_dir() -> Path:
 
 #: runtime code that no compiled function imports (work on finished runs, beside a real-time
 #: run, the analysis, the command line): a change there must not recompile every loop
-_NOT_COMPILED = ("trials", "live", "analysis", "cli.py")
+_NOT_COMPILED = ("trials", "live", "analysis", "cli.py", "provenance.py", "waveforms.py")
 
 
 def _sources(plugins: list[Plugin]) -> list[Path]:
