@@ -119,7 +119,8 @@ def build(cx, raw: dict, folder: Path, quantity):
         raise cx.fail("plant.interface", f" = {iface!r}: {fname} does not offer {iface.replace('_', ' ')} "
                       f"(it offers: {', '.join(offered) or 'none'}); choose one it offers")
     me, cs = md.modelExchange, md.coSimulation
-    if me is not None and int(md.numberOfEventIndicators or 0) > 0:
+    # model exchange leaves the events to the importer; a co-simulation FMU locates its own
+    if iface == "model_exchange" and int(md.numberOfEventIndicators or 0) > 0:
         raise cx.fail("plant.fmu", f" = {ref!r}: {fname} has {md.numberOfEventIndicators} event "
                       f"indicators; hilrig does not locate state events in an FMU yet: export it "
                       f"without event indicators (or run it as co-simulation)")

@@ -225,6 +225,21 @@ CASES = {
 }
 
 
+def test_event_indicators_refuse_model_exchange_only(fmu):
+    """An FMU with event indicators that offers both interfaces: as model exchange it is refused
+    (the importer would have to locate the state events, which hilrig's loop does not), as
+    co-simulation it is taken (a co-simulation FMU locates its own events inside its step; FMI
+    2.0 standard, section 4, from memory). The first reading refused both."""
+    tmp, lib, _ = fmu
+    edit = {'numberOfEventIndicators="0"': 'numberOfEventIndicators="2"'}
+    path = fmu_build.pack(tmp, lib, "events_both.fmu", edit=edit)
+    with pytest.raises(ScenarioError, match="2 event indicators"):
+        parse_scenario(fmu_build.scenario(path), name="case.toml", path=str(tmp / "case.toml"))
+    sc = parse_scenario(fmu_build.scenario(path, interface="co_simulation"), name="case.toml",
+                        path=str(tmp / "case.toml"))
+    assert sc.plant.plugin.module.SPEC["interface"] == "cs"
+
+
 @pytest.mark.parametrize("case", sorted(CASES))
 def test_mismatch_is_one_clear_message(fmu, case):
     tmp, lib, _ = fmu
